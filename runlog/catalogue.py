@@ -1,0 +1,359 @@
+"""The catalogue: runlog's Python API over one store, used by the CLI, the dashboard and tests.
+
+``runlog.open(url)`` returns a :class:`Catalogue`. It opens (and on first use creates) the
+store, ingests files, and answers questions about runs, shots and annotations as plain
+Python values and pandas DataFrames.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import getpass
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import and_, func, select
+from sqlalchemy.engine import Engine
+
+from runlog.config import Mapping, load_config
+from runlog.errors import NotFoundError, SchemaVersionError, StoreError
+from runlog.ingest import IngestResult, Progress, ingest_files
+from runlog.store import schema as s
+from runlog.store.engine import current_revision, make_engine, redact, resolve_url
+
+__all__ = ["Catalogue", "RunInfo", "open_catalogue"]
+
+
+@dataclass(frozen=True)
+class RunInfo:
+    """One run as ``runlog show`` presents it."""
+
+    run: str
+    apparatus: str
+    sequence: str
+    shots: int
+    started: dt.datetime
+    finished: dt.datetime
+    operator: str | None
+    notes: str | None
+    tags: list[str]
+    parameters: dict[str, dict[str, object]]
+    measurements: list[str]
+    images: dict[str, dict[str, object]]
+    figures: dict[str, dict[str, object]] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, object]:
+        return {
+            "run": self.run,
+            "apparatus": self.apparatus,
+            "sequence": self.sequence,
+            "shots": self.shots,
+            "started": self.started.isoformat(),
+            "finished": self.finished.isoformat(),
+            "operator": self.operator,
+            "notes": self.notes,
+            "tags": self.tags,
+            "parameters": self.parameters,
+            "measurements": self.measurements,
+            "images": self.images,
+            "figures": self.figures,
+        }
+
+
+def _as_utc(value: dt.datetime | dt.date | str | None) -> dt.datetime | None:
+    if value is None:
+        return None
+    if isinstance(value, str):
+        value = dt.datetime.fromisoformat(value)
+    if isinstance(value, dt.date) and not isinstance(value, dt.datetime):
+        value = dt.datetime(value.year, value.month, value.day)
+    if value.tzinfo is None:
+        value = value.replace(tzinfo=dt.timezone.utc)
+    return value.astimezone(dt.timezone.utc)
+
+
+class Catalogue:
+    """A runlog catalogue on SQLite or PostgreSQL."""
+
+    def __init__(self, url: str | None = None, *, create: bool = True):
+        self._url = resolve_url(url)
+        self.engine: Engine = make_engine(self._url)
+        try:
+            found = current_revision(self.engine)
+        except Exception as error:  # driver errors differ per backend; say which store failed
+            self.engine.dispose()
+            raise StoreError(f"cannot open catalogue {self.url}: {str(error).splitlines()[0]}") from None
+        if found is None and create:
+            self.init()
+        elif found != s.SCHEMA_REVISION:
+            self.engine.dispose()
+            raise SchemaVersionError(self.url, found, s.SCHEMA_REVISION)
+
+    @property
+    def url(self) -> str:
+        """The catalogue URL with any password hidden."""
+        return redact(self._url)
+
+    def init(self) -> str:
+        """Create the schema or upgrade it to this runlog's revision; idempotent."""
+        from runlog.store.migrate import upgrade
+
+        upgrade(self.engine)
+        return s.SCHEMA_REVISION
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+    def __enter__(self) -> Catalogue:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # --- writing -------------------------------------------------------------------
+
+    def ingest(self, paths: Iterable[str | Path] | str | Path, *, config: str | Path | Mapping | None = None, progress: Progress | None = None) -> list[IngestResult]:
+        """Ingest shot-table files (folders give their ``*.parquet``); one result per file."""
+        if isinstance(paths, (str, Path)):
+            paths = [paths]
+        mapping = config if isinstance(config, Mapping) else load_config(config)
+        return ingest_files(self.engine, paths, mapping, progress)
+
+    def annotate(self, text: str, *, run: str | None = None, apparatus: str | None = None, at: dt.datetime | str | None = None, author: str | None = None) -> int:
+        """Add a note tied to a run, or to an apparatus at a time; returns its id."""
+        if not text.strip():
+            raise ValueError("an annotation needs text")
+        now = dt.datetime.now(dt.timezone.utc)
+        with self.engine.begin() as connection:
+            run_id = None
+            if run is not None:
+                found = self._find_run(connection, run, apparatus)
+                run_id, apparatus_id = found.id, found.apparatus_id
+                when = _as_utc(at) or found.started
+            else:
+                if apparatus is None:
+                    raise ValueError("an annotation needs a run, or an apparatus and a time")
+                apparatus_id = connection.execute(select(s.Apparatus.id).where(s.Apparatus.name == apparatus)).scalar()
+                if apparatus_id is None:
+                    raise NotFoundError("apparatus", apparatus, self._suggest(connection, s.Apparatus.name, apparatus))
+                when = _as_utc(at) or now
+            row = {"apparatus_id": apparatus_id, "run_id": run_id, "at": when, "text": text.strip(), "author": author or _user(), "created_at": now}
+            return int(connection.execute(s.Annotation.__table__.insert().returning(s.Annotation.id), row).scalar_one())
+
+    # --- reading -------------------------------------------------------------------
+
+    def runs(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> pd.DataFrame:
+        """Runs, newest first: run, apparatus, sequence, shots, started, finished, operator."""
+        query = (
+            select(
+                s.Run.key.label("run"),
+                s.Apparatus.name.label("apparatus"),
+                s.Run.sequence,
+                s.Run.shot_count.label("shots"),
+                s.Run.started,
+                s.Run.finished,
+                s.Run.operator,
+            )
+            .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .order_by(s.Run.started.desc(), s.Run.id.desc())
+        )
+        if apparatus is not None:
+            query = query.where(s.Apparatus.name == apparatus)
+        if sequence is not None:
+            query = query.where(s.Run.sequence == sequence)
+        if since is not None:
+            query = query.where(s.Run.finished >= _as_utc(since))
+        if until is not None:
+            query = query.where(s.Run.started < _as_utc(until))
+        with self.engine.connect() as connection:
+            rows = connection.execute(query).all()
+        return pd.DataFrame(rows, columns=["run", "apparatus", "sequence", "shots", "started", "finished", "operator"])
+
+    def run(self, key: str, *, apparatus: str | None = None) -> RunInfo:
+        """Everything stored about one run (parameters, measurements, images, figures)."""
+        with self.engine.connect() as connection:
+            found = self._find_run(connection, key, apparatus)
+            apparatus_name = connection.execute(select(s.Apparatus.name).where(s.Apparatus.id == found.apparatus_id)).scalar_one()
+            parameters: dict[str, dict[str, object]] = {}
+            for name, unit, kind, scanned, number, text_value, low, high in connection.execute(
+                select(s.Parameter.name, s.Parameter.unit, s.Parameter.kind, s.RunParameter.scanned, s.RunParameter.number_value, s.RunParameter.text_value, s.RunParameter.minimum, s.RunParameter.maximum)
+                .join(s.Parameter, s.Parameter.id == s.RunParameter.parameter_id)
+                .where(s.RunParameter.run_id == found.id)
+                .order_by(s.Parameter.name)
+            ):
+                entry: dict[str, object] = {"unit": unit, "scanned": bool(scanned)}
+                if scanned:
+                    if kind != "text":
+                        entry["min"], entry["max"] = low, high
+                elif kind == "text":
+                    entry["value"] = text_value
+                elif kind == "boolean":
+                    entry["value"] = bool(number)
+                else:
+                    entry["value"] = number
+                parameters[name] = entry
+            measurements = [
+                name
+                for (name,) in connection.execute(
+                    select(s.Measurement.name)
+                    .where(s.Measurement.id.in_(select(s.MeasurementValue.measurement_id).join(s.Shot, s.Shot.id == s.MeasurementValue.shot_id).where(s.Shot.run_id == found.id).distinct()))
+                    .order_by(s.Measurement.name)
+                )
+            ]
+            images = {
+                name: {"role": role, "sites": sites, "shape": [int(n) for n in shape.split(",")]}
+                for name, role, sites, shape in connection.execute(select(s.Image.name, s.Image.role, s.Image.sites, s.Image.shape).where(s.Image.run_id == found.id).order_by(s.Image.id))
+            }
+            figures = {}
+            for row in connection.execute(select(*s.FigureRow.__table__.columns).where(s.FigureRow.run_id == found.id).order_by(s.FigureRow.name)):
+                entry = {"value": row.value, "unit": row.unit}
+                if row.stderr is not None:
+                    entry["stderr"] = row.stderr
+                if row.ci_low is not None:
+                    entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
+                entry["method"] = row.method
+                figures[row.name] = entry
+            tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures)
+
+    def shots(self, run: str, *, apparatus: str | None = None) -> pd.DataFrame:
+        """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
+
+        Units are in ``DataFrame.attrs["units"]``; a shot lacking a parameter or a
+        measurement has NaN (numbers) or None (text) there.
+        """
+        with self.engine.connect() as connection:
+            found = self._find_run(connection, run, apparatus)
+            shots = pd.DataFrame(
+                connection.execute(select(s.Shot.id, s.Shot.shot, s.Shot.time, s.Shot.status).where(s.Shot.run_id == found.id).order_by(s.Shot.shot)).all(),
+                columns=["id", "shot", "time", "status"],
+            )
+            units: dict[str, str] = {}
+            for pid, name, unit, kind, scanned, number, text_value in connection.execute(
+                select(s.Parameter.id, s.Parameter.name, s.Parameter.unit, s.Parameter.kind, s.RunParameter.scanned, s.RunParameter.number_value, s.RunParameter.text_value)
+                .join(s.Parameter, s.Parameter.id == s.RunParameter.parameter_id)
+                .where(s.RunParameter.run_id == found.id)
+                .order_by(s.Parameter.name)
+            ):
+                column = f"p.{name}"
+                units[column] = unit
+                if not scanned:
+                    value = text_value if kind == "text" else (bool(number) if kind == "boolean" else number)
+                    shots[column] = [value] * len(shots)
+                    continue
+                values = dict(
+                    connection.execute(
+                        select(s.ShotParameter.shot_id, s.ShotParameter.text_value if kind == "text" else s.ShotParameter.number_value)
+                        .join(s.Shot, s.Shot.id == s.ShotParameter.shot_id)
+                        .where(and_(s.Shot.run_id == found.id, s.ShotParameter.parameter_id == pid))
+                    ).all()
+                )
+                shots[column] = shots["id"].map(values)
+            long = pd.DataFrame(
+                connection.execute(
+                    select(s.MeasurementValue.shot_id, s.Measurement.name, s.Measurement.unit, s.MeasurementValue.value)
+                    .join(s.Measurement, s.Measurement.id == s.MeasurementValue.measurement_id)
+                    .join(s.Shot, s.Shot.id == s.MeasurementValue.shot_id)
+                    .where(s.Shot.run_id == found.id)
+                ).all(),
+                columns=["id", "name", "unit", "value"],
+            )
+        if len(long):
+            for name, unit in long[["name", "unit"]].drop_duplicates().itertuples(index=False):
+                units[f"m.{name}"] = unit
+            wide = long.pivot(index="id", columns="name", values="value")
+            wide.columns = [f"m.{name}" for name in wide.columns]
+            shots = shots.join(wide, on="id")
+        shots.insert(0, "run", found.key)
+        shots = shots.drop(columns=["id"])
+        shots.attrs["units"] = units
+        return shots
+
+    def occupancy(self, run: str, image: str | None = None, *, apparatus: str | None = None) -> np.ndarray:
+        """Site occupancy of one image of a run as a (shots, sites) boolean array, by shot index.
+
+        ``image`` defaults to the run's loading image.
+        """
+        with self.engine.connect() as connection:
+            found = self._find_run(connection, run, apparatus)
+            query = select(s.Image.id, s.Image.sites, s.Image.name).where(s.Image.run_id == found.id)
+            query = query.where(s.Image.name == image) if image else query.where(s.Image.role == "loading")
+            row = connection.execute(query).first()
+            if row is None:
+                raise NotFoundError("occupancy image", image or "(loading)", f"run '{run}'")
+            image_id, sites, _ = row
+            blobs = connection.execute(
+                select(s.Occupancy.bits).join(s.Shot, s.Shot.id == s.Occupancy.shot_id).where(and_(s.Shot.run_id == found.id, s.Occupancy.image_id == image_id)).order_by(s.Shot.shot)
+            ).scalars().all()
+        if not blobs:
+            return np.zeros((0, sites), dtype=bool)
+        packed = np.frombuffer(b"".join(bytes(b) for b in blobs), dtype=np.uint8).reshape(len(blobs), -1)
+        return np.unpackbits(packed, axis=1, count=sites).astype(bool)
+
+    def annotations(self, *, apparatus: str | None = None, since: dt.datetime | dt.date | str | None = None) -> pd.DataFrame:
+        """Annotations, oldest first: apparatus, run, at, text, author."""
+        query = (
+            select(s.Apparatus.name.label("apparatus"), s.Run.key.label("run"), s.Annotation.at, s.Annotation.text, s.Annotation.author)
+            .join(s.Apparatus, s.Apparatus.id == s.Annotation.apparatus_id)
+            .outerjoin(s.Run, s.Run.id == s.Annotation.run_id)
+            .order_by(s.Annotation.at, s.Annotation.id)
+        )
+        if apparatus is not None:
+            query = query.where(s.Apparatus.name == apparatus)
+        if since is not None:
+            query = query.where(s.Annotation.at >= _as_utc(since))
+        with self.engine.connect() as connection:
+            return pd.DataFrame(connection.execute(query).all(), columns=["apparatus", "run", "at", "text", "author"])
+
+    def ingest_log(self, *, limit: int = 100, status: str | None = None) -> pd.DataFrame:
+        """The latest ingest attempts, newest first."""
+        query = select(s.IngestLogEntry.file, s.IngestLogEntry.status, s.IngestLogEntry.reason, s.IngestLogEntry.runs, s.IngestLogEntry.shots, s.IngestLogEntry.sha256, s.IngestLogEntry.finished_at).order_by(s.IngestLogEntry.id.desc()).limit(limit)
+        if status is not None:
+            query = query.where(s.IngestLogEntry.status == status)
+        with self.engine.connect() as connection:
+            return pd.DataFrame(connection.execute(query).all(), columns=["file", "status", "reason", "runs", "shots", "sha256", "finished_at"])
+
+    def counts(self) -> dict[str, int]:
+        """How many apparatus, runs and shots the catalogue holds."""
+        with self.engine.connect() as connection:
+            return {
+                "apparatus": connection.execute(select(func.count()).select_from(s.Apparatus)).scalar_one(),
+                "runs": connection.execute(select(func.count()).select_from(s.Run)).scalar_one(),
+                "shots": connection.execute(select(func.count()).select_from(s.Shot)).scalar_one(),
+            }
+
+    # --- helpers -------------------------------------------------------------------
+
+    def _find_run(self, connection, key: str, apparatus: str | None):
+        query = select(*s.Run.__table__.columns).where(s.Run.key == key)
+        if apparatus is not None:
+            query = query.join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id).where(s.Apparatus.name == apparatus)
+        found = connection.execute(query).all()
+        if not found:
+            raise NotFoundError("run", key, self._suggest(connection, s.Run.key, key))
+        if len(found) > 1:
+            raise NotFoundError("single run", key, "several apparatus have a run of that name: give --apparatus")
+        return found[0]
+
+    @staticmethod
+    def _suggest(connection, column, name: str) -> str:
+        import difflib
+
+        known = [v for (v,) in connection.execute(select(column).distinct().limit(5000))]
+        close = difflib.get_close_matches(name, known, n=3)
+        return f"did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+
+
+def _user() -> str | None:
+    try:
+        return getpass.getuser()
+    except Exception:  # no login name in some containers; the author is optional
+        return None
+
+
+def open_catalogue(url: str | None = None, *, create: bool = True) -> Catalogue:
+    """Open the catalogue at ``url`` (else ``RUNLOG_DB``, else the default SQLite file)."""
+    return Catalogue(url, create=create)

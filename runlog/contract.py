@@ -1,0 +1,345 @@
+"""The shot-table contract, version 1: which columns a file must have and what they mean.
+
+Owns: naming (reserved columns, ``p.<name>[<unit>]``, ``m.<name>[<unit>]``, ``occ.<image>``),
+the mapping of a lab's own column names onto those roles, the checks that can be made
+from the schema alone, and turning one record batch into plain numpy arrays with every
+per-row check done (null keys, negative shots, non-finite numbers, text in numeric
+columns). Checks that span batches (duplicate shots, equal occupancy lengths within a
+run) belong to ingest, which sees the whole file. See docs/shot-table.md.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from runlog.config import Mapping
+from runlog.errors import ContractError
+from runlog.units import check_unit
+
+__all__ = [
+    "CONTRACT_VERSION",
+    "RESERVED",
+    "OPTIONAL",
+    "Column",
+    "Layout",
+    "Batch",
+    "read_layout",
+    "normalise_batch",
+]
+
+CONTRACT_VERSION = 1
+RESERVED = ("run", "apparatus", "sequence", "shot", "time")
+OPTIONAL = ("operator", "notes", "tags", "status")
+
+_NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
+_IMAGE = re.compile(r"^occ\.(?P<name>[^\[\]]+)$")
+
+
+@dataclass(frozen=True)
+class Column:
+    """One column of the file in its contract role.
+
+    ``role`` is one of 'reserved', 'optional', 'parameter', 'measurement', 'occupancy';
+    ``source`` is the column's name in the file, ``name`` its name in the catalogue.
+    ``kind`` is 'number', 'boolean' or 'text' for parameters; ``shape`` is the lattice
+    shape of an occupancy image when the file or the mapping gives one.
+    """
+
+    source: str
+    role: str
+    name: str
+    unit: str = ""
+    kind: str = "number"
+    shape: tuple[int, ...] | None = None
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Every column of one file, checked against the contract from the schema alone."""
+
+    file: str
+    columns: tuple[Column, ...]
+    loading: str | None
+    survival: str | None
+    default_apparatus: str | None
+
+    def by_role(self, role: str) -> list[Column]:
+        return [column for column in self.columns if column.role == role]
+
+    def source(self, name: str) -> str | None:
+        for column in self.columns:
+            if column.role in ("reserved", "optional") and column.name == name:
+                return column.source
+        return None
+
+
+@dataclass
+class Batch:
+    """One record batch as numpy arrays, every per-row check passed.
+
+    ``parameters`` maps name to a float64 array (NaN = the shot lacks it) or, for text
+    parameters, an object array (``None`` = lacks it). ``occupancy`` maps image name to
+    the list array as read (checked: no nulls, boolean values).
+    """
+
+    first_row: int
+    length: int
+    run: np.ndarray  # object: run key per row
+    apparatus: np.ndarray  # object
+    sequence: np.ndarray  # object
+    shot: np.ndarray  # int64
+    time_us: np.ndarray  # int64 microseconds since the epoch, UTC
+    status: np.ndarray | None
+    operator: np.ndarray | None
+    notes: np.ndarray | None
+    tags: np.ndarray | None
+    parameters: dict[str, np.ndarray]
+    measurements: dict[str, np.ndarray]
+    occupancy: dict[str, pa.ListArray]
+
+
+def _shape_of(field: pa.Field) -> tuple[int, ...] | None:
+    meta = field.metadata or {}
+    raw = meta.get(b"shape")
+    if raw is None:
+        return None
+    try:
+        shape = tuple(int(part) for part in raw.decode().split(","))
+    except ValueError:
+        return None
+    return shape if shape and all(n > 0 for n in shape) else None
+
+
+def _kind_of(file: str, name: str, arrow_type: pa.DataType) -> str:
+    if pa.types.is_boolean(arrow_type):
+        return "boolean"
+    if pa.types.is_integer(arrow_type) or pa.types.is_floating(arrow_type) or pa.types.is_decimal(arrow_type):
+        return "number"
+    if pa.types.is_string(arrow_type) or pa.types.is_large_string(arrow_type):
+        return "text"
+    if pa.types.is_dictionary(arrow_type):
+        return _kind_of(file, name, arrow_type.value_type)
+    if pa.types.is_null(arrow_type):
+        return "number"
+    raise ContractError(file, f"type {arrow_type} is not a number, boolean or text", column=name)
+
+
+def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
+    """Map every column of ``schema`` to its contract role, or refuse the file."""
+    columns: list[Column] = []
+    seen: dict[str, str] = {}
+    for field in schema:
+        source = field.name
+        if source in mapping.ignore:
+            continue
+        target = mapping.rename.get(source, source)
+        if target in RESERVED or target in OPTIONAL:
+            column = Column(source, "reserved" if target in RESERVED else "optional", target)
+        elif (match := _NAMED.match(target)) is not None:
+            name = match["name"].strip()
+            try:
+                unit = check_unit(match["unit"] or "")
+            except ValueError as error:
+                raise ContractError(file, str(error), column=source) from None
+            if match["prefix"] == "p":
+                column = Column(source, "parameter", name, unit, _kind_of(file, source, field.type))
+            else:
+                column = Column(source, "measurement", name, unit)
+        elif (match := _IMAGE.match(target)) is not None:
+            column = Column(source, "occupancy", match["name"].strip(), shape=_shape_of(field) or mapping.shape)
+        else:
+            raise ContractError(
+                file,
+                "not a shot-table column: name it p.<name>[unit], m.<name>[unit] or occ.<image>, "
+                "or map or ignore it in runlog.toml",
+                column=source,
+            )
+        key = f"{column.role}:{column.name}"
+        if column.role in ("reserved", "optional"):
+            key = column.name
+        if key in seen:
+            raise ContractError(file, f"maps to the same {column.role} '{column.name}' as column '{seen[key]}'", column=source)
+        seen[key] = source
+        columns.append(column)
+
+    present = {c.name for c in columns if c.role == "reserved"}
+    for name in RESERVED:
+        if name == "apparatus" and mapping.apparatus:
+            continue
+        if name not in present:
+            raise ContractError(file, "required column is missing", column=name)
+
+    types = {field.name: field.type for field in schema}
+    for column in columns:
+        arrow_type = types[column.source]
+        if pa.types.is_dictionary(arrow_type):
+            arrow_type = arrow_type.value_type
+        if column.name == "time" and column.role == "reserved":
+            if not pa.types.is_timestamp(arrow_type):
+                raise ContractError(file, f"must be a timestamp with time zone, found {arrow_type}", column=column.source, row=0)
+            if arrow_type.tz is None:
+                raise ContractError(file, "timestamp has no time zone (write it as UTC or with an offset)", column=column.source, row=0)
+        if column.role == "occupancy":
+            if not (pa.types.is_list(arrow_type) or pa.types.is_large_list(arrow_type) or pa.types.is_fixed_size_list(arrow_type)):
+                raise ContractError(file, f"occupancy must be a list of booleans, found {arrow_type}", column=column.source, row=0)
+            if not (pa.types.is_boolean(arrow_type.value_type) or pa.types.is_integer(arrow_type.value_type)):
+                raise ContractError(file, f"occupancy must be a list of booleans, found {arrow_type}", column=column.source, row=0)
+
+    images = [c.name for c in columns if c.role == "occupancy"]
+    loading, survival = mapping.loading, mapping.survival
+    for role, name in (("loading", loading), ("survival", survival)):
+        if name is not None and name not in images:
+            raise ContractError(file, f"runlog.toml names '{name}' as the {role} image but the file has no column occ.{name}", column=f"occ.{name}")
+    if loading is None and images:
+        loading = images[0]
+    if survival is None and len(images) == 2:
+        survival = images[-1]
+    return Layout(file, tuple(columns), loading, survival, mapping.apparatus)
+
+
+def _first(mask: np.ndarray) -> int:
+    return int(np.flatnonzero(mask)[0])
+
+
+def _strings(file: str, array: pa.Array, column: str, first_row: int, required: bool) -> np.ndarray:
+    if pa.types.is_dictionary(array.type):
+        array = array.cast(array.type.value_type)
+    if not (pa.types.is_string(array.type) or pa.types.is_large_string(array.type) or pa.types.is_null(array.type)):
+        if pa.types.is_integer(array.type):
+            array = array.cast(pa.string())
+        else:
+            raise ContractError(file, f"must be text, found {array.type}", column=column, row=first_row)
+    if required and array.null_count:
+        raise ContractError(file, "empty value", column=column, row=first_row + _first(array.is_null().to_numpy(zero_copy_only=False)))
+    values = array.to_numpy(zero_copy_only=False)
+    if required:
+        empty = pc.equal(pc.utf8_trim_whitespace(array), "").to_numpy(zero_copy_only=False)
+        if empty.any():
+            raise ContractError(file, "empty value", column=column, row=first_row + _first(empty))
+    return values
+
+
+def _numbers(file: str, array: pa.Array, column: str, first_row: int) -> np.ndarray:
+    """Float64 with NaN for missing; refuses text that is not a number and ±inf."""
+    if pa.types.is_dictionary(array.type):
+        array = array.cast(array.type.value_type)
+    if pa.types.is_string(array.type) or pa.types.is_large_string(array.type):
+        # Text in a numeric column: name the first value that is not a number.
+        for index, value in enumerate(array.to_pylist()):
+            if value is None:
+                continue
+            try:
+                float(value)
+            except ValueError:
+                raise ContractError(file, f"text {value[:40]!r} in a numeric column", column=column, row=first_row + index) from None
+        array = pc.cast(array, pa.float64())
+    elif pa.types.is_boolean(array.type) or pa.types.is_integer(array.type) or pa.types.is_decimal(array.type):
+        array = pc.cast(array, pa.float64())
+    elif pa.types.is_null(array.type):
+        array = pa.nulls(len(array), pa.float64())
+    elif not pa.types.is_floating(array.type):
+        raise ContractError(file, f"must be numeric, found {array.type}", column=column, row=first_row)
+    values = array.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+    infinite = np.isinf(values)
+    if infinite.any():
+        raise ContractError(file, "infinite value", column=column, row=first_row + _first(infinite))
+    return values
+
+
+def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Batch:
+    """Check every row of ``batch`` and return it as numpy arrays."""
+    file = layout.file
+    n = batch.num_rows
+    get = batch.column
+
+    def reserved(name: str) -> pa.Array | None:
+        source = layout.source(name)
+        return None if source is None else get(source)
+
+    run = _strings(file, reserved("run"), layout.source("run"), first_row, required=True)
+    apparatus_array = reserved("apparatus")
+    if apparatus_array is None:
+        apparatus = np.full(n, layout.default_apparatus, dtype=object)
+    else:
+        apparatus = _strings(file, apparatus_array, layout.source("apparatus"), first_row, required=True)
+    sequence = _strings(file, reserved("sequence"), layout.source("sequence"), first_row, required=True)
+
+    shot_source = layout.source("shot")
+    shot_array = reserved("shot")
+    if pa.types.is_floating(shot_array.type):
+        floats = shot_array.to_numpy(zero_copy_only=False)
+        bad = np.isnan(floats) | (floats != np.round(floats))
+        if bad.any():
+            raise ContractError(file, "shot index must be a whole number", column=shot_source, row=first_row + _first(bad))
+        shot_array = pc.cast(shot_array, pa.int64())
+    if not pa.types.is_integer(shot_array.type):
+        if pa.types.is_string(shot_array.type) or pa.types.is_large_string(shot_array.type):
+            _numbers(file, shot_array, shot_source, first_row)  # names the first text row
+        raise ContractError(file, f"shot index must be an integer, found {shot_array.type}", column=shot_source, row=first_row)
+    if shot_array.null_count:
+        raise ContractError(file, "empty shot index", column=shot_source, row=first_row + _first(shot_array.is_null().to_numpy(zero_copy_only=False)))
+    shot = shot_array.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+    negative = shot < 0
+    if negative.any():
+        raise ContractError(file, f"negative shot index {int(shot[negative][0])}", column=shot_source, row=first_row + _first(negative))
+
+    time_source = layout.source("time")
+    time_array = reserved("time")
+    if time_array.null_count:
+        raise ContractError(file, "empty time", column=time_source, row=first_row + _first(time_array.is_null().to_numpy(zero_copy_only=False)))
+    time_us = pc.cast(time_array, pa.timestamp("us", tz="UTC")).cast(pa.int64()).to_numpy(zero_copy_only=False)
+
+    def optional(name: str) -> np.ndarray | None:
+        array = reserved(name)
+        return None if array is None else _strings(file, array, layout.source(name), first_row, required=False)
+
+    parameters: dict[str, np.ndarray] = {}
+    for column in layout.by_role("parameter"):
+        array = get(column.source)
+        if column.kind == "text":
+            parameters[column.name] = _strings(file, array, column.source, first_row, required=False)
+        else:
+            parameters[column.name] = _numbers(file, array, column.source, first_row)
+
+    measurements = {column.name: _numbers(file, get(column.source), column.source, first_row) for column in layout.by_role("measurement")}
+
+    occupancy: dict[str, pa.ListArray] = {}
+    for column in layout.by_role("occupancy"):
+        array = get(column.source)
+        # A null list means the shot has no such image; ingest checks that a run has
+        # the image in all of its shots or in none.
+        values = array.flatten()
+        if values.null_count:
+            lengths = pc.fill_null(pc.list_value_length(array), 0).to_numpy(zero_copy_only=False)
+            bad_value = _first(values.is_null().to_numpy(zero_copy_only=False))
+            row = int(np.searchsorted(np.cumsum(lengths), bad_value, side="right"))
+            raise ContractError(file, "empty site in occupancy list", column=column.source, row=first_row + row)
+        if pa.types.is_integer(values.type):
+            not_bit = pc.invert(pc.is_in(values, pa.array([0, 1], values.type))).to_numpy(zero_copy_only=False)
+            if not_bit.any():
+                lengths = pc.fill_null(pc.list_value_length(array), 0).to_numpy(zero_copy_only=False)
+                row = int(np.searchsorted(np.cumsum(lengths), _first(not_bit), side="right"))
+                raise ContractError(file, "occupancy values must be true/false or 0/1", column=column.source, row=first_row + row)
+        occupancy[column.name] = array
+
+    return Batch(
+        first_row=first_row,
+        length=n,
+        run=run,
+        apparatus=apparatus,
+        sequence=sequence,
+        shot=shot,
+        time_us=time_us,
+        status=optional("status"),
+        operator=optional("operator"),
+        notes=optional("notes"),
+        tags=optional("tags"),
+        parameters=parameters,
+        measurements=measurements,
+        occupancy=occupancy,
+    )

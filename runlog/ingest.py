@@ -1,0 +1,706 @@
+"""Ingest: shot-table files into the catalogue, each file all or nothing.
+
+A file is read twice, in record batches, so peak memory does not grow with its size:
+pass 1 checks every row and gathers what the write needs (runs, shot indices, which
+parameters are constant over each run); pass 2, inside one write transaction, appends
+shots, per-shot parameters, measurements and occupancy. A file whose SHA-256 is already
+in the ingest log as ingested is ``already-present`` and writes nothing; a refused file
+writes only its refusal to the ingest log.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import os
+import time
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+from sqlalchemy import insert
+from sqlalchemy.engine import Engine
+
+from runlog.config import Mapping
+from runlog.contract import Batch, Layout, normalise_batch, read_layout
+from runlog.errors import ContractError
+from runlog.store.bulk import Writer, open_writer
+from runlog.store.schema import IngestLogEntry
+from runlog.units import conversion
+
+__all__ = ["IngestResult", "ingest_files", "expand_paths", "file_sha256", "BATCH_ROWS"]
+
+BATCH_ROWS = 65_536
+_CLOSE = 1e-12  # relative tolerance when comparing parameter values after a unit conversion
+
+Progress = Callable[[str, int, int], None]  # (file, rows done, rows total)
+
+
+@dataclass(frozen=True)
+class IngestResult:
+    """How one file ended: ``ingested``, ``already-present`` or ``rejected`` (with a reason)."""
+
+    file: str
+    status: str
+    runs: tuple[str, ...] = ()
+    shots: int = 0
+    reason: str | None = None
+
+    def as_dict(self) -> dict[str, object]:
+        return {
+            "file": self.file,
+            "status": self.status,
+            "run": self.runs[0] if len(self.runs) == 1 else (list(self.runs) if self.runs else None),
+            "runs": list(self.runs),
+            "shots": self.shots,
+            "reason": self.reason,
+        }
+
+
+@dataclass
+class _Parameter:
+    kind: str
+    unit: str
+    present: int = 0
+    constant: bool = True
+    first: object = None
+    minimum: float = np.inf
+    maximum: float = -np.inf
+
+
+@dataclass
+class _Run:
+    key: str
+    apparatus: str
+    sequence: str
+    first_row: int
+    started_us: int = np.iinfo(np.int64).max
+    finished_us: int = np.iinfo(np.int64).min
+    shots: list[np.ndarray] = field(default_factory=list)
+    rows: list[np.ndarray] = field(default_factory=list)
+    operator: str | None = None
+    notes: str | None = None
+    tags: set[str] = field(default_factory=set)
+    parameters: dict[str, _Parameter] = field(default_factory=dict)
+    image_sites: dict[str, int] = field(default_factory=dict)
+    has_image: dict[str, bool] = field(default_factory=dict)
+    # Filled in the write transaction.
+    run_id: int = 0
+    per_shot: set[str] = field(default_factory=set)
+
+    @property
+    def shot_count(self) -> int:
+        return int(sum(len(s) for s in self.shots))
+
+
+def file_sha256(path: Path) -> tuple[str, int]:
+    digest = hashlib.sha256()
+    size = 0
+    with open(path, "rb") as handle:
+        while chunk := handle.read(1 << 20):
+            digest.update(chunk)
+            size += len(chunk)
+    return digest.hexdigest(), size
+
+
+def expand_paths(paths: Iterable[str | Path]) -> list[Path]:
+    """Files as given, folders as their ``*.parquet`` files (sorted, not recursive)."""
+    out: list[Path] = []
+    for raw in paths:
+        path = Path(raw)
+        if path.is_dir():
+            out.extend(sorted(p for p in path.glob("*.parquet") if p.is_file()))
+        else:
+            out.append(path)
+    return out
+
+
+def _open(path: Path) -> pq.ParquetFile:
+    try:
+        return pq.ParquetFile(path)
+    except FileNotFoundError:
+        raise ContractError(str(path), "file not found") from None
+    except IsADirectoryError:
+        raise ContractError(str(path), "is a folder, not a file") from None
+    except (pa.ArrowException, OSError) as error:
+        raise ContractError(str(path), f"not a readable Parquet file ({_short(error)})") from None
+
+
+def _short(error: Exception) -> str:
+    return str(error).strip().splitlines()[0][:200] if str(error).strip() else type(error).__name__
+
+
+def _batches(path: Path, parquet: pq.ParquetFile, layout: Layout) -> Iterator[tuple[int, Batch]]:
+    first_row = 0
+    try:
+        for record_batch in parquet.iter_batches(batch_size=BATCH_ROWS, columns=[c.source for c in layout.columns]):
+            yield first_row, normalise_batch(layout, record_batch, first_row)
+            first_row += record_batch.num_rows
+    except (pa.ArrowException, OSError) as error:
+        raise ContractError(str(path), f"unreadable or truncated Parquet data near row {first_row} ({_short(error)})") from None
+
+
+def _group(run_index: np.ndarray) -> list[tuple[int, np.ndarray]]:
+    """Row positions of each run present in a batch, in row order within each run."""
+    order = np.argsort(run_index, kind="stable")
+    ordered = run_index[order]
+    cuts = np.flatnonzero(np.diff(ordered)) + 1
+    return [(int(ordered[part[0]]), part) for part in np.split(order, cuts) if len(part)]
+
+
+class _Plan:
+    """What pass 1 learned of a file: its runs, and their per-run parameter statistics."""
+
+    def __init__(self, path: Path, layout: Layout):
+        self.path = path
+        self.layout = layout
+        self.rows = 0
+        self.runs: list[_Run] = []
+        self.index: dict[tuple[str, str], int] = {}
+
+    def run_index(self, batch: Batch) -> np.ndarray:
+        """The position in ``self.runs`` of every row's (apparatus, run), adding new runs."""
+        apparatus_names, apparatus_codes = np.unique(batch.apparatus.astype(str), return_inverse=True)
+        run_names, run_codes = np.unique(batch.run.astype(str), return_inverse=True)
+        pairs = apparatus_codes.reshape(-1).astype(np.int64) * len(run_names) + run_codes.reshape(-1)
+        unique, first, inverse = np.unique(pairs, return_index=True, return_inverse=True)
+        mapping = np.empty(len(unique), dtype=np.int64)
+        for position, pair in enumerate(unique):
+            key = (str(apparatus_names[pair // len(run_names)]), str(run_names[pair % len(run_names)]))
+            found = self.index.get(key)
+            if found is None:
+                found = len(self.runs)
+                self.index[key] = found
+                row = int(first[position])
+                self.runs.append(_Run(key[1], key[0], str(batch.sequence[row]), batch.first_row + row))
+            mapping[position] = found
+        return mapping[inverse.reshape(-1)]
+
+    def add(self, batch: Batch) -> None:
+        file = str(self.path)
+        layout = self.layout
+        run_index = self.run_index(batch)
+        lengths = {name: pc.fill_null(pc.list_value_length(array), -1).to_numpy(zero_copy_only=False) for name, array in batch.occupancy.items()}
+        for position, rows in _group(run_index):
+            run = self.runs[position]
+            sequences = batch.sequence[rows]
+            differs = sequences != run.sequence
+            if differs.any():
+                row = batch.first_row + int(rows[np.flatnonzero(differs)[0]])
+                raise ContractError(file, f"run '{run.key}' changes sequence from '{run.sequence}' to '{sequences[differs][0]}'", column=layout.source("sequence"), row=row)
+            run.shots.append(batch.shot[rows])
+            run.rows.append(rows + batch.first_row)
+            times = batch.time_us[rows]
+            run.started_us = min(run.started_us, int(times.min()))
+            run.finished_us = max(run.finished_us, int(times.max()))
+            for attribute in ("operator", "notes"):
+                values = getattr(batch, attribute)
+                if values is not None and getattr(run, attribute) is None:
+                    present = [v for v in values[rows] if v]
+                    if present:
+                        setattr(run, attribute, str(present[0]))
+            if batch.tags is not None:
+                for value in set(batch.tags[rows]) - {None}:
+                    run.tags.update(t.strip() for t in str(value).split(",") if t.strip())
+            for column in layout.by_role("parameter"):
+                self._add_parameter(run, column.name, column.kind, column.unit, batch.parameters[column.name][rows])
+            for column in layout.by_role("occupancy"):
+                run_lengths = lengths[column.name][rows]
+                has_image = run.has_image.setdefault(column.name, bool(run_lengths[0] >= 0))
+                bad = (run_lengths < 0) if has_image else (run_lengths >= 0)
+                if bad.any():
+                    row = batch.first_row + int(rows[np.flatnonzero(bad)[0]])
+                    state = "lacks" if has_image else "has"
+                    raise ContractError(file, f"shot {state} this image while other shots of run '{run.key}' do not: a run has an image in all its shots or in none", column=column.source, row=row)
+                if not has_image:
+                    continue
+                expected = run.image_sites.setdefault(column.name, int(run_lengths[0]))
+                bad = run_lengths != expected
+                if bad.any():
+                    row = batch.first_row + int(rows[np.flatnonzero(bad)[0]])
+                    raise ContractError(file, f"occupancy list has {int(run_lengths[bad][0])} sites, earlier shots of run '{run.key}' have {expected}", column=column.source, row=row)
+        self.rows += batch.length
+
+    @staticmethod
+    def _add_parameter(run: _Run, name: str, kind: str, unit: str, values: np.ndarray) -> None:
+        stats = run.parameters.setdefault(name, _Parameter(kind, unit))
+        if kind == "text":
+            present = values[values != None]  # noqa: E711 - elementwise on an object array
+            if len(present) == 0:
+                return
+            value: object = present[0]
+            uniform = bool((present == value).all())
+        else:
+            present = values[~np.isnan(values)]
+            if len(present) == 0:
+                return
+            low, high = float(present.min()), float(present.max())
+            stats.minimum = min(stats.minimum, low)
+            stats.maximum = max(stats.maximum, high)
+            value, uniform = float(present[0]), low == high
+        if stats.present == 0:
+            stats.first = value
+        if not uniform or value != stats.first:
+            stats.constant = False
+        stats.present += len(present)
+
+    def finish(self) -> None:
+        file = str(self.path)
+        if self.rows == 0:
+            raise ContractError(file, "file has no rows")
+        shot_source = self.layout.source("shot")
+        first_bad: tuple[int, str] | None = None
+        for run in self.runs:
+            shots = np.concatenate(run.shots)
+            rows = np.concatenate(run.rows)
+            order = np.argsort(shots, kind="stable")
+            ordered = shots[order]
+            duplicate = ordered[1:] == ordered[:-1]
+            if duplicate.any():
+                row = int(rows[order][1:][duplicate].min())
+                if first_bad is None or row < first_bad[0]:
+                    first_bad = (row, f"duplicate shot index {int(shots[rows == row][0])} in run '{run.key}'")
+            run.shots, run.rows = [shots], [rows]
+        if first_bad is not None:
+            raise ContractError(file, first_bad[1], column=shot_source, row=first_bad[0])
+        for run in self.runs:
+            for stats in run.parameters.values():
+                if stats.present < run.shot_count:
+                    stats.constant = False
+
+
+def _utc(us: int) -> dt.datetime:
+    return dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc) + dt.timedelta(microseconds=int(us))
+
+
+def _one(writer: Writer, sql: str, params: dict) -> object:
+    rows = writer.rows(sql, params)
+    return rows[0][0] if rows else None
+
+
+class _Catalogue:
+    """The ids the write needs: apparatus, parameters and measurements, created on demand."""
+
+    def __init__(self, writer: Writer, file: str):
+        self.writer = writer
+        self.file = file
+        self.apparatus: dict[str, int] = {}
+        self.parameters: dict[str, tuple[int, str, str]] = {}
+        self.measurements: dict[str, tuple[int, str]] = {}
+
+    def apparatus_id(self, name: str) -> int:
+        if name not in self.apparatus:
+            found = _one(self.writer, "SELECT id FROM apparatus WHERE name = :name", {"name": name})
+            if found is None:
+                self.writer.execute("INSERT INTO apparatus (name) VALUES (:name)", {"name": name})
+                found = _one(self.writer, "SELECT id FROM apparatus WHERE name = :name", {"name": name})
+            self.apparatus[name] = int(found)
+        return self.apparatus[name]
+
+    def parameter(self, name: str, kind: str, unit: str, column: str) -> tuple[int, str, str]:
+        if name not in self.parameters:
+            rows = self.writer.rows("SELECT id, unit, kind FROM parameters WHERE name = :name", {"name": name})
+            if not rows:
+                self.writer.execute("INSERT INTO parameters (name, unit, kind) VALUES (:name, :unit, :kind)", {"name": name, "unit": unit, "kind": kind})
+                rows = self.writer.rows("SELECT id, unit, kind FROM parameters WHERE name = :name", {"name": name})
+            pid, stored_unit, stored_kind = rows[0]
+            if stored_kind != kind:
+                raise ContractError(self.file, f"parameter '{name}' is stored as {stored_kind}, this file has {kind}", column=column)
+            if kind != "text" and conversion(unit, stored_unit) is None:
+                raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of parameter '{name}'", column=column)
+            self.parameters[name] = (int(pid), stored_unit, stored_kind)
+        return self.parameters[name]
+
+    def measurement(self, name: str, unit: str, column: str) -> tuple[int, str]:
+        if name not in self.measurements:
+            rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
+            if not rows:
+                self.writer.execute("INSERT INTO measurements (name, unit) VALUES (:name, :unit)", {"name": name, "unit": unit})
+                rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
+            mid, stored_unit = rows[0]
+            if conversion(unit, stored_unit) is None:
+                raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of measurement '{name}'", column=column)
+            self.measurements[name] = (int(mid), stored_unit)
+        return self.measurements[name]
+
+
+def _to_stored(value: float, unit: str, stored_unit: str) -> float:
+    scale, offset = conversion(unit, stored_unit)  # type: ignore[misc]
+    return value * scale + offset
+
+
+def _same(a: object, b: object) -> bool:
+    if isinstance(a, str) or isinstance(b, str):
+        return a == b
+    return bool(np.isclose(float(a), float(b), rtol=_CLOSE, atol=0.0))
+
+
+def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
+    """Create or extend the runs of the file; decide which parameters need per-shot rows."""
+    layout = plan.layout
+    file = str(plan.path)
+    for column in layout.by_role("parameter"):
+        ids.parameter(column.name, column.kind, column.unit, column.source)
+    for column in layout.by_role("measurement"):
+        ids.measurement(column.name, column.unit, column.source)
+    shot_source = layout.source("shot")
+    for run in plan.runs:
+        apparatus_id = ids.apparatus_id(run.apparatus)
+        found = writer.rows(
+            "SELECT id, sequence, shot_count FROM runs WHERE apparatus_id = :a AND key = :k",
+            {"a": apparatus_id, "k": run.key},
+        )
+        started, finished = _utc(run.started_us), _utc(run.finished_us)
+        if found:
+            run_id, sequence, stored_count = found[0]
+            run.run_id = int(run_id)
+            if sequence != run.sequence:
+                raise ContractError(file, f"run '{run.key}' is stored with sequence '{sequence}', this file says '{run.sequence}'", column=layout.source("sequence"), row=run.first_row)
+            stored = np.array([r[0] for r in writer.rows("SELECT shot FROM shots WHERE run_id = :r", {"r": run.run_id})], dtype=np.int64)
+            clash = np.isin(run.shots[0], stored)
+            if clash.any():
+                row = int(run.rows[0][clash].min())
+                raise ContractError(file, f"shot index {int(run.shots[0][run.rows[0] == row][0])} of run '{run.key}' is already in the catalogue", column=shot_source, row=row)
+            writer.execute(
+                "UPDATE runs SET started = CASE WHEN started < :s THEN started ELSE :s END, "
+                "finished = CASE WHEN finished > :f THEN finished ELSE :f END, "
+                "shot_count = shot_count + :n, operator = COALESCE(operator, :o), notes = COALESCE(notes, :t) WHERE id = :r",
+                {"s": started, "f": finished, "n": run.shot_count, "o": run.operator, "t": run.notes, "r": run.run_id},
+            )
+            _merge_parameters(writer, run, ids, int(stored_count))
+            for name, sites in run.image_sites.items():
+                stored_sites = _one(writer, "SELECT sites FROM images WHERE run_id = :r AND name = :n", {"r": run.run_id, "n": name})
+                if stored_sites is not None and int(stored_sites) != sites:
+                    raise ContractError(file, f"occupancy list has {sites} sites, stored shots of run '{run.key}' have {int(stored_sites)}", column=f"occ.{name}", row=run.first_row)
+        else:
+            writer.execute(
+                "INSERT INTO runs (apparatus_id, key, sequence, started, finished, shot_count, operator, notes) "
+                "VALUES (:a, :k, :q, :s, :f, :n, :o, :t)",
+                {"a": apparatus_id, "k": run.key, "q": run.sequence, "s": started, "f": finished, "n": run.shot_count, "o": run.operator, "t": run.notes},
+            )
+            run.run_id = int(_one(writer, "SELECT id FROM runs WHERE apparatus_id = :a AND key = :k", {"a": apparatus_id, "k": run.key}))
+            for name, stats in run.parameters.items():
+                if stats.present == 0:
+                    continue
+                pid, stored_unit, kind = ids.parameters[name]
+                _insert_run_parameter(writer, run.run_id, pid, stats, stored_unit)
+                if not stats.constant:
+                    run.per_shot.add(name)
+        for tag in sorted(run.tags):
+            if not writer.rows("SELECT 1 FROM run_tags WHERE run_id = :r AND tag = :t", {"r": run.run_id, "t": tag}):
+                writer.execute("INSERT INTO run_tags (run_id, tag) VALUES (:r, :t)", {"r": run.run_id, "t": tag})
+        for name, sites in run.image_sites.items():
+            if _one(writer, "SELECT id FROM images WHERE run_id = :r AND name = :n", {"r": run.run_id, "n": name}) is None:
+                column = next(c for c in layout.by_role("occupancy") if c.name == name)
+                shape = column.shape or (sites,)
+                if int(np.prod(shape)) != sites:
+                    raise ContractError(file, f"lattice shape {','.join(map(str, shape))} does not hold {sites} sites", column=column.source, row=run.first_row)
+                role = "loading" if name == layout.loading else "survival" if name == layout.survival else "other"
+                writer.execute(
+                    "INSERT INTO images (run_id, name, role, sites, shape) VALUES (:r, :n, :role, :sites, :shape)",
+                    {"r": run.run_id, "n": name, "role": role, "sites": sites, "shape": ",".join(map(str, shape))},
+                )
+
+
+def _insert_run_parameter(writer: Writer, run_id: int, pid: int, stats: _Parameter, stored_unit: str) -> None:
+    number = text_value = minimum = maximum = None
+    if stats.kind == "text":
+        text_value = str(stats.first) if stats.constant else None
+    else:
+        minimum = _to_stored(stats.minimum, stats.unit, stored_unit)
+        maximum = _to_stored(stats.maximum, stats.unit, stored_unit)
+        minimum, maximum = min(minimum, maximum), max(minimum, maximum)
+        number = _to_stored(float(stats.first), stats.unit, stored_unit) if stats.constant else None
+    writer.execute(
+        "INSERT INTO run_parameters (run_id, parameter_id, scanned, number_value, text_value, minimum, maximum) "
+        "VALUES (:r, :p, :s, :n, :t, :lo, :hi)",
+        {"r": run_id, "p": pid, "s": not stats.constant, "n": number, "t": text_value, "lo": minimum, "hi": maximum},
+    )
+
+
+def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: int) -> None:
+    """A run continued by this file: a parameter stays constant only if every shot agrees."""
+    stored = {
+        int(pid): (bool(scanned), number, text_value, lo, hi)
+        for pid, scanned, number, text_value, lo, hi in writer.rows(
+            "SELECT parameter_id, scanned, number_value, text_value, minimum, maximum FROM run_parameters WHERE run_id = :r",
+            {"r": run.run_id},
+        )
+    }
+    names_by_id = {}
+    for name, stats in run.parameters.items():
+        pid, stored_unit, kind = ids.parameters[name]
+        names_by_id[pid] = name
+        old = stored.get(pid)
+        new_constant = stats.constant and stats.present == run.shot_count
+        new_value = None
+        if stats.present and new_constant:
+            new_value = str(stats.first) if kind == "text" else _to_stored(float(stats.first), stats.unit, stored_unit)
+        if old is None:
+            if stats.present == 0:
+                continue
+            # Stored shots lack this parameter: it cannot be constant over the run.
+            stats_copy = _Parameter(stats.kind, stats.unit, stats.present, False, stats.first, stats.minimum, stats.maximum)
+            _insert_run_parameter(writer, run.run_id, pid, stats_copy, stored_unit)
+            run.per_shot.add(name)
+            continue
+        scanned, number, text_value, lo, hi = old
+        old_value = text_value if kind == "text" else number
+        still_constant = not scanned and new_constant and new_value is not None and _same(old_value, new_value)
+        if not still_constant:
+            run.per_shot.add(name)
+            if not scanned:
+                _backfill(writer, run.run_id, pid, number, text_value)
+        if kind != "text" and stats.present:
+            lo_new = _to_stored(stats.minimum, stats.unit, stored_unit)
+            hi_new = _to_stored(stats.maximum, stats.unit, stored_unit)
+            lo = min(x for x in (lo, lo_new, hi_new) if x is not None)
+            hi = max(x for x in (hi, lo_new, hi_new) if x is not None)
+        writer.execute(
+            "UPDATE run_parameters SET scanned = :s, number_value = :n, text_value = :t, minimum = :lo, maximum = :hi "
+            "WHERE run_id = :r AND parameter_id = :p",
+            {
+                "s": not still_constant,
+                "n": number if still_constant else None,
+                "t": text_value if still_constant else None,
+                "lo": lo,
+                "hi": hi,
+                "r": run.run_id,
+                "p": pid,
+            },
+        )
+    for pid, (scanned, number, text_value, lo, hi) in stored.items():
+        if pid in names_by_id or scanned:
+            continue
+        # A constant of the stored shots that this file's shots lack.
+        _backfill(writer, run.run_id, pid, number, text_value)
+        writer.execute(
+            "UPDATE run_parameters SET scanned = :s, number_value = NULL, text_value = NULL WHERE run_id = :r AND parameter_id = :p",
+            {"s": True, "r": run.run_id, "p": pid},
+        )
+
+
+def _backfill(writer: Writer, run_id: int, pid: int, number: float | None, text_value: str | None) -> None:
+    writer.execute(
+        "INSERT INTO shot_parameters (shot_id, parameter_id, number_value, text_value) "
+        "SELECT id, :p, :n, :t FROM shots WHERE run_id = :r",
+        {"p": pid, "n": number, "t": text_value, "r": run_id},
+    )
+
+
+def _pack(array: pa.ListArray) -> pa.Array:
+    """Each row's occupancy as packed bits (numpy.packbits, big-endian bit order)."""
+    lengths = pc.list_value_length(array).to_numpy(zero_copy_only=False)
+    values = array.flatten().to_numpy(zero_copy_only=False).astype(bool, copy=False)
+    out: list[pa.Array] = []
+    positions: list[np.ndarray] = []
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    for length in np.unique(lengths):
+        rows = np.flatnonzero(lengths == length)
+        length = int(length)
+        matrix = values[(starts[rows][:, None] + np.arange(length)[None, :])] if length else np.zeros((len(rows), 0), bool)
+        packed = np.packbits(matrix, axis=1)
+        width = packed.shape[1]
+        if width == 0:
+            out.append(pa.array([b""] * len(rows), pa.binary()))
+        else:
+            fixed = pa.FixedSizeBinaryArray.from_buffers(pa.binary(width), len(rows), [None, pa.py_buffer(packed.tobytes())])
+            out.append(fixed.cast(pa.binary()))
+        positions.append(rows)
+    if len(out) == 1:
+        return out[0]
+    merged = pa.concat_arrays(out)
+    return merged.take(pa.array(np.argsort(np.concatenate(positions), kind="stable")))
+
+
+def _write_shots(writer: Writer, path: Path, parquet: pq.ParquetFile, plan: _Plan, ids: _Catalogue, progress: Progress | None) -> int:
+    layout = plan.layout
+    next_id = _one(writer, "SELECT MAX(id) FROM shots", {})
+    base = 1 if next_id is None else int(next_id) + 1
+    run_ids = np.array([run.run_id for run in plan.runs], dtype=np.int64)
+    parameter_columns = sorted(layout.by_role("parameter"), key=lambda c: ids.parameters[c.name][0])
+    per_shot = {c.name: np.array([c.name in run.per_shot for run in plan.runs], dtype=bool) for c in parameter_columns}
+    measurement_columns = sorted(layout.by_role("measurement"), key=lambda c: ids.measurements[c.name][0])
+    image_ids = {}
+    for run in plan.runs:
+        for name in run.image_sites:
+            image_ids[(run.run_id, name)] = int(_one(writer, "SELECT id FROM images WHERE run_id = :r AND name = :n", {"r": run.run_id, "n": name}))
+    written = 0
+    for first_row, batch in _batches(path, parquet, layout):
+        run_index = plan.run_index(batch)
+        shot_ids = base + first_row + np.arange(batch.length, dtype=np.int64)
+        status = batch.status if batch.status is not None else None
+        status_array = pa.array(np.where(status == None, "ok", status).astype(str) if status is not None else np.full(batch.length, "ok"))  # noqa: E711
+        writer.append(
+            "shots",
+            pa.table(
+                {
+                    "id": shot_ids,
+                    "run_id": run_ids[run_index],
+                    "shot": batch.shot,
+                    "time": pa.array(batch.time_us, pa.int64()).cast(pa.timestamp("us", tz="UTC")),
+                    "status": status_array,
+                }
+            ),
+        )
+        _append_shot_parameters(writer, batch, run_index, shot_ids, parameter_columns, per_shot, ids)
+        _append_measurements(writer, batch, shot_ids, measurement_columns, ids)
+        for column in layout.by_role("occupancy"):
+            image = np.array([image_ids.get((run.run_id, column.name), -1) for run in plan.runs], dtype=np.int64)
+            lists = batch.occupancy[column.name]
+            keep = image[run_index] >= 0
+            if not keep.any():
+                continue
+            if not keep.all():
+                lists = lists.filter(pa.array(keep))
+            writer.append(
+                "occupancy",
+                pa.table({"shot_id": shot_ids[keep], "image_id": image[run_index][keep], "bits": _pack(lists)}),
+            )
+        written += batch.length
+        if progress is not None:
+            progress(str(path), written, plan.rows)
+    return written
+
+
+def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_shot, ids) -> None:
+    shot_parts, id_parts, number_parts, text_parts = [], [], [], []
+    for column in columns:
+        values = batch.parameters[column.name]
+        needed = per_shot[column.name][run_index]
+        if not needed.any():
+            continue
+        pid, stored_unit, kind = ids.parameters[column.name]
+        if kind == "text":
+            keep = needed & (values != None)  # noqa: E711
+            text_parts.append(pa.array(values[keep], pa.string()))
+            number_parts.append(pa.nulls(int(keep.sum()), pa.float64()))
+        else:
+            keep = needed & ~np.isnan(values)
+            scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
+            number_parts.append(pa.array(values[keep] * scale + offset, pa.float64()))
+            text_parts.append(pa.nulls(int(keep.sum()), pa.string()))
+        shot_parts.append(shot_ids[keep])
+        id_parts.append(np.full(int(keep.sum()), pid, dtype=np.int64))
+    if not shot_parts:
+        return
+    shots = np.concatenate(shot_parts)
+    pids = np.concatenate(id_parts)
+    order = pa.array(np.lexsort((pids, shots)))
+    writer.append(
+        "shot_parameters",
+        pa.table(
+            {
+                "shot_id": shots,
+                "parameter_id": pids,
+                "number_value": pa.concat_arrays(number_parts),
+                "text_value": pa.concat_arrays(text_parts),
+            }
+        ).take(order),
+    )
+
+
+def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
+    if not columns:
+        return
+    matrix = np.empty((batch.length, len(columns)), dtype=np.float64)
+    mids = np.empty(len(columns), dtype=np.int64)
+    for position, column in enumerate(columns):
+        mid, stored_unit = ids.measurements[column.name]
+        scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
+        values = batch.measurements[column.name]
+        matrix[:, position] = values if (scale, offset) == (1.0, 0.0) else values * scale + offset
+        mids[position] = mid
+    values = matrix.ravel()
+    keep = ~np.isnan(values)
+    writer.append(
+        "measurement_values",
+        pa.table(
+            {
+                "shot_id": np.repeat(shot_ids, len(columns))[keep],
+                "measurement_id": np.tile(mids, batch.length)[keep],
+                "value": values[keep],
+            }
+        ),
+    )
+
+
+def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float, writer: Writer | None = None) -> None:
+    row = {
+        "file": result.file,
+        "sha256": sha,
+        "size": size,
+        "status": result.status,
+        "reason": result.reason,
+        "runs": ",".join(result.runs) or None,
+        "shots": result.shots,
+        "started_at": started,
+        "finished_at": dt.datetime.now(dt.timezone.utc),
+        "read_seconds": read_s,
+        "write_seconds": write_s,
+    }
+    if writer is not None:
+        columns = ", ".join(row)
+        writer.execute(f"INSERT INTO ingest_log ({columns}) VALUES ({', '.join(':' + c for c in row)})", row)
+        return
+    with engine.begin() as connection:
+        connection.execute(insert(IngestLogEntry), row)
+
+
+def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress | None = None, after_write: Callable | None = None) -> IngestResult:
+    """Ingest one file in one transaction; every refusal becomes a result, not an exception."""
+    started = dt.datetime.now(dt.timezone.utc)
+    name = str(path)
+    sha, size = "", 0
+    read_s = write_s = 0.0
+    try:
+        try:
+            sha, size = file_sha256(path)
+        except FileNotFoundError:
+            raise ContractError(name, "file not found") from None
+        except IsADirectoryError:
+            raise ContractError(name, "is a folder, not a file") from None
+        except OSError as error:
+            raise ContractError(name, f"cannot read file ({_short(error)})") from None
+        tick = time.perf_counter()
+        parquet = _open(path)
+        layout = read_layout(name, parquet.schema_arrow, mapping)
+        plan = _Plan(path, layout)
+        for _, batch in _batches(path, parquet, layout):
+            plan.add(batch)
+        plan.finish()
+        read_s = time.perf_counter() - tick
+        tick = time.perf_counter()
+        writer = open_writer(engine)
+        try:
+            if writer.rows("SELECT 1 FROM ingest_log WHERE sha256 = :h AND status = 'ingested'", {"h": sha}):
+                return IngestResult(name, "already-present", tuple(r.key for r in plan.runs), plan.rows)
+            ids = _Catalogue(writer, name)
+            _write_runs(writer, plan, ids)
+            shots = _write_shots(writer, path, parquet, plan, ids, progress)
+            if after_write is not None:
+                after_write(writer, [run.run_id for run in plan.runs])
+            write_s = time.perf_counter() - tick
+            result = IngestResult(name, "ingested", tuple(r.key for r in plan.runs), shots)
+            _log(engine, result, sha, size, started, read_s, write_s, writer)
+            if os.environ.get("RUNLOG_TEST_PAUSE_BEFORE_COMMIT"):
+                # Lets the crash test kill the process with the transaction still open.
+                time.sleep(float(os.environ["RUNLOG_TEST_PAUSE_BEFORE_COMMIT"]))
+            writer.commit()
+            return result
+        finally:
+            writer.close()
+    except ContractError as error:
+        result = IngestResult(name, "rejected", reason=str(error))
+        _log(engine, result, sha, size, started, read_s, write_s)
+        return result
+
+
+def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None) -> list[IngestResult]:
+    """Ingest every file (folders give their ``*.parquet``); one result per file, in order."""
+    mapping = mapping or Mapping()
+    return [ingest_file(engine, path, mapping, progress, after_write) for path in expand_paths(paths)]

@@ -1,0 +1,1 @@
+"""The catalogue store: schema, engines and migrations."""

@@ -1,0 +1,120 @@
+"""Where the catalogue lives and how we connect to it.
+
+Owns: resolving the catalogue URL (``--db``, ``RUNLOG_DB``, else a SQLite file in the
+user data dir), creating SQLAlchemy engines with the SQLite settings every writer needs
+(WAL, ``busy_timeout``, ``synchronous=NORMAL``, foreign keys), redacting credentials for
+anything printed or logged, and reading the schema revision without importing Alembic.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from sqlalchemy import create_engine, event, inspect, text
+from sqlalchemy.engine import Engine, make_url
+from sqlalchemy.engine.url import URL
+from sqlalchemy.exc import ArgumentError, NoSuchModuleError
+
+from runlog.errors import StoreError
+
+__all__ = [
+    "BUSY_TIMEOUT_MS",
+    "default_url",
+    "resolve_url",
+    "redact",
+    "make_engine",
+    "sqlite_path",
+    "current_revision",
+]
+
+#: How long a SQLite writer waits for another writer before giving up.
+BUSY_TIMEOUT_MS = 60_000
+
+
+def default_url() -> str:
+    """A SQLite file in the user's data directory (created on first use)."""
+    import platformdirs
+
+    folder = Path(platformdirs.user_data_dir("runlog", appauthor=False))
+    return f"sqlite:///{folder / 'catalogue.sqlite'}"
+
+
+def resolve_url(url: str | None = None) -> str:
+    """The catalogue URL: the one given, else ``RUNLOG_DB``, else the default SQLite file."""
+    return url or os.environ.get("RUNLOG_DB") or default_url()
+
+
+def redact(url: str | URL) -> str:
+    """The URL with any password replaced by ``***``, safe to print and log."""
+    try:
+        parsed = make_url(url) if isinstance(url, str) else url
+    except ArgumentError:
+        return "<unparseable URL>"
+    return parsed.render_as_string(hide_password=True)
+
+
+def sqlite_path(url: str | URL) -> Path | None:
+    """The database file of a SQLite URL, ``None`` for other backends or in-memory SQLite."""
+    parsed = make_url(url) if isinstance(url, str) else url
+    if parsed.get_backend_name() != "sqlite" or not parsed.database or parsed.database == ":memory:":
+        return None
+    return Path(parsed.database)
+
+
+def _set_sqlite_pragmas(dbapi_connection, _record) -> None:
+    # Every connection, reader or writer, gets the same settings: WAL lets readers go on
+    # while one writer writes; NORMAL sync is durable in WAL across application crashes.
+    cursor = dbapi_connection.cursor()
+    cursor.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
+    cursor.execute("PRAGMA journal_mode=WAL")
+    cursor.execute("PRAGMA synchronous=NORMAL")
+    cursor.execute("PRAGMA foreign_keys=ON")
+    cursor.close()
+
+
+def _sqlite_no_implicit_transactions(dbapi_connection, _record) -> None:
+    # pysqlite's own transaction handling issues a deferred BEGIN lazily; we issue
+    # BEGIN (IMMEDIATE for writers) ourselves in the "begin" event instead.
+    dbapi_connection.isolation_level = None
+
+
+def make_engine(url: str) -> Engine:
+    """An engine for the catalogue at ``url``; SQLite folders are created as needed."""
+    try:
+        parsed = make_url(url)
+    except ArgumentError as error:
+        raise StoreError(f"not a database URL: {url!r} ({error})") from None
+    backend = parsed.get_backend_name()
+    if backend == "postgresql" and parsed.drivername == "postgresql":
+        # psycopg 3 is the driver we ship; plain postgresql:// would ask for psycopg2.
+        parsed = parsed.set(drivername="postgresql+psycopg")
+    if backend not in ("sqlite", "postgresql"):
+        raise StoreError(f"unsupported catalogue backend '{backend}' in {redact(parsed)}: use sqlite or postgresql")
+    path = sqlite_path(parsed)
+    if path is not None:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        if backend == "sqlite":
+            engine = create_engine(parsed, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
+            event.listen(engine, "connect", _sqlite_no_implicit_transactions)
+            event.listen(engine, "connect", _set_sqlite_pragmas)
+
+            @event.listens_for(engine, "begin")
+            def _begin(conn) -> None:  # noqa: ANN001 - SQLAlchemy event signature
+                mode = conn.get_execution_options().get("sqlite_begin", "DEFERRED")
+                conn.exec_driver_sql(f"BEGIN {mode}")
+
+        else:
+            engine = create_engine(parsed, pool_pre_ping=True)
+    except NoSuchModuleError as error:
+        raise StoreError(f"no driver for {redact(parsed)}: {error}") from None
+    return engine
+
+
+def current_revision(engine: Engine) -> str | None:
+    """The Alembic revision recorded in the database, ``None`` for an empty database."""
+    with engine.connect() as conn:
+        if not inspect(conn).has_table("alembic_version"):
+            return None
+        return conn.execute(text("SELECT version_num FROM alembic_version")).scalar()

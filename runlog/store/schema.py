@@ -1,0 +1,291 @@
+"""The catalogue's tables, as SQLAlchemy 2 typed models (one history for SQLite and PostgreSQL).
+
+Parameters are stored in two layers (see docs/architecture.md): ``run_parameters`` holds
+one row per run and parameter — the value itself when it is constant over the run, else
+the scanned range — and ``shot_parameters`` holds per-shot values only for parameters
+that vary within a run. A filter first prunes runs on ``run_parameters`` (indexed by
+value), then checks single shots only inside the runs that survive.
+
+The per-shot tables (``shot_parameters``, ``measurement_values``, ``occupancy``) are keyed
+by ``(shot_id, ...)`` and on SQLite stored WITHOUT ROWID, so a bulk append in shot order
+writes the B-tree sequentially.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlalchemy import (
+    BigInteger,
+    Boolean,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Text,
+    UniqueConstraint,
+)
+from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
+from sqlalchemy.types import TypeDecorator
+
+__all__ = [
+    "SCHEMA_REVISION",
+    "Base",
+    "UTCDateTime",
+    "Apparatus",
+    "Run",
+    "RunTag",
+    "Shot",
+    "Parameter",
+    "RunParameter",
+    "ShotParameter",
+    "Measurement",
+    "MeasurementValue",
+    "Image",
+    "Occupancy",
+    "FigureRow",
+    "IngestLogEntry",
+    "Annotation",
+]
+
+#: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
+SCHEMA_REVISION = "0001"
+
+NAMING_CONVENTION = {
+    "ix": "ix_%(table_name)s_%(column_0_N_name)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+# Shot ids are 64-bit on PostgreSQL; on SQLite an INTEGER PRIMARY KEY is the rowid.
+BigId = BigInteger().with_variant(Integer(), "sqlite")
+
+
+class UTCDateTime(TypeDecorator[dt.datetime]):
+    """A point in time, always UTC: ``timestamptz`` on PostgreSQL, ISO text on SQLite.
+
+    Naive datetimes are refused on the way in; values come back timezone-aware (UTC).
+    """
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: dt.datetime | None, dialect):  # type: ignore[override]
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError(f"naive datetime {value!r}: times must carry a time zone")
+        value = value.astimezone(dt.timezone.utc)
+        if dialect.name == "sqlite":
+            return value.replace(tzinfo=None)
+        return value
+
+    def process_result_value(self, value: dt.datetime | None, dialect):  # type: ignore[override]
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            return value.replace(tzinfo=dt.timezone.utc)
+        return value.astimezone(dt.timezone.utc)
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING_CONVENTION)
+
+
+class Apparatus(Base):
+    """One experimental machine; runs are keyed per apparatus."""
+
+    __tablename__ = "apparatus"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), unique=True)
+
+
+class Run(Base):
+    """A set of shots of one sequence, most parameters fixed, one or two scanned."""
+
+    __tablename__ = "runs"
+    __table_args__ = (UniqueConstraint("apparatus_id", "key"), Index(None, "started"))
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
+    key: Mapped[str] = mapped_column(String(200))
+    sequence: Mapped[str] = mapped_column(String(200), index=True)
+    started: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    finished: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    shot_count: Mapped[int] = mapped_column(Integer, default=0)
+    operator: Mapped[str | None] = mapped_column(String(200))
+    notes: Mapped[str | None] = mapped_column(Text)
+
+
+class RunTag(Base):
+    """Free labels on a run (e.g. 'calibration'); filterable by ``tag``."""
+
+    __tablename__ = "run_tags"
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
+    tag: Mapped[str] = mapped_column(String(200), primary_key=True, index=True)
+
+
+class Shot(Base):
+    """One experimental sequence executed once; ``shot`` is its index within the run."""
+
+    __tablename__ = "shots"
+    __table_args__ = (UniqueConstraint("run_id", "shot"),)
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=False)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
+    shot: Mapped[int] = mapped_column(Integer)
+    time: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    status: Mapped[str] = mapped_column(String(40), default="ok")
+
+
+class Parameter(Base):
+    """A sequence parameter known to the catalogue, with the unit its values are stored in.
+
+    ``kind`` is 'number', 'boolean' or 'text'. Values arriving in another unit of the
+    same dimension are converted to ``unit`` at ingest.
+    """
+
+    __tablename__ = "parameters"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), unique=True)
+    unit: Mapped[str] = mapped_column(String(60), default="")
+    kind: Mapped[str] = mapped_column(String(10))
+
+
+class RunParameter(Base):
+    """A parameter of a run: its value when constant over all shots, else its scanned range."""
+
+    __tablename__ = "run_parameters"
+    __table_args__ = (
+        Index(None, "parameter_id", "number_value"),
+        Index(None, "parameter_id", "text_value"),
+    )
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
+    parameter_id: Mapped[int] = mapped_column(ForeignKey("parameters.id"), primary_key=True)
+    scanned: Mapped[bool] = mapped_column(Boolean, default=False)
+    # Constant parameter: the value. Scanned parameter: NULL here, range below.
+    number_value: Mapped[float | None] = mapped_column(Float)
+    text_value: Mapped[str | None] = mapped_column(Text)
+    minimum: Mapped[float | None] = mapped_column(Float)
+    maximum: Mapped[float | None] = mapped_column(Float)
+
+
+class ShotParameter(Base):
+    """Per-shot value of a parameter that is not constant over its run."""
+
+    __tablename__ = "shot_parameters"
+    __table_args__ = {"sqlite_with_rowid": False}
+    shot_id: Mapped[int] = mapped_column(
+        BigId, ForeignKey("shots.id", ondelete="CASCADE"), primary_key=True
+    )
+    parameter_id: Mapped[int] = mapped_column(ForeignKey("parameters.id"), primary_key=True)
+    number_value: Mapped[float | None] = mapped_column(Float)
+    text_value: Mapped[str | None] = mapped_column(Text)
+
+
+class Measurement(Base):
+    """A per-shot measured quantity known to the catalogue, with its stored unit."""
+
+    __tablename__ = "measurements"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), unique=True)
+    unit: Mapped[str] = mapped_column(String(60), default="")
+
+
+class MeasurementValue(Base):
+    """One measured value of one shot; a missing measurement has no row."""
+
+    __tablename__ = "measurement_values"
+    __table_args__ = {"sqlite_with_rowid": False}
+    shot_id: Mapped[int] = mapped_column(
+        BigId, ForeignKey("shots.id", ondelete="CASCADE"), primary_key=True
+    )
+    measurement_id: Mapped[int] = mapped_column(ForeignKey("measurements.id"), primary_key=True)
+    value: Mapped[float] = mapped_column(Float)
+
+
+class Image(Base):
+    """An occupancy image of a run: its name, role and lattice shape.
+
+    ``role`` is 'loading', 'survival' or 'other'; ``shape`` is e.g. '10,10' (rows, columns)
+    or '64' for a one-dimensional array; ``sites`` is the product.
+    """
+
+    __tablename__ = "images"
+    __table_args__ = (UniqueConstraint("run_id", "name"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
+    name: Mapped[str] = mapped_column(String(200))
+    role: Mapped[str] = mapped_column(String(20))
+    sites: Mapped[int] = mapped_column(Integer)
+    shape: Mapped[str] = mapped_column(String(60))
+
+
+class Occupancy(Base):
+    """Site occupancy of one shot in one image, as packed bits (numpy.packbits, big-endian)."""
+
+    __tablename__ = "occupancy"
+    __table_args__ = {"sqlite_with_rowid": False}
+    shot_id: Mapped[int] = mapped_column(
+        BigId, ForeignKey("shots.id", ondelete="CASCADE"), primary_key=True
+    )
+    image_id: Mapped[int] = mapped_column(
+        ForeignKey("images.id", ondelete="CASCADE"), primary_key=True
+    )
+    bits: Mapped[bytes] = mapped_column(LargeBinary)
+
+
+class FigureRow(Base):
+    """A stored figure of merit of a run, with the method that produced it."""
+
+    __tablename__ = "figures"
+    __table_args__ = (UniqueConstraint("run_id", "name"), Index(None, "name"))
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
+    name: Mapped[str] = mapped_column(String(100))
+    kind: Mapped[str] = mapped_column(String(40))
+    value: Mapped[float] = mapped_column(Float)
+    stderr: Mapped[float | None] = mapped_column(Float)
+    ci_low: Mapped[float | None] = mapped_column(Float)
+    ci_high: Mapped[float | None] = mapped_column(Float)
+    unit: Mapped[str] = mapped_column(String(60), default="")
+    method: Mapped[str] = mapped_column(String(100))
+    method_version: Mapped[str] = mapped_column(String(20))
+    computed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+
+
+class IngestLogEntry(Base):
+    """One attempt to ingest one file: what, its content hash, and how it ended."""
+
+    __tablename__ = "ingest_log"
+    __table_args__ = (Index(None, "sha256"), Index(None, "finished_at"))
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    file: Mapped[str] = mapped_column(Text)
+    sha256: Mapped[str] = mapped_column(String(64))
+    size: Mapped[int] = mapped_column(BigInteger)
+    status: Mapped[str] = mapped_column(String(20))  # ingested | already-present | rejected
+    reason: Mapped[str | None] = mapped_column(Text)
+    runs: Mapped[str | None] = mapped_column(Text)  # comma-separated run keys
+    shots: Mapped[int] = mapped_column(Integer, default=0)
+    started_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    finished_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    read_seconds: Mapped[float] = mapped_column(Float, default=0.0)
+    write_seconds: Mapped[float] = mapped_column(Float, default=0.0)
+
+
+class Annotation(Base):
+    """Free text tied to an apparatus and a time, or to a run ("realigned lattice beam")."""
+
+    __tablename__ = "annotations"
+    __table_args__ = (Index(None, "apparatus_id", "at"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
+    run_id: Mapped[int | None] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    text: Mapped[str] = mapped_column(Text)
+    author: Mapped[str | None] = mapped_column(String(200))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())

@@ -1,0 +1,62 @@
+"""Units: parsing the bracketed unit of a column and converting values between units (pint).
+
+pint is imported on first use only: most ingests of a known catalogue need no conversion.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+import numpy as np
+
+__all__ = ["registry", "check_unit", "conversion", "convert"]
+
+
+@lru_cache(maxsize=1)
+def registry():
+    """The one pint registry runlog uses."""
+    import pint
+
+    return pint.UnitRegistry()
+
+
+@lru_cache(maxsize=512)
+def check_unit(text: str) -> str:
+    """``text`` stripped, if pint understands it as a unit; raises ``ValueError`` otherwise."""
+    text = text.strip()
+    if not text:
+        return ""
+    try:
+        registry().Unit(text)
+    except Exception as error:  # pint raises several unrelated types for bad input
+        raise ValueError(f"unknown unit '{text}'") from error
+    return text
+
+
+@lru_cache(maxsize=512)
+def conversion(source: str, target: str) -> tuple[float, float] | None:
+    """``(scale, offset)`` with ``target_value = source_value * scale + offset``.
+
+    ``None`` when the units have different dimensions. Equal units give ``(1, 0)`` without
+    touching pint.
+    """
+    if source == target:
+        return (1.0, 0.0)
+    ureg = registry()
+    try:
+        zero = ureg.Quantity(0.0, source or "dimensionless").to(target or "dimensionless").magnitude
+        one = ureg.Quantity(1.0, source or "dimensionless").to(target or "dimensionless").magnitude
+    except Exception:
+        return None
+    return (float(one - zero), float(zero))
+
+
+def convert(values: np.ndarray, source: str, target: str) -> np.ndarray:
+    """``values`` in ``source`` expressed in ``target`` (same dimension; checked by the caller)."""
+    factors = conversion(source, target)
+    if factors is None:
+        raise ValueError(f"cannot convert '{source}' to '{target}'")
+    scale, offset = factors
+    if scale == 1.0 and offset == 0.0:
+        return values
+    return values * scale + offset
