@@ -149,7 +149,7 @@ def _group(run_index: np.ndarray) -> list[tuple[int, np.ndarray]]:
     order = np.argsort(run_index, kind="stable")
     ordered = run_index[order]
     cuts = np.flatnonzero(np.diff(ordered)) + 1
-    return [(int(ordered[part[0]]), part) for part in np.split(order, cuts) if len(part)]
+    return [(int(run_index[part[0]]), part) for part in np.split(order, cuts) if len(part)]
 
 
 class _Plan:

@@ -21,7 +21,7 @@ import pyarrow.csv as pacsv
 from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
-from runlog.store.engine import BUSY_TIMEOUT_MS, sqlite_path
+from runlog.store.engine import BUSY_TIMEOUT_MS, exclusive_bulk_writer, sqlite_path
 
 __all__ = ["Writer", "open_writer"]
 
@@ -81,12 +81,18 @@ class _SqliteWriter:
         path = sqlite_path(engine.url)
         if path is None:
             raise ValueError("bulk writing needs a SQLite file, not an in-memory database")
-        self._connection = adbc_sqlite.connect(str(path), autocommit=True)
-        self._cursor = self._connection.cursor()
-        for pragma in (f"busy_timeout={BUSY_TIMEOUT_MS}", "journal_mode=WAL", "synchronous=NORMAL", "foreign_keys=ON"):
-            self._cursor.execute(f"PRAGMA {pragma}")
-            self._cursor.fetchall()
-        self._cursor.execute("BEGIN IMMEDIATE")
+        self._path = str(path.resolve())
+        exclusive_bulk_writer(self._path, True)
+        try:
+            self._connection = adbc_sqlite.connect(str(path), autocommit=True)
+            self._cursor = self._connection.cursor()
+            for pragma in (f"busy_timeout={BUSY_TIMEOUT_MS}", "journal_mode=WAL", "synchronous=NORMAL", "foreign_keys=ON"):
+                self._cursor.execute(f"PRAGMA {pragma}")
+                self._cursor.fetchall()
+            self._cursor.execute("BEGIN IMMEDIATE")
+        except BaseException:
+            exclusive_bulk_writer(self._path, False)
+            raise
         self._open = True
 
     def _run(self, sql: str, params: dict[str, Any] | None) -> None:
@@ -120,6 +126,7 @@ class _SqliteWriter:
         finally:
             self._cursor.close()
             self._connection.close()
+            exclusive_bulk_writer(self._path, False)
 
 
 def _copy_text(data: pa.Table) -> pa.Table:

@@ -15,6 +15,7 @@ from sqlalchemy import create_engine, event, inspect, text
 from sqlalchemy.engine import Engine, make_url
 from sqlalchemy.engine.url import URL
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError
+from sqlalchemy.pool import NullPool
 
 from runlog.errors import StoreError
 
@@ -26,6 +27,8 @@ __all__ = [
     "make_engine",
     "sqlite_path",
     "current_revision",
+    "sqlite_files_in_use",
+    "exclusive_bulk_writer",
 ]
 
 #: How long a SQLite writer waits for another writer before giving up.
@@ -62,6 +65,43 @@ def sqlite_path(url: str | URL) -> Path | None:
     return Path(parsed.database)
 
 
+# Two copies of the SQLite library live in this process: Python's (SQLAlchemy) and the
+# one inside the ADBC driver (bulk writes). POSIX locks belong to the process, so a copy
+# that closes its file releases the other copy's locks, and can even delete a WAL file
+# the other still uses. The two must therefore never have the same file open at once:
+# SQLite engines keep no idle connections (NullPool) and these counters let each side
+# refuse to open the file while the other has it.
+_python_sqlite_open: dict[str, int] = {}
+_bulk_writer_open: set[str] = set()
+
+
+def sqlite_files_in_use() -> dict[str, int]:
+    """Open Python-SQLite connections per database file (for the bulk writer's check)."""
+    return {path: count for path, count in _python_sqlite_open.items() if count}
+
+
+def exclusive_bulk_writer(path: str, opening: bool) -> None:
+    """Mark ``path`` as held by the bulk writer (``opening``) or released."""
+    if opening:
+        if _python_sqlite_open.get(path):
+            raise StoreError(f"internal: {path} is open in another connection of this process during a bulk write")
+        _bulk_writer_open.add(path)
+    else:
+        _bulk_writer_open.discard(path)
+
+
+def _track(path: str):
+    def opened(dbapi_connection, _record) -> None:
+        if path in _bulk_writer_open:
+            raise StoreError(f"internal: {path} opened while the bulk writer of this process holds it")
+        _python_sqlite_open[path] = _python_sqlite_open.get(path, 0) + 1
+
+    def closed(dbapi_connection, _record) -> None:
+        _python_sqlite_open[path] = max(0, _python_sqlite_open.get(path, 0) - 1)
+
+    return opened, closed
+
+
 def _set_sqlite_pragmas(dbapi_connection, _record) -> None:
     # Every connection, reader or writer, gets the same settings: WAL lets readers go on
     # while one writer writes; NORMAL sync is durable in WAL across application crashes.
@@ -96,7 +136,11 @@ def make_engine(url: str) -> Engine:
         path.parent.mkdir(parents=True, exist_ok=True)
     try:
         if backend == "sqlite":
-            engine = create_engine(parsed, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000})
+            engine = create_engine(parsed, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000}, poolclass=NullPool)
+            if path is not None:
+                opened, closed = _track(str(path.resolve()))
+                event.listen(engine, "connect", opened)
+                event.listen(engine, "close", closed)
             event.listen(engine, "connect", _sqlite_no_implicit_transactions)
             event.listen(engine, "connect", _set_sqlite_pragmas)
 

@@ -1,0 +1,5 @@
+"""``python -m runlog`` runs the command line."""
+
+from runlog.cli import main
+
+main()

@@ -1,0 +1,348 @@
+"""The ``runlog`` command: a thin view over the Python API.
+
+Each command opens the catalogue, calls one library method and prints the result, as
+text for people or as JSON (``--json``, the stable machine interface). Errors are one
+line on stderr and a non-zero exit code; ``--debug`` shows the traceback instead.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import functools
+import json
+import logging
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import click
+
+from runlog.errors import RunlogError
+
+__all__ = ["main", "cli"]
+
+
+class _State:
+    def __init__(self) -> None:
+        self.db: str | None = None
+        self.debug = False
+
+
+def _common(function):
+    """``--db`` and ``--debug`` on every command, as well as before the command name."""
+
+    @click.option("--db", "db", metavar="URL", default=None, help="Catalogue URL (SQLAlchemy); else $RUNLOG_DB; else the default SQLite file.")
+    @click.option("--debug", is_flag=True, default=False, help="Show tracebacks.")
+    @click.pass_context
+    @functools.wraps(function)
+    def wrapper(ctx: click.Context, db: str | None, debug: bool, **kwargs: Any):
+        state = ctx.ensure_object(_State)
+        state.db = db or state.db
+        state.debug = debug or state.debug
+        return function(state, **kwargs)
+
+    return wrapper
+
+
+def _open(state: _State, *, create: bool = True):
+    import runlog
+
+    return runlog.open(state.db, create=create)
+
+
+def _json(value: Any) -> None:
+    click.echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, (dt.datetime, dt.date)):
+        return value.isoformat()
+    if hasattr(value, "item"):
+        return value.item()
+    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
+
+
+def _when(value: Any) -> str:
+    if value is None:
+        return "-"
+    return value.strftime("%Y-%m-%d %H:%M")
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 80})
+@click.option("--db", "db", metavar="URL", default=None, help="Catalogue URL (SQLAlchemy); else $RUNLOG_DB; else the default SQLite file.")
+@click.option("--debug", is_flag=True, default=False, help="Show tracebacks.")
+@click.version_option(package_name="runlog")
+@click.pass_context
+def cli(ctx: click.Context, db: str | None, debug: bool) -> None:
+    """runlog: the run catalogue and shot statistics of a neutral-atom lab."""
+    state = ctx.ensure_object(_State)
+    state.db, state.debug = db, debug
+
+
+@cli.command()
+@_common
+def init(state: _State) -> None:
+    """Create the catalogue, or upgrade it to this runlog's schema."""
+    from runlog.store.engine import make_engine, redact, resolve_url
+    from runlog.store.migrate import upgrade
+    from runlog.store.schema import SCHEMA_REVISION
+
+    # Not runlog.open(): opening refuses a catalogue at an older revision, and init is
+    # the one command that upgrades it.
+    url = resolve_url(state.db)
+    engine = make_engine(url)
+    try:
+        upgrade(engine)
+    finally:
+        engine.dispose()
+    click.echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
+
+
+@cli.command()
+@click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print one JSON object per file.")
+@click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml mapping your column names onto the contract.")
+@_common
+def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path | None) -> None:
+    """Ingest shot-table files or folders of *.parquet files."""
+    with _open(state) as catalogue:
+        progress = None if as_json or not sys.stderr.isatty() else _progress_bar()
+        try:
+            results = catalogue.ingest(paths, config=config, progress=progress and progress.update)
+        finally:
+            if progress:
+                progress.close()
+    if as_json:
+        _json([r.as_dict() for r in results])
+    else:
+        for r in results:
+            if r.status == "rejected":
+                click.echo(f"rejected         {r.reason}")
+            else:
+                runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
+                click.echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
+    if any(r.status == "rejected" for r in results):
+        sys.exit(1)
+
+
+class _progress_bar:
+    """A rich progress bar for files large enough to wait for."""
+
+    def __init__(self) -> None:
+        self._progress = None
+        self._task = None
+        self._file = None
+
+    def update(self, file: str, done: int, total: int) -> None:
+        if total < 200_000:
+            return
+        from rich.progress import Progress
+
+        if self._progress is None:
+            self._progress = Progress(transient=True)
+            self._progress.start()
+        if self._file != file:
+            self._file = file
+            self._task = self._progress.add_task(Path(file).name[:30], total=total)
+        self._progress.update(self._task, completed=done)
+
+    def close(self) -> None:
+        if self._progress is not None:
+            self._progress.stop()
+
+
+@cli.command()
+@click.option("--apparatus", default=None, help="Only this apparatus.")
+@click.option("--since", default=None, metavar="DATE", help="Only runs finished on or after DATE (ISO).")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def runs(state: _State, apparatus: str | None, since: str | None, as_json: bool) -> None:
+    """List runs, newest first."""
+    with _open(state) as catalogue:
+        frame = catalogue.runs(apparatus=apparatus, since=_date_option(since, "--since"))
+    records = [
+        {"run": r.run, "apparatus": r.apparatus, "sequence": r.sequence, "shots": int(r.shots), "started": r.started.isoformat(), "finished": r.finished.isoformat()}
+        for r in frame.itertuples(index=False)
+    ]
+    if as_json:
+        _json(records)
+        return
+    if not records:
+        click.echo("no runs")
+        return
+    click.echo(f"{'run':<22} {'apparatus':<14} {'sequence':<12} {'shots':>6}  started (UTC)")
+    for r in frame.itertuples(index=False):
+        click.echo(f"{str(r.run)[:22]:<22} {str(r.apparatus)[:14]:<14} {str(r.sequence)[:12]:<12} {int(r.shots):>6}  {_when(r.started)}")
+
+
+def _date_option(value: str | None, option: str) -> dt.datetime | None:
+    if value is None:
+        return None
+    try:
+        parsed = dt.datetime.fromisoformat(value)
+    except ValueError:
+        raise click.BadParameter(f"'{value}' is not an ISO date or time (e.g. 2026-03-01)", param_hint=option) from None
+    return parsed
+
+
+@cli.command()
+@click.argument("run")
+@click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def show(state: _State, run: str, apparatus: str | None, as_json: bool) -> None:
+    """Show one run: parameters, measurements, images and figures."""
+    with _open(state) as catalogue:
+        info = catalogue.run(run, apparatus=apparatus)
+    if as_json:
+        _json(info.as_dict())
+        return
+    click.echo(f"run {info.run}  ({info.apparatus}, {info.sequence})")
+    click.echo(f"  {info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
+    if info.notes:
+        click.echo(f"  notes: {info.notes}")
+    if info.tags:
+        click.echo(f"  tags: {', '.join(info.tags)}")
+    click.echo("parameters")
+    for name, entry in info.parameters.items():
+        unit = f" {entry['unit']}" if entry["unit"] else ""
+        if entry["scanned"]:
+            span = f"{entry['min']:g} .. {entry['max']:g}{unit}" if "min" in entry else "(varies)"
+            click.echo(f"  {name:<24} scanned  {span}")
+        else:
+            value = entry["value"]
+            shown = f"{value:g}" if isinstance(value, float) else str(value)
+            click.echo(f"  {name:<24} {shown}{unit}")
+    if info.measurements:
+        click.echo("measurements")
+        click.echo("  " + ", ".join(info.measurements))
+    if info.images:
+        click.echo("images")
+        for name, image in info.images.items():
+            click.echo(f"  {name:<24} {image['role']:<9} {'x'.join(map(str, image['shape']))} sites")
+    if info.figures:
+        click.echo("figures")
+        for name, figure in info.figures.items():
+            click.echo("  " + _figure_line(name, figure))
+
+
+def _figure_line(name: str, figure: dict[str, Any]) -> str:
+    unit = f" {figure['unit']}" if figure.get("unit") else ""
+    text = f"{name:<24} {figure['value']:.4g}"
+    if "stderr" in figure and figure["stderr"] is not None:
+        text += f" ± {figure['stderr']:.2g}"
+    text += unit
+    if "ci_low" in figure:
+        text += f"  [{figure['ci_low']:.4g}, {figure['ci_high']:.4g}]"
+    return text + f"  ({figure['method']})"
+
+
+@cli.command()
+@click.argument("text")
+@click.option("--run", default=None, help="Tie the note to this run.")
+@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at).")
+@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now).")
+@_common
+def annotate(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
+    """Add a note to a run, or to an apparatus at a time."""
+    if run is None and apparatus is None:
+        raise click.UsageError("give --run RUN, or --apparatus A (with --at TIME)")
+    with _open(state) as catalogue:
+        number = catalogue.annotate(text, run=run, apparatus=apparatus, at=_date_option(at, "--at"))
+    click.echo(f"annotation {number} added")
+
+
+@cli.command()
+@click.argument("folder", type=click.Path(path_type=Path, file_okay=False))
+@click.option("--interval", default=5.0, show_default=True, help="Seconds between looks at the folder.")
+@click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml for the files.")
+@click.option("--quarantine", type=click.Path(path_type=Path, file_okay=False), default=None, help="Where refused files go (default FOLDER/quarantine).")
+@click.option("--log", "log_file", type=click.Path(path_type=Path, dir_okay=False), default=None, help="Log file (default FOLDER/runlog-watch.log).")
+@click.option("--stop-after", type=float, default=None, hidden=True)
+@_common
+def watch(state: _State, folder: Path, interval: float, config: Path | None, quarantine: Path | None, log_file: Path | None, stop_after: float | None) -> None:
+    """Ingest new files in FOLDER as they appear, once each has stopped changing."""
+    from runlog.config import load_config
+    from runlog.watch import Watcher
+
+    if not folder.is_dir():
+        raise click.BadParameter(f"{folder} is not a folder", param_hint="FOLDER")
+    mapping = load_config(config)
+    logger = logging.getLogger("runlog.watch")
+    logger.setLevel(logging.INFO)
+    handler = logging.FileHandler(log_file or folder / "runlog-watch.log", encoding="utf-8")
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    logger.addHandler(handler)
+    with _open(state) as catalogue:
+        logger.info("catalogue %s", catalogue.url)
+        watcher = Watcher(folder, lambda paths: catalogue.ingest(paths, config=mapping), quarantine, logger)
+        click.echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
+        try:
+            watcher.run(interval, stop_after=stop_after)
+        except KeyboardInterrupt:
+            logger.info("stopped")
+
+
+@cli.command()
+@click.option("--days", default=21, show_default=True, help="How many days of invented runs.")
+@click.option("--seed", default=7, show_default=True)
+@_common
+def demo(state: _State, days: int, seed: int) -> None:
+    """Build the demo catalogue (an invented lab) and print what it holds."""
+    import platformdirs
+
+    from runlog.demo import SCENARIO, write_demo_files
+
+    if state.db is None and not os.environ.get("RUNLOG_DB"):
+        # The demo never mixes invented runs into the lab's own default catalogue.
+        folder = Path(platformdirs.user_data_dir("runlog", appauthor=False))
+        state.db = f"sqlite:///{folder / 'demo.sqlite'}"
+    start = dt.date(2026, 9, 1)
+    tick = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="runlog-demo-") as temporary:
+        files = write_demo_files(Path(temporary), days=days, start=start, seed=seed)
+        with _open(state) as catalogue:
+            results = catalogue.ingest(files)
+            counts = catalogue.counts()
+            url = catalogue.url
+    took = time.perf_counter() - tick
+    made = sum(r.shots for r in results if r.status == "ingested")
+    click.echo(f"demo catalogue: {url}")
+    click.echo(f"{len(files)} files: {made} shots ingested now, {sum(r.status == 'already-present' for r in results)} files already present ({took:.1f} s)")
+    click.echo(f"catalogue holds {counts['apparatus']} apparatus, {counts['runs']} runs, {counts['shots']} shots")
+    for line in SCENARIO.describe(start, days):
+        click.echo("  " + line)
+    click.echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
+    if any(r.status == "rejected" for r in results):
+        for r in results:
+            if r.status == "rejected":
+                click.echo(f"rejected: {r.reason}", err=True)
+        sys.exit(1)
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Entry point: run the CLI, turning runlog's errors into one line and an exit code."""
+    debug = "--debug" in (argv if argv is not None else sys.argv[1:])
+    try:
+        cli.main(args=argv, prog_name="runlog", standalone_mode=False)
+    except click.exceptions.Exit as done:
+        sys.exit(done.exit_code)
+    except click.Abort:
+        click.echo("runlog: aborted", err=True)
+        sys.exit(1)
+    except click.ClickException as error:
+        error.show()
+        sys.exit(error.exit_code)
+    except RunlogError as error:
+        if debug:
+            raise
+        click.echo(f"runlog: error: {error}", err=True)
+        sys.exit(1)
+    except Exception as error:  # anything unexpected: one line unless --debug
+        if debug:
+            raise
+        click.echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
+        sys.exit(1)
