@@ -2,6 +2,7 @@
 
 from alembic import context
 from runlog.store.engine import make_engine
+from runlog.store.migrate import include_object
 from runlog.store.schema import Base
 
 config = context.config
@@ -15,6 +16,7 @@ def _configure(connection) -> None:
         # SQLite cannot ALTER most things in place; batch mode rebuilds tables instead.
         render_as_batch=connection.dialect.name == "sqlite",
         compare_type=True,
+        include_object=include_object,
     )
 
 

@@ -10,12 +10,12 @@ from __future__ import annotations
 import datetime as dt
 import getpass
 from collections.abc import Iterable
+from typing import TYPE_CHECKING
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
-from sqlalchemy import and_, func, select
+from sqlalchemy import and_, func, select, text
 from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping, load_config
@@ -23,6 +23,9 @@ from runlog.errors import NotFoundError, SchemaVersionError, StoreError
 from runlog.ingest import IngestResult, Progress, ingest_files
 from runlog.store import schema as s
 from runlog.store.engine import current_revision, make_engine, redact, resolve_url
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = ["Catalogue", "RunInfo", "open_catalogue"]
 
@@ -145,8 +148,10 @@ class Catalogue:
 
     # --- reading -------------------------------------------------------------------
 
-    def runs(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> pd.DataFrame:
+    def runs(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> "pd.DataFrame":
         """Runs, newest first: run, apparatus, sequence, shots, started, finished, operator."""
+        import pandas as pd
+
         query = (
             select(
                 s.Run.key.label("run"),
@@ -199,7 +204,8 @@ class Catalogue:
                 name
                 for (name,) in connection.execute(
                     select(s.Measurement.name)
-                    .where(s.Measurement.id.in_(select(s.MeasurementValue.measurement_id).join(s.Shot, s.Shot.id == s.MeasurementValue.shot_id).where(s.Shot.run_id == found.id).distinct()))
+                    .join(s.RunMeasurement, s.RunMeasurement.measurement_id == s.Measurement.id)
+                    .where(s.RunMeasurement.run_id == found.id)
                     .order_by(s.Measurement.name)
                 )
             ]
@@ -219,12 +225,14 @@ class Catalogue:
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
         return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures)
 
-    def shots(self, run: str, *, apparatus: str | None = None) -> pd.DataFrame:
+    def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
 
         Units are in ``DataFrame.attrs["units"]``; a shot lacking a parameter or a
         measurement has NaN (numbers) or None (text) there.
         """
+        import pandas as pd
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             shots = pd.DataFrame(
@@ -252,21 +260,23 @@ class Catalogue:
                     ).all()
                 )
                 shots[column] = shots["id"].map(values)
-            long = pd.DataFrame(
-                connection.execute(
-                    select(s.MeasurementValue.shot_id, s.Measurement.name, s.Measurement.unit, s.MeasurementValue.value)
-                    .join(s.Measurement, s.Measurement.id == s.MeasurementValue.measurement_id)
-                    .join(s.Shot, s.Shot.id == s.MeasurementValue.shot_id)
-                    .where(s.Shot.run_id == found.id)
-                ).all(),
-                columns=["id", "name", "unit", "value"],
-            )
-        if len(long):
-            for name, unit in long[["name", "unit"]].drop_duplicates().itertuples(index=False):
-                units[f"m.{name}"] = unit
-            wide = long.pivot(index="id", columns="name", values="value")
-            wide.columns = [f"m.{name}" for name in wide.columns]
-            shots = shots.join(wide, on="id")
+            measured = connection.execute(
+                select(s.Measurement.id, s.Measurement.name, s.Measurement.unit)
+                .join(s.RunMeasurement, s.RunMeasurement.measurement_id == s.Measurement.id)
+                .where(s.RunMeasurement.run_id == found.id)
+                .order_by(s.Measurement.name)
+            ).all()
+            if measured:
+                # Column names come from integer ids, never from user text.
+                columns = ", ".join(f"sm.{s.measurement_column(mid)}" for mid, _, _ in measured)
+                values = connection.execute(
+                    text(f"SELECT sm.shot_id, {columns} FROM shot_measurements sm JOIN shots ON shots.id = sm.shot_id WHERE shots.run_id = :r"),
+                    {"r": found.id},
+                ).all()
+                wide = pd.DataFrame(values, columns=["id", *[f"m.{name}" for _, name, _ in measured]]).set_index("id").astype(float)
+                shots = shots.join(wide, on="id")
+                for _, name, unit in measured:
+                    units[f"m.{name}"] = unit
         shots.insert(0, "run", found.key)
         shots = shots.drop(columns=["id"])
         shots.attrs["units"] = units
@@ -293,8 +303,10 @@ class Catalogue:
         packed = np.frombuffer(b"".join(bytes(b) for b in blobs), dtype=np.uint8).reshape(len(blobs), -1)
         return np.unpackbits(packed, axis=1, count=sites).astype(bool)
 
-    def annotations(self, *, apparatus: str | None = None, since: dt.datetime | dt.date | str | None = None) -> pd.DataFrame:
+    def annotations(self, *, apparatus: str | None = None, since: dt.datetime | dt.date | str | None = None) -> "pd.DataFrame":
         """Annotations, oldest first: apparatus, run, at, text, author."""
+        import pandas as pd
+
         query = (
             select(s.Apparatus.name.label("apparatus"), s.Run.key.label("run"), s.Annotation.at, s.Annotation.text, s.Annotation.author)
             .join(s.Apparatus, s.Apparatus.id == s.Annotation.apparatus_id)
@@ -308,8 +320,10 @@ class Catalogue:
         with self.engine.connect() as connection:
             return pd.DataFrame(connection.execute(query).all(), columns=["apparatus", "run", "at", "text", "author"])
 
-    def ingest_log(self, *, limit: int = 100, status: str | None = None) -> pd.DataFrame:
+    def ingest_log(self, *, limit: int = 100, status: str | None = None) -> "pd.DataFrame":
         """The latest ingest attempts, newest first."""
+        import pandas as pd
+
         query = select(s.IngestLogEntry.file, s.IngestLogEntry.status, s.IngestLogEntry.reason, s.IngestLogEntry.runs, s.IngestLogEntry.shots, s.IngestLogEntry.sha256, s.IngestLogEntry.finished_at).order_by(s.IngestLogEntry.id.desc()).limit(limit)
         if status is not None:
             query = query.where(s.IngestLogEntry.status == status)

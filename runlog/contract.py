@@ -207,21 +207,34 @@ def _first(mask: np.ndarray) -> int:
 
 
 def _strings(file: str, array: pa.Array, column: str, first_row: int, required: bool) -> np.ndarray:
-    if pa.types.is_dictionary(array.type):
-        array = array.cast(array.type.value_type)
-    if not (pa.types.is_string(array.type) or pa.types.is_large_string(array.type) or pa.types.is_null(array.type)):
+    """Text values as an object array (``None`` for missing), via the dictionary.
+
+    Run, apparatus and sequence repeat over thousands of rows; checking and converting
+    the few distinct values instead of every row is what keeps this cheap.
+    """
+    if not pa.types.is_dictionary(array.type):
         if pa.types.is_integer(array.type):
             array = array.cast(pa.string())
-        else:
+        elif pa.types.is_null(array.type):
+            array = array.cast(pa.string())
+        elif not (pa.types.is_string(array.type) or pa.types.is_large_string(array.type)):
             raise ContractError(file, f"must be text, found {array.type}", column=column, row=first_row)
+        array = pc.dictionary_encode(array)
+    elif not (pa.types.is_string(array.type.value_type) or pa.types.is_large_string(array.type.value_type)):
+        raise ContractError(file, f"must be text, found {array.type.value_type}", column=column, row=first_row)
+    codes = array.indices
     if required and array.null_count:
         raise ContractError(file, "empty value", column=column, row=first_row + _first(array.is_null().to_numpy(zero_copy_only=False)))
-    values = array.to_numpy(zero_copy_only=False)
-    if required:
-        empty = pc.equal(pc.utf8_trim_whitespace(array), "").to_numpy(zero_copy_only=False)
-        if empty.any():
-            raise ContractError(file, "empty value", column=column, row=first_row + _first(empty))
-    return values
+    dictionary = array.dictionary
+    if required and len(dictionary):
+        empty_codes = np.flatnonzero(pc.equal(pc.utf8_trim_whitespace(dictionary), "").to_numpy(zero_copy_only=False))
+        if len(empty_codes):
+            rows = np.isin(codes.to_numpy(zero_copy_only=False), empty_codes)
+            if rows.any():
+                raise ContractError(file, "empty value", column=column, row=first_row + _first(rows))
+    words = np.append(dictionary.to_numpy(zero_copy_only=False).astype(object), None)
+    positions = pc.fill_null(codes, len(dictionary)).to_numpy(zero_copy_only=False)
+    return words[positions]
 
 
 def _numbers(file: str, array: pa.Array, column: str, first_row: int) -> np.ndarray:

@@ -29,7 +29,7 @@ from runlog.config import Mapping
 from runlog.contract import Batch, Layout, normalise_batch, read_layout
 from runlog.errors import ContractError
 from runlog.store.bulk import Writer, open_writer
-from runlog.store.schema import IngestLogEntry
+from runlog.store.schema import IngestLogEntry, measurement_column
 from runlog.units import conversion
 
 __all__ = ["IngestResult", "ingest_files", "expand_paths", "file_sha256", "BATCH_ROWS"]
@@ -88,6 +88,7 @@ class _Run:
     parameters: dict[str, _Parameter] = field(default_factory=dict)
     image_sites: dict[str, int] = field(default_factory=dict)
     has_image: dict[str, bool] = field(default_factory=dict)
+    measurement_counts: dict[str, int] = field(default_factory=dict)
     # Filled in the write transaction.
     run_id: int = 0
     per_shot: set[str] = field(default_factory=set)
@@ -119,9 +120,9 @@ def expand_paths(paths: Iterable[str | Path]) -> list[Path]:
     return out
 
 
-def _open(path: Path) -> pq.ParquetFile:
+def _open(path: Path, text_columns: list[str] | None = None) -> pq.ParquetFile:
     try:
-        return pq.ParquetFile(path)
+        return pq.ParquetFile(path, read_dictionary=text_columns)
     except FileNotFoundError:
         raise ContractError(str(path), "file not found") from None
     except IsADirectoryError:
@@ -206,6 +207,8 @@ class _Plan:
             if batch.tags is not None:
                 for value in set(batch.tags[rows]) - {None}:
                     run.tags.update(t.strip() for t in str(value).split(",") if t.strip())
+            for name, values in batch.measurements.items():
+                run.measurement_counts[name] = run.measurement_counts.get(name, 0) + int(np.count_nonzero(~np.isnan(values[rows])))
             for column in layout.by_role("parameter"):
                 self._add_parameter(run, column.name, column.kind, column.unit, batch.parameters[column.name][rows])
             for column in layout.by_role("occupancy"):
@@ -321,6 +324,8 @@ class _Catalogue:
             if not rows:
                 self.writer.execute("INSERT INTO measurements (name, unit) VALUES (:name, :unit)", {"name": name, "unit": unit})
                 rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
+                real = "REAL" if self.writer.dialect == "sqlite" else "DOUBLE PRECISION"
+                self.writer.execute(f"ALTER TABLE shot_measurements ADD COLUMN {measurement_column(rows[0][0])} {real}")
             mid, stored_unit = rows[0]
             if conversion(unit, stored_unit) is None:
                 raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of measurement '{name}'", column=column)
@@ -390,6 +395,14 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 _insert_run_parameter(writer, run.run_id, pid, stats, stored_unit)
                 if not stats.constant:
                     run.per_shot.add(name)
+        for name, count in run.measurement_counts.items():
+            if count == 0:
+                continue
+            mid = ids.measurements[name][0]
+            if writer.rows("SELECT 1 FROM run_measurements WHERE run_id = :r AND measurement_id = :m", {"r": run.run_id, "m": mid}):
+                writer.execute("UPDATE run_measurements SET shots = shots + :n WHERE run_id = :r AND measurement_id = :m", {"n": count, "r": run.run_id, "m": mid})
+            else:
+                writer.execute("INSERT INTO run_measurements (run_id, measurement_id, shots) VALUES (:r, :m, :n)", {"r": run.run_id, "m": mid, "n": count})
         for tag in sorted(run.tags):
             if not writer.rows("SELECT 1 FROM run_tags WHERE run_id = :r AND tag = :t", {"r": run.run_id, "t": tag}):
                 writer.execute("INSERT INTO run_tags (run_id, tag) VALUES (:r, :t)", {"r": run.run_id, "t": tag})
@@ -605,28 +618,29 @@ def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_sho
 
 
 def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
+    """One wide row per shot that has any measured value; NaN becomes NULL (missing)."""
     if not columns:
         return
-    matrix = np.empty((batch.length, len(columns)), dtype=np.float64)
-    mids = np.empty(len(columns), dtype=np.int64)
-    for position, column in enumerate(columns):
+    data: dict[str, pa.Array] = {}
+    present = np.zeros(batch.length, dtype=bool)
+    for column in columns:
         mid, stored_unit = ids.measurements[column.name]
         scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
         values = batch.measurements[column.name]
-        matrix[:, position] = values if (scale, offset) == (1.0, 0.0) else values * scale + offset
-        mids[position] = mid
-    values = matrix.ravel()
-    keep = ~np.isnan(values)
-    writer.append(
-        "measurement_values",
-        pa.table(
-            {
-                "shot_id": np.repeat(shot_ids, len(columns))[keep],
-                "measurement_id": np.tile(mids, batch.length)[keep],
-                "value": values[keep],
-            }
-        ),
-    )
+        if (scale, offset) != (1.0, 0.0):
+            values = values * scale + offset
+        missing = np.isnan(values)
+        present |= ~missing
+        data[measurement_column(mid)] = values, missing
+    if not present.any():
+        return
+    keep = None if present.all() else present
+    table = {"shot_id": shot_ids if keep is None else shot_ids[keep]}
+    for name, (values, missing) in data.items():
+        if keep is not None:
+            values, missing = values[keep], missing[keep]
+        table[name] = pa.array(values, pa.float64(), mask=missing if missing.any() else None)
+    writer.append("shot_measurements", pa.table(table))
 
 
 def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float, writer: Writer | None = None) -> None:
@@ -667,8 +681,11 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         except OSError as error:
             raise ContractError(name, f"cannot read file ({_short(error)})") from None
         tick = time.perf_counter()
-        parquet = _open(path)
-        layout = read_layout(name, parquet.schema_arrow, mapping)
+        layout = read_layout(name, _open(path).schema_arrow, mapping)
+        # Text columns are read as dictionaries: a run key repeats over all its shots.
+        text_columns = [c.source for c in layout.columns if c.role in ("reserved", "optional") and c.name not in ("shot", "time")]
+        text_columns += [c.source for c in layout.by_role("parameter") if c.kind == "text"]
+        parquet = _open(path, text_columns)
         plan = _Plan(path, layout)
         for _, batch in _batches(path, parquet, layout):
             plan.add(batch)

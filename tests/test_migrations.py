@@ -25,7 +25,7 @@ def test_models_match_migrations(db_url):
     engine = make_engine(db_url)
     migrate.upgrade(engine)
     with engine.connect() as connection:
-        context = MigrationContext.configure(connection, opts={"compare_type": True})
+        context = MigrationContext.configure(connection, opts={"compare_type": True, "include_object": migrate.include_object})
         assert compare_metadata(context, Base.metadata) == []
     engine.dispose()
 

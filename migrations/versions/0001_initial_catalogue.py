@@ -157,14 +157,18 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_shots')),
     sa.UniqueConstraint('run_id', 'shot', name=op.f('uq_shots_run_id_shot'))
     )
-    op.create_table('measurement_values',
-    sa.Column('shot_id', sa.BigInteger().with_variant(sa.Integer(), 'sqlite'), nullable=False),
+    op.create_table('run_measurements',
+    sa.Column('run_id', sa.Integer(), nullable=False),
     sa.Column('measurement_id', sa.Integer(), nullable=False),
-    sa.Column('value', sa.Float(), nullable=False),
-    sa.ForeignKeyConstraint(['measurement_id'], ['measurements.id'], name=op.f('fk_measurement_values_measurement_id_measurements')),
-    sa.ForeignKeyConstraint(['shot_id'], ['shots.id'], name=op.f('fk_measurement_values_shot_id_shots'), ondelete='CASCADE'),
-    sa.PrimaryKeyConstraint('shot_id', 'measurement_id', name=op.f('pk_measurement_values')),
-    sqlite_with_rowid=False
+    sa.Column('shots', sa.Integer(), nullable=False),
+    sa.ForeignKeyConstraint(['measurement_id'], ['measurements.id'], name=op.f('fk_run_measurements_measurement_id_measurements')),
+    sa.ForeignKeyConstraint(['run_id'], ['runs.id'], name=op.f('fk_run_measurements_run_id_runs'), ondelete='CASCADE'),
+    sa.PrimaryKeyConstraint('run_id', 'measurement_id', name=op.f('pk_run_measurements'))
+    )
+    op.create_table('shot_measurements',
+    sa.Column('shot_id', sa.BigInteger().with_variant(sa.Integer(), 'sqlite'), autoincrement=False, nullable=False),
+    sa.ForeignKeyConstraint(['shot_id'], ['shots.id'], name=op.f('fk_shot_measurements_shot_id_shots'), ondelete='CASCADE'),
+    sa.PrimaryKeyConstraint('shot_id', name=op.f('pk_shot_measurements'))
     )
     op.create_table('occupancy',
     sa.Column('shot_id', sa.BigInteger().with_variant(sa.Integer(), 'sqlite'), nullable=False),
@@ -190,7 +194,8 @@ def upgrade() -> None:
 def downgrade() -> None:
     op.drop_table('shot_parameters')
     op.drop_table('occupancy')
-    op.drop_table('measurement_values')
+    op.drop_table('shot_measurements')
+    op.drop_table('run_measurements')
     op.drop_table('shots')
     with op.batch_alter_table('run_tags', schema=None) as batch_op:
         batch_op.drop_index(batch_op.f('ix_run_tags_tag'))

@@ -9,7 +9,16 @@ from importlib import resources
 
 from sqlalchemy.engine import Engine
 
-__all__ = ["alembic_config", "upgrade", "downgrade", "head_revision"]
+from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
+
+__all__ = ["alembic_config", "upgrade", "downgrade", "head_revision", "include_object"]
+
+
+def include_object(obj, name, type_, reflected, compare_to) -> bool:
+    """Alembic filter: measurement columns of ``shot_measurements`` are data, added by ingest."""
+    if type_ == "column" and reflected and obj.table.name == "shot_measurements":
+        return not str(name).startswith(MEASUREMENT_COLUMN_PREFIX)
+    return True
 
 
 def alembic_config(engine: Engine | None = None):

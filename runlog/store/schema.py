@@ -44,7 +44,9 @@ __all__ = [
     "RunParameter",
     "ShotParameter",
     "Measurement",
-    "MeasurementValue",
+    "RunMeasurement",
+    "ShotMeasurements",
+    "measurement_column",
     "Image",
     "Occupancy",
     "FigureRow",
@@ -196,16 +198,35 @@ class Measurement(Base):
     unit: Mapped[str] = mapped_column(String(60), default="")
 
 
-class MeasurementValue(Base):
-    """One measured value of one shot; a missing measurement has no row."""
+class RunMeasurement(Base):
+    """Which measurements the shots of a run carry, and how many shots have a value."""
 
-    __tablename__ = "measurement_values"
-    __table_args__ = {"sqlite_with_rowid": False}
-    shot_id: Mapped[int] = mapped_column(
-        BigId, ForeignKey("shots.id", ondelete="CASCADE"), primary_key=True
-    )
+    __tablename__ = "run_measurements"
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
     measurement_id: Mapped[int] = mapped_column(ForeignKey("measurements.id"), primary_key=True)
-    value: Mapped[float] = mapped_column(Float)
+    shots: Mapped[int] = mapped_column(Integer, default=0)
+
+
+#: Per-shot measured values live in ``shot_measurements``: one row per shot, one column
+#: ``m_<measurement id>`` per measurement, added by ingest (ALTER TABLE ... ADD COLUMN)
+#: when a measurement first appears. A lab has dozens of measurement names, not
+#: thousands, and a wide row appends ~4x faster than one row per value; a missing value is
+#: NULL. These columns are data, not schema: migrations and the model check leave them be.
+MEASUREMENT_COLUMN_PREFIX = "m_"
+
+
+def measurement_column(measurement_id: int) -> str:
+    """The ``shot_measurements`` column of a measurement (a safe identifier by construction)."""
+    return f"{MEASUREMENT_COLUMN_PREFIX}{int(measurement_id)}"
+
+
+class ShotMeasurements(Base):
+    """Per-shot measured values: one row per shot, one ``m_<id>`` column per measurement."""
+
+    __tablename__ = "shot_measurements"
+    shot_id: Mapped[int] = mapped_column(
+        BigId, ForeignKey("shots.id", ondelete="CASCADE"), primary_key=True, autoincrement=False
+    )
 
 
 class Image(Base):
