@@ -318,7 +318,8 @@ class Catalogue:
         if since is not None:
             query = query.where(s.Annotation.at >= _as_utc(since))
         with self.engine.connect() as connection:
-            return pd.DataFrame(connection.execute(query).all(), columns=["apparatus", "run", "at", "text", "author"])
+            frame = pd.DataFrame(connection.execute(query).all(), columns=["apparatus", "run", "at", "text", "author"], dtype=object)
+        return frame.astype({"at": "datetime64[us, UTC]"}) if len(frame) else frame
 
     def ingest_log(self, *, limit: int = 100, status: str | None = None) -> "pd.DataFrame":
         """The latest ingest attempts, newest first."""

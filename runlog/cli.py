@@ -14,13 +14,14 @@ import logging
 import os
 import sys
 import tempfile
+import textwrap
 import time
 from pathlib import Path
 from typing import Any
 
 import click
 
-from runlog.errors import RunlogError
+from runlog.errors import RunlogError, StoreError
 
 __all__ = ["main", "cli"]
 
@@ -96,6 +97,10 @@ def init(state: _State) -> None:
     engine = make_engine(url)
     try:
         upgrade(engine)
+    except RunlogError:
+        raise
+    except Exception as error:  # driver errors differ per backend; say which store failed
+        raise StoreError(f"cannot initialise catalogue {redact(url)}: {str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__}") from None
     finally:
         engine.dispose()
     click.echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
@@ -200,12 +205,12 @@ def show(state: _State, run: str, apparatus: str | None, as_json: bool) -> None:
     if as_json:
         _json(info.as_dict())
         return
-    click.echo(f"run {info.run}  ({info.apparatus}, {info.sequence})")
-    click.echo(f"  {info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
+    _wrapped(f"run {info.run}  ({info.apparatus}, {info.sequence})", indent="")
+    _wrapped(f"{info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
     if info.notes:
-        click.echo(f"  notes: {info.notes}")
+        _wrapped(f"notes: {info.notes}")
     if info.tags:
-        click.echo(f"  tags: {', '.join(info.tags)}")
+        _wrapped(f"tags: {', '.join(info.tags)}")
     click.echo("parameters")
     for name, entry in info.parameters.items():
         unit = f" {entry['unit']}" if entry["unit"] else ""
@@ -218,7 +223,7 @@ def show(state: _State, run: str, apparatus: str | None, as_json: bool) -> None:
             click.echo(f"  {name:<24} {shown}{unit}")
     if info.measurements:
         click.echo("measurements")
-        click.echo("  " + ", ".join(info.measurements))
+        _wrapped(", ".join(info.measurements))
     if info.images:
         click.echo("images")
         for name, image in info.images.items():
@@ -227,6 +232,12 @@ def show(state: _State, run: str, apparatus: str | None, as_json: bool) -> None:
         click.echo("figures")
         for name, figure in info.figures.items():
             click.echo("  " + _figure_line(name, figure))
+
+
+def _wrapped(text: str, indent: str = "  ") -> None:
+    """Print ``text`` within 80 columns, continuation lines indented."""
+    for line in textwrap.wrap(text, width=80, initial_indent=indent, subsequent_indent=indent + "  ", break_long_words=True) or [indent]:
+        click.echo(line)
 
 
 def _figure_line(name: str, figure: dict[str, Any]) -> str:

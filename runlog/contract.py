@@ -242,15 +242,18 @@ def _numbers(file: str, array: pa.Array, column: str, first_row: int) -> np.ndar
     if pa.types.is_dictionary(array.type):
         array = array.cast(array.type.value_type)
     if pa.types.is_string(array.type) or pa.types.is_large_string(array.type):
-        # Text in a numeric column: name the first value that is not a number.
-        for index, value in enumerate(array.to_pylist()):
-            if value is None:
-                continue
-            try:
-                float(value)
-            except ValueError:
-                raise ContractError(file, f"text {value[:40]!r} in a numeric column", column=column, row=first_row + index) from None
-        array = pc.cast(array, pa.float64())
+        try:
+            array = pc.cast(array, pa.float64())
+        except pa.ArrowInvalid:
+            # Text in a numeric column: name the first value Arrow cannot read as a number.
+            for index, value in enumerate(array.to_pylist()):
+                if value is None:
+                    continue
+                try:
+                    pc.cast(pa.array([value]), pa.float64())
+                except pa.ArrowInvalid:
+                    raise ContractError(file, f"text {value[:40]!r} in a numeric column", column=column, row=first_row + index) from None
+            raise
     elif pa.types.is_boolean(array.type) or pa.types.is_integer(array.type) or pa.types.is_decimal(array.type):
         array = pc.cast(array, pa.float64())
     elif pa.types.is_null(array.type):
