@@ -102,9 +102,9 @@ class Catalogue:
 
     def init(self) -> str:
         """Create the schema or upgrade it to this runlog's revision; idempotent."""
-        from runlog.store.migrate import upgrade
+        from runlog.store.migrate import create_or_upgrade
 
-        upgrade(self.engine)
+        create_or_upgrade(self.engine)
         return s.SCHEMA_REVISION
 
     def close(self) -> None:

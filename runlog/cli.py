@@ -88,7 +88,7 @@ def cli(ctx: click.Context, db: str | None, debug: bool) -> None:
 def init(state: _State) -> None:
     """Create the catalogue, or upgrade it to this runlog's schema."""
     from runlog.store.engine import make_engine, redact, resolve_url
-    from runlog.store.migrate import upgrade
+    from runlog.store.migrate import create_or_upgrade
     from runlog.store.schema import SCHEMA_REVISION
 
     # Not runlog.open(): opening refuses a catalogue at an older revision, and init is
@@ -96,7 +96,7 @@ def init(state: _State) -> None:
     url = resolve_url(state.db)
     engine = make_engine(url)
     try:
-        upgrade(engine)
+        create_or_upgrade(engine)
     except RunlogError:
         raise
     except Exception as error:  # driver errors differ per backend; say which store failed

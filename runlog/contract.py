@@ -102,6 +102,11 @@ class Batch:
     measurements: dict[str, np.ndarray]
     occupancy: dict[str, pa.ListArray]
 
+    def nbytes(self) -> int:
+        """Memory held by the batch (object arrays counted by their pointers only)."""
+        arrays = [self.run, self.apparatus, self.sequence, self.shot, self.time_us, *self.parameters.values(), *self.measurements.values()]
+        return sum(a.nbytes for a in arrays) + sum(a.nbytes for a in self.occupancy.values())
+
 
 def _shape_of(field: pa.Field) -> tuple[int, ...] | None:
     meta = field.metadata or {}

@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pandas as pd  # pyarrow imports it anyway on its first conversion
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
@@ -35,6 +36,7 @@ from runlog.units import conversion
 __all__ = ["IngestResult", "ingest_files", "expand_paths", "file_sha256", "BATCH_ROWS"]
 
 BATCH_ROWS = 65_536
+KEEP_BYTES = 128 * 2**20  # checked batches kept between the two passes, at most
 _CLOSE = 1e-12  # relative tolerance when comparing parameter values after a unit conversion
 
 Progress = Callable[[str, int, int], None]  # (file, rows done, rows total)
@@ -165,9 +167,10 @@ class _Plan:
 
     def run_index(self, batch: Batch) -> np.ndarray:
         """The position in ``self.runs`` of every row's (apparatus, run), adding new runs."""
-        apparatus_names, apparatus_codes = np.unique(batch.apparatus.astype(str), return_inverse=True)
-        run_names, run_codes = np.unique(batch.run.astype(str), return_inverse=True)
-        pairs = apparatus_codes.reshape(-1).astype(np.int64) * len(run_names) + run_codes.reshape(-1)
+        # factorize hashes; np.unique would sort the strings, several times slower.
+        apparatus_codes, apparatus_names = pd.factorize(batch.apparatus)
+        run_codes, run_names = pd.factorize(batch.run)
+        pairs = apparatus_codes.astype(np.int64) * len(run_names) + run_codes
         unique, first, inverse = np.unique(pairs, return_index=True, return_inverse=True)
         mapping = np.empty(len(unique), dtype=np.int64)
         for position, pair in enumerate(unique):
@@ -353,6 +356,8 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
     for column in layout.by_role("measurement"):
         ids.measurement(column.name, column.unit, column.source)
     shot_source = layout.source("shot")
+    new_parameters: list[dict[str, object]] = []
+    new_measurements: list[dict[str, object]] = []
     for run in plan.runs:
         apparatus_id = ids.apparatus_id(run.apparatus)
         found = writer.rows(
@@ -392,10 +397,15 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 if stats.present == 0:
                     continue
                 pid, stored_unit, kind = ids.parameters[name]
-                _insert_run_parameter(writer, run.run_id, pid, stats, stored_unit)
+                new_parameters.append(_run_parameter_row(run.run_id, pid, stats, stored_unit))
                 if not stats.constant:
                     run.per_shot.add(name)
-        for name, count in run.measurement_counts.items():
+            new_measurements.extend(
+                {"run_id": run.run_id, "measurement_id": ids.measurements[name][0], "shots": count}
+                for name, count in run.measurement_counts.items()
+                if count
+            )
+        for name, count in run.measurement_counts.items() if found else ():
             if count == 0:
                 continue
             mid = ids.measurements[name][0]
@@ -417,9 +427,18 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                     "INSERT INTO images (run_id, name, role, sites, shape) VALUES (:r, :n, :role, :sites, :shape)",
                     {"r": run.run_id, "n": name, "role": role, "sites": sites, "shape": ",".join(map(str, shape))},
                 )
+    _append_rows(writer, "run_parameters", new_parameters, _RUN_PARAMETER_SCHEMA)
+    _append_rows(writer, "run_measurements", new_measurements, _RUN_MEASUREMENT_SCHEMA)
 
 
-def _insert_run_parameter(writer: Writer, run_id: int, pid: int, stats: _Parameter, stored_unit: str) -> None:
+_RUN_PARAMETER_SCHEMA = pa.schema(
+    [("run_id", pa.int64()), ("parameter_id", pa.int64()), ("scanned", pa.bool_()), ("number_value", pa.float64()),
+     ("text_value", pa.string()), ("minimum", pa.float64()), ("maximum", pa.float64())]
+)
+_RUN_MEASUREMENT_SCHEMA = pa.schema([("run_id", pa.int64()), ("measurement_id", pa.int64()), ("shots", pa.int64())])
+
+
+def _run_parameter_row(run_id: int, pid: int, stats: _Parameter, stored_unit: str) -> dict[str, object]:
     number = text_value = minimum = maximum = None
     if stats.kind == "text":
         text_value = str(stats.first) if stats.constant else None
@@ -428,11 +447,13 @@ def _insert_run_parameter(writer: Writer, run_id: int, pid: int, stats: _Paramet
         maximum = _to_stored(stats.maximum, stats.unit, stored_unit)
         minimum, maximum = min(minimum, maximum), max(minimum, maximum)
         number = _to_stored(float(stats.first), stats.unit, stored_unit) if stats.constant else None
-    writer.execute(
-        "INSERT INTO run_parameters (run_id, parameter_id, scanned, number_value, text_value, minimum, maximum) "
-        "VALUES (:r, :p, :s, :n, :t, :lo, :hi)",
-        {"r": run_id, "p": pid, "s": not stats.constant, "n": number, "t": text_value, "lo": minimum, "hi": maximum},
-    )
+    return {"run_id": run_id, "parameter_id": pid, "scanned": not stats.constant, "number_value": number, "text_value": text_value, "minimum": minimum, "maximum": maximum}
+
+
+def _append_rows(writer: Writer, table: str, rows: list[dict[str, object]], schema: pa.Schema) -> None:
+    # Dozens of small rows per file go in as one append rather than one statement each.
+    if rows:
+        writer.append(table, pa.Table.from_pylist(rows, schema=schema))
 
 
 def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: int) -> None:
@@ -458,7 +479,7 @@ def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: 
                 continue
             # Stored shots lack this parameter: it cannot be constant over the run.
             stats_copy = _Parameter(stats.kind, stats.unit, stats.present, False, stats.first, stats.minimum, stats.maximum)
-            _insert_run_parameter(writer, run.run_id, pid, stats_copy, stored_unit)
+            _append_rows(writer, "run_parameters", [_run_parameter_row(run.run_id, pid, stats_copy, stored_unit)], _RUN_PARAMETER_SCHEMA)
             run.per_shot.add(name)
             continue
         scanned, number, text_value, lo, hi = old
@@ -530,7 +551,7 @@ def _pack(array: pa.ListArray) -> pa.Array:
     return merged.take(pa.array(np.argsort(np.concatenate(positions), kind="stable")))
 
 
-def _write_shots(writer: Writer, path: Path, parquet: pq.ParquetFile, plan: _Plan, ids: _Catalogue, progress: Progress | None) -> int:
+def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]], plan: _Plan, ids: _Catalogue, progress: Progress | None) -> int:
     layout = plan.layout
     next_id = _one(writer, "SELECT MAX(id) FROM shots", {})
     base = 1 if next_id is None else int(next_id) + 1
@@ -543,7 +564,7 @@ def _write_shots(writer: Writer, path: Path, parquet: pq.ParquetFile, plan: _Pla
         for name in run.image_sites:
             image_ids[(run.run_id, name)] = int(_one(writer, "SELECT id FROM images WHERE run_id = :r AND name = :n", {"r": run.run_id, "n": name}))
     written = 0
-    for first_row, batch in _batches(path, parquet, layout):
+    for first_row, batch in batches:
         run_index = plan.run_index(batch)
         shot_ids = base + first_row + np.arange(batch.length, dtype=np.int64)
         status = batch.status if batch.status is not None else None
@@ -687,8 +708,18 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         text_columns += [c.source for c in layout.by_role("parameter") if c.kind == "text"]
         parquet = _open(path, text_columns)
         plan = _Plan(path, layout)
-        for _, batch in _batches(path, parquet, layout):
+        # Checked batches are kept for the write while they fit a fixed budget, so a small
+        # file is read once; a larger one is read again, and memory stays bounded either way.
+        kept: list[tuple[int, Batch]] | None = []
+        kept_bytes = 0
+        for first_row, batch in _batches(path, parquet, layout):
             plan.add(batch)
+            if kept is not None:
+                kept_bytes += batch.nbytes()
+                if kept_bytes <= KEEP_BYTES:
+                    kept.append((first_row, batch))
+                else:
+                    kept = None
         plan.finish()
         read_s = time.perf_counter() - tick
         tick = time.perf_counter()
@@ -698,7 +729,8 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
                 return IngestResult(name, "already-present", tuple(r.key for r in plan.runs), plan.rows)
             ids = _Catalogue(writer, name)
             _write_runs(writer, plan, ids)
-            shots = _write_shots(writer, path, parquet, plan, ids, progress)
+            batches = kept if kept is not None else _batches(path, parquet, layout)
+            shots = _write_shots(writer, path, batches, plan, ids, progress)
             if after_write is not None:
                 after_write(writer, [run.run_id for run in plan.runs])
             write_s = time.perf_counter() - tick

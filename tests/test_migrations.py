@@ -64,3 +64,29 @@ def test_opening_a_catalogue_at_another_revision_is_refused(db_url):
     with pytest.raises(SchemaVersionError) as caught:
         runlog.open(db_url)
     assert str(caught.value).endswith("is at schema revision 0000, this runlog needs 0001: run 'runlog init' to upgrade")
+
+
+def test_a_catalogue_created_from_the_models_equals_the_migrated_one(db_url):
+    # runlog.open() builds an empty database from the models and stamps it (Alembic's
+    # from-scratch recipe); it must be indistinguishable from one built by the scripts.
+    with runlog.open(db_url) as catalogue:
+        engine = catalogue.engine
+        assert current_revision(engine) == SCHEMA_REVISION
+        with engine.connect() as connection:
+            context = MigrationContext.configure(connection, opts={"compare_type": True, "include_object": migrate.include_object})
+            assert compare_metadata(context, Base.metadata) == []
+        migrate.downgrade(engine, "base")
+        assert current_revision(engine) is None
+        migrate.upgrade(engine)
+        assert current_revision(engine) == SCHEMA_REVISION
+
+
+def test_a_large_file_read_twice_when_over_the_keep_budget(db_url, make_file, monkeypatch):
+    import runlog.ingest
+
+    monkeypatch.setattr(runlog.ingest, "KEEP_BYTES", 1)  # nothing kept: pass 2 reads the file again
+    monkeypatch.setattr(runlog.ingest, "BATCH_ROWS", 4)
+    with runlog.open(db_url) as catalogue:
+        [result] = catalogue.ingest(make_file(runs={"r1": 10, "r2": 9}))
+        assert (result.status, result.shots) == ("ingested", 19)
+        assert list(catalogue.shots("r2")["shot"]) == list(range(9))

@@ -22,6 +22,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
 from runlog.store.engine import BUSY_TIMEOUT_MS, exclusive_bulk_writer, sqlite_path
+from runlog.store.schema import to_epoch_us
 
 __all__ = ["Writer", "open_writer"]
 
@@ -50,7 +51,7 @@ def _sqlite_value(value: Any) -> Any:
     if isinstance(value, dt.datetime):
         if value.tzinfo is None:
             raise ValueError("naive datetime")
-        return value.astimezone(dt.timezone.utc).replace(tzinfo=None).isoformat(sep=" ", timespec="microseconds")
+        return to_epoch_us(value)
     if isinstance(value, (bool, np.bool_)):
         return int(value)
     if isinstance(value, np.integer):
@@ -61,11 +62,11 @@ def _sqlite_value(value: Any) -> Any:
 
 
 def _sqlite_arrow(data: pa.Table) -> pa.Table:
-    # Times as the same ISO text SQLAlchemy writes on SQLite, so both read alike.
+    # Times as integer microseconds since the epoch, as UTCDateTime stores them on SQLite.
     columns = []
     for column in data.columns:
         if pa.types.is_timestamp(column.type):
-            column = column.cast(pa.timestamp("us", tz="UTC")).cast(pa.timestamp("us")).cast(pa.string())
+            column = column.cast(pa.timestamp("us", tz="UTC")).cast(pa.int64())
         elif pa.types.is_boolean(column.type):
             column = column.cast(pa.int64())
         columns.append(column)
@@ -89,7 +90,7 @@ class _SqliteWriter:
             # Foreign keys are off on this connection only: every id it writes was just
             # read or allocated inside the same transaction, and checking each of millions
             # of appended rows against its parent costs a third of the write time.
-            for pragma in (f"busy_timeout={BUSY_TIMEOUT_MS}", "journal_mode=WAL", "synchronous=NORMAL", "foreign_keys=OFF", "cache_size=-131072"):
+            for pragma in (f"busy_timeout={BUSY_TIMEOUT_MS}", "journal_mode=WAL", "synchronous=NORMAL", "foreign_keys=OFF", "cache_size=-65536"):
                 self._cursor.execute(f"PRAGMA {pragma}")
                 self._cursor.fetchall()
             self._cursor.execute("BEGIN IMMEDIATE")

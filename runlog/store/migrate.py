@@ -11,7 +11,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
-__all__ = ["alembic_config", "upgrade", "downgrade", "head_revision", "include_object"]
+__all__ = ["alembic_config", "upgrade", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
 
 
 def include_object(obj, name, type_, reflected, compare_to) -> bool:
@@ -57,3 +57,31 @@ def upgrade(engine: Engine, revision: str = "head") -> None:
 def downgrade(engine: Engine, revision: str) -> None:
     """Move the schema down to ``revision`` (``base`` drops everything runlog made)."""
     _run(engine, "downgrade", revision)
+
+
+def create_or_upgrade(engine: Engine) -> None:
+    """Bring the catalogue to head: an empty database is created from the models and
+    stamped (Alembic's recipe for building a database from scratch, no scripts to run),
+    any other is upgraded through the migration history.
+
+    ``tests/test_migrations.py`` keeps the two paths equal: models match migrations.
+    """
+    from sqlalchemy import Column, MetaData, PrimaryKeyConstraint, String, Table, inspect
+
+    from runlog.store.schema import SCHEMA_REVISION, Base
+
+    with engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection:
+        with connection.begin():
+            if not inspect(connection).get_table_names():
+                Base.metadata.create_all(connection)
+                # The same version table Alembic itself would create.
+                version = Table(
+                    "alembic_version",
+                    MetaData(),
+                    Column("version_num", String(32), nullable=False),
+                    PrimaryKeyConstraint("version_num", name="alembic_version_pkc"),
+                )
+                version.create(connection)
+                connection.execute(version.insert().values(version_num=SCHEMA_REVISION))
+                return
+    upgrade(engine)

@@ -36,6 +36,7 @@ __all__ = [
     "SCHEMA_REVISION",
     "Base",
     "UTCDateTime",
+    "to_epoch_us",
     "Apparatus",
     "Run",
     "RunTag",
@@ -69,8 +70,18 @@ NAMING_CONVENTION = {
 BigId = BigInteger().with_variant(Integer(), "sqlite")
 
 
+_EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc)
+_MICROSECOND = dt.timedelta(microseconds=1)
+
+
+def to_epoch_us(value: dt.datetime) -> int:
+    """Integer microseconds since 1970-01-01 UTC (exact, no float rounding)."""
+    return (value - _EPOCH) // _MICROSECOND
+
+
 class UTCDateTime(TypeDecorator[dt.datetime]):
-    """A point in time, always UTC: ``timestamptz`` on PostgreSQL, ISO text on SQLite.
+    """A point in time, always UTC: ``timestamptz`` on PostgreSQL, integer microseconds
+    since the Unix epoch on SQLite (exact, compact, and ordered like the times).
 
     Naive datetimes are refused on the way in; values come back timezone-aware (UTC).
     """
@@ -78,19 +89,25 @@ class UTCDateTime(TypeDecorator[dt.datetime]):
     impl = DateTime(timezone=True)
     cache_ok = True
 
+    def load_dialect_impl(self, dialect):  # type: ignore[override]
+        if dialect.name == "sqlite":
+            return dialect.type_descriptor(BigInteger())
+        return dialect.type_descriptor(DateTime(timezone=True))
+
     def process_bind_param(self, value: dt.datetime | None, dialect):  # type: ignore[override]
         if value is None:
             return None
         if value.tzinfo is None:
             raise ValueError(f"naive datetime {value!r}: times must carry a time zone")
-        value = value.astimezone(dt.timezone.utc)
         if dialect.name == "sqlite":
-            return value.replace(tzinfo=None)
-        return value
+            return to_epoch_us(value)
+        return value.astimezone(dt.timezone.utc)
 
-    def process_result_value(self, value: dt.datetime | None, dialect):  # type: ignore[override]
+    def process_result_value(self, value, dialect):  # type: ignore[override]
         if value is None:
             return None
+        if dialect.name == "sqlite":
+            return _EPOCH + int(value) * _MICROSECOND
         if value.tzinfo is None:
             return value.replace(tzinfo=dt.timezone.utc)
         return value.astimezone(dt.timezone.utc)
