@@ -340,6 +340,35 @@ class Catalogue:
                 "shots": connection.execute(select(func.count()).select_from(s.Shot)).scalar_one(),
             }
 
+    def site_counts(self, run: str, name: str = "fill", *, apparatus: str | None = None) -> tuple[np.ndarray, np.ndarray, tuple[int, ...]]:
+        """Per-site ``(successes, trials, lattice shape)`` of a run: ``fill`` (loaded shots /
+        shots) or ``survival`` (survived / loaded). Divide for the map; 0 trials means never loaded.
+        """
+        with self.engine.connect() as connection:
+            found = self._find_run(connection, run, apparatus)
+            row = connection.execute(select(s.SiteCounts.successes, s.SiteCounts.trials).where(and_(s.SiteCounts.run_id == found.id, s.SiteCounts.name == name))).first()
+            if row is None:
+                raise NotFoundError("per-site counts", name, f"run '{run}' has none; known: fill, survival")
+            shape = connection.execute(select(s.Image.shape).where(and_(s.Image.run_id == found.id, s.Image.role == "loading"))).scalar()
+        successes = np.frombuffer(bytes(row[0]), dtype="<i8").copy()
+        trials = np.frombuffer(bytes(row[1]), dtype="<i8").copy()
+        dims = tuple(int(n) for n in shape.split(",")) if shape else (len(successes),)
+        return successes, trials, dims
+
+    def save_figures(self, run: str, kind: str, figures, *, apparatus: str | None = None) -> None:
+        """Store ``figures`` (``runlog.Figure``) for a run, replacing those of the same names."""
+        from runlog.store.bulk import open_writer
+        from runlog.store.figures import store_figures
+
+        with self.engine.connect() as connection:
+            run_id = self._find_run(connection, run, apparatus).id
+        writer = open_writer(self.engine)
+        try:
+            store_figures(writer, run_id, kind, list(figures))
+            writer.commit()
+        finally:
+            writer.close()
+
     # --- helpers -------------------------------------------------------------------
 
     def _find_run(self, connection, key: str, apparatus: str | None):

@@ -16,6 +16,15 @@ Example::
 
     [defaults]
     apparatus = "lattice-east"  # when the file has no apparatus column
+
+    [figures]
+    interval = "wilson"       # or "clopper-pearson", for fill fraction and survival
+
+    [[rules]]                 # fitted figures computed automatically (see docs/figures.md)
+    sequence = "ramsey*"
+    kind = "coherence"
+    x = "wait"
+    y = "bright_fraction"
 """
 
 from __future__ import annotations
@@ -39,6 +48,8 @@ class Mapping:
     survival: str | None = None
     shape: tuple[int, ...] | None = None
     apparatus: str | None = None
+    interval: str = "wilson"
+    rules: tuple[dict, ...] = ()
     source: str = "<defaults>"
 
 
@@ -53,7 +64,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -71,6 +82,13 @@ def load_config(path: str | Path | None) -> Mapping:
             raise ConfigError(str(path), "[occupancy] shape must be a list of positive integers")
         shape = tuple(shape)
     defaults = data.get("defaults", {})
+    figures = data.get("figures", {})
+    interval = figures.get("interval", "wilson")
+    if interval not in ("wilson", "clopper-pearson"):
+        raise ConfigError(str(path), f"[figures] interval must be 'wilson' or 'clopper-pearson', not {interval!r}")
+    rules = data.get("rules", [])
+    if not isinstance(rules, list) or not all(isinstance(rule, dict) for rule in rules):
+        raise ConfigError(str(path), "[[rules]] must be a list of tables")
     return Mapping(
         rename=columns,
         ignore=frozenset(ignore),
@@ -78,5 +96,7 @@ def load_config(path: str | Path | None) -> Mapping:
         survival=occupancy.get("survival"),
         shape=shape,
         apparatus=defaults.get("apparatus"),
+        interval=interval,
+        rules=tuple(rules),
         source=str(path),
     )

@@ -15,7 +15,7 @@ import hashlib
 import os
 import time
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -91,6 +91,8 @@ class _Run:
     image_sites: dict[str, int] = field(default_factory=dict)
     has_image: dict[str, bool] = field(default_factory=dict)
     measurement_counts: dict[str, int] = field(default_factory=dict)
+    # Per-site counts of this file's shots: name -> (successes, trials), for counting figures.
+    site_counts: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
     # Filled in the write transaction.
     run_id: int = 0
     per_shot: set[str] = field(default_factory=set)
@@ -595,10 +597,67 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
                 "occupancy",
                 pa.table({"shot_id": shot_ids[keep], "image_id": image[run_index][keep], "bits": _pack(lists)}),
             )
+        _count_sites(plan, batch, run_index)
         written += batch.length
         if progress is not None:
             progress(str(path), written, plan.rows)
     return written
+
+
+def _occupancy_matrix(lists: pa.ListArray, rows: np.ndarray, sites: int) -> np.ndarray:
+    """The (len(rows), sites) boolean occupancy of the given rows of a list column."""
+    lengths = pc.fill_null(pc.list_value_length(lists), 0).to_numpy(zero_copy_only=False)
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    values = lists.flatten().to_numpy(zero_copy_only=False).astype(bool, copy=False)
+    return values[starts[rows][:, None] + np.arange(sites)[None, :]]
+
+
+def _count_sites(plan: _Plan, batch: Batch, run_index: np.ndarray) -> None:
+    """Add this batch's per-site loading and survival counts to each run's tally."""
+    layout = plan.layout
+    if layout.loading is None:
+        return
+    for position, rows in _group(run_index):
+        run = plan.runs[position]
+        if not run.has_image.get(layout.loading):
+            continue
+        sites = run.image_sites[layout.loading]
+        loaded = _occupancy_matrix(batch.occupancy[layout.loading], rows, sites)
+        _add_counts(run, "fill", loaded.sum(axis=0), np.full(sites, len(rows), dtype=np.int64))
+        if layout.survival is not None and run.has_image.get(layout.survival) and run.image_sites[layout.survival] == sites:
+            kept = _occupancy_matrix(batch.occupancy[layout.survival], rows, sites)
+            _add_counts(run, "survival", (loaded & kept).sum(axis=0), loaded.sum(axis=0))
+
+
+def _add_counts(run: _Run, name: str, successes: np.ndarray, trials: np.ndarray) -> None:
+    if name in run.site_counts:
+        old_successes, old_trials = run.site_counts[name]
+        successes, trials = old_successes + successes, old_trials + trials
+    run.site_counts[name] = (successes.astype(np.int64), trials.astype(np.int64))
+
+
+def _store_counting_figures(writer: Writer, plan: _Plan, interval: str) -> None:
+    """Fill fraction, survival and loss of every run this file touched, from all its shots."""
+    from runlog.figures.counting import proportion_figure
+    from runlog.store.figures import read_site_counts, store_figures, store_site_counts
+
+    for run in plan.runs:
+        figures = []
+        for name, (successes, trials) in run.site_counts.items():
+            stored = read_site_counts(writer, run.run_id, name)
+            if stored is not None and len(stored[0]) == len(successes):
+                successes, trials = successes + stored[0], trials + stored[1]
+            store_site_counts(writer, run.run_id, name, successes, trials)
+            total, tries = int(successes.sum()), int(trials.sum())
+            if tries == 0:
+                continue  # no loaded site: survival is undefined, and no figure is made up
+            if name == "fill":
+                figures.append(replace(proportion_figure("fill_fraction", total, tries, interval), successes=total, trials=tries))
+            else:
+                figures.append(replace(proportion_figure("survival", total, tries, interval), successes=total, trials=tries))
+                figures.append(replace(proportion_figure("loss", tries - total, tries, interval), successes=tries - total, trials=tries))
+        if figures:
+            store_figures(writer, run.run_id, "counting", figures)
 
 
 def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_shot, ids) -> None:
@@ -731,6 +790,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             _write_runs(writer, plan, ids)
             batches = kept if kept is not None else _batches(path, parquet, layout)
             shots = _write_shots(writer, path, batches, plan, ids, progress)
+            _store_counting_figures(writer, plan, mapping.interval)
             if after_write is not None:
                 after_write(writer, [run.run_id for run in plan.runs])
             write_s = time.perf_counter() - tick

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import pyarrow as pa
 import pyarrow.parquet as pq
 from conftest import shot_table
@@ -97,3 +98,27 @@ def test_large_file_is_read_in_batches(catalogue, make_file, monkeypatch):
     assert sorted(catalogue.shots("r1")["shot"]) == list(range(20))
     original = table.filter(pa.compute.equal(table["run"], "r2"))
     assert np.array_equal(catalogue.occupancy("r2"), np.array(original["occ.load"].to_pylist(), dtype=bool))
+
+
+def test_counting_figures_are_computed_at_ingest_and_pooled_over_files(catalogue, make_file):
+    from statsmodels.stats.proportion import proportion_confint  # reference library, tests only
+
+    first = shot_table({"r1": 6}, seed=11)
+    second = shot_table({"r1": 5}, first_shot=6, seed=12)
+    catalogue.ingest([make_file("a.parquet", first), make_file("b.parquet", second)])
+    load = np.array(first["occ.load"].to_pylist() + second["occ.load"].to_pylist(), dtype=bool)
+    kept = np.array(first["occ.survive"].to_pylist() + second["occ.survive"].to_pylist(), dtype=bool)
+    figures = catalogue.run("r1").figures
+    # Exact counts over both files.
+    assert figures["fill_fraction"]["value"] == load.sum() / load.size
+    assert figures["survival"]["value"] == (load & kept).sum() / load.sum()
+    assert figures["loss"]["value"] == pytest.approx(1 - figures["survival"]["value"], abs=1e-15)
+    # Interval equal to statsmodels' Wilson interval for the same counts.
+    low, high = proportion_confint(int(load.sum()), load.size, alpha=0.05, method="wilson")
+    assert (figures["fill_fraction"]["ci_low"], figures["fill_fraction"]["ci_high"]) == pytest.approx((low, high), abs=1e-12)
+    assert figures["fill_fraction"]["method"] == "wilson"
+    successes, trials, shape = catalogue.site_counts("r1", "fill")
+    assert np.array_equal(successes, load.sum(axis=0)) and np.array_equal(trials, np.full(16, 11))
+    assert shape == (16,)
+    successes, trials, _ = catalogue.site_counts("r1", "survival")
+    assert np.array_equal(successes, (load & kept).sum(axis=0)) and np.array_equal(trials, load.sum(axis=0))

@@ -39,19 +39,22 @@ def test_init_is_idempotent(db_url):
 
 
 def test_round_trip_keeps_rows(db_url, make_file):
+    engine = make_engine(db_url)
+    migrate.upgrade(engine)  # through the scripts, not the from-scratch path
+    engine.dispose()
     with runlog.open(db_url) as catalogue:
         catalogue.ingest(make_file(runs={"r1": 4}))
+        before = catalogue.run("r1").as_dict()
         engine = catalogue.engine
-        # Down one step and up again: with a single revision that is base and back, which
-        # drops the tables; so check instead that a downgrade to the current revision is a
-        # no-op that keeps the rows, and that base -> head recreates an empty, usable schema.
-        migrate.downgrade(engine, SCHEMA_REVISION)
+        migrate.downgrade(engine, "0001")
+        assert current_revision(engine) == "0001"
         with engine.connect() as connection:
             assert connection.execute(select(func.count()).select_from(Run)).scalar_one() == 1
-        migrate.downgrade(engine, "base")
-        assert current_revision(engine) is None
         migrate.upgrade(engine)
         assert current_revision(engine) == SCHEMA_REVISION
+        after = catalogue.run("r1").as_dict()
+        # Rows survive the round trip; figures computed from the counts return with a re-derive.
+        assert {k: v for k, v in after.items() if k != "figures"} == {k: v for k, v in before.items() if k != "figures"}
         assert catalogue.ingest(make_file(runs={"r2": 3}, seed=2))[0].status == "ingested"
 
 
@@ -63,7 +66,7 @@ def test_opening_a_catalogue_at_another_revision_is_refused(db_url):
     engine.dispose()
     with pytest.raises(SchemaVersionError) as caught:
         runlog.open(db_url)
-    assert str(caught.value).endswith("is at schema revision 0000, this runlog needs 0001: run 'runlog init' to upgrade")
+    assert str(caught.value).endswith(f"is at schema revision 0000, this runlog needs {SCHEMA_REVISION}: run 'runlog init' to upgrade")
 
 
 def test_a_catalogue_created_from_the_models_equals_the_migrated_one(db_url):

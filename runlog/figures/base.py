@@ -31,6 +31,9 @@ class Figure:
     ci_high: float | None = None
     method: str = ""
     method_version: str = "1"
+    #: For counting figures: the counts behind ``value``, kept so days can pool them.
+    successes: int | None = None
+    trials: int | None = None
 
     def __post_init__(self) -> None:
         if not self.name:

@@ -51,12 +51,13 @@ __all__ = [
     "Image",
     "Occupancy",
     "FigureRow",
+    "SiteCounts",
     "IngestLogEntry",
     "Annotation",
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0001"
+SCHEMA_REVISION = "0002"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -294,6 +295,23 @@ class FigureRow(Base):
     method: Mapped[str] = mapped_column(String(100))
     method_version: Mapped[str] = mapped_column(String(20))
     computed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    # Counting figures keep their counts, so days and filters can pool them exactly.
+    successes: Mapped[int | None] = mapped_column(BigInteger)
+    trials: Mapped[int | None] = mapped_column(BigInteger)
+
+
+class SiteCounts(Base):
+    """Per-site counts of a run (e.g. ``fill``: loaded shots / shots per site), for maps.
+
+    ``successes`` and ``trials`` are little-endian int64 arrays with one entry per site.
+    """
+
+    __tablename__ = "site_counts"
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), primary_key=True)
+    sites: Mapped[int] = mapped_column(Integer)
+    successes: Mapped[bytes] = mapped_column(LargeBinary)
+    trials: Mapped[bytes] = mapped_column(LargeBinary)
 
 
 class IngestLogEntry(Base):
