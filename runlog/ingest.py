@@ -28,6 +28,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
 from runlog.contract import Batch, Layout, normalise_batch, read_layout
+from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
 from runlog.errors import ContractError
 from runlog.store.bulk import Writer, open_writer
 from runlog.store.schema import IngestLogEntry, measurement_column
@@ -95,6 +96,9 @@ class _Run:
     site_counts: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
     # Filled in the write transaction.
     run_id: int = 0
+    apparatus_id: int = 0
+    day: dt.date | None = None
+    groups: set = field(default_factory=set)  # rollup groups touched before this file
     per_shot: set[str] = field(default_factory=set)
 
     @property
@@ -358,18 +362,23 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
     for column in layout.by_role("measurement"):
         ids.measurement(column.name, column.unit, column.source)
     shot_source = layout.source("shot")
+    zone = lab_timezone(writer)
     new_parameters: list[dict[str, object]] = []
     new_measurements: list[dict[str, object]] = []
     for run in plan.runs:
         apparatus_id = ids.apparatus_id(run.apparatus)
         found = writer.rows(
-            "SELECT id, sequence, shot_count FROM runs WHERE apparatus_id = :a AND key = :k",
+            "SELECT id, sequence, shot_count, started, day FROM runs WHERE apparatus_id = :a AND key = :k",
             {"a": apparatus_id, "k": run.key},
         )
         started, finished = _utc(run.started_us), _utc(run.finished_us)
+        run.apparatus_id = apparatus_id
         if found:
-            run_id, sequence, stored_count = found[0]
+            run_id, sequence, stored_count, stored_started, stored_day = found[0]
             run.run_id = int(run_id)
+            run.groups.add((apparatus_id, as_date(stored_day), sequence) if stored_day is not None else None)
+            started = min(started, as_datetime(stored_started))
+            run.day = lab_day(started, zone)
             if sequence != run.sequence:
                 raise ContractError(file, f"run '{run.key}' is stored with sequence '{sequence}', this file says '{run.sequence}'", column=layout.source("sequence"), row=run.first_row)
             stored = np.array([r[0] for r in writer.rows("SELECT shot FROM shots WHERE run_id = :r", {"r": run.run_id})], dtype=np.int64)
@@ -378,10 +387,10 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 row = int(run.rows[0][clash].min())
                 raise ContractError(file, f"shot index {int(run.shots[0][run.rows[0] == row][0])} of run '{run.key}' is already in the catalogue", column=shot_source, row=row)
             writer.execute(
-                "UPDATE runs SET started = CASE WHEN started < :s THEN started ELSE :s END, "
+                "UPDATE runs SET started = :s, day = :d, "
                 "finished = CASE WHEN finished > :f THEN finished ELSE :f END, "
                 "shot_count = shot_count + :n, operator = COALESCE(operator, :o), notes = COALESCE(notes, :t) WHERE id = :r",
-                {"s": started, "f": finished, "n": run.shot_count, "o": run.operator, "t": run.notes, "r": run.run_id},
+                {"s": started, "d": run.day, "f": finished, "n": run.shot_count, "o": run.operator, "t": run.notes, "r": run.run_id},
             )
             _merge_parameters(writer, run, ids, int(stored_count))
             for name, sites in run.image_sites.items():
@@ -389,10 +398,11 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 if stored_sites is not None and int(stored_sites) != sites:
                     raise ContractError(file, f"occupancy list has {sites} sites, stored shots of run '{run.key}' have {int(stored_sites)}", column=f"occ.{name}", row=run.first_row)
         else:
+            run.day = lab_day(started, zone)
             writer.execute(
-                "INSERT INTO runs (apparatus_id, key, sequence, started, finished, shot_count, operator, notes) "
-                "VALUES (:a, :k, :q, :s, :f, :n, :o, :t)",
-                {"a": apparatus_id, "k": run.key, "q": run.sequence, "s": started, "f": finished, "n": run.shot_count, "o": run.operator, "t": run.notes},
+                "INSERT INTO runs (apparatus_id, key, sequence, started, finished, day, shot_count, operator, notes) "
+                "VALUES (:a, :k, :q, :s, :f, :d, :n, :o, :t)",
+                {"a": apparatus_id, "k": run.key, "q": run.sequence, "s": started, "f": finished, "d": run.day, "n": run.shot_count, "o": run.operator, "t": run.notes},
             )
             run.run_id = int(_one(writer, "SELECT id FROM runs WHERE apparatus_id = :a AND key = :k", {"a": apparatus_id, "k": run.key}))
             for name, stats in run.parameters.items():
@@ -604,6 +614,13 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
     return written
 
 
+def _rollup_groups(plan: _Plan) -> set[tuple[int, dt.date, str]]:
+    groups = {(run.apparatus_id, run.day, run.sequence) for run in plan.runs}
+    for run in plan.runs:
+        groups |= {group for group in run.groups if group is not None}
+    return groups
+
+
 def _occupancy_matrix(lists: pa.ListArray, rows: np.ndarray, sites: int) -> np.ndarray:
     """The (len(rows), sites) boolean occupancy of the given rows of a list column."""
     lengths = pc.fill_null(pc.list_value_length(lists), 0).to_numpy(zero_copy_only=False)
@@ -791,6 +808,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             batches = kept if kept is not None else _batches(path, parquet, layout)
             shots = _write_shots(writer, path, batches, plan, ids, progress)
             _store_counting_figures(writer, plan, mapping.interval)
+            refresh_rollups(writer, _rollup_groups(plan))
             if after_write is not None:
                 after_write(writer, [run.run_id for run in plan.runs])
             write_s = time.perf_counter() - tick

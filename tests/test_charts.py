@@ -131,3 +131,20 @@ def test_chart_errors():
     with pytest.raises(FitError) as error:
         ewma_chart([1.0, 2.0, 3.0], baseline=[True, False])
     assert str(error.value) == "ewma chart fit failed: baseline mask has 2 entries for 3 points"
+
+
+def test_p_chart_laney_factor_widens_limits_only_for_overdispersed_baselines():
+    # Laney (2002), Quality Engineering 14:531: sigma_z from the mean moving range of the
+    # baseline z-scores / 1.128 [memory: d2 = 1.128 as in the handbook's individuals chart].
+    trials = np.full(10, 10_000.0)
+    binomial = np.array([5010, 4990, 5005, 4998, 5012, 4985, 5003, 4996, 5008, 4991], dtype=float)
+    plain = p_chart(binomial, trials, overdispersion=True)
+    assert plain.overdispersion == 1.0
+    scattered = np.array([5200, 4800, 5150, 4850, 5250, 4750, 5100, 4900, 5200, 4800], dtype=float)
+    wide = p_chart(scattered, trials, overdispersion=True)
+    centre = scattered.sum() / trials.sum()
+    z = (scattered / trials - centre) / np.sqrt(centre * (1 - centre) / trials)
+    expected = np.mean(np.abs(np.diff(z))) / 1.128
+    assert wide.overdispersion == pytest.approx(expected)
+    assert wide.upper[0] - wide.center == pytest.approx(3 * expected * np.sqrt(centre * (1 - centre) / 10_000))
+    assert not wide.out_of_control.any() and p_chart(scattered, trials).out_of_control.any()

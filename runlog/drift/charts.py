@@ -91,6 +91,7 @@ class ProportionChart(ControlChart):
     """p chart: the statistic is successes / trials per point, ``center`` is the pooled p-bar."""
 
     trials: NDArray[np.float64]
+    overdispersion: float = 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -257,7 +258,7 @@ def individuals_chart(values: ArrayLike, *, baseline: Baseline = None) -> Indivi
     )
 
 
-def p_chart(successes: ArrayLike, trials: ArrayLike, *, baseline: Baseline = None) -> ProportionChart:
+def p_chart(successes: ArrayLike, trials: ArrayLike, *, baseline: Baseline = None, overdispersion: bool = False) -> ProportionChart:
     """p chart for a fraction with a different number of trials per point (handbook 6.3.3.2).
 
     p-bar is pooled over the baseline points, sum(successes) / sum(trials); point i has
@@ -266,7 +267,9 @@ def p_chart(successes: ArrayLike, trials: ArrayLike, *, baseline: Baseline = Non
     The limits assume binomial scatter only. A fill fraction pooled over thousands of
     sites per run also varies from run to run for reasons beyond counting (loading
     conditions drift within a day), so with large n_i many points may fall outside
-    limits that are honest for counting noise alone.
+    limits that are honest for counting noise alone. ``overdispersion=True`` widens them
+    by Laney's factor (Laney 2002, Quality Engineering 14:531): the standard deviation
+    of the baseline z-scores, estimated from their mean moving range / 1.128, when above 1.
     """
     s = _series(successes, "p chart")
     n = _series(trials, "p chart")
@@ -279,7 +282,13 @@ def p_chart(successes: ArrayLike, trials: ArrayLike, *, baseline: Baseline = Non
     p = s / n
     # p-bar pools counts rather than averaging fractions, so large runs weigh more (handbook 6.3.3.2).
     center = float(_select(s, baseline, "p chart", 1).sum() / _select(n, baseline, "p chart", 1).sum())
-    half_width = 3.0 * np.sqrt(center * (1.0 - center) / n)
+    sigma = np.sqrt(center * (1.0 - center) / n)
+    factor = 1.0
+    if overdispersion and 0.0 < center < 1.0:
+        z = _select((p - center) / sigma, baseline, "p chart", 1)
+        if z.size >= 3:
+            factor = max(1.0, float(np.mean(np.abs(np.diff(z))) / 1.128))
+    half_width = 3.0 * sigma * factor
     lower = np.clip(center - half_width, 0.0, 1.0)
     upper = np.clip(center + half_width, 0.0, 1.0)
     return ProportionChart(
@@ -289,4 +298,5 @@ def p_chart(successes: ArrayLike, trials: ArrayLike, *, baseline: Baseline = Non
         upper=upper,
         out_of_control=(p > upper) | (p < lower),
         trials=n,
+        overdispersion=factor,
     )

@@ -52,6 +52,8 @@ def _sqlite_value(value: Any) -> Any:
         if value.tzinfo is None:
             raise ValueError("naive datetime")
         return to_epoch_us(value)
+    if isinstance(value, dt.date):
+        return value.isoformat()  # SQLAlchemy's Date on SQLite: ISO text
     if isinstance(value, (bool, np.bool_)):
         return int(value)
     if isinstance(value, np.integer):

@@ -9,6 +9,8 @@ from importlib import resources
 
 from sqlalchemy.engine import Engine
 
+from runlog.errors import StoreError
+
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
 __all__ = ["alembic_config", "upgrade", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
@@ -44,9 +46,24 @@ def _run(engine: Engine, command_name: str, revision: str) -> None:
 
     config = alembic_config(engine)
     with engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection:
-        config.attributes["connection"] = connection
-        getattr(command, command_name)(config, revision)
-        connection.commit()
+        sqlite = engine.dialect.name == "sqlite"
+        if sqlite:
+            # Batch migrations rebuild a table by copy, drop and rename; with foreign keys
+            # on, dropping the old table would cascade-delete every child row. The pragma
+            # only takes effect outside a transaction, hence the raw driver connection.
+            connection.connection.driver_connection.execute("PRAGMA foreign_keys=OFF")
+        try:
+            config.attributes["connection"] = connection
+            getattr(command, command_name)(config, revision)
+            if sqlite:
+                broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                if broken:
+                    connection.rollback()
+                    raise StoreError(f"migration to {revision} would break foreign keys: {broken[:3]}")
+            connection.commit()
+        finally:
+            if sqlite:
+                connection.connection.driver_connection.execute("PRAGMA foreign_keys=ON")
 
 
 def upgrade(engine: Engine, revision: str = "head") -> None:

@@ -18,6 +18,7 @@ import datetime as dt
 from sqlalchemy import (
     BigInteger,
     Boolean,
+    Date,
     DateTime,
     Float,
     ForeignKey,
@@ -52,12 +53,15 @@ __all__ = [
     "Occupancy",
     "FigureRow",
     "SiteCounts",
+    "Setting",
+    "DailyRollup",
+    "Alarm",
     "IngestLogEntry",
     "Annotation",
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0002"
+SCHEMA_REVISION = "0003"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -130,7 +134,7 @@ class Run(Base):
     """A set of shots of one sequence, most parameters fixed, one or two scanned."""
 
     __tablename__ = "runs"
-    __table_args__ = (UniqueConstraint("apparatus_id", "key"), Index(None, "started"))
+    __table_args__ = (UniqueConstraint("apparatus_id", "key"), Index(None, "started"), Index(None, "apparatus_id", "day"))
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
     key: Mapped[str] = mapped_column(String(200))
@@ -138,6 +142,8 @@ class Run(Base):
     started: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     finished: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     shot_count: Mapped[int] = mapped_column(Integer, default=0)
+    # The lab day the run started on, in the catalogue's lab time zone (settings).
+    day: Mapped[dt.date | None] = mapped_column(Date)
     operator: Mapped[str | None] = mapped_column(String(200))
     notes: Mapped[str | None] = mapped_column(Text)
 
@@ -312,6 +318,61 @@ class SiteCounts(Base):
     sites: Mapped[int] = mapped_column(Integer)
     successes: Mapped[bytes] = mapped_column(LargeBinary)
     trials: Mapped[bytes] = mapped_column(LargeBinary)
+
+
+class Setting(Base):
+    """Catalogue-wide settings, e.g. ``lab_timezone`` (IANA name) that defines lab days."""
+
+    __tablename__ = "settings"
+    key: Mapped[str] = mapped_column(String(100), primary_key=True)
+    value: Mapped[str] = mapped_column(Text)
+
+
+class DailyRollup(Base):
+    """One figure pooled over the runs of one apparatus, lab day and sequence.
+
+    Counting figures pool their counts (``successes``/``trials``); fitted figures keep the
+    sums an inverse-variance weighted mean and the spread between runs are made of.
+    Maintained at ingest and derive time for the groups they touch.
+    """
+
+    __tablename__ = "daily_rollups"
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"), primary_key=True)
+    day: Mapped[dt.date] = mapped_column(Date, primary_key=True)
+    sequence: Mapped[str] = mapped_column(String(200), primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), primary_key=True)
+    unit: Mapped[str] = mapped_column(String(60), default="")
+    runs: Mapped[int] = mapped_column(Integer)
+    shots: Mapped[int] = mapped_column(BigInteger)
+    successes: Mapped[int | None] = mapped_column(BigInteger)
+    trials: Mapped[int | None] = mapped_column(BigInteger)
+    value_count: Mapped[int] = mapped_column(Integer)
+    value_sum: Mapped[float] = mapped_column(Float)
+    value_square_sum: Mapped[float] = mapped_column(Float)
+    weight_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_value_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_square_sum: Mapped[float | None] = mapped_column(Float)
+
+
+class Alarm(Base):
+    """A drift finding to look at: a point outside control limits or a change in level."""
+
+    __tablename__ = "alarms"
+    __table_args__ = (UniqueConstraint("apparatus_id", "quantity", "sequence", "day", "reason"), Index(None, "status"))
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
+    quantity: Mapped[str] = mapped_column(String(100))
+    sequence: Mapped[str] = mapped_column(String(200), default="")  # '' = all sequences
+    day: Mapped[dt.date] = mapped_column(Date)
+    reason: Mapped[str] = mapped_column(String(20))  # 'limit' | 'change'
+    method: Mapped[str] = mapped_column(String(100))
+    value: Mapped[float | None] = mapped_column(Float)
+    size: Mapped[float | None] = mapped_column(Float)
+    detail: Mapped[str] = mapped_column(Text, default="")
+    status: Mapped[str] = mapped_column(String(20), default="open")  # 'open' | 'acknowledged'
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    acknowledged_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime())
+    annotation_id: Mapped[int | None] = mapped_column(ForeignKey("annotations.id"))
 
 
 class IngestLogEntry(Base):

@@ -1,0 +1,235 @@
+"""Drift of one quantity of one apparatus: daily points, control limits, changes, alarms.
+
+Owns the drift query. Daily points come from the daily rollups (never from shots):
+
+* counting figures (fill fraction, survival, loss): the day's pooled counts, with a
+  Wilson interval; control limits from a p-chart (NIST/SEMATECH e-Handbook 6.3.3.2) whose
+  binomial sigma is widened by Laney's overdispersion factor (Laney 2002, Quality
+  Engineering 14:531) when days scatter more than counting noise allows;
+* fitted figures (coherence time, contrast, ...): the inverse-variance weighted mean of
+  the day's runs, its standard error scaled by the Birge ratio when the runs disagree
+  by more than their errors, and the spread between runs; limits from an EWMA chart
+  (e-Handbook 6.3.2.4, lambda 0.3, 3 sigma) on the daily means.
+
+Both use a baseline: the first ``baseline_days`` days with data (at most half of them)
+unless a date range is named. Changes in level come from PELT (Killick et al. 2012) on
+the daily values weighted by their inverse variances, with the documented default
+penalty of :mod:`runlog.drift.changepoints`.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from sqlalchemy import and_, func, select
+from sqlalchemy.engine import Connection
+
+from runlog.drift.changepoints import default_penalty, pelt
+from runlog.drift.charts import ewma_chart, p_chart
+from runlog.errors import NotFoundError
+from runlog.figures.intervals import wilson
+from runlog.store import schema as s
+
+__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "drift_of"]
+
+Z95 = 1.959963984540054
+
+
+@dataclass(frozen=True)
+class DriftPoint:
+    date: dt.date
+    value: float
+    ci_low: float
+    ci_high: float
+    runs: int
+    shots: int
+    stderr: float
+    spread: float | None = None  # standard deviation between the day's runs (fitted figures)
+    successes: int | None = None
+    trials: int | None = None
+
+
+@dataclass(frozen=True)
+class DriftChange:
+    date: dt.date
+    index: int
+    before: float
+    after: float
+    method: str
+
+
+@dataclass
+class Drift:
+    quantity: str
+    apparatus: str
+    unit: str
+    sequence: str | None
+    points: list[DriftPoint]
+    limits: dict[str, object]
+    changes: list[DriftChange]
+    counting: bool
+    out_of_limits: list[int] = field(default_factory=list)
+    alarms: list[dict[str, object]] = field(default_factory=list)
+    annotations: list[dict[str, object]] = field(default_factory=list)
+
+    def as_dict(self) -> dict[str, object]:
+        def point(p: DriftPoint) -> dict[str, object]:
+            out = {"date": p.date.isoformat(), "value": p.value, "ci_low": p.ci_low, "ci_high": p.ci_high, "runs": p.runs, "shots": p.shots}
+            if p.spread is not None:
+                out["spread"] = p.spread
+            return out
+
+        return {
+            "quantity": self.quantity,
+            "apparatus": self.apparatus,
+            "unit": self.unit,
+            "sequence": self.sequence,
+            "points": [point(p) for p in self.points],
+            "limits": self.limits,
+            "changes": [{"date": c.date.isoformat(), "before": c.before, "after": c.after, "method": c.method} for c in self.changes],
+            "alarms": self.alarms,
+            "annotations": self.annotations,
+        }
+
+
+def _apparatus_id(connection: Connection, quantity: str, apparatus: str | None) -> tuple[int, str]:
+    names = connection.execute(
+        select(s.Apparatus.id, s.Apparatus.name).where(s.Apparatus.id.in_(select(s.DailyRollup.apparatus_id).where(s.DailyRollup.name == quantity).distinct())).order_by(s.Apparatus.name)
+    ).all()
+    if apparatus is None:
+        if len(names) == 1:
+            return int(names[0][0]), names[0][1]
+        if not names:
+            known = [n for (n,) in connection.execute(select(s.DailyRollup.name).distinct().order_by(s.DailyRollup.name))]
+            raise NotFoundError("quantity", quantity, f"known: {', '.join(known)}" if known else "the catalogue has no figures yet")
+        raise NotFoundError("single apparatus for", quantity, f"give --apparatus; it is measured on {', '.join(n for _, n in names)}")
+    for apparatus_id, name in names:
+        if name == apparatus:
+            return int(apparatus_id), name
+    if connection.execute(select(s.Apparatus.id).where(s.Apparatus.name == apparatus)).first() is None:
+        raise NotFoundError("apparatus", apparatus)
+    raise NotFoundError("quantity", quantity, f"apparatus '{apparatus}' has no such figure")
+
+
+def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """One point per lab day that has data, pooled over runs (and sequences unless given)."""
+    r = s.DailyRollup
+    query = (
+        select(
+            r.day,
+            func.sum(r.runs),
+            func.sum(r.shots),
+            func.sum(r.successes),
+            func.sum(r.trials),
+            func.sum(r.value_count),
+            func.sum(r.value_sum),
+            func.sum(r.value_square_sum),
+            func.sum(r.weight_sum),
+            func.sum(r.weighted_value_sum),
+            func.sum(r.weighted_square_sum),
+            func.max(r.unit),
+        )
+        .where(and_(r.apparatus_id == apparatus_id, r.name == quantity))
+        .group_by(r.day)
+        .order_by(r.day)
+    )
+    if sequence is not None:
+        query = query.where(r.sequence == sequence)
+    if since is not None:
+        query = query.where(r.day >= since)
+    if until is not None:
+        query = query.where(r.day <= until)
+    points: list[DriftPoint] = []
+    unit, counting = "", False
+    for day, runs, shots, successes, trials, count, total, squares, weights, weighted, weighted_squares, day_unit in connection.execute(query):
+        unit = day_unit or unit
+        day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
+        if trials:
+            counting = True
+            successes, trials = int(successes), int(trials)
+            p = successes / trials
+            low, high = wilson(successes, trials)
+            points.append(DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials))
+            continue
+        spread = None
+        if count and count > 1:
+            spread = math.sqrt(max(0.0, (squares - total * total / count) / (count - 1)))
+        if weights:
+            mean = weighted / weights
+            stderr = 1.0 / math.sqrt(weights)
+            if count and count > 1:
+                # Birge ratio: runs that disagree beyond their errors widen the day's error.
+                chi2 = max(0.0, weighted_squares - weighted * weighted / weights)
+                stderr *= max(1.0, math.sqrt(chi2 / (count - 1)))
+        elif count:
+            mean = total / count
+            stderr = (spread / math.sqrt(count)) if spread is not None else math.nan
+        else:
+            continue
+        points.append(DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread))
+    return points, unit, counting
+
+
+def _baseline(points: list[DriftPoint], baseline_days: int, baseline: tuple[dt.date, dt.date] | None) -> np.ndarray:
+    dates = np.array([p.date for p in points])
+    if baseline is not None:
+        mask = (dates >= baseline[0]) & (dates <= baseline[1])
+    else:
+        count = max(2, min(baseline_days, len(points) // 2))
+        mask = np.zeros(len(points), dtype=bool)
+        mask[:count] = True
+    return mask
+
+
+def _p_chart_limits(points: list[DriftPoint], mask: np.ndarray) -> tuple[dict[str, object], np.ndarray]:
+    chart = p_chart([p.successes for p in points], [p.trials for p in points], baseline=mask, overdispersion=True)
+    limits = {
+        "method": "p-chart (NIST/SEMATECH 6.3.3.2) with Laney overdispersion factor",
+        "center": chart.center,
+        "overdispersion": chart.overdispersion,
+        "lower": chart.lower.tolist(),
+        "upper": chart.upper.tolist(),
+    }
+    return limits, np.asarray(chart.out_of_control, dtype=bool)
+
+
+def _ewma_limits(points: list[DriftPoint], mask: np.ndarray) -> tuple[dict[str, object], np.ndarray]:
+    values = np.array([p.value for p in points])
+    base = values[mask]
+    if len(base) < 2 or not np.isfinite(base).all() or np.std(base, ddof=1) == 0:
+        return {"method": "ewma (NIST/SEMATECH 6.3.2.4)", "note": "baseline too short or constant for limits"}, np.zeros(len(values), dtype=bool)
+    chart = ewma_chart(values, lam=0.3, k=3.0, baseline=mask)
+    limits = {
+        "method": "ewma (NIST/SEMATECH 6.3.2.4), lambda 0.3, 3 sigma",
+        "center": float(chart.center),
+        "lower": np.broadcast_to(chart.lower, values.shape).tolist(),
+        "upper": np.broadcast_to(chart.upper, values.shape).tolist(),
+        "ewma": np.asarray(chart.statistic).tolist(),
+    }
+    return limits, np.asarray(chart.out_of_control, dtype=bool)
+
+
+def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None, baseline_days: int = 7, baseline: tuple[dt.date, dt.date] | None = None) -> Drift:
+    """The drift of ``quantity`` on one apparatus, from the daily rollups."""
+    apparatus_id, apparatus_name = _apparatus_id(connection, quantity, apparatus)
+    points, unit, counting = daily_points(connection, quantity, apparatus_id, sequence=sequence, since=since, until=until)
+    result = Drift(quantity, apparatus_name, unit, sequence, points, {}, [], counting)
+    if len(points) < 3:
+        result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
+        return result
+    mask = _baseline(points, baseline_days, baseline)
+    limits, outside = _p_chart_limits(points, mask) if counting else _ewma_limits(points, mask)
+    limits["baseline"] = [points[int(np.flatnonzero(mask)[0])].date.isoformat(), points[int(np.flatnonzero(mask)[-1])].date.isoformat()] if mask.any() else None
+    result.limits = limits
+    result.out_of_limits = [int(i) for i in np.flatnonzero(outside)]
+    values = np.array([p.value for p in points])
+    stderr = np.array([p.stderr for p in points])
+    weights = 1.0 / stderr**2 if np.all(np.isfinite(stderr)) and np.all(stderr > 0) else None
+    penalty = default_penalty(values, weights)
+    method = "pelt (Killick et al. 2012), penalty 2.5*2*scale^2*ln(n)"
+    for change in pelt(values, weights=weights, penalty=penalty, min_size=2):
+        result.changes.append(DriftChange(points[change.index].date, change.index, float(change.before), float(change.after), method))
+    return result
