@@ -104,7 +104,10 @@ class Catalogue:
         """Create the schema or upgrade it to this runlog's revision; idempotent."""
         from runlog.store.migrate import create_or_upgrade
 
+        before = current_revision(self.engine)
         create_or_upgrade(self.engine)
+        if before is not None and before != s.SCHEMA_REVISION:
+            self.rebuild_rollups()  # new rollup definitions apply to the runs already stored
         return s.SCHEMA_REVISION
 
     def close(self) -> None:
@@ -360,14 +363,141 @@ class Catalogue:
         from runlog.store.bulk import open_writer
         from runlog.store.figures import store_figures
 
+        from runlog.store.rollups import as_date, refresh_rollups
+
         with self.engine.connect() as connection:
-            run_id = self._find_run(connection, run, apparatus).id
+            found = self._find_run(connection, run, apparatus)
         writer = open_writer(self.engine)
         try:
-            store_figures(writer, run_id, kind, list(figures))
+            store_figures(writer, found.id, kind, list(figures))
+            if found.day is not None:
+                refresh_rollups(writer, [(found.apparatus_id, as_date(found.day), found.sequence)])
             writer.commit()
         finally:
             writer.close()
+
+    def derive(self, run: str, kind: str, **options) -> "runlog.derive.DeriveResult":
+        """Compute and store the figures of ``kind`` for one run (see :func:`runlog.derive.derive`).
+
+        Raises ``FitError`` when they cannot be computed; nothing is stored then.
+        """
+        from runlog.derive import derive
+
+        return derive(self, run, kind, **options)
+
+    def apply_rules(self, rules: str | Path | Mapping | Iterable[dict], runs: Iterable[str] | None = None) -> list:
+        """Apply the ``[[rules]]`` of a runlog.toml (a path, a ``Mapping`` or the rule tables)
+        to the matching runs, all of them or those keyed in ``runs``.
+
+        One outcome per (run, rule): a ``DeriveResult``, or the ``FitError`` of a run the
+        rule could not be applied to (nothing stored for it).
+        """
+        from runlog.derive import apply_rules
+
+        if isinstance(rules, (str, Path)):
+            rules = load_config(rules).rules
+        elif isinstance(rules, Mapping):
+            rules = rules.rules
+        return apply_rules(self, rules, runs)
+
+    # --- drift -----------------------------------------------------------------------
+
+    @property
+    def lab_timezone(self) -> str:
+        """The IANA time zone that defines lab days (default UTC)."""
+        with self.engine.connect() as connection:
+            found = connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar()
+        return found or "UTC"
+
+    def set_lab_timezone(self, name: str) -> int:
+        """Set the lab's time zone; recomputes every run's lab day and every rollup."""
+        from runlog.store.bulk import open_writer
+        from runlog.store.rollups import check_timezone, rebuild_rollups
+
+        check_timezone(name)
+        writer = open_writer(self.engine)
+        try:
+            writer.execute("DELETE FROM settings WHERE key = 'lab_timezone'")
+            writer.execute("INSERT INTO settings (key, value) VALUES ('lab_timezone', :v)", {"v": name})
+            groups = rebuild_rollups(writer)
+            writer.commit()
+        finally:
+            writer.close()
+        return groups
+
+    def rebuild_rollups(self) -> int:
+        """Recompute all lab days and daily rollups (after an upgrade); returns the groups."""
+        from runlog.store.bulk import open_writer
+        from runlog.store.rollups import rebuild_rollups
+
+        writer = open_writer(self.engine)
+        try:
+            groups = rebuild_rollups(writer)
+            writer.commit()
+        finally:
+            writer.close()
+        return groups
+
+    def drift(self, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, baseline_days: int = 7, baseline: tuple[dt.date | str, dt.date | str] | None = None, record_alarms: bool = True):
+        """Daily points, control limits, changes and alarms of one quantity (from rollups)."""
+        from runlog.drift import alarms as alarm_store
+        from runlog.drift.series import drift_of
+
+        since, until = _as_day(since), _as_day(until)
+        if baseline is not None:
+            baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
+        with self.engine.connect() as connection:
+            result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, since=since, until=until, baseline_days=baseline_days, baseline=baseline)
+        if record_alarms and result.points:
+            with self.engine.begin() as connection:
+                result.alarms = alarm_store.record(connection, result)
+        if result.points:
+            notes = self.annotations(apparatus=result.apparatus, since=dt.datetime.combine(result.points[0].date, dt.time(), dt.timezone.utc) - dt.timedelta(days=1))
+            last = dt.datetime.combine(result.points[-1].date, dt.time(), dt.timezone.utc) + dt.timedelta(days=2)
+            result.annotations = [
+                {"at": row.at.isoformat(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
+                for row in notes.itertuples(index=False)
+                if row.at <= last
+            ]
+        return result
+
+    def check_drift(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
+        """Run the drift of every quantity of every apparatus and record alarms; returns open ones."""
+        names = []
+        with self.engine.connect() as connection:
+            query = select(s.Apparatus.name, s.DailyRollup.name).join(s.Apparatus, s.Apparatus.id == s.DailyRollup.apparatus_id).distinct()
+            if apparatus is not None:
+                query = query.where(s.Apparatus.name == apparatus)
+            names = connection.execute(query).all()
+        for apparatus_name, quantity in sorted(names):
+            self.drift(quantity, apparatus=apparatus_name)
+        return self.alarms(apparatus=apparatus)
+
+    def alarms(self, *, status: str | None = "open", apparatus: str | None = None) -> list[dict[str, object]]:
+        """Recorded alarms (open ones by default), oldest first."""
+        from runlog.drift.alarms import list_alarms
+
+        with self.engine.connect() as connection:
+            return list_alarms(connection, status=status, apparatus=apparatus)
+
+    def acknowledge(self, alarm_id: int, note: str = "", *, author: str | None = None) -> int:
+        """Acknowledge an alarm; the note becomes an annotation on its day. Returns the annotation id."""
+        from zoneinfo import ZoneInfo
+
+        from runlog.drift.alarms import acknowledge
+
+        zone = ZoneInfo(self.lab_timezone)
+        with self.engine.begin() as connection:
+            return acknowledge(connection, alarm_id, note, zone, author)
+
+    def what_else_changed(self, quantity: str, day: dt.date | str, *, apparatus: str | None = None, window: int = 3, top: int = 10) -> list[dict[str, object]]:
+        """Parameters, measurements and figures ranked by how much they moved across ``day``."""
+        from runlog.drift.causes import what_else_changed
+        from runlog.drift.series import _apparatus_id
+
+        with self.engine.connect() as connection:
+            apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
+            return what_else_changed(connection, apparatus_id, _as_day(day), quantity, window=window, top=top)
 
     # --- helpers -------------------------------------------------------------------
 
@@ -389,6 +519,17 @@ class Catalogue:
         known = [v for (v,) in connection.execute(select(column).distinct().limit(5000))]
         close = difflib.get_close_matches(name, known, n=3)
         return f"did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+
+
+def _as_day(value: dt.date | str | None) -> dt.date | None:
+    if value is None or (isinstance(value, dt.date) and not isinstance(value, dt.datetime)):
+        return value
+    if isinstance(value, dt.datetime):
+        return value.date()
+    try:
+        return dt.date.fromisoformat(str(value)[:10])
+    except ValueError:
+        raise ValueError(f"'{value}' is not an ISO date (e.g. 2026-03-01)") from None
 
 
 def _user() -> str | None:

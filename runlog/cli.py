@@ -112,23 +112,32 @@ def init(state: _State) -> None:
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml mapping your column names onto the contract.")
 @_common
 def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path | None) -> None:
-    """Ingest shot-table files or folders of *.parquet files."""
+    """Ingest shot-table files or folders of *.parquet files.
+
+    With [[rules]] in --config, the runs a file brought in get those figures too.
+    """
+    from runlog.config import load_config
+
+    mapping = load_config(config)
     with _open(state) as catalogue:
         progress = None if as_json or not sys.stderr.isatty() else _progress_bar()
         try:
-            results = catalogue.ingest(paths, config=config, progress=progress and progress.update)
+            results = catalogue.ingest(paths, config=mapping, progress=progress and progress.update)
         finally:
             if progress:
                 progress.close()
+        derived = [_derived_after_ingest(catalogue, mapping.rules, r) for r in results]
     if as_json:
-        _json([r.as_dict() for r in results])
+        _json([r.as_dict() | ({"derived": [_outcome_json(o) for o in d]} if mapping.rules else {}) for r, d in zip(results, derived)])
     else:
-        for r in results:
+        for r, d in zip(results, derived):
             if r.status == "rejected":
                 click.echo(f"rejected         {r.reason}")
             else:
                 runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
                 click.echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
+            for outcome in d:
+                _wrapped(_outcome_line(outcome))
     if any(r.status == "rejected" for r in results):
         sys.exit(1)
 
@@ -289,7 +298,15 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
     logger.addHandler(handler)
     with _open(state) as catalogue:
         logger.info("catalogue %s", catalogue.url)
-        watcher = Watcher(folder, lambda paths: catalogue.ingest(paths, config=mapping), quarantine, logger)
+
+        def ingest_and_derive(paths: list[Path]) -> list:
+            results = catalogue.ingest(paths, config=mapping)
+            for result in results:
+                for outcome in _derived_after_ingest(catalogue, mapping.rules, result):
+                    logger.info("%s", _outcome_line(outcome))
+            return results
+
+        watcher = Watcher(folder, ingest_and_derive, quarantine, logger)
         click.echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
         try:
             watcher.run(interval, stop_after=stop_after)
@@ -332,6 +349,143 @@ def demo(state: _State, days: int, seed: int) -> None:
             if r.status == "rejected":
                 click.echo(f"rejected: {r.reason}", err=True)
         sys.exit(1)
+
+
+@cli.command()
+@click.argument("run", required=False)
+@click.option("--kind", default=None, metavar="KIND", help="counting, fringe, coherence, spreading, sorting or correlator.")
+@click.option("--x", "x", default=None, metavar="PARAMETER", help="The scanned parameter (default: the only suitable one).")
+@click.option("--y", "y", default=None, metavar="MEASUREMENT", help="The measurement; correlator: q1,q2,q3 or a,b (default: the only one).")
+@click.option("--envelope", type=click.Choice(["gaussian", "exponential"]), default="gaussian", show_default=True, help="Coherence decay shape.")
+@click.option("--target", default=None, metavar="SITES", help="Sorting target: site indices like 0,1,2,5, or a parameter holding them.")
+@click.option("--image", default=None, help="Occupancy image for spreading and sorting (default: the last).")
+@click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@click.option("--all", "everything", is_flag=True, help="Recompute counting figures of every run and apply every rule.")
+@click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml whose [[rules]] --all applies.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, apparatus: str | None, everything: bool, config: Path | None, as_json: bool) -> None:
+    """Compute and store the figures of one KIND for RUN, or recompute all (--all)."""
+    from runlog.config import load_config
+    from runlog.derive import derive_all
+
+    if everything:
+        if run is not None or kind is not None or any(v is not None for v in (x, y, target, image, apparatus)):
+            raise click.UsageError("--all recomputes every run as the rules say: give no RUN, --kind or other choices")
+        mapping = load_config(config)
+        with _open(state) as catalogue:
+            summary = derive_all(catalogue, mapping.rules, interval=mapping.interval if config else None)
+        if as_json:
+            _json(summary.as_dict())
+            return
+        click.echo(f"{summary.runs} runs, {summary.figures} figures stored, {len(summary.failures)} failed")
+        for failure in summary.failures:
+            _wrapped(_outcome_line(failure))
+        return
+    if run is None or kind is None:
+        raise click.UsageError("give RUN and --kind KIND, or --all")
+    if config is not None:
+        raise click.UsageError("--config goes with --all")
+    with _open(state) as catalogue:
+        result = catalogue.derive(run, kind, x=x, y=y, envelope=envelope, target=target, image=image, apparatus=apparatus)
+    if as_json:
+        _json(result.as_dict())
+        return
+    _wrapped(f"run {result.run}: {result.kind}, {len(result.figures)} figures stored", indent="")
+    for name, figure in result.as_dict()["figures"].items():
+        click.echo("  " + _figure_line(name, figure))
+
+
+def _derived_after_ingest(catalogue, rules: tuple[dict, ...], result) -> list:
+    """The rules applied to the runs one ingested file brought in (none for other files)."""
+    if not rules or result.status != "ingested":
+        return []
+    return catalogue.apply_rules(rules, runs=result.runs)
+
+
+def _outcome_line(outcome) -> str:
+    from runlog.errors import FitError
+
+    if isinstance(outcome, FitError):
+        return f"failed: {outcome}"
+    return f"derived: run {outcome.run}, {outcome.kind}, {len(outcome.figures)} figures"
+
+
+def _outcome_json(outcome) -> dict[str, Any]:
+    from runlog.errors import FitError
+
+    if isinstance(outcome, FitError):
+        return {"run": outcome.run, "kind": outcome.kind, "error": outcome.reason}
+    return outcome.as_dict()
+
+
+@cli.command()
+@click.argument("quantity")
+@click.option("--apparatus", default=None, help="The apparatus (needed when several measure QUANTITY).")
+@click.option("--sequence", default=None, help="Only runs of this sequence.")
+@click.option("--since", default=None, metavar="DATE", help="First lab day (ISO).")
+@click.option("--until", default=None, metavar="DATE", help="Last lab day (ISO).")
+@click.option("--baseline-days", default=7, show_default=True, help="Days that set the control limits.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, as_json: bool) -> None:
+    """Daily values of a figure, control limits, changes in level and alarms."""
+    with _open(state) as catalogue:
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days)
+    if as_json:
+        _json(result.as_dict())
+        return
+    unit = f" [{result.unit}]" if result.unit else ""
+    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", sequence {result.sequence}" if result.sequence else ""), indent="")
+    outside = set(result.out_of_limits)
+    click.echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
+    for index, point in enumerate(result.points):
+        flag = "  *" if index in outside else ""
+        click.echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
+    if outside:
+        click.echo("  * outside the control limits")
+    for change in result.changes:
+        _wrapped(f"change on {change.date.isoformat()}: {change.before:.4g} -> {change.after:.4g}{unit} ({change.method})")
+    if not result.changes and len(result.points) >= 3:
+        click.echo("  no change in level found")
+    click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+@cli.command()
+@click.option("--apparatus", default=None, help="Only this apparatus.")
+@click.option("--all", "show_all", is_flag=True, help="Acknowledged alarms too.")
+@click.option("--ack", "acknowledge", type=int, default=None, metavar="ID", help="Acknowledge alarm ID.")
+@click.option("--note", default="", help="With --ack: what it was (becomes an annotation).")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, as_json: bool) -> None:
+    """Check every quantity for drift and list the open alarms (or acknowledge one)."""
+    with _open(state) as catalogue:
+        if acknowledge is not None:
+            annotation = catalogue.acknowledge(acknowledge, note)
+            click.echo(f"alarm {acknowledge} acknowledged (annotation {annotation})")
+            return
+        catalogue.check_drift(apparatus=apparatus)
+        found = catalogue.alarms(status=None if show_all else "open", apparatus=apparatus)
+    if as_json:
+        _json(found)
+        return
+    if not found:
+        click.echo("no open alarms")
+        return
+    for alarm in found:
+        size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
+        _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} to {alarm['value']:.4g}{size}, {alarm['status']}", indent="")
+    click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _day_option(value: str | None, option: str) -> dt.date | None:
+    if value is None:
+        return None
+    try:
+        return dt.date.fromisoformat(value)
+    except ValueError:
+        raise click.BadParameter(f"'{value}' is not an ISO date (e.g. 2026-03-01)", param_hint=option) from None
 
 
 def main(argv: list[str] | None = None) -> None:

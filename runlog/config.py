@@ -35,7 +35,7 @@ from pathlib import Path
 
 from runlog.errors import ConfigError
 
-__all__ = ["Mapping", "load_config"]
+__all__ = ["Mapping", "check_rules", "load_config"]
 
 
 @dataclass(frozen=True)
@@ -86,9 +86,7 @@ def load_config(path: str | Path | None) -> Mapping:
     interval = figures.get("interval", "wilson")
     if interval not in ("wilson", "clopper-pearson"):
         raise ConfigError(str(path), f"[figures] interval must be 'wilson' or 'clopper-pearson', not {interval!r}")
-    rules = data.get("rules", [])
-    if not isinstance(rules, list) or not all(isinstance(rule, dict) for rule in rules):
-        raise ConfigError(str(path), "[[rules]] must be a list of tables")
+    rules = check_rules(data.get("rules", []), str(path))
     return Mapping(
         rename=columns,
         ignore=frozenset(ignore),
@@ -97,6 +95,47 @@ def load_config(path: str | Path | None) -> Mapping:
         shape=shape,
         apparatus=defaults.get("apparatus"),
         interval=interval,
-        rules=tuple(rules),
+        rules=rules,
         source=str(path),
     )
+
+
+# The figure kinds a rule may name: those of runlog.derive.KINDS, which sits above this
+# module and so cannot be imported here; tests/test_derive.py keeps the two equal.
+_RULE_KINDS = ("coherence", "correlator", "counting", "fringe", "sorting", "spreading")
+_RULE_ENVELOPES = ("gaussian", "exponential")
+_RULE_TEXT_KEYS = ("sequence", "kind", "x", "y", "envelope", "apparatus", "image")
+_RULE_KEYS = (*_RULE_TEXT_KEYS, "target")
+
+
+def check_rules(rules: object, source: str = "<rules>") -> tuple[dict, ...]:
+    """``rules`` (the ``[[rules]]`` tables) checked, as a tuple of plain dicts.
+
+    A rule needs ``sequence`` (a glob of sequence names) and ``kind``; it may give ``x``,
+    ``y``, ``envelope``, ``apparatus`` (a glob), ``image`` and ``target`` (site indices as
+    text or as a list of integers, or the name of a parameter holding them). ``source``
+    names the file in the error.
+    """
+    if not isinstance(rules, (list, tuple)) or not all(isinstance(rule, dict) for rule in rules):
+        raise ConfigError(source, "[[rules]] must be a list of tables")
+    for number, rule in enumerate(rules, start=1):
+        unknown = sorted(set(rule) - set(_RULE_KEYS))
+        if unknown:
+            raise ConfigError(source, f"rule {number}: unknown key '{unknown[0]}' (known: {', '.join(_RULE_KEYS)})")
+        for key in ("sequence", "kind"):
+            if key not in rule:
+                raise ConfigError(source, f"rule {number}: '{key}' is missing (a rule needs sequence and kind)")
+        for key in _RULE_TEXT_KEYS:
+            if key in rule and not (isinstance(rule[key], str) and rule[key].strip()):
+                raise ConfigError(source, f"rule {number}: '{key}' must be non-empty text")
+        if rule["kind"] not in _RULE_KINDS:
+            raise ConfigError(source, f"rule {number}: unknown kind '{rule['kind']}' (known: {', '.join(_RULE_KINDS)})")
+        if rule.get("envelope", "gaussian") not in _RULE_ENVELOPES:
+            raise ConfigError(source, f"rule {number}: envelope must be 'gaussian' or 'exponential', not {rule['envelope']!r}")
+        target = rule.get("target")
+        if target is not None and not (
+            (isinstance(target, str) and target.strip())
+            or (isinstance(target, list) and target and all(isinstance(n, int) and not isinstance(n, bool) and n >= 0 for n in target))
+        ):
+            raise ConfigError(source, f"rule {number}: 'target' must be site indices ('0,1,2' or [0, 1, 2]) or a parameter name")
+    return tuple(dict(rule) for rule in rules)

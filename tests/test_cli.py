@@ -171,7 +171,10 @@ def test_show_json_contract(db_url, files):
         "wait": {"unit": "us", "scanned": True, "min": 0.0, "max": 90.0},
     }
     assert info["measurements"] == ["atom_number"]
-    assert info["figures"] == {}
+    # Counting figures are computed at ingest; each carries value, unit, stderr, interval, method.
+    assert set(info["figures"]) == {"fill_fraction", "survival", "loss"}
+    for figure in info["figures"].values():
+        assert set(figure) == {"value", "unit", "stderr", "ci_low", "ci_high", "method"} and figure["method"] == "wilson"
 
 
 LONG_RUN = "2026-03-02-release-recapture-scan-0042"

@@ -228,8 +228,8 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
     values = np.array([p.value for p in points])
     stderr = np.array([p.stderr for p in points])
     weights = 1.0 / stderr**2 if np.all(np.isfinite(stderr)) and np.all(stderr > 0) else None
-    penalty = default_penalty(values, weights)
-    method = "pelt (Killick et al. 2012), penalty 2.5*2*scale^2*ln(n)"
+    penalty = default_penalty(values, weights, trusted_weights=True)
+    method = "pelt (Killick et al. 2012), penalty 2.5*2*max(1,scale)^2*ln(n)"
     for change in pelt(values, weights=weights, penalty=penalty, min_size=2):
         result.changes.append(DriftChange(points[change.index].date, change.index, float(change.before), float(change.after), method))
     return result
