@@ -322,7 +322,7 @@ def demo(state: _State, days: int, seed: int) -> None:
     """Build the demo catalogue (an invented lab) and print what it holds."""
     import platformdirs
 
-    from runlog.demo import SCENARIO, write_demo_files
+    from runlog.demo import DEMO_RULES, SCENARIO, write_demo_files
 
     if state.db is None and not os.environ.get("RUNLOG_DB"):
         # The demo never mixes invented runs into the lab's own default catalogue.
@@ -334,6 +334,9 @@ def demo(state: _State, days: int, seed: int) -> None:
         files = write_demo_files(Path(temporary), days=days, start=start, seed=seed)
         with _open(state) as catalogue:
             results = catalogue.ingest(files)
+            new_runs = sorted({run for r in results if r.status == "ingested" for run in r.runs})
+            outcomes = catalogue.apply_rules(DEMO_RULES, runs=new_runs) if new_runs else []
+            alarms = catalogue.check_drift()
             counts = catalogue.counts()
             url = catalogue.url
     took = time.perf_counter() - tick
@@ -341,8 +344,15 @@ def demo(state: _State, days: int, seed: int) -> None:
     click.echo(f"demo catalogue: {url}")
     click.echo(f"{len(files)} files: {made} shots ingested now, {sum(r.status == 'already-present' for r in results)} files already present ({took:.1f} s)")
     click.echo(f"catalogue holds {counts['apparatus']} apparatus, {counts['runs']} runs, {counts['shots']} shots")
+    fitted = sum(1 for o in outcomes if not isinstance(o, Exception))
+    if outcomes:
+        click.echo(f"fitted figures: {fitted} scans fitted, {len(outcomes) - fitted} refused")
+    click.echo("what the invented lab did (the truth behind the files):")
     for line in SCENARIO.describe(start, days):
-        click.echo("  " + line)
+        _wrapped(line)
+    click.echo("what runlog found (open alarms, changes in level):")
+    for alarm in (a for a in alarms if a["reason"] == "change"):
+        _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: change on {alarm['date']} to {alarm['value']:.4g} ({alarm['size']:+.3g})")
     click.echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
     if any(r.status == "rejected" for r in results):
         for r in results:

@@ -35,7 +35,7 @@ import pyarrow.parquet as pq
 
 from runlog.errors import NotFoundError
 
-__all__ = ["DemoApparatus", "LabEvent", "Scenario", "SCENARIO", "write_demo_files"]
+__all__ = ["DemoApparatus", "LabEvent", "Scenario", "SCENARIO", "DEMO_RULES", "write_demo_files"]
 
 _DAY_US = 86_400_000_000
 _HOUR_US = 3_600_000_000
@@ -320,6 +320,14 @@ class _Run:
     @property
     def shots(self) -> int:
         return len(self.time_us)
+
+
+#: The rules a lab would put in its runlog.toml for these sequences: fitted figures of
+#: every phase scan and Ramsey scan, computed as the runs come in.
+DEMO_RULES: tuple[dict[str, str], ...] = (
+    {"sequence": "phase-scan", "kind": "fringe", "x": "phase", "y": "bright_fraction"},
+    {"sequence": "ramsey", "kind": "coherence", "x": "wait", "y": "bright_fraction"},
+)
 
 
 def write_demo_files(
