@@ -438,8 +438,12 @@ class Catalogue:
             writer.close()
         return groups
 
-    def drift(self, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, baseline_days: int = 7, baseline: tuple[dt.date | str, dt.date | str] | None = None, record_alarms: bool = True):
-        """Daily points, control limits, changes and alarms of one quantity (from rollups)."""
+    def drift(self, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, baseline_days: int = 7, baseline: tuple[dt.date | str, dt.date | str] | None = None, parameters: dict[str, tuple[float, float]] | None = None, record_alarms: bool = True):
+        """Daily points, control limits, changes and alarms of one quantity.
+
+        ``parameters`` restricts to runs whose parameter values (in their stored units) lie
+        in the given ``(low, high)`` ranges; alarms are recorded only for unfiltered drift.
+        """
         from runlog.drift import alarms as alarm_store
         from runlog.drift.series import drift_of
 
@@ -447,8 +451,8 @@ class Catalogue:
         if baseline is not None:
             baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
         with self.engine.connect() as connection:
-            result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, since=since, until=until, baseline_days=baseline_days, baseline=baseline)
-        if record_alarms and result.points:
+            result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, since=since, until=until, baseline_days=baseline_days, baseline=baseline, parameters=parameters)
+        if record_alarms and result.points and not parameters:
             with self.engine.begin() as connection:
                 result.alarms = alarm_store.record(connection, result)
         if result.points:
@@ -460,6 +464,55 @@ class Catalogue:
                 if row.at <= last
             ]
         return result
+
+    def figures(self, *, apparatus: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, names: Iterable[str] | None = None, runs: Iterable[str] | None = None) -> "pd.DataFrame":
+        """Stored figures, one row per run and figure, by lab day: run, apparatus, sequence,
+        day, started, name, value, stderr, ci_low, ci_high, unit, method."""
+        import pandas as pd
+
+        query = (
+            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method)
+            .join(s.Run, s.Run.id == s.FigureRow.run_id)
+            .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .order_by(s.Run.started, s.Run.id, s.FigureRow.name)
+        )
+        if apparatus is not None:
+            query = query.where(s.Apparatus.name == apparatus)
+        if since is not None:
+            query = query.where(s.Run.day >= _as_day(since))
+        if until is not None:
+            query = query.where(s.Run.day <= _as_day(until))
+        if names is not None:
+            query = query.where(s.FigureRow.name.in_(list(names)))
+        if runs is not None:
+            query = query.where(s.Run.key.in_(list(runs)))
+        with self.engine.connect() as connection:
+            rows = connection.execute(query).all()
+        return pd.DataFrame(rows, columns=["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method"])
+
+    def parameters(self, *, apparatus: str | None = None) -> "pd.DataFrame":
+        """Every parameter with its stored unit, kind, value range over runs and run count."""
+        import pandas as pd
+
+        rp = s.RunParameter
+        query = (
+            select(
+                s.Parameter.name,
+                s.Parameter.unit,
+                s.Parameter.kind,
+                func.min(func.coalesce(rp.number_value, rp.minimum)),
+                func.max(func.coalesce(rp.number_value, rp.maximum)),
+                func.count(rp.run_id),
+            )
+            .join(rp, rp.parameter_id == s.Parameter.id)
+            .group_by(s.Parameter.id, s.Parameter.name, s.Parameter.unit, s.Parameter.kind)
+            .order_by(s.Parameter.name)
+        )
+        if apparatus is not None:
+            query = query.join(s.Run, s.Run.id == rp.run_id).join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id).where(s.Apparatus.name == apparatus)
+        with self.engine.connect() as connection:
+            rows = connection.execute(query).all()
+        return pd.DataFrame(rows, columns=["name", "unit", "kind", "min", "max", "runs"])
 
     def check_drift(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
         """Run the drift of every quantity of every apparatus and record alarms; returns open ones."""

@@ -191,3 +191,19 @@ def test_trusted_binomial_weights_keep_false_changes_rare_and_find_small_steps()
         found += len(changes) == 1 and abs(changes[0].index - 7) <= 1
     assert false / 300 <= 0.02
     assert found / 300 >= 0.9
+
+
+def test_parameter_ranges_filter_the_runs_behind_each_day(scenario):
+    # lattice_depth was 65 uK before the fill step and 55 uK after it (the scenario's truth).
+    deep = scenario.drift("fill_fraction", apparatus="bench-north", parameters={"lattice_depth": (60.0, 70.0)})
+    shallow = scenario.drift("fill_fraction", apparatus="bench-north", parameters={"lattice_depth": (50.0, 58.0)})
+    assert [p.date for p in deep.points] == [START + dt.timedelta(days=d) for d in range(FILL_STEP_DAY)]
+    assert [p.date for p in shallow.points] == [START + dt.timedelta(days=d) for d in range(FILL_STEP_DAY, DAYS)]
+    everything = {p.date: p for p in scenario.drift("fill_fraction", apparatus="bench-north").points}
+    for point in deep.points + shallow.points:  # the same pooled counts as the rollups
+        assert (point.successes, point.trials) == (everything[point.date].successes, everything[point.date].trials)
+    table = scenario.parameters()
+    depth = table.set_index("name").loc["lattice_depth"]
+    assert (depth["unit"], depth["min"], depth["max"]) == ("uK", 55.0, 65.0)
+    figures = scenario.figures(names=["coherence_time"])
+    assert len(figures) == 2 * DAYS and set(figures["unit"]) == {"us"}

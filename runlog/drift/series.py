@@ -24,7 +24,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from sqlalchemy import and_, func, select
+from sqlalchemy import and_, exists, func, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
@@ -33,7 +33,7 @@ from runlog.errors import NotFoundError
 from runlog.figures.intervals import wilson
 from runlog.store import schema as s
 
-__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "drift_of"]
+__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "drift_of"]
 
 Z95 = 1.959963984540054
 
@@ -144,33 +144,96 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
         query = query.where(r.day <= until)
     points: list[DriftPoint] = []
     unit, counting = "", False
-    for day, runs, shots, successes, trials, count, total, squares, weights, weighted, weighted_squares, day_unit in connection.execute(query):
+    for day, *sums, day_unit in connection.execute(query):
         unit = day_unit or unit
-        day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
-        if trials:
-            counting = True
-            successes, trials = int(successes), int(trials)
-            p = successes / trials
-            low, high = wilson(successes, trials)
-            points.append(DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials))
-            continue
-        spread = None
-        if count and count > 1:
-            spread = math.sqrt(max(0.0, (squares - total * total / count) / (count - 1)))
-        if weights:
-            mean = weighted / weights
-            stderr = 1.0 / math.sqrt(weights)
-            if count and count > 1:
-                # Birge ratio: runs that disagree beyond their errors widen the day's error.
-                chi2 = max(0.0, weighted_squares - weighted * weighted / weights)
-                stderr *= max(1.0, math.sqrt(chi2 / (count - 1)))
-        elif count:
-            mean = total / count
-            stderr = (spread / math.sqrt(count)) if spread is not None else math.nan
-        else:
-            continue
-        points.append(DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread))
+        point = _point(day, *sums)
+        if point is not None:
+            counting = counting or point.trials is not None
+            points.append(point)
     return points, unit, counting
+
+
+def _point(day, runs, shots, successes, trials, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
+    """One day's point from the pooled sums of its runs (see the module docstring)."""
+    day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
+    if trials:
+        successes, trials = int(successes), int(trials)
+        p = successes / trials
+        low, high = wilson(successes, trials)
+        return DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials)
+    spread = None
+    if count and count > 1:
+        spread = math.sqrt(max(0.0, (squares - total * total / count) / (count - 1)))
+    if weights:
+        mean = weighted / weights
+        stderr = 1.0 / math.sqrt(weights)
+        if count and count > 1:
+            # Birge ratio: runs that disagree beyond their errors widen the day's error.
+            chi2 = max(0.0, weighted_squares - weighted * weighted / weights)
+            stderr *= max(1.0, math.sqrt(chi2 / (count - 1)))
+    elif count:
+        mean = total / count
+        stderr = (spread / math.sqrt(count)) if spread is not None else math.nan
+    else:
+        return None
+    return DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread)
+
+
+def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]], *, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """Daily points over only the runs whose parameters lie in the given ranges.
+
+    A run matches a range when its constant value lies in it, or when its whole scanned
+    range does. Pools the runs' stored figures per day, exactly as the rollups do.
+    """
+    f, r = s.FigureRow, s.Run
+    query = (
+        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.unit)
+        .join(r, r.id == f.run_id)
+        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity))
+        .order_by(r.day)
+    )
+    for name, (low, high) in parameters.items():
+        parameter_id = connection.execute(select(s.Parameter.id).where(s.Parameter.name == name)).scalar()
+        if parameter_id is None:
+            raise NotFoundError("parameter", name)
+        rp = s.RunParameter
+        matches = select(rp.run_id).where(
+            and_(
+                rp.run_id == r.id,
+                rp.parameter_id == parameter_id,
+                or_(
+                    and_(rp.scanned.is_(False), rp.number_value >= low, rp.number_value <= high),
+                    and_(rp.scanned.is_(True), rp.minimum >= low, rp.maximum <= high),
+                ),
+            )
+        )
+        query = query.where(exists(matches))
+    if sequence is not None:
+        query = query.where(r.sequence == sequence)
+    if since is not None:
+        query = query.where(r.day >= since)
+    if until is not None:
+        query = query.where(r.day <= until)
+    days: dict[object, list[float]] = {}
+    unit = ""
+    for day, shots, value, stderr, successes, trials, figure_unit in connection.execute(query):
+        unit = figure_unit or unit
+        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, None, None, None])
+        sums[0] += 1
+        sums[1] += shots
+        if trials is not None:
+            sums[2] = (sums[2] or 0) + successes
+            sums[3] = (sums[3] or 0) + trials
+        sums[4] += 1
+        sums[5] += value
+        sums[6] += value * value
+        if stderr is not None and stderr > 0:
+            w = 1.0 / (stderr * stderr)
+            sums[7] = (sums[7] or 0.0) + w
+            sums[8] = (sums[8] or 0.0) + w * value
+            sums[9] = (sums[9] or 0.0) + w * value * value
+    points = [p for p in (_point(day, *sums) for day, sums in days.items()) if p is not None]
+    return points, unit, any(p.trials is not None for p in points)
 
 
 def _baseline(points: list[DriftPoint], baseline_days: int, baseline: tuple[dt.date, dt.date] | None) -> np.ndarray:
@@ -212,10 +275,14 @@ def _ewma_limits(points: list[DriftPoint], mask: np.ndarray) -> tuple[dict[str, 
     return limits, np.asarray(chart.out_of_control, dtype=bool)
 
 
-def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None, baseline_days: int = 7, baseline: tuple[dt.date, dt.date] | None = None) -> Drift:
-    """The drift of ``quantity`` on one apparatus, from the daily rollups."""
+def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None, baseline_days: int = 7, baseline: tuple[dt.date, dt.date] | None = None, parameters: dict[str, tuple[float, float]] | None = None) -> Drift:
+    """The drift of ``quantity`` on one apparatus: from the daily rollups, or, with
+    parameter ranges, from the figures of the matching runs (still never from shots)."""
     apparatus_id, apparatus_name = _apparatus_id(connection, quantity, apparatus)
-    points, unit, counting = daily_points(connection, quantity, apparatus_id, sequence=sequence, since=since, until=until)
+    if parameters:
+        points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, sequence=sequence, since=since, until=until)
+    else:
+        points, unit, counting = daily_points(connection, quantity, apparatus_id, sequence=sequence, since=since, until=until)
     result = Drift(quantity, apparatus_name, unit, sequence, points, {}, [], counting)
     if len(points) < 3:
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
