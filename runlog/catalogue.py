@@ -465,6 +465,23 @@ class Catalogue:
             ]
         return result
 
+    def compare(self, run_a: str, run_b: str, figure: str = "survival", *, apparatus: str | None = None):
+        """``figure`` of run A minus run B, with Newcombe's hybrid score interval (95 %).
+
+        Only for counting figures, whose counts are stored.
+        """
+        from runlog.figures.counting import compare_proportions
+
+        counts = []
+        with self.engine.connect() as connection:
+            for key in (run_a, run_b):
+                found = self._find_run(connection, key, apparatus)
+                row = connection.execute(select(s.FigureRow.successes, s.FigureRow.trials).where(and_(s.FigureRow.run_id == found.id, s.FigureRow.name == figure))).first()
+                if row is None or row.trials is None:
+                    raise NotFoundError("counted figure", figure, f"run '{key}' has no counts for it")
+                counts += [int(row.successes), int(row.trials)]
+        return compare_proportions(*counts)
+
     def figures(self, *, apparatus: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, names: Iterable[str] | None = None, runs: Iterable[str] | None = None) -> "pd.DataFrame":
         """Stored figures, one row per run and figure, by lab day: run, apparatus, sequence,
         day, started, name, value, stderr, ci_low, ci_high, unit, method."""

@@ -436,14 +436,22 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @click.option("--since", default=None, metavar="DATE", help="First lab day (ISO).")
 @click.option("--until", default=None, metavar="DATE", help="Last lab day (ISO).")
 @click.option("--baseline-days", default=7, show_default=True, help="Days that set the control limits.")
+@click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
+@click.option("--causes", is_flag=True, help="Rank what else changed at each change.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, as_json: bool) -> None:
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
     """Daily values of a figure, control limits, changes in level and alarms."""
+    parameters = dict(_range_option(text) for text in ranges)
     with _open(state) as catalogue:
-        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days)
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, parameters=parameters or None)
+        ranked = {c.date: catalogue.what_else_changed(quantity, c.date, apparatus=result.apparatus, top=5) for c in result.changes} if causes else {}
     if as_json:
-        _json(result.as_dict())
+        data = result.as_dict()
+        if causes:
+            for change in data["changes"]:
+                change["causes"] = ranked[dt.date.fromisoformat(change["date"])]
+        _json(data)
         return
     unit = f" [{result.unit}]" if result.unit else ""
     _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", sequence {result.sequence}" if result.sequence else ""), indent="")
@@ -456,6 +464,8 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         click.echo("  * outside the control limits")
     for change in result.changes:
         _wrapped(f"change on {change.date.isoformat()}: {change.before:.4g} -> {change.after:.4g}{unit} ({change.method})")
+        for cause in ranked.get(change.date, []):
+            _wrapped(f"  moved too: {cause['name']}: {cause['before_mean']:.4g} -> {cause['after_mean']:.4g} (effect {cause['effect_size']:+.2f})")
     if not result.changes and len(result.points) >= 3:
         click.echo("  no change in level found")
     click.echo("advisory only: not a replacement for the lab's interlocks or rules")
@@ -487,6 +497,15 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
         size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
         _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} to {alarm['value']:.4g}{size}, {alarm['status']}", indent="")
     click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _range_option(text: str) -> tuple[str, tuple[float, float]]:
+    name, _, span = text.partition("=")
+    low, _, high = span.partition(":")
+    try:
+        return name.strip(), (float(low), float(high))
+    except ValueError:
+        raise click.BadParameter(f"'{text}' is not NAME=LOW:HIGH (e.g. lattice_depth=60:80)", param_hint="--param") from None
 
 
 def _day_option(value: str | None, option: str) -> dt.date | None:

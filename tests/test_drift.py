@@ -207,3 +207,31 @@ def test_parameter_ranges_filter_the_runs_behind_each_day(scenario):
     assert (depth["unit"], depth["min"], depth["max"]) == ("uK", 55.0, 65.0)
     figures = scenario.figures(names=["coherence_time"])
     assert len(figures) == 2 * DAYS and set(figures["unit"]) == {"us"}
+
+
+def test_run_against_run_uses_newcombe_on_the_stored_counts(scenario):
+    from runlog.figures.intervals import newcombe_difference
+
+    a, b = f"{START:%Y%m%d}-load-0", f"{START + dt.timedelta(days=DAYS - 1):%Y%m%d}-load-0"
+    difference = scenario.compare(a, b, "fill_fraction")
+    fa = scenario.figures(runs=[a], names=["fill_fraction"])
+    counts = []
+    for key in (a, b):
+        occupancy = scenario.occupancy(key)
+        counts += [int(occupancy.sum()), occupancy.size]
+    assert difference.value == pytest.approx(counts[0] / counts[1] - counts[2] / counts[3], abs=1e-15)
+    assert (difference.ci_low, difference.ci_high) == pytest.approx(newcombe_difference(*counts), abs=1e-15)
+    assert fa["value"].iloc[0] == pytest.approx(counts[0] / counts[1])
+
+
+def test_drift_command_ranks_causes_and_filters_by_parameter(scenario):
+    import json
+
+    url = scenario.engine.url.render_as_string(hide_password=False)
+    result = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--apparatus", "bench-north", "--causes", "--json"])
+    data = json.loads(result.output)
+    assert {c["name"] for c in data["changes"][0]["causes"][:2]} == {"parameter lattice_depth", "measurement atom_number"}
+    filtered = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--apparatus", "bench-north", "--param", "lattice_depth=60:70", "--json"])
+    assert len(json.loads(filtered.output)["points"]) == FILL_STEP_DAY
+    bad = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--param", "depth=deep"])
+    assert bad.exit_code == 2
