@@ -317,8 +317,10 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
 @cli.command()
 @click.option("--days", default=21, show_default=True, help="How many days of invented runs.")
 @click.option("--seed", default=7, show_default=True)
+@click.option("--no-dashboard", is_flag=True, help="Do not open the dashboard on the demo catalogue afterwards.")
+@click.option("--port", default=8501, show_default=True, help="Port of the dashboard.")
 @_common
-def demo(state: _State, days: int, seed: int) -> None:
+def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> None:
     """Build the demo catalogue (an invented lab) and print what it holds."""
     import platformdirs
 
@@ -359,6 +361,11 @@ def demo(state: _State, days: int, seed: int) -> None:
             if r.status == "rejected":
                 click.echo(f"rejected: {r.reason}", err=True)
         sys.exit(1)
+    if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():
+        # Only in a terminal, where Ctrl-C stops it; scripts and pipes get the catalogue alone.
+        from runlog.dashboard import serve
+
+        serve(state.db, port=port, say=click.echo)
 
 
 @cli.command()
@@ -515,6 +522,19 @@ def _day_option(value: str | None, option: str) -> dt.date | None:
         return dt.date.fromisoformat(value)
     except ValueError:
         raise click.BadParameter(f"'{value}' is not an ISO date (e.g. 2026-03-01)", param_hint=option) from None
+
+
+@cli.command()
+@click.option("--port", default=8501, show_default=True, help="Port of the dashboard server.")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (the dashboard has no login: keep it local unless the network is trusted).")
+@_common
+def dashboard(state: _State, port: int, host: str) -> None:
+    """Serve the dashboard (a Streamlit app) on this catalogue until Ctrl-C."""
+    from runlog.dashboard import serve
+
+    with _open(state) as catalogue:  # fail here, in one line, when the catalogue cannot be opened
+        catalogue.counts()
+    sys.exit(serve(state.db, host=host, port=port, say=click.echo))
 
 
 def main(argv: list[str] | None = None) -> None:

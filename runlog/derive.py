@@ -8,7 +8,9 @@ needs, converts units where the figure function needs them, calls the figure fun
 function that refuses (``FitError``) leaves the catalogue as it was.
 
 It also owns the rules of ``runlog.toml`` (``[[rules]]``: which kind to apply to which
-runs, :func:`apply_rules`) and the recomputation of every figure (:func:`derive_all`).
+runs, :func:`apply_rules`), the recomputation of every figure (:func:`derive_all`), and the
+way back from stored fit figures to the model curve over a run's shots (:func:`fit_curve`,
+which the dashboard draws).
 
 What each kind reads (``docs/figures.md`` has the definitions):
 
@@ -52,7 +54,7 @@ from runlog.units import conversion, convert, registry
 if TYPE_CHECKING:
     from runlog.catalogue import Catalogue, RunInfo
 
-__all__ = ["KINDS", "DeriveResult", "DeriveSummary", "apply_rules", "derive", "derive_all"]
+__all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve"]
 
 #: The figure kinds :func:`derive` can apply to a run.
 KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator"})
@@ -547,3 +549,112 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "sorting": _sorting,
     "correlator": _correlator,
 }
+
+
+# --- the fitted curve of a stored run ---------------------------------------------------
+
+#: Figure names that mark a run's stored fit, and the curve each gives.
+_CURVE_FIGURES = {
+    "fringe": ("contrast", "phase", "offset"),
+    "coherence": ("coherence_time", "contrast_at_zero", "detuning", "phase"),
+}
+
+
+@dataclass(frozen=True)
+class FitCurve:
+    """A run's fitted model beside its shots, for drawing one over the other.
+
+    ``x``/``y`` are the shots that have both values (in the parameter's and measurement's
+    units); ``curve_x``/``curve_y`` the model evaluated from the stored figures over the
+    scanned range. ``formula`` is the model in words; ``offset`` is ``a`` of the model and
+    ``offset_estimated`` says whether it came from the shots (Ramsey figures do not store it).
+    """
+
+    run: str
+    kind: str
+    formula: str
+    x_name: str
+    x_unit: str
+    y_name: str
+    y_unit: str
+    x: np.ndarray
+    y: np.ndarray
+    curve_x: np.ndarray
+    curve_y: np.ndarray
+    offset: float
+    offset_estimated: bool
+
+
+def fit_curve(
+    catalogue: Catalogue,
+    run: str,
+    *,
+    apparatus: str | None = None,
+    x: str | None = None,
+    y: str | None = None,
+    envelope: str = "gaussian",
+    points: int = 400,
+) -> FitCurve:
+    """The stored fringe or Ramsey fit of ``run`` evaluated over its scan, with its shots.
+
+    The kind follows from the stored figures: ``contrast``/``phase``/``offset`` draw the
+    fringe ``y = a (1 + C cos(x + phi))``; ``coherence_time``/``contrast_at_zero``/
+    ``detuning``/``phase`` the Ramsey fringe ``y = a (1 + C0 E(t) cos(2 pi delta t + phi))``.
+    ``x`` and ``y`` default as in :func:`derive`. The envelope shape of a Ramsey fit is not
+    stored, so ``envelope`` names it (the rules' default is ``"gaussian"``).
+
+    The Ramsey offset ``a`` is not stored either. The model is linear in ``a``, so for the
+    stored ``C0, T, delta, phi`` the least-squares ``a`` has the closed form
+    ``sum(y g) / sum(g^2)`` with ``g = 1 + C0 E(t) cos(...)``; at the joint least-squares
+    optimum of the (unweighted) fit that is the fitted ``a`` itself.
+
+    Raises :class:`FitError` when the run has neither fit stored.
+    """
+    if envelope not in ENVELOPES:
+        raise NotFoundError("envelope", envelope, "known: " + ", ".join(ENVELOPES))
+    info = catalogue.run(run, apparatus=apparatus)
+    figures = info.figures
+    kind = next((k for k, names in _CURVE_FIGURES.items() if all(n in figures for n in names)), None)
+    if kind is None:
+        raise FitError("curve", "the run has no stored fringe or Ramsey fit (derive --kind fringe or coherence first)", info.run)
+    source = _Source(catalogue, info, kind)
+    x_name = _scanned(source, x, _is_angle if kind == "fringe" else _is_time, "angle parameter" if kind == "fringe" else "time parameter")
+    y_name = _measurement(source, y)
+    x_unit, y_unit = source.unit(f"p.{x_name}"), source.unit(f"m.{y_name}")
+    shots_x, shots_y = source.pairs(f"p.{x_name}", f"m.{y_name}")
+    if shots_x.size == 0:
+        raise FitError(kind, f"no shot has both '{x_name}' and '{y_name}'", info.run)
+    grid = np.linspace(float(shots_x.min()), float(shots_x.max()), points)
+
+    def value(name: str) -> float:
+        return float(figures[name]["value"])
+
+    def in_unit(values: np.ndarray, unit: str) -> np.ndarray:
+        if conversion(x_unit, unit) is None:
+            raise FitError(kind, f"parameter '{x_name}' is in '{x_unit}', the stored fit in '{unit}'", info.run)
+        return convert(values, x_unit, unit)
+
+    if kind == "fringe":
+        phase_unit = str(figures["phase"]["unit"] or "rad")
+        phi = value("phase")
+
+        def model(v: np.ndarray) -> np.ndarray:
+            radians = convert(in_unit(v, phase_unit), phase_unit, "rad") + convert(np.asarray([phi]), phase_unit, "rad")[0]
+            return value("offset") * (1.0 + value("contrast") * np.cos(radians))
+
+        return FitCurve(info.run, kind, "y = a (1 + C cos(x + φ))", x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, model(grid), value("offset"), False)
+
+    wait_unit = str(figures["coherence_time"]["unit"] or x_unit)
+    shape = ENVELOPES[envelope]
+
+    def shape_only(v: np.ndarray) -> np.ndarray:
+        t = in_unit(v, wait_unit)
+        # detuning is stored in cycles per wait unit (MHz for us): 2 pi delta t is in radians.
+        fringe = np.cos(2.0 * np.pi * value("detuning") * t + value("phase"))
+        return 1.0 + value("contrast_at_zero") * shape(t, value("coherence_time")) * fringe
+
+    g = shape_only(shots_x)
+    offset = float(np.dot(shots_y, g) / np.dot(g, g))
+    decay = "exp(-(t/T)²)" if envelope == "gaussian" else "exp(-t/T)"
+    formula = f"y = a (1 + C0 E(t) cos(2π δ t + φ)), E(t) = {decay}"
+    return FitCurve(info.run, kind, formula, x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, offset * shape_only(grid), offset, True)

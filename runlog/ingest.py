@@ -655,6 +655,8 @@ def _add_counts(run: _Run, name: str, successes: np.ndarray, trials: np.ndarray)
 
 def _store_counting_figures(writer: Writer, plan: _Plan, interval: str) -> None:
     """Fill fraction, survival and loss of every run this file touched, from all its shots."""
+    if not any(run.site_counts for run in plan.runs):
+        return
     from runlog.figures.counting import proportion_figure
     from runlog.store.figures import read_site_counts, store_figures, store_site_counts
 

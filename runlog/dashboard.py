@@ -1,0 +1,81 @@
+"""Starting the dashboard: a Streamlit server on the app shipped in :mod:`runlog.dashboard_app`.
+
+``runlog dashboard`` (and the last step of ``runlog demo``) call :func:`serve`. The catalogue
+URL reaches the app through the environment of the server process, in ``RUNLOG_DB`` (the
+variable every runlog command already reads), so it never appears on a command line where
+other users of the machine could read it with ``ps``. The server binds to 127.0.0.1 unless
+told otherwise: the dashboard has no login, and anyone who reaches it can read the
+catalogue and add annotations.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+from collections.abc import Callable
+from pathlib import Path
+
+__all__ = ["APP", "URL_VARIABLE", "command", "environment", "serve"]
+
+#: The Streamlit entry script inside the installed package.
+APP = Path(__file__).resolve().parent / "dashboard_app" / "app.py"
+
+#: The environment variable that carries the catalogue URL to the app.
+URL_VARIABLE = "RUNLOG_DB"
+
+# Our own colours (Okabe-Ito blue as the accent); Streamlit's usage statistics stay off so
+# that a lab machine does not call out to the internet.
+_SETTINGS = {
+    "server.headless": "true",
+    "server.runOnSave": "false",
+    "server.fileWatcherType": "none",
+    "browser.gatherUsageStats": "false",
+    "logger.level": "warning",
+    "client.toolbarMode": "minimal",
+    "theme.base": "light",
+    "theme.primaryColor": "#0072B2",
+}
+
+
+def command(host: str = "127.0.0.1", port: int = 8501) -> list[str]:
+    """The ``streamlit run`` command line for the dashboard (without the catalogue URL)."""
+    options = [f"--{key}={value}" for key, value in {**_SETTINGS, "server.address": host, "server.port": str(port)}.items()]
+    return [sys.executable, "-m", "streamlit", "run", str(APP), *options]
+
+
+def environment(url: str | None) -> dict[str, str]:
+    """The server's environment: ours, with the resolved catalogue URL in ``RUNLOG_DB``."""
+    from runlog.store.engine import resolve_url
+
+    return {**os.environ, URL_VARIABLE: resolve_url(url)}
+
+
+def serve(url: str | None, *, host: str = "127.0.0.1", port: int = 8501, say: Callable[[str], None] = print) -> int:
+    """Run the dashboard on ``url``'s catalogue until Ctrl-C; returns the server's exit status."""
+    from runlog.store.engine import redact, resolve_url
+
+    shown = "localhost" if host in ("127.0.0.1", "::1") else host
+    say(f"runlog dashboard: http://{shown}:{port}/  (catalogue {redact(resolve_url(url))}; Ctrl-C to stop)")
+    if host not in ("127.0.0.1", "localhost", "::1"):
+        say("note: the dashboard has no login; anyone who can reach this address can read the catalogue and add notes")
+    server = subprocess.Popen(command(host, port), env=environment(url), stdout=subprocess.DEVNULL)
+
+    def stop(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    # A service manager stops us with SIGTERM: take the server down with us, as Ctrl-C does.
+    previous = signal.signal(signal.SIGTERM, stop)
+    try:
+        return server.wait()
+    except KeyboardInterrupt:
+        server.terminate()
+        try:
+            server.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait()
+        return 0
+    finally:
+        signal.signal(signal.SIGTERM, previous)

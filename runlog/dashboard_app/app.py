@@ -1,0 +1,51 @@
+"""The dashboard's entry script: page setup, the sidebar and the navigation between pages.
+
+Started by ``runlog dashboard`` as ``streamlit run .../runlog/dashboard_app/app.py`` with the
+catalogue URL in ``RUNLOG_DB``. Streamlit runs this script on every interaction, then the
+selected page's script.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import streamlit as st
+
+from runlog.dashboard_app import common
+
+__all__ = ["PAGES", "main"]
+
+_HERE = Path(__file__).resolve().parent
+
+#: (script, title, icon) of every page, in the order of the navigation.
+PAGES = (
+    ("overview.py", "Overview", ":material/dashboard:"),
+    ("drift.py", "Drift", ":material/timeline:"),
+    ("run_detail.py", "Run detail", ":material/science:"),
+    ("shots.py", "Shots explorer", ":material/scatter_plot:"),
+    ("annotate.py", "Notes and alarms", ":material/edit_note:"),
+)
+
+
+def main() -> None:
+    st.set_page_config(page_title="runlog", page_icon=":material/grid_on:", layout="wide")
+    url = common.catalogue_url()
+    pages = [st.Page(_HERE / "views" / script, title=title, icon=icon, default=index == 0) for index, (script, title, icon) in enumerate(PAGES)]
+    page = st.navigation(pages)
+    try:
+        catalogue = common.catalogue(url)
+        zone = common.lab_timezone(url)
+    except Exception as error:  # the server starts even when the catalogue cannot be opened
+        st.error(f"cannot open the catalogue: {str(error).splitlines()[0] if str(error) else type(error).__name__}")
+        st.stop()
+    with st.sidebar:
+        st.markdown("**runlog**")
+        st.caption(f"catalogue `{catalogue.url}`  \nlab time zone {zone}")
+        if st.button("Refresh data", icon=":material/refresh:", help=f"Results are kept for {common.CACHE_SECONDS} s; this asks the catalogue again."):
+            common.clear_cached_results()
+        st.caption("Advisory only: figures, drift and alarms do not replace the lab's interlocks or rules.")
+    page.run()
+
+
+if __name__ == "__main__":
+    main()

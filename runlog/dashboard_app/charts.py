@@ -1,0 +1,179 @@
+"""The dashboard's Altair charts, built from the tables of :mod:`runlog.dashboard_app.common`.
+
+Every layer carries a ``description`` naming what it draws ("daily values", "fit curve", ...)
+so that tests and readers of the chart spec can find it. Colours come from the Okabe-Ito
+palette, one legend per chart; every axis names its quantity and unit; time axes are in the
+lab's wall-clock time on a UTC scale (see ``common``).
+"""
+
+from __future__ import annotations
+
+import altair as alt
+import pandas as pd
+
+from runlog.dashboard_app.common import PALETTE, SERIES_COLOURS, axis_title, label, unit_text
+
+__all__ = ["drift_chart", "fit_chart", "scatter_chart", "site_map_chart"]
+
+# What each kind of mark on a drift chart means, and its colour.
+_DRIFT_KEY = {
+    "daily value": PALETTE["blue"],
+    "outside control limits": PALETTE["vermillion"],
+    "control limits": PALETTE["black"],
+    "EWMA (λ = 0.3)": PALETTE["sky blue"],
+    "level between changes": PALETTE["orange"],
+    "change in level": PALETTE["vermillion"],
+    "note": PALETTE["purple"],
+}
+
+
+def _key(entries: list[str]) -> alt.Scale:
+    return alt.Scale(domain=entries, range=[_DRIFT_KEY[e] for e in entries])
+
+
+def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int = 230) -> alt.LayerChart:
+    """Daily points with 95 % interval bars, control limits, changes in level and notes.
+
+    ``domain`` is the time axis (first and last lab day, ISO) shared by all panels.
+    """
+    points: pd.DataFrame = view["points"].copy()
+    changes: pd.DataFrame = view["changes"]
+    notes: pd.DataFrame = view["notes"]
+    title = axis_title(view["quantity"], view["unit"])
+    unit = unit_text(view["unit"])
+    points["series"] = ["outside control limits" if o else "daily value" for o in points["outside"]]
+    first, last = domain
+    x = alt.X(
+        "when:T",
+        scale=alt.Scale(type="utc", domain=[f"{first}T00:00:00Z", f"{pd.Timestamp(last) + pd.Timedelta(days=1):%Y-%m-%d}T00:00:00Z"]),
+        axis=alt.Axis(title=f"lab day ({zone})", format="%d %b", labelAngle=0, tickCount="day"),
+    )
+    y_scale = alt.Scale(zero=False)
+    has_limits = bool(points["lower"].notna().any())
+    present = ["daily value"]
+    present += ["outside control limits"] if points["outside"].any() else []
+    present += ["EWMA (λ = 0.3)"] if has_limits and not view["counting"] else []
+    present += ["control limits"] if has_limits else []
+    present += ["level between changes", "change in level"] if len(changes) else []
+    present += ["note"] if len(notes) else []
+    colour = alt.Color("series:N", scale=_key(present), legend=alt.Legend(title=None, orient="top", direction="horizontal"))
+    tooltip = [
+        alt.Tooltip("day:N", title="lab day"),
+        alt.Tooltip("value:Q", title=f"{label(view['quantity'])} {unit}".strip(), format=".4g"),
+        alt.Tooltip("ci_low:Q", title="95 % low", format=".4g"),
+        alt.Tooltip("ci_high:Q", title="95 % high", format=".4g"),
+        alt.Tooltip("runs:Q"),
+        alt.Tooltip("shots:Q"),
+    ]
+    layers: list[alt.Chart] = []
+
+    if has_limits:
+        if not view["counting"]:
+            # A fitted figure's limits belong to the EWMA statistic, not to the daily values.
+            layers.append(
+                alt.Chart(points.assign(series="EWMA (λ = 0.3)"), description="ewma")
+                .mark_line(strokeWidth=1.5)
+                .encode(x=x, y=alt.Y("ewma:Q", title=title, scale=y_scale), color=colour, tooltip=[alt.Tooltip("day:N", title="lab day"), alt.Tooltip("ewma:Q", title="EWMA", format=".4g")])
+            )
+        bounds = points.melt(id_vars=["when", "day"], value_vars=["lower", "upper"], var_name="limit", value_name="bound").assign(series="control limits")
+        layers.append(
+            alt.Chart(bounds, description="control limits")
+            .mark_line(strokeDash=[5, 3], strokeWidth=1, interpolate="step")
+            .encode(x=x, y=alt.Y("bound:Q", title=title, scale=y_scale), detail="limit:N", color=colour, tooltip=[alt.Tooltip("day:N", title="lab day"), alt.Tooltip("limit:N"), alt.Tooltip("bound:Q", format=".4g")])
+        )
+
+    if len(changes):
+        layers.append(
+            alt.Chart(_levels(points, changes), description="levels")
+            .mark_rule(strokeWidth=2, opacity=0.8)
+            .encode(x=x, x2="end:T", y=alt.Y("level:Q", title=title, scale=y_scale), color=colour, tooltip=[alt.Tooltip("level:Q", format=".4g")])
+        )
+        layers.append(
+            alt.Chart(changes.assign(series="change in level"), description="changes")
+            .mark_rule(strokeWidth=2)
+            .encode(x=x, color=colour, tooltip=[alt.Tooltip("day:N", title="change on"), alt.Tooltip("before:Q", format=".4g"), alt.Tooltip("after:Q", format=".4g")])
+        )
+
+    if len(notes):
+        layers.append(
+            alt.Chart(notes.assign(series="note"), description="notes")
+            .mark_rule(strokeDash=[2, 2], strokeWidth=1.5)
+            .encode(x=x, color=colour, tooltip=[alt.Tooltip("local_time:N", title="at"), alt.Tooltip("text:N", title="note"), alt.Tooltip("run:N")])
+        )
+
+    layers.append(
+        alt.Chart(points, description="95% intervals")
+        .mark_rule(strokeWidth=1.5)
+        .encode(x=x, y=alt.Y("ci_low:Q", title=title, scale=y_scale), y2="ci_high:Q", color=colour, tooltip=tooltip)
+    )
+    layers.append(
+        alt.Chart(points, description="daily values")
+        .mark_circle(size=60, opacity=1)
+        .encode(x=x, y=alt.Y("value:Q", title=title, scale=y_scale), color=colour, tooltip=tooltip)
+    )
+    return alt.layer(*layers).properties(height=height, title=alt.TitleParams(f"{label(view['quantity'])}: {view['apparatus']}", anchor="start"))
+
+
+def _levels(points: pd.DataFrame, changes: pd.DataFrame) -> pd.DataFrame:
+    """Horizontal segments at the level before each change and after the last one."""
+    starts = [points["day"].iloc[0], *changes["day"]]
+    ends = [*changes["day"], None]
+    levels = [*changes["before"], changes["after"].iloc[-1]]
+    last = pd.Timestamp(points["day"].iloc[-1]) + pd.Timedelta(days=1)
+    return pd.DataFrame(
+        {
+            "when": [f"{s}T00:00:00Z" for s in starts],
+            "end": [f"{e}T00:00:00Z" if e else f"{last:%Y-%m-%d}T00:00:00Z" for e in ends],
+            "level": levels,
+            "series": "level between changes",
+        }
+    )
+
+
+def fit_chart(curve, *, height: int = 320) -> alt.LayerChart:
+    """Every shot's ``y`` against ``x`` with the stored fit drawn over them."""
+    x_title, y_title = axis_title(curve.x_name, curve.x_unit), axis_title(curve.y_name, curve.y_unit)
+    shots = pd.DataFrame({"x": curve.x, "y": curve.y, "series": "shot"})
+    model = pd.DataFrame({"x": curve.curve_x, "y": curve.curve_y, "series": "fit"})
+    colour = alt.Color("series:N", scale=alt.Scale(domain=["shot", "fit"], range=[PALETTE["blue"], PALETTE["vermillion"]]), legend=alt.Legend(title=None, orient="top"))
+    points = (
+        alt.Chart(shots, description="shots")
+        .mark_circle(size=28, opacity=0.55)
+        .encode(x=alt.X("x:Q", title=x_title), y=alt.Y("y:Q", title=y_title), color=colour, tooltip=[alt.Tooltip("x:Q", title=x_title, format=".4g"), alt.Tooltip("y:Q", title=y_title, format=".4g")])
+    )
+    line = alt.Chart(model, description="fit curve").mark_line(strokeWidth=2).encode(x="x:Q", y="y:Q", color=colour)
+    return alt.layer(points, line).properties(height=height, title=alt.TitleParams(curve.formula, anchor="start", fontSize=12))
+
+
+def site_map_chart(frame: pd.DataFrame, what: str, *, size: int = 260) -> alt.LayerChart:
+    """One square per lattice site, coloured by its fraction (cividis, 0 to 1)."""
+    rows = int(frame["row"].max()) + 1 if len(frame) else 1
+    columns = int(frame["column"].max()) + 1 if len(frame) else 1
+    cell = max(8, min(40, size // max(rows, columns)))
+    x = alt.X("column:O", title="site column", axis=alt.Axis(labelAngle=0, values=list(range(0, columns, max(1, columns // 10)))))
+    y = alt.Y("row:O", title="site row", axis=alt.Axis(values=list(range(0, rows, max(1, rows // 10)))))
+    tooltip = [alt.Tooltip("site:Q"), alt.Tooltip("row:Q"), alt.Tooltip("column:Q"), alt.Tooltip("value:Q", title=what, format=".3f"), alt.Tooltip("successes:Q"), alt.Tooltip("trials:Q")]
+    never = alt.Chart(frame[frame["trials"] == 0], description="never loaded").mark_rect(color="#BBBBBB").encode(x=x, y=y, tooltip=tooltip)
+    sites = (
+        alt.Chart(frame[frame["trials"] > 0], description="site map")
+        .mark_rect()
+        .encode(x=x, y=y, color=alt.Color("value:Q", title=f"{what} (dimensionless)", scale=alt.Scale(scheme="cividis", domain=[0, 1])), tooltip=tooltip)
+    )
+    return alt.layer(never, sites).properties(width=cell * columns, height=cell * rows, title=alt.TitleParams(f"{what} per site", anchor="start"))
+
+
+def scatter_chart(frame: pd.DataFrame, x: str, y: str, x_title: str, y_title: str, runs: list[str], *, height: int = 420) -> alt.Chart:
+    """Shots of several runs, ``y`` against ``x``, one colour per run."""
+    colours = alt.Scale(domain=runs, range=SERIES_COLOURS[: len(runs)])
+    x_type = "T" if x == "time" else "Q"
+    return (
+        alt.Chart(frame, description="shots")
+        .mark_circle(size=30, opacity=0.7)
+        .encode(
+            x=alt.X(f"{x}:{x_type}", title=x_title, scale=alt.Scale(zero=False, **({"type": "utc"} if x_type == "T" else {}))),
+            y=alt.Y(f"{y}:Q", title=y_title, scale=alt.Scale(zero=False)),
+            color=alt.Color("run:N", scale=colours, legend=alt.Legend(title="run", orient="right")),
+            tooltip=["run:N", "shot:Q", alt.Tooltip(f"{x}:{x_type}", title=x_title), alt.Tooltip(f"{y}:Q", title=y_title, format=".4g")],
+        )
+        .properties(height=height)
+    )

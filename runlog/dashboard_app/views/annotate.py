@@ -1,0 +1,96 @@
+"""Notes and alarms: add a note to a lab day or a run; acknowledge an alarm with a note."""
+
+from __future__ import annotations
+
+import datetime as dt
+from zoneinfo import ZoneInfo
+
+import pandas as pd
+import streamlit as st
+
+from runlog.dashboard_app import common
+from runlog.errors import RunlogError
+
+url = common.catalogue_url()
+zone = common.lab_timezone(url)
+st.title("Notes and alarms")
+st.caption("Notes appear on the drift charts at their time. The author defaults to the login name of the account running the dashboard.")
+
+names = common.apparatus_names(url)
+if not names:
+    st.info("The catalogue holds no runs yet.")
+    st.stop()
+
+
+def written(action) -> None:
+    """Run a write; on success rerun the page so every list shows it, and say so on top."""
+    try:
+        message = action()
+    except (RunlogError, ValueError) as error:
+        st.error(str(error))
+    else:
+        st.session_state["annotate-done"] = message
+        st.rerun()
+
+
+if "annotate-done" in st.session_state:
+    st.success(st.session_state.pop("annotate-done"))
+
+
+day_column, run_column, alarm_column = st.columns(3, gap="large")
+
+with day_column:
+    st.subheader("Note on a lab day", anchor=False)
+    with st.form("note-day", clear_on_submit=True):
+        apparatus = st.selectbox("apparatus", names, key="note-day-apparatus")
+        latest = max(common.lab_days(url, name)[0] for name in names)
+        day = st.date_input(f"lab day ({zone})", value=latest, key="note-day-day")
+        time = st.time_input(f"time ({zone})", value=dt.time(9, 0), key="note-day-time")
+        text = st.text_area("note", key="note-day-text", placeholder="e.g. realigned the lattice beam")
+        author = st.text_input("author (optional)", key="note-day-author")
+        if st.form_submit_button("Add note", type="primary"):
+            at = dt.datetime.combine(day, time, tzinfo=ZoneInfo(zone))
+            written(lambda: f"note {common.add_note(url, text, apparatus=apparatus, at=at, author=author)} added to {apparatus} on {day:%d %b %Y}")
+
+with run_column:
+    st.subheader("Note on a run", anchor=False)
+    apparatus = st.selectbox("apparatus", names, key="note-run-apparatus")
+    runs = common.runs_table(url, apparatus)
+    labels = {r.run: f"{r.run} · {r.sequence} · {r.local_start}" for r in runs.head(200).itertuples()}
+    with st.form("note-run", clear_on_submit=True):
+        run = st.selectbox("run (newest first)", list(labels), format_func=labels.get, key="note-run-run")
+        text = st.text_area("note", key="note-run-text", placeholder="e.g. camera saturated in the last shots")
+        author = st.text_input("author (optional)", key="note-run-author")
+        if st.form_submit_button("Add note", type="primary"):
+            written(lambda: f"note {common.add_note(url, text, run=run, apparatus=apparatus, author=author)} added to run {run}")
+
+with alarm_column:
+    st.subheader("Acknowledge an alarm", anchor=False)
+    open_alarms = common.alarms(url)
+    if not open_alarms:
+        st.success("No open alarms.")
+    else:
+        by_id = {a["id"]: a for a in open_alarms}
+        with st.form("acknowledge", clear_on_submit=True):
+            alarm = st.selectbox(
+                "open alarm",
+                list(by_id),
+                format_func=lambda i: f"#{i} {by_id[i]['date']} {by_id[i]['apparatus']} {common.label(str(by_id[i]['quantity']))}: {by_id[i]['reason']}",
+                key="acknowledge-alarm",
+            )
+            note = st.text_area("what it was", key="acknowledge-note", help="Becomes a note on the alarm's lab day.")
+            author = st.text_input("author (optional)", key="acknowledge-author")
+            if st.form_submit_button("Acknowledge", type="primary"):
+                written(lambda: f"alarm {alarm} acknowledged (note {common.acknowledge(url, alarm, note, author=author)})")
+
+st.subheader("Latest notes", anchor=False)
+notes = common.annotations(url)
+if notes.empty:
+    st.caption("No notes yet.")
+else:
+    latest_notes = notes.sort_values("at", ascending=False).head(50)
+    st.dataframe(
+        pd.DataFrame({f"at ({zone})": latest_notes["local_time"], "apparatus": latest_notes["apparatus"], "run": latest_notes["run"], "note": latest_notes["text"], "author": latest_notes["author"]}),
+        hide_index=True,
+        key="notes",
+    )

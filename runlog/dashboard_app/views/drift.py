@@ -1,0 +1,114 @@
+"""Drift: daily values of chosen figures with intervals, control limits, changes and notes.
+
+Everything here comes from the daily rollups through ``catalogue.drift`` (or, with a
+parameter filter, from the runs' stored figures): no shot leaves the server for this page.
+"""
+
+from __future__ import annotations
+
+import math
+
+import pandas as pd
+import streamlit as st
+
+from runlog.dashboard_app import charts, common
+from runlog.errors import RunlogError
+
+#: The panels the page opens on, when the apparatus has them.
+FIRST_PANELS = ("fill_fraction", "survival", "coherence_time")
+
+url = common.catalogue_url()
+zone = common.lab_timezone(url)
+st.title("Drift")
+
+names = common.apparatus_names(url)
+if not names:
+    st.info("The catalogue holds no runs yet.")
+    st.stop()
+
+top = st.columns([1, 3])
+apparatus = top[0].selectbox("apparatus", names, key="drift-apparatus")
+stored = common.figure_names(url, apparatus)
+quantities = top[1].multiselect(
+    "quantities",
+    sorted(stored),
+    default=[name for name in FIRST_PANELS if name in stored],
+    format_func=lambda name: common.axis_title(name, stored[name]).replace(" (dimensionless)", ""),
+    key=f"drift-quantities-{apparatus}",
+)
+
+days = common.lab_days(url, apparatus)
+first_day, last_day = days[-1], days[0]
+row = st.columns([2, 2, 1, 3])
+chosen_days = row[0].date_input(f"lab days ({zone})", value=(first_day, last_day), min_value=first_day, max_value=last_day, key=f"drift-days-{apparatus}")
+since, until = (tuple(chosen_days) + (last_day,))[:2] if chosen_days else (first_day, last_day)
+sequences = sorted(common.runs_table(url, apparatus)["sequence"].unique().tolist())
+sequence = row[1].selectbox("sequence", ["all sequences", *sequences], key=f"drift-sequence-{apparatus}")
+sequence = None if sequence == "all sequences" else sequence
+baseline_days = int(row[2].number_input("baseline days", min_value=2, max_value=60, value=7, key="drift-baseline", help="The first days with data that set the control limits."))
+
+known = common.parameters_table(url, apparatus)
+ranged = known[(known["kind"] == "number") & (known["max"] > known["min"])].set_index("name")
+filtered_by = row[3].multiselect(
+    "only runs with parameters in a range",
+    list(ranged.index),
+    format_func=lambda name: common.axis_title(name, ranged.at[name, "unit"]).replace(" (dimensionless)", ""),
+    key=f"drift-filter-{apparatus}",
+)
+ranges: list[tuple[str, float, float]] = []
+if filtered_by:
+    sliders = st.columns(len(filtered_by))
+    for column, name in zip(sliders, filtered_by):
+        low, high = float(ranged.at[name, "min"]), float(ranged.at[name, "max"])
+        step = 10.0 ** math.floor(math.log10((high - low) / 100.0))
+        picked = column.slider(common.axis_title(name, ranged.at[name, "unit"]), low, high, (low, high), step=step, key=f"drift-range-{apparatus}-{name}")
+        ranges.append((name, float(picked[0]), float(picked[1])))
+    st.caption("A run counts when its constant value lies in the range, or its whole scanned range does.")
+
+charts_column, causes_column = st.columns([3, 2], gap="large")
+all_changes: list[tuple[str, str, float, float]] = []
+with charts_column:
+    if not quantities:
+        st.info("Choose one or more quantities.")
+    for quantity in quantities:
+        try:
+            view = common.drift_view(url, quantity, apparatus, sequence, since, until, tuple(ranges), baseline_days)
+        except RunlogError as error:
+            common.show_error(error)
+            continue
+        if view["points"].empty:
+            st.info(f"No {common.label(quantity)} on these days with these filters.")
+            continue
+        st.altair_chart(charts.drift_chart(view, (since.isoformat(), until.isoformat()), zone), width="stretch", key=f"drift-chart-{quantity}")
+        baseline = view["baseline"]
+        detail = f"limits: {view['method']}" + (f", baseline {baseline[0]} to {baseline[1]}" if baseline else "") if view["method"] else view["note"]
+        st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}.")
+        all_changes += [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
+
+with causes_column:
+    st.subheader("What else changed", anchor=False)
+    if not all_changes:
+        st.info("No change in level among these panels. A detected change lists here the parameters, measurements and figures that moved with it.")
+    else:
+        picked = st.selectbox(
+            "change",
+            all_changes,
+            format_func=lambda c: f"{common.label(c[0])} on {c[1]}: {c[2]:.4g} → {c[3]:.4g}",
+            key=f"drift-change-{apparatus}",
+        )
+        ranked = common.what_else_changed(url, picked[0], pd.Timestamp(picked[1]).date(), apparatus)
+        if ranked.empty:
+            st.info("Nothing to compare on both sides of this day.")
+        else:
+            st.dataframe(
+                ranked.rename(columns={"effect_size": "Hedges' g", "p_value": "Welch p", "before_mean": "before", "after_mean": "after"}),
+                hide_index=True,
+                key="drift-causes",
+                column_config={
+                    "Hedges' g": st.column_config.NumberColumn(format="%+.2f"),
+                    "Welch p": st.column_config.NumberColumn(format="%.2g"),
+                    "before": st.column_config.NumberColumn(format="%.4g"),
+                    "after": st.column_config.NumberColumn(format="%.4g"),
+                },
+            )
+        st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; ranked by |Hedges' g|. It points at likely causes, it proves none; p-values are not corrected for the number of candidates.")

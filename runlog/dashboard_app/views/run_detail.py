@@ -1,0 +1,115 @@
+"""Run detail: one run's parameters, figures, fit over its shots, site maps and shot table."""
+
+from __future__ import annotations
+
+import pandas as pd
+import streamlit as st
+
+from runlog.dashboard_app import charts, common
+from runlog.errors import RunlogError
+
+url = common.catalogue_url()
+zone = common.lab_timezone(url)
+st.title("Run detail")
+
+names = common.apparatus_names(url)
+if not names:
+    st.info("The catalogue holds no runs yet.")
+    st.stop()
+
+pick = st.columns([1, 1, 2])
+apparatus = pick[0].selectbox("apparatus", names, key="run-apparatus")
+days = common.lab_days(url, apparatus)
+day = pick[1].selectbox(f"lab day ({zone})", days, format_func=lambda d: f"{d:%a %d %b %Y}", key=f"run-day-{apparatus}")
+runs = common.runs_table(url, apparatus)
+runs = runs[runs["day"] == day].sort_values("started")
+labels = {r.run: f"{r.run} · {r.sequence} · {r.local_start[11:]} · {r.shots} shots" for r in runs.itertuples()}
+run = pick[2].selectbox("run", list(labels), format_func=labels.get, key=f"run-run-{apparatus}-{day}")
+
+try:
+    info = common.run_info(url, run, apparatus)
+except RunlogError as error:
+    common.show_error(error)
+    st.stop()
+
+started = common.wall_clock(pd.Series([info.started, info.finished]), zone).str.replace("T", " ").str[:19]
+st.subheader(f"{info.run} · {info.sequence} on {info.apparatus}", anchor=False)
+st.caption(
+    f"{info.shots} shots, {started[0]} to {started[1][11:]} ({zone})"
+    + (f" · operator {info.operator}" if info.operator else "")
+    + (f" · tags: {', '.join(info.tags)}" if info.tags else "")
+)
+if info.notes:
+    st.info(info.notes, icon=":material/sticky_note_2:")
+
+left, right = st.columns([2, 3], gap="large")
+with left:
+    st.markdown("**Parameters**")
+    rows = []
+    for name, entry in info.parameters.items():
+        if entry["scanned"]:
+            value = f"{entry['min']:g} … {entry['max']:g}" if "min" in entry else "varies"
+        else:
+            value = entry["value"]
+            value = f"{value:g}" if isinstance(value, float) else str(value)
+        rows.append({"parameter": name, "value": value, "unit": common.unit_text(entry["unit"]), "scanned": bool(entry["scanned"])})
+    st.dataframe(pd.DataFrame(rows, columns=["parameter", "value", "unit", "scanned"]), hide_index=True, key="run-parameters", column_config={"scanned": st.column_config.CheckboxColumn("scanned")})
+
+    st.markdown("**Figures**")
+    figures = pd.DataFrame(
+        [
+            {
+                "figure": name,
+                "value": common.with_uncertainty(f["value"], f.get("stderr"), f.get("unit")),
+                "95 % interval": f"[{f['ci_low']:.4g}, {f['ci_high']:.4g}]" if "ci_low" in f else "",
+                "method": f["method"],
+            }
+            for name, f in info.figures.items()
+        ],
+        columns=["figure", "value", "95 % interval", "method"],
+    )
+    if figures.empty:
+        st.caption("No figures stored for this run.")
+    else:
+        st.dataframe(figures, hide_index=True, key="run-figures")
+
+with right:
+    fitted = {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures)
+    if fitted:
+        st.markdown("**Fit over the shots**")
+        scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
+        choose = st.columns(3)
+        x = choose[0].selectbox("x (scanned parameter)", scanned, key="run-fit-x") if len(scanned) > 1 else (scanned[0] if scanned else None)
+        measured = info.measurements
+        # The signal a fringe is fitted to is a fraction; offer that one first.
+        preferred = next((i for i, n in enumerate(measured) if "fraction" in n), 0)
+        y = choose[1].selectbox("y (measurement)", measured, index=preferred, key="run-fit-y")
+        envelope = "gaussian"
+        if "coherence_time" in info.figures:
+            envelope = choose[2].selectbox("envelope", ["gaussian", "exponential"], key="run-fit-envelope", help="The stored figures do not say which envelope the fit used; the rules default to gaussian.")
+        try:
+            curve = common.fit_curve(url, info.run, info.apparatus, x, y, envelope)
+        except RunlogError as error:
+            common.show_error(error)
+        else:
+            st.altair_chart(charts.fit_chart(curve), width="stretch", key="run-fit-chart")
+            if curve.offset_estimated:
+                st.caption(f"The offset a = {curve.offset:.4g} is not stored with Ramsey figures; it is the least-squares value for the stored C0, T, δ and φ.")
+
+    loading = [name for name, image in info.images.items() if image["role"] == "loading"]
+    if loading:
+        st.markdown("**Per site**")
+        maps = st.columns(2)
+        for column, (name, what) in zip(maps, (("fill", "fill fraction"), ("survival", "survival"))):
+            try:
+                frame = common.site_map(url, info.run, info.apparatus, name)
+            except RunlogError:
+                continue  # a run without a survival image has no survival map
+            column.altair_chart(charts.site_map_chart(frame, what), key=f"run-map-{name}")
+        st.caption("Fill: shots with the site loaded / shots. Survival: shots with the loaded site kept / shots with it loaded. Grey: never loaded.")
+
+st.markdown("**Shots**")
+shots, units = common.shots_table(url, info.run, info.apparatus)
+shots = shots.assign(time=common.wall_clock(shots["time"], zone).str.replace("T", " ").str.rstrip("Z"))
+shots = shots.rename(columns={column: f"{column} [{common.unit_text(unit)}]" for column, unit in units.items() if unit} | {"time": f"time ({zone})"})
+st.dataframe(shots.drop(columns=["run"]), hide_index=True, key="run-shots", height=320)

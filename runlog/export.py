@@ -1,0 +1,573 @@
+"""Exporting the shots a filter selects as a Frictionless Data Package (an open standard).
+
+Owns the package layout and its guarantees. A package is a folder holding:
+
+* ``shots.parquet`` (or ``.csv``): one row per shot, as :mod:`runlog.selection` gives it,
+  plus ``occ.<image>`` columns (packed bits as hex) when asked for;
+* ``runs``: one row per run with shots in the export; ``figures``: the stored figures
+  of those runs (value, standard error, interval, unit, method); ``images`` (with
+  occupancy only): each run's images, their role, site count and lattice shape;
+* ``datapackage.json``: the Data Package manifest (https://datapackage.org): one
+  resource per data file with its format, size, SHA-256 and Table Schema (field types,
+  units in the field property ``unit``), and the provenance: filter, runlog version,
+  schema revision, catalogue (credentials redacted), lab time zone and the SHA-256 of
+  the ingested files the exported runs came from;
+* ``README.md`` for people, and ``export.toml``, the spec that re-runs the export.
+
+Data files are deterministic: the same filter on the same catalogue gives byte-identical
+files (rows sorted, fixed writer options, no time of writing inside); only the
+manifest's ``created`` differs. A package is written into a temporary folder beside
+``out`` and renamed into place at the end, so ``out`` never holds half a package.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import json
+import os
+import shutil
+import tempfile
+import tomllib
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+from sqlalchemy import and_, select
+
+from runlog.errors import ConfigError
+from runlog.selection import Selection, select_table
+from runlog.store import schema as s
+from runlog.store.engine import redact
+
+__all__ = ["FORMATS", "ExportResult", "export", "export_spec"]
+
+#: Data file formats an export can write.
+FORMATS = ("parquet", "csv")
+
+MANIFEST = "datapackage.json"
+SPEC = "export.toml"
+README = "README.md"
+
+# Fixed Parquet writer options: byte-identical files for identical tables.
+_PARQUET_OPTIONS = {
+    "compression": "zstd",
+    "compression_level": 3,
+    "use_dictionary": True,
+    "write_statistics": True,
+    "version": "2.6",
+    "data_page_version": "1.0",
+    "row_group_size": 1 << 20,
+    "data_page_size": 1 << 20,
+}
+_MEDIATYPES = {"parquet": "application/vnd.apache.parquet", "csv": "text/csv"}
+
+
+@dataclass(frozen=True)
+class ExportResult:
+    """What an export wrote. ``data`` maps each data file to ``"sha256:<hex>"``.
+
+    For a re-run from a spec, ``previous`` holds the spec's earlier hashes and ``same``
+    says whether every data file hashes as before (``None`` for a first export).
+    """
+
+    out: Path
+    shots: int
+    runs: int
+    data: dict[str, str]
+    created: str
+    previous: dict[str, str] | None = None
+    changed: tuple[str, ...] = field(default=())
+
+    @property
+    def same(self) -> bool | None:
+        return None if self.previous is None else not self.changed
+
+    def as_dict(self) -> dict[str, object]:
+        out: dict[str, object] = {"out": str(self.out), "shots": self.shots, "runs": self.runs, "data": self.data, "created": self.created}
+        if self.previous is not None:
+            out["same"] = self.same
+            out["changed"] = list(self.changed)
+        return out
+
+
+# --- tables ----------------------------------------------------------------------------
+
+
+def _runs_table(connection, run_ids: np.ndarray, per_run_shots: dict[int, int], zone: ZoneInfo) -> tuple[pa.Table, list[int]]:
+    runs, apparatus, tags = s.Run.__table__, s.Apparatus.__table__, s.RunTag.__table__
+    wanted = [int(r) for r in np.unique(run_ids)]
+    rows = []
+    for chunk in _chunks(wanted):
+        rows += connection.execute(
+            select(runs.c.id, runs.c.key, apparatus.c.name, runs.c.sequence, runs.c.started, runs.c.finished, runs.c.day, runs.c.operator, runs.c.shot_count)
+            .join(apparatus, apparatus.c.id == runs.c.apparatus_id)
+            .where(runs.c.id.in_(chunk))
+        ).all()
+    tag_lists: dict[int, list[str]] = {}
+    for chunk in _chunks(wanted):
+        for run_id, tag in connection.execute(select(tags.c.run_id, tags.c.tag).where(tags.c.run_id.in_(chunk))):
+            tag_lists.setdefault(int(run_id), []).append(tag)
+    rows.sort(key=lambda r: (r.name, r.key))
+    order = [int(r.id) for r in rows]
+    table = pa.table(
+        {
+            "run": pa.array([r.key for r in rows], pa.string()),
+            "apparatus": pa.array([r.name for r in rows], pa.string()),
+            "sequence": pa.array([r.sequence for r in rows], pa.string()),
+            "started": pa.array([r.started for r in rows], pa.timestamp("us", tz="UTC")),
+            "finished": pa.array([r.finished for r in rows], pa.timestamp("us", tz="UTC")),
+            "day": pa.array([_as_date(r.day) if r.day is not None else r.started.astimezone(zone).date() for r in rows], pa.date32()),
+            "operator": pa.array([r.operator for r in rows], pa.string()),
+            "tags": pa.array([",".join(sorted(tag_lists.get(int(r.id), []))) or None for r in rows], pa.string()),
+            "shots": pa.array([int(r.shot_count) for r in rows], pa.int64()),
+            "shots_exported": pa.array([per_run_shots[int(r.id)] for r in rows], pa.int64()),
+        }
+    )
+    return table, order
+
+
+def _figures_table(connection, run_order: list[int], runs_table: pa.Table) -> pa.Table:
+    figures = s.FigureRow.__table__
+    position = {rid: i for i, rid in enumerate(run_order)}
+    rows = []
+    for chunk in _chunks(run_order):
+        rows += connection.execute(
+            select(figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials).where(figures.c.run_id.in_(chunk))
+        ).all()
+    rows.sort(key=lambda r: (position[int(r.run_id)], r.name))
+    keys, apparatus = runs_table.column("run").to_pylist(), runs_table.column("apparatus").to_pylist()
+    return pa.table(
+        {
+            "run": pa.array([keys[position[int(r.run_id)]] for r in rows], pa.string()),
+            "apparatus": pa.array([apparatus[position[int(r.run_id)]] for r in rows], pa.string()),
+            "figure": pa.array([r.name for r in rows], pa.string()),
+            "kind": pa.array([r.kind for r in rows], pa.string()),
+            "value": pa.array([r.value for r in rows], pa.float64()),
+            "stderr": pa.array([r.stderr for r in rows], pa.float64()),
+            "ci_low": pa.array([r.ci_low for r in rows], pa.float64()),
+            "ci_high": pa.array([r.ci_high for r in rows], pa.float64()),
+            "unit": pa.array([r.unit or "" for r in rows], pa.string()),
+            "method": pa.array([r.method for r in rows], pa.string()),
+            "method_version": pa.array([r.method_version for r in rows], pa.string()),
+            "successes": pa.array([r.successes for r in rows], pa.int64()),
+            "trials": pa.array([r.trials for r in rows], pa.int64()),
+        }
+    )
+
+
+def _occupancy(connection, selection: Selection, run_order: list[int], runs_table: pa.Table) -> tuple[dict[str, pa.Array], pa.Table]:
+    """``occ.<image>`` columns (hex of the packed bits, row order of the selection) and
+    the images table of the exported runs."""
+    images, occupancy = s.Image.__table__, s.Occupancy.__table__
+    position = {rid: i for i, rid in enumerate(run_order)}
+    image_rows = []
+    for chunk in _chunks(run_order):
+        image_rows += connection.execute(select(images.c.id, images.c.run_id, images.c.name, images.c.role, images.c.sites, images.c.shape).where(images.c.run_id.in_(chunk))).all()
+    image_rows.sort(key=lambda r: (position[int(r.run_id)], r.name))
+    keys, apparatus = runs_table.column("run").to_pylist(), runs_table.column("apparatus").to_pylist()
+    images_table = pa.table(
+        {
+            "run": pa.array([keys[position[int(r.run_id)]] for r in image_rows], pa.string()),
+            "apparatus": pa.array([apparatus[position[int(r.run_id)]] for r in image_rows], pa.string()),
+            "image": pa.array([r.name for r in image_rows], pa.string()),
+            "role": pa.array([r.role for r in image_rows], pa.string()),
+            "sites": pa.array([int(r.sites) for r in image_rows], pa.int64()),
+            "shape": pa.array([r.shape for r in image_rows], pa.string()),
+        }
+    )
+    image_name = {int(r.id): r.name for r in image_rows}
+    names = sorted(set(image_name.values()))
+    columns: dict[str, list[str | None]] = {name: [None] * len(selection.shot_ids) for name in names}
+    # Rows of the selection by shot id, to place each blob.
+    by_id = np.argsort(selection.shot_ids)
+    sorted_ids = selection.shot_ids[by_id]
+    image_ids = list(image_name)
+    for chunk in _chunks(image_ids):
+        result = connection.execution_options(stream_results=True).execute(select(occupancy.c.shot_id, occupancy.c.image_id, occupancy.c.bits).where(occupancy.c.image_id.in_(chunk)))
+        while rows := result.fetchmany(100_000):
+            shot_ids = np.fromiter((r[0] for r in rows), np.int64, len(rows))
+            where = np.searchsorted(sorted_ids, shot_ids)
+            where = np.minimum(where, len(sorted_ids) - 1) if len(sorted_ids) else where
+            for (shot_id, image_id, bits), place in zip(rows, where):
+                if len(sorted_ids) and sorted_ids[place] == shot_id:
+                    columns[image_name[int(image_id)]][int(by_id[place])] = bytes(bits).hex()
+    return {f"occ.{name}": pa.array(values, pa.string()) for name, values in columns.items()}, images_table
+
+
+def _chunks(values: list[int], size: int = 10_000):
+    # SQLite allows 32 766 bound values per statement; stay well below.
+    for start in range(0, len(values), size):
+        yield values[start : start + size]
+
+
+def _as_date(value) -> dt.date:
+    return value if isinstance(value, dt.date) else dt.date.fromisoformat(str(value))
+
+
+# --- writing ---------------------------------------------------------------------------
+
+
+def _sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        while block := handle.read(1 << 20):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def _write(table: pa.Table, path: Path, format: str) -> None:
+    if format == "parquet":
+        # Only the per-field units go into the file's metadata; nothing that changes.
+        pq.write_table(table, path, **_PARQUET_OPTIONS)
+        return
+    columns = []
+    for column in table.columns:
+        if pa.types.is_timestamp(column.type):
+            column = pc.strftime(column, format="%Y-%m-%dT%H:%M:%SZ")
+        columns.append(column)
+    plain = pa.Table.from_arrays(columns, names=table.column_names)
+    pacsv.write_csv(plain, path, pacsv.WriteOptions(include_header=True, batch_size=65536, quoting_style="needed"))
+
+
+def _field_type(data_type: pa.DataType) -> str:
+    if pa.types.is_integer(data_type):
+        return "integer"
+    if pa.types.is_floating(data_type):
+        return "number"
+    if pa.types.is_boolean(data_type):
+        return "boolean"
+    if pa.types.is_timestamp(data_type):
+        return "datetime"
+    if pa.types.is_date(data_type):
+        return "date"
+    return "string"
+
+
+_DESCRIPTIONS = {
+    "run": "the run's key (unique per apparatus)",
+    "apparatus": "the machine the shot ran on",
+    "sequence": "the sequence's name",
+    "shot": "the shot's index within its run",
+    "time": "when the shot ran (UTC)",
+    "started": "time of the run's first shot (UTC)",
+    "finished": "time of the run's last shot (UTC)",
+    "day": "the lab day the run started on (catalogue's lab time zone)",
+    "operator": "who ran it",
+    "tags": "the run's labels, comma-separated",
+    "shots": "shots of the run in the catalogue",
+    "shots_exported": "shots of the run in this export",
+    "figure": "the figure of merit's name",
+    "kind": "the family of figures it belongs to",
+    "value": "the figure's value (in 'unit')",
+    "stderr": "its standard error",
+    "ci_low": "lower end of its confidence interval",
+    "ci_high": "upper end of its confidence interval",
+    "unit": "the unit of value, stderr and interval",
+    "method": "how it was computed",
+    "method_version": "version of that method",
+    "successes": "counted successes (counting figures)",
+    "trials": "counted trials (counting figures)",
+    "image": "the image's name",
+    "role": "loading, survival or other",
+    "sites": "lattice sites in the image",
+    "shape": "lattice shape, rows,columns",
+}
+
+
+def _schema(table: pa.Table, units: dict[str, str], primary_key: list[str], foreign_key: bool) -> dict[str, object]:
+    fields = []
+    for item in table.schema:
+        entry: dict[str, object] = {"name": item.name, "type": _field_type(item.type)}
+        unit = units.get(item.name, "")
+        if item.name.startswith("p."):
+            entry["description"] = f"parameter '{item.name[2:]}'" + (f", in {unit}" if unit else "")
+        elif item.name.startswith("m."):
+            entry["description"] = f"measurement '{item.name[2:]}'" + (f", in {unit}" if unit else "")
+        elif item.name.startswith("occ."):
+            entry["description"] = (
+                f"site occupancy of image '{item.name[4:]}': numpy.packbits (big-endian) of one boolean per site, "
+                "as hex; the run's site count and lattice shape are in the images resource"
+            )
+        elif item.name in _DESCRIPTIONS:
+            entry["description"] = _DESCRIPTIONS[item.name]
+        if unit:
+            entry["unit"] = unit  # runlog's extension property: the unit values are stored in
+        if item.name in primary_key:
+            entry["constraints"] = {"required": True}
+        fields.append(entry)
+    out: dict[str, object] = {"fields": fields, "missingValues": [""]}
+    if primary_key:
+        out["primaryKey"] = primary_key
+    if foreign_key:
+        out["foreignKeys"] = [{"fields": ["run", "apparatus"], "reference": {"resource": "runs", "fields": ["run", "apparatus"]}}]
+    return out
+
+
+def _resource(name: str, path: Path, format: str, schema: dict[str, object], description: str) -> dict[str, object]:
+    entry: dict[str, object] = {
+        "name": name,
+        "type": "table",
+        "path": path.name,
+        "format": format,
+        "mediatype": _MEDIATYPES[format],
+    }
+    if format == "csv":
+        entry["encoding"] = "utf-8"
+        entry["dialect"] = {"header": True, "delimiter": ","}
+    entry.update({"bytes": path.stat().st_size, "hash": f"sha256:{_sha256(path)}", "description": description, "schema": schema})
+    return entry
+
+
+def _source_files(connection, runs_table: pa.Table) -> list[dict[str, object]]:
+    """The ingested files that wrote shots of the exported runs, from the ingest log.
+
+    The log names runs by key only; a key used on two apparatus names the files of both.
+    """
+    keys = set(runs_table.column("run").to_pylist())
+    log = s.IngestLogEntry.__table__
+    found: dict[tuple[str, str], dict[str, object]] = {}
+    for file, sha256, runs, shots in connection.execute(select(log.c.file, log.c.sha256, log.c.runs, log.c.shots).where(log.c.status == "ingested")):
+        named = [k for k in (runs or "").split(",") if k]
+        common = sorted(keys.intersection(named))
+        if common:
+            found[(file, sha256)] = {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": common}
+    return [found[k] for k in sorted(found)]
+
+
+def _headline(figures: pa.Table) -> list[dict[str, object]]:
+    out = []
+    if figures.num_rows == 0:
+        return out
+    names = figures.column("figure").to_pylist()
+    values = figures.column("value").to_numpy(zero_copy_only=False)
+    units = figures.column("unit").to_pylist()
+    successes = figures.column("successes").to_pylist()
+    trials = figures.column("trials").to_pylist()
+    for name in sorted(set(names)):
+        rows = [i for i, n in enumerate(names) if n == name]
+        picked = values[rows]
+        entry: dict[str, object] = {
+            "figure": name,
+            "unit": sorted({units[i] for i in rows})[0] if len({units[i] for i in rows}) == 1 else "mixed",
+            "runs": len(rows),
+            "median": float(np.median(picked)),
+            "min": float(picked.min()),
+            "max": float(picked.max()),
+        }
+        counted = [(successes[i], trials[i]) for i in rows if successes[i] is not None and trials[i]]
+        if len(counted) == len(rows):
+            entry["pooled"] = sum(c for c, _ in counted) / sum(t for _, t in counted)
+        out.append(entry)
+    return out
+
+
+def _readme(title: str, where: str, shots: pa.Table, runs: pa.Table, headline: list[dict[str, object]], zone: ZoneInfo, files: list[tuple[str, str]]) -> str:
+    lines = [f"# {title}", "", "Shots selected from a runlog catalogue with the filter", "", f"    {where}", ""]
+    apparatus = sorted(set(runs.column("apparatus").to_pylist()))
+    lines.append(f"- {shots.num_rows} shots in {runs.num_rows} runs on {len(apparatus)} apparatus ({', '.join(apparatus) or 'none'})")
+    if shots.num_rows:
+        first = pc.min(shots.column("time")).as_py()
+        last = pc.max(shots.column("time")).as_py()
+        lines.append(f"- from {first.isoformat()} to {last.isoformat()} (lab days {first.astimezone(zone).date()} to {last.astimezone(zone).date()}, {zone.key})")
+    sequences = sorted(set(runs.column("sequence").to_pylist()))
+    lines.append(f"- sequences: {', '.join(sequences) or 'none'}")
+    parameters = [n[2:] for n in shots.column_names if n.startswith("p.")]
+    measurements = [n[2:] for n in shots.column_names if n.startswith("m.")]
+    lines.append(f"- parameters: {', '.join(parameters) or 'none'}")
+    lines.append(f"- measurements: {', '.join(measurements) or 'none'}")
+    lines.append("")
+    if headline:
+        lines += ["## Figures of the exported runs", "", "| figure | unit | runs | median | min | max | pooled counts |", "|---|---|---|---|---|---|---|"]
+        for h in headline:
+            pooled = f"{h['pooled']:.4g}" if "pooled" in h else ""
+            lines.append(f"| {h['figure']} | {h['unit']} | {h['runs']} | {h['median']:.4g} | {h['min']:.4g} | {h['max']:.4g} | {pooled} |")
+        lines += ["", "Medians and ranges are over runs; pooled counts divide the summed successes by the summed trials.", ""]
+    lines += ["## Files", ""]
+    lines += [f"- `{name}`: {text}" for name, text in files]
+    lines += [
+        f"- `{MANIFEST}`: the Frictionless Data Package manifest (https://datapackage.org): field types, units, "
+        "SHA-256 of every data file and the provenance of this export",
+        f"- `{SPEC}`: re-runs this export (`runlog export --spec {SPEC}`) and says whether the data still hash the same",
+        "",
+        "Units of parameters and measurements are in each field's `unit` in the manifest.",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def _toml_string(value: str) -> str:
+    # JSON's string escapes (with ensure_ascii) are valid TOML basic strings.
+    return json.dumps(value, ensure_ascii=True)
+
+
+def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: Path, data: dict[str, str]) -> str:
+    lines = [
+        "# A runlog export: `runlog export --spec export.toml` writes it again and says",
+        "# whether the data files still hash as listed under [data].",
+        f"where = {_toml_string(where)}",
+        f"format = {_toml_string(format)}",
+        f"with_occupancy = {'true' if with_occupancy else 'false'}",
+        f"title = {_toml_string(title)}",
+        f"out = {_toml_string(str(out))}",
+        "",
+        "[data]",
+    ]
+    lines += [f"{_toml_string(name)} = {_toml_string(digest)}" for name, digest in sorted(data.items())]
+    return "\n".join(lines) + "\n"
+
+
+def _holds_files(path: Path) -> bool:
+    return path.exists() and (not path.is_dir() or any(path.iterdir()))
+
+
+def _catalogue_url(catalogue) -> str:
+    url = getattr(catalogue, "url", None)
+    return redact(url) if isinstance(url, str) else redact(catalogue.engine.url)
+
+
+def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", with_occupancy: bool = False, title: str | None = None, overwrite: bool = False) -> ExportResult:
+    """Write the shots ``where`` selects as a Data Package in the folder ``out``.
+
+    ``format`` is ``"parquet"`` or ``"csv"``; ``with_occupancy`` adds the ``occ.<image>``
+    columns and the images resource. An ``out`` that exists and holds files is refused
+    (``FileExistsError``) unless ``overwrite``; it is then replaced as a whole.
+    """
+    from runlog import __version__
+
+    if format not in FORMATS:
+        raise ValueError(f"unknown export format '{format}': use {' or '.join(FORMATS)}")
+    if not where or not where.strip():
+        raise ValueError("an export needs a filter; 'shot >= 0' selects every shot")
+    out = Path(out).absolute()
+    if _holds_files(out) and not overwrite:
+        raise FileExistsError(f"{out} already holds files: choose another folder or allow overwriting")
+    title = title or f"runlog export: {where}"
+    engine = catalogue.engine
+    selection = select_table(catalogue, where)
+    with engine.connect() as connection:
+        zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
+        unique, counts = np.unique(selection.run_ids, return_counts=True)
+        runs_table, run_order = _runs_table(connection, selection.run_ids, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
+        figures_table = _figures_table(connection, run_order, runs_table)
+        shots_table = selection.table
+        images_table = None
+        if with_occupancy:
+            occupancy_columns, images_table = _occupancy(connection, selection, run_order, runs_table)
+            for name, values in occupancy_columns.items():
+                shots_table = shots_table.append_column(name, values)
+        sources = _source_files(connection, runs_table)
+
+    out.parent.mkdir(parents=True, exist_ok=True)
+    staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    try:
+        suffix = "parquet" if format == "parquet" else "csv"
+        tables = [
+            ("shots", shots_table, selection.units, ["run", "apparatus", "shot"], True, "one row per shot: run fields, time, parameters (p.), measurements (m.)" + (", occupancy (occ.)" if with_occupancy else "")),
+            ("runs", runs_table, {}, ["run", "apparatus"], False, "one row per run with shots in this export"),
+            ("figures", figures_table, {}, ["run", "apparatus", "figure"], True, "the stored figures of merit of those runs, one row per run and figure"),
+        ]
+        if images_table is not None:
+            tables.append(("images", images_table, {}, ["run", "apparatus", "image"], True, "each run's occupancy images: role, site count, lattice shape"))
+        resources, data = [], {}
+        for name, table, units, key, linked, description in tables:
+            path = staging / f"{name}.{suffix}"
+            _write(table, path, format)
+            resource = _resource(name, path, format, _schema(table, units, key, linked), description)
+            resources.append(resource)
+            data[path.name] = str(resource["hash"])
+        created = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+        manifest = {
+            "$schema": "https://datapackage.org/profiles/2.0/datapackage.json",
+            "name": "runlog-export",
+            "title": title,
+            "description": f"Shots selected from a runlog catalogue with the filter: {where}",
+            "created": created,
+            "resources": resources,
+            "provenance": {
+                "filter": where,
+                "runlog_version": __version__,
+                "schema_revision": s.SCHEMA_REVISION,
+                "catalogue": _catalogue_url(catalogue),
+                "lab_timezone": zone.key,
+                "format": format,
+                "with_occupancy": with_occupancy,
+                "counts": {"shots": shots_table.num_rows, "runs": runs_table.num_rows, "figures": figures_table.num_rows},
+                "source_files": sources,
+            },
+        }
+        (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        headline = _headline(figures_table)
+        files = [(f"{name}.{suffix}", description) for name, _, _, _, _, description in tables]
+        (staging / README).write_text(_readme(title, where, shots_table, runs_table, headline, zone, files), encoding="utf-8")
+        (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data), encoding="utf-8")
+        _move_into_place(staging, out, overwrite)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    return ExportResult(out, shots_table.num_rows, runs_table.num_rows, data, created)
+
+
+def _move_into_place(staging: Path, out: Path, overwrite: bool) -> None:
+    if out.exists():
+        if _holds_files(out) and not overwrite:
+            raise FileExistsError(f"{out} already holds files: choose another folder or allow overwriting")
+        retired = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
+        os.replace(out, retired)
+        os.replace(staging, out)
+        if retired.is_dir():
+            shutil.rmtree(retired, ignore_errors=True)
+        else:
+            retired.unlink(missing_ok=True)
+        return
+    os.replace(staging, out)
+
+
+def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = None) -> ExportResult:
+    """Run a saved export again from its ``export.toml`` and compare the data hashes.
+
+    ``out`` defaults to the folder holding the spec when that folder is the package the
+    spec came with (it holds ``datapackage.json``), else to the spec's ``out``. That
+    package is replaced; any other folder holding files is refused.
+    """
+    spec_path = Path(spec_path)
+    try:
+        spec = tomllib.loads(spec_path.read_text(encoding="utf-8"))
+    except (OSError, tomllib.TOMLDecodeError) as error:
+        raise ConfigError(str(spec_path), f"cannot read the export spec: {error}") from None
+    for key in ("where", "format"):
+        if not isinstance(spec.get(key), str):
+            raise ConfigError(str(spec_path), f"the export spec needs '{key}' (text)")
+    unknown = sorted(set(spec) - {"where", "format", "with_occupancy", "title", "out", "data"})
+    if unknown:
+        raise ConfigError(str(spec_path), f"unknown key(s) {', '.join(unknown)} in the export spec")
+    previous = {str(k): str(v) for k, v in (spec.get("data") or {}).items()}
+    if out is None:
+        folder = spec_path.absolute().parent
+        if (folder / MANIFEST).exists():
+            out = folder
+        elif isinstance(spec.get("out"), str):
+            out = Path(spec["out"])
+        else:
+            raise ConfigError(str(spec_path), "the export spec names no 'out' folder")
+    out = Path(out).absolute()
+    replace = (out / MANIFEST).exists() or not _holds_files(out)
+    if not replace:
+        raise FileExistsError(f"{out} holds files that are not a runlog export: give another out folder")
+    result = export(
+        catalogue,
+        spec["where"],
+        out,
+        format=spec["format"],
+        with_occupancy=bool(spec.get("with_occupancy", False)),
+        title=spec.get("title"),
+        overwrite=True,
+    )
+    changed = tuple(sorted(name for name in set(previous) | set(result.data) if previous.get(name) != result.data.get(name)))
+    return ExportResult(result.out, result.shots, result.runs, result.data, result.created, previous, changed)

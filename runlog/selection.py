@@ -1,0 +1,269 @@
+"""The shots a filter selects, as one table: run fields, parameters and measurements.
+
+Owns the step from a filter (:mod:`runlog.filters`) to a table of shots. One SQL query
+selects the shots (run pruning first, then the exact shot condition) with the per-shot
+values of the parameters scanned in the candidate runs and the measurement columns; it
+is read in chunks. Values constant over a run are not read per shot: they are spread from
+``run_parameters`` over the run's rows afterwards, as the catalogue stores them.
+
+Rows are sorted by apparatus, run and shot; columns are ``run``, ``apparatus``,
+``sequence``, ``shot``, ``time``, then ``p.<name>`` and ``m.<name>`` (sorted by name) for
+the parameters and measurements that at least one selected shot has. Units are in
+``DataFrame.attrs["units"]`` (Arrow: the field metadata ``unit``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+from sqlalchemy import BigInteger, Column, Float, MetaData, Table, and_, cast, extract, select, type_coerce
+from sqlalchemy.engine import Connection
+
+from runlog.errors import NotFoundError
+from runlog.filters import CompiledFilter, compile_selection
+from runlog.store import schema as s
+
+if TYPE_CHECKING:
+    import pandas as pd
+
+__all__ = ["BASE_COLUMNS", "Selection", "select_shots", "select_arrow", "select_table"]
+
+#: The columns every selection starts with.
+BASE_COLUMNS = ("run", "apparatus", "sequence", "shot", "time")
+
+# Rows fetched per round trip: large enough that per-chunk work is amortised, small
+# enough that one chunk of Python row objects stays in the tens of megabytes.
+CHUNK_ROWS = 100_000
+
+_runs = s.Run.__table__
+_shots = s.Shot.__table__
+_run_parameters = s.RunParameter.__table__
+_shot_parameters = s.ShotParameter.__table__
+_apparatus = s.Apparatus.__table__
+
+
+@dataclass
+class Selection:
+    """A selection with what an export needs beyond the table: the catalogue ids of the
+    shots (row order) and of their runs, and the text of the filter."""
+
+    table: pa.Table
+    shot_ids: np.ndarray
+    run_ids: np.ndarray  # per row
+    where: str | None
+    units: dict[str, str] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class _Run:
+    key: str
+    apparatus: str
+    sequence: str
+
+
+@dataclass
+class _ParameterColumn:
+    id: int
+    name: str
+    unit: str
+    kind: str
+    constant: dict[int, object] = field(default_factory=dict)  # run id -> value
+    scanned: set[int] = field(default_factory=set)  # run ids
+
+
+def _arrow_type(kind: str) -> pa.DataType:
+    return {"text": pa.string(), "boolean": pa.bool_()}.get(kind, pa.float64())
+
+
+def _time_us(dialect: str):
+    # Times as integer microseconds: SQLite stores them so; on PostgreSQL the epoch is
+    # numeric (exact) since version 14. Skipping per-row datetime objects halves the read.
+    if dialect == "sqlite":
+        return type_coerce(_shots.c.time, BigInteger)
+    return cast(extract("epoch", _shots.c.time) * 1_000_000, BigInteger)
+
+
+def _wanted(columns: Sequence[str] | None, parameters: dict[str, object], measurements: dict[str, object]) -> tuple[set[str] | None, set[str] | None]:
+    """Which parameter and measurement names the caller asked for (``None``: all)."""
+    if columns is None:
+        return None, None
+    want_p: set[str] = set()
+    want_m: set[str] = set()
+    for column in columns:
+        if column in BASE_COLUMNS:
+            continue
+        prefix, _, name = column.partition(".")
+        if prefix == "p" and name in parameters:
+            want_p.add(name)
+        elif prefix == "m" and name in measurements:
+            want_m.add(name)
+        elif column in parameters and column not in measurements:
+            want_p.add(column)
+        elif column in measurements and column not in parameters:
+            want_m.add(column)
+        else:
+            import difflib
+
+            known = [f"p.{n}" for n in parameters] + [f"m.{n}" for n in measurements] + list(BASE_COLUMNS)
+            close = difflib.get_close_matches(column, known, n=3)
+            hint = "a parameter and a measurement: write p.<name> or m.<name>" if column in parameters else (f"did you mean {', '.join(repr(c) for c in close)}?" if close else "")
+            raise NotFoundError("column", column, hint)
+    return want_p, want_m
+
+
+def select_table(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None) -> Selection:
+    """The selected shots as an Arrow table with their shot and run ids (for exports)."""
+    engine = catalogue.engine if hasattr(catalogue, "engine") else catalogue
+    compiled = compile_selection(engine, where) if where is not None and where.strip() else CompiledFilter(None, None)
+    with engine.connect() as connection:
+        return _select(connection, compiled, where, columns, limit)
+
+
+def _select(connection: Connection, compiled: CompiledFilter, where: str | None, columns: Sequence[str] | None, limit: int | None) -> Selection:
+    dialect = connection.dialect.name
+    candidate_ids = compiled.run_ids()
+    runs: dict[int, _Run] = {
+        int(rid): _Run(key, apparatus, sequence)
+        for rid, key, apparatus, sequence in connection.execute(
+            select(_runs.c.id, _runs.c.key, _apparatus.c.name, _runs.c.sequence)
+            .join(_apparatus, _apparatus.c.id == _runs.c.apparatus_id)
+            .where(_runs.c.id.in_(candidate_ids))
+        )
+    }
+    all_parameters = {name: (int(pid), unit or "", kind) for pid, name, unit, kind in connection.execute(select(s.Parameter.id, s.Parameter.name, s.Parameter.unit, s.Parameter.kind))}
+    all_measurements = {name: (int(mid), unit or "") for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))}
+    want_p, want_m = _wanted(columns, all_parameters, all_measurements)
+    by_id = {pid: name for name, (pid, _, _) in all_parameters.items()}
+
+    parameters: dict[int, _ParameterColumn] = {}
+    rp = _run_parameters
+    for run_id, pid, scanned, number, text_value in connection.execute(
+        select(rp.c.run_id, rp.c.parameter_id, rp.c.scanned, rp.c.number_value, rp.c.text_value).where(rp.c.run_id.in_(candidate_ids))
+    ):
+        name = by_id[int(pid)]
+        if want_p is not None and name not in want_p:
+            continue
+        _, unit, kind = all_parameters[name]
+        column = parameters.setdefault(int(pid), _ParameterColumn(int(pid), name, unit, kind))
+        if scanned:
+            column.scanned.add(int(run_id))
+        else:
+            column.constant[int(run_id)] = text_value if kind == "text" else (None if number is None else (bool(number) if kind == "boolean" else float(number)))
+    carried = s.RunMeasurement.__table__
+    measurement_ids = {int(m) for (m,) in connection.execute(select(carried.c.measurement_id).where(carried.c.run_id.in_(candidate_ids)).distinct())}
+    measurements = sorted(
+        ((name, mid, unit) for name, (mid, unit) in all_measurements.items() if mid in measurement_ids and (want_m is None or name in want_m)),
+    )
+
+    # One query: the shots, the per-shot values of scanned parameters, the measurements.
+    scanned = sorted((c for c in parameters.values() if c.scanned), key=lambda c: c.name)
+    source = _shots
+    value_columns = []
+    for column in scanned:
+        alias = _shot_parameters.alias(f"sp{column.id}")
+        source = source.outerjoin(alias, and_(alias.c.shot_id == _shots.c.id, alias.c.parameter_id == column.id))
+        value_columns.append(alias.c.text_value if column.kind == "text" else alias.c.number_value)
+    if measurements:
+        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
+        source = source.outerjoin(wide, wide.c.shot_id == _shots.c.id)
+        value_columns += [wide.c[s.measurement_column(mid)] for _, mid, _ in measurements]
+    query = select(_shots.c.id, _shots.c.run_id, _shots.c.shot, _time_us(dialect), *value_columns).select_from(source).where(compiled.condition)
+    if limit is not None:
+        # A limit needs the final order in SQL; without one, sorting afterwards is cheaper.
+        query = (
+            query.join(_runs, _runs.c.id == _shots.c.run_id)
+            .join(_apparatus, _apparatus.c.id == _runs.c.apparatus_id)
+            .order_by(_apparatus.c.name, _runs.c.key, _shots.c.shot)
+            .limit(int(limit))
+        )
+    types = [pa.int64(), pa.int64(), pa.int64(), pa.int64()] + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
+    chunks: list[list[pa.Array]] = []
+    result = connection.execution_options(stream_results=True, yield_per=CHUNK_ROWS).execute(query)
+    while rows := result.fetchmany(CHUNK_ROWS):
+        chunks.append([pa.array(values, type=kind) for values, kind in zip(zip(*rows), types)])
+    result.close()
+    if chunks:
+        arrays = [pa.concat_arrays([chunk[i] for chunk in chunks]) for i in range(len(types))]
+    else:
+        arrays = [pa.array([], type=kind) for kind in types]
+
+    shot_ids = arrays[0].to_numpy(zero_copy_only=False)
+    run_ids = arrays[1].to_numpy(zero_copy_only=False)
+    shot_index = arrays[2].to_numpy(zero_copy_only=False)
+    # Rows in order: apparatus, run key, shot. Rank the runs once, then sort integers.
+    ordered_runs = sorted(runs, key=lambda rid: (runs[rid].apparatus, runs[rid].key))
+    run_list = np.array(sorted(runs), dtype=np.int64)
+    run_position = np.searchsorted(run_list, run_ids) if len(run_list) else np.zeros(0, dtype=np.int64)
+    rank = np.empty(len(run_list), dtype=np.int64)
+    rank[np.searchsorted(run_list, np.array(ordered_runs, dtype=np.int64))] = np.arange(len(run_list))
+    if limit is None and len(shot_ids):
+        order = np.lexsort((shot_index, rank[run_position]))
+    else:
+        order = np.arange(len(shot_ids))
+    take = pa.array(order)
+    shot_ids, run_ids, run_position = shot_ids[order], run_ids[order], run_position[order]
+
+    def per_run(values: list[object], kind: pa.DataType) -> pa.Array:
+        return pa.array(values, type=kind).take(pa.array(run_position))
+
+    listed = [runs[int(rid)] for rid in run_list]
+    names: list[str] = list(BASE_COLUMNS)
+    out: list[pa.Array] = [
+        per_run([r.key for r in listed], pa.string()),
+        per_run([r.apparatus for r in listed], pa.string()),
+        per_run([r.sequence for r in listed], pa.string()),
+        arrays[2].take(take),
+        arrays[3].take(take).cast(pa.timestamp("us", tz="UTC")),
+    ]
+    units: dict[str, str] = {}
+    scanned_values = {c.id: arrays[4 + i].take(take) for i, c in enumerate(scanned)}
+    for column in sorted(parameters.values(), key=lambda c: c.name):
+        kind = _arrow_type(column.kind)
+        constant = per_run([column.constant.get(int(rid)) for rid in run_list], kind)
+        if column.id in scanned_values:
+            is_scanned = per_run([int(rid) in column.scanned for rid in run_list], pa.bool_())
+            per_shot = scanned_values[column.id]
+            if column.kind == "boolean":
+                per_shot = pc.not_equal(per_shot, 0.0)
+            values = pc.if_else(is_scanned, per_shot, constant)
+        else:
+            values = constant
+        if values.null_count == len(values) and len(values):
+            continue  # no selected shot has this parameter
+        names.append(f"p.{column.name}")
+        out.append(values)
+        units[f"p.{column.name}"] = column.unit
+    for i, (name, _, unit) in enumerate(measurements):
+        values = arrays[4 + len(scanned) + i].take(take)
+        if values.null_count == len(values) and len(values):
+            continue
+        names.append(f"m.{name}")
+        out.append(values)
+        units[f"m.{name}"] = unit
+    fields = [pa.field(n, a.type, metadata={"unit": units[n]} if n in units else None) for n, a in zip(names, out)]
+    table = pa.Table.from_arrays(out, schema=pa.schema(fields))
+    return Selection(table, shot_ids.astype(np.int64), run_ids.astype(np.int64), where, units)
+
+
+def select_arrow(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None) -> pa.Table:
+    """The shots ``where`` selects (all shots for ``None``), as an Arrow table.
+
+    ``columns`` limits the parameters and measurements to those named (``p.wait``,
+    ``m.atom_number``, or a bare name that is only one of the two); the base columns are
+    always there. ``limit`` keeps the first rows in the table's order.
+    """
+    return select_table(catalogue, where, columns=columns, limit=limit).table
+
+
+def select_shots(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
+    """The shots ``where`` selects, as a DataFrame (see :func:`select_arrow`); units in
+    ``DataFrame.attrs["units"]``, a value a shot lacks is NaN (numbers) or None."""
+    selection = select_table(catalogue, where, columns=columns, limit=limit)
+    frame = selection.table.to_pandas(types_mapper=None)
+    frame.attrs["units"] = dict(selection.units)
+    return frame
