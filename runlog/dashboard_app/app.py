@@ -29,22 +29,28 @@ PAGES = (
 
 def main() -> None:
     st.set_page_config(page_title="runlog", page_icon=":material/grid_on:", layout="wide")
+    # Less empty space above each page's title than Streamlit's default.
+    st.html("<style>[data-testid='stMainBlockContainer'] {padding-top: 2.5rem;}</style>")
     url = common.catalogue_url()
     pages = [st.Page(_HERE / "views" / script, title=title, icon=icon, default=index == 0) for index, (script, title, icon) in enumerate(PAGES)]
-    page = st.navigation(pages)
+    # Navigation along the top leaves the full width to the charts.
+    page = st.navigation(pages, position="top")
     try:
         catalogue = common.catalogue(url)
         zone = common.lab_timezone(url)
     except Exception as error:  # the server starts even when the catalogue cannot be opened
         st.error(f"cannot open the catalogue: {str(error).splitlines()[0] if str(error) else type(error).__name__}")
         st.stop()
-    with st.sidebar:
-        st.markdown("**runlog**")
-        st.caption(f"catalogue `{catalogue.url}`  \nlab time zone {zone}")
-        if st.button("Refresh data", icon=":material/refresh:", help=f"Results are kept for {common.CACHE_SECONDS} s; this asks the catalogue again."):
-            common.clear_cached_results()
-        st.caption("Advisory only: figures, drift and alarms do not replace the lab's interlocks or rules.")
     page.run()
+    st.divider()
+    about, refresh = st.columns([5, 1], vertical_alignment="center")
+    about.caption(
+        f"runlog · catalogue `{catalogue.url}` · lab time zone {zone} · "
+        "advisory only: figures, drift and alarms do not replace the lab's interlocks or rules."
+    )
+    if refresh.button("Refresh data", icon=":material/refresh:", help=f"Results are kept for {common.CACHE_SECONDS} s; this asks the catalogue again."):
+        common.clear_cached_results()
+        st.rerun()
 
 
 if __name__ == "__main__":

@@ -22,16 +22,23 @@ _DRIFT_KEY = {
     "control limits": PALETTE["black"],
     "EWMA (λ = 0.3)": PALETTE["sky blue"],
     "level between changes": PALETTE["orange"],
-    "change in level": PALETTE["vermillion"],
+    "change in level": PALETTE["green"],
     "note": PALETTE["purple"],
 }
+
+
+# Charts stretch to the page's width; ``height`` is the plot's own, whatever the legend and
+# axes take (Streamlit's default would fit those into the height too).
+_WIDTH_ONLY = alt.AutoSizeParams(type="fit-x", contains="padding")
+# Site maps keep square sites: width and height are the plot's own.
+_NATURAL = alt.AutoSizeParams(type="pad", contains="padding")
 
 
 def _key(entries: list[str]) -> alt.Scale:
     return alt.Scale(domain=entries, range=[_DRIFT_KEY[e] for e in entries])
 
 
-def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int = 230) -> alt.LayerChart:
+def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int = 200) -> alt.LayerChart:
     """Daily points with 95 % interval bars, control limits, changes in level and notes.
 
     ``domain`` is the time axis (first and last lab day, ISO) shared by all panels.
@@ -56,7 +63,7 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
     present += ["control limits"] if has_limits else []
     present += ["level between changes", "change in level"] if len(changes) else []
     present += ["note"] if len(notes) else []
-    colour = alt.Color("series:N", scale=_key(present), legend=alt.Legend(title=None, orient="top", direction="horizontal"))
+    colour = alt.Color("series:N", scale=_key(present), legend=alt.Legend(title=None, orient="top", direction="horizontal", columns=3, symbolSize=60))
     tooltip = [
         alt.Tooltip("day:N", title="lab day"),
         alt.Tooltip("value:Q", title=f"{label(view['quantity'])} {unit}".strip(), format=".4g"),
@@ -111,7 +118,7 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
         .mark_circle(size=60, opacity=1)
         .encode(x=x, y=alt.Y("value:Q", title=title, scale=y_scale), color=colour, tooltip=tooltip)
     )
-    return alt.layer(*layers).properties(height=height, title=alt.TitleParams(f"{label(view['quantity'])}: {view['apparatus']}", anchor="start"))
+    return alt.layer(*layers).properties(height=height, autosize=_WIDTH_ONLY, title=alt.TitleParams(f"{label(view['quantity'])}: {view['apparatus']}", anchor="start"))
 
 
 def _levels(points: pd.DataFrame, changes: pd.DataFrame) -> pd.DataFrame:
@@ -130,7 +137,7 @@ def _levels(points: pd.DataFrame, changes: pd.DataFrame) -> pd.DataFrame:
     )
 
 
-def fit_chart(curve, *, height: int = 320) -> alt.LayerChart:
+def fit_chart(curve, *, height: int = 260) -> alt.LayerChart:
     """Every shot's ``y`` against ``x`` with the stored fit drawn over them."""
     x_title, y_title = axis_title(curve.x_name, curve.x_unit), axis_title(curve.y_name, curve.y_unit)
     shots = pd.DataFrame({"x": curve.x, "y": curve.y, "series": "shot"})
@@ -139,13 +146,13 @@ def fit_chart(curve, *, height: int = 320) -> alt.LayerChart:
     points = (
         alt.Chart(shots, description="shots")
         .mark_circle(size=28, opacity=0.55)
-        .encode(x=alt.X("x:Q", title=x_title), y=alt.Y("y:Q", title=y_title), color=colour, tooltip=[alt.Tooltip("x:Q", title=x_title, format=".4g"), alt.Tooltip("y:Q", title=y_title, format=".4g")])
+        .encode(x=alt.X("x:Q", title=x_title, scale=alt.Scale(nice=False)), y=alt.Y("y:Q", title=y_title), color=colour, tooltip=[alt.Tooltip("x:Q", title=x_title, format=".4g"), alt.Tooltip("y:Q", title=y_title, format=".4g")])
     )
     line = alt.Chart(model, description="fit curve").mark_line(strokeWidth=2).encode(x="x:Q", y="y:Q", color=colour)
-    return alt.layer(points, line).properties(height=height, title=alt.TitleParams(curve.formula, anchor="start", fontSize=12))
+    return alt.layer(points, line).properties(height=height, autosize=_WIDTH_ONLY, title=alt.TitleParams(curve.formula, anchor="start", fontSize=12))
 
 
-def site_map_chart(frame: pd.DataFrame, what: str, *, size: int = 260) -> alt.LayerChart:
+def site_map_chart(frame: pd.DataFrame, what: str, *, size: int = 240) -> alt.LayerChart:
     """One square per lattice site, coloured by its fraction (cividis, 0 to 1)."""
     rows = int(frame["row"].max()) + 1 if len(frame) else 1
     columns = int(frame["column"].max()) + 1 if len(frame) else 1
@@ -153,27 +160,34 @@ def site_map_chart(frame: pd.DataFrame, what: str, *, size: int = 260) -> alt.La
     x = alt.X("column:O", title="site column", axis=alt.Axis(labelAngle=0, values=list(range(0, columns, max(1, columns // 10)))))
     y = alt.Y("row:O", title="site row", axis=alt.Axis(values=list(range(0, rows, max(1, rows // 10)))))
     tooltip = [alt.Tooltip("site:Q"), alt.Tooltip("row:Q"), alt.Tooltip("column:Q"), alt.Tooltip("value:Q", title=what, format=".3f"), alt.Tooltip("successes:Q"), alt.Tooltip("trials:Q")]
-    never = alt.Chart(frame[frame["trials"] == 0], description="never loaded").mark_rect(color="#BBBBBB").encode(x=x, y=y, tooltip=tooltip)
+    never = alt.Chart(frame[frame["trials"] == 0], description="never loaded").mark_rect(color="#FFFFFF", stroke="#888888", strokeWidth=0.5).encode(x=x, y=y, tooltip=tooltip)
     sites = (
         alt.Chart(frame[frame["trials"] > 0], description="site map")
         .mark_rect()
-        .encode(x=x, y=y, color=alt.Color("value:Q", title=f"{what} (dimensionless)", scale=alt.Scale(scheme="cividis", domain=[0, 1])), tooltip=tooltip)
+        .encode(
+            x=x,
+            y=y,
+            color=alt.Color("value:Q", title=f"{what} (dimensionless)", scale=alt.Scale(scheme="cividis", domain=[0, 1]), legend=alt.Legend(orient="bottom", direction="horizontal", gradientLength=max(100, int(cell * columns * 0.8)))),
+            tooltip=tooltip,
+        )
     )
-    return alt.layer(never, sites).properties(width=cell * columns, height=cell * rows, title=alt.TitleParams(f"{what} per site", anchor="start"))
+    return alt.layer(never, sites).properties(width=cell * columns, height=cell * rows, autosize=_NATURAL, title=alt.TitleParams(f"{what} per site", anchor="start"))
 
 
-def scatter_chart(frame: pd.DataFrame, x: str, y: str, x_title: str, y_title: str, runs: list[str], *, height: int = 420) -> alt.Chart:
-    """Shots of several runs, ``y`` against ``x``, one colour per run."""
+def scatter_chart(frame: pd.DataFrame, x: str, y: str, x_title: str, y_title: str, runs: list[str], *, height: int = 360) -> alt.Chart:
+    """Shots of several runs, column ``y`` against column ``x``, one colour per run."""
+    # Vega-Lite reads a dot in a field name as a nested field: draw from plain names.
+    data = pd.DataFrame({"run": frame["run"], "shot": frame["shot"], "x": frame[x], "y": frame[y]})
     colours = alt.Scale(domain=runs, range=SERIES_COLOURS[: len(runs)])
     x_type = "T" if x == "time" else "Q"
     return (
-        alt.Chart(frame, description="shots")
+        alt.Chart(data, description="shots")
         .mark_circle(size=30, opacity=0.7)
         .encode(
-            x=alt.X(f"{x}:{x_type}", title=x_title, scale=alt.Scale(zero=False, **({"type": "utc"} if x_type == "T" else {}))),
-            y=alt.Y(f"{y}:Q", title=y_title, scale=alt.Scale(zero=False)),
+            x=alt.X(f"x:{x_type}", title=x_title, scale=alt.Scale(zero=False, **({"type": "utc"} if x_type == "T" else {}))),
+            y=alt.Y("y:Q", title=y_title, scale=alt.Scale(zero=False)),
             color=alt.Color("run:N", scale=colours, legend=alt.Legend(title="run", orient="right")),
-            tooltip=["run:N", "shot:Q", alt.Tooltip(f"{x}:{x_type}", title=x_title), alt.Tooltip(f"{y}:Q", title=y_title, format=".4g")],
+            tooltip=["run:N", "shot:Q", alt.Tooltip(f"x:{x_type}", title=x_title), alt.Tooltip("y:Q", title=y_title, format=".4g")],
         )
-        .properties(height=height)
+        .properties(height=height, autosize=_WIDTH_ONLY)
     )

@@ -30,6 +30,7 @@ import pandas as pd
 import streamlit as st
 
 import runlog
+from runlog.dashboard import URL_VARIABLE
 from runlog.errors import RunlogError
 
 __all__ = [
@@ -56,6 +57,7 @@ __all__ = [
     "lab_days",
     "lab_timezone",
     "label",
+    "mixed_units",
     "parameters_table",
     "run_info",
     "runs_table",
@@ -68,7 +70,6 @@ __all__ = [
     "with_uncertainty",
 ]
 
-URL_VARIABLE = "RUNLOG_DB"
 CACHE_SECONDS = 60
 
 #: Okabe & Ito (2008), "Color Universal Design": eight colours told apart with every common
@@ -225,9 +226,21 @@ def figures_table(url: str, apparatus: str | None = None, since: dt.date | None 
 
 @_cached
 def figure_names(url: str, apparatus: str) -> dict[str, str]:
-    """Every figure stored for ``apparatus``: name -> unit."""
+    """Every figure stored for ``apparatus``: name -> unit (the first, see :func:`mixed_units`)."""
     frame = figures_table(url, apparatus)
     return dict(frame.groupby("name")["unit"].first())
+
+
+@_cached
+def mixed_units(url: str, apparatus: str) -> dict[str, list[str]]:
+    """Figures stored under one name in several units (``phase``: deg from fringes, rad from
+    Ramsey fits), with the sequences of each unit."""
+    frame = figures_table(url, apparatus)
+    found = {}
+    for name, group in frame.groupby("name"):
+        if group["unit"].nunique() > 1:
+            found[name] = [f"{unit_text(unit) or 'no unit'} ({', '.join(sorted(rows['sequence'].unique()))})" for unit, rows in group.groupby("unit")]
+    return found
 
 
 @_cached

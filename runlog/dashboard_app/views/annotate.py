@@ -40,20 +40,20 @@ if "annotate-done" in st.session_state:
 day_column, run_column, alarm_column = st.columns(3, gap="large")
 
 with day_column:
-    st.subheader("Note on a lab day", anchor=False)
+    st.markdown("#### Note on a lab day")
     with st.form("note-day", clear_on_submit=True):
         apparatus = st.selectbox("apparatus", names, key="note-day-apparatus")
         latest = max(common.lab_days(url, name)[0] for name in names)
-        day = st.date_input(f"lab day ({zone})", value=latest, key="note-day-day")
+        day = st.date_input(f"lab day ({zone})", value=latest, format="YYYY-MM-DD", key="note-day-day")
         time = st.time_input(f"time ({zone})", value=dt.time(9, 0), key="note-day-time")
         text = st.text_area("note", key="note-day-text", placeholder="e.g. realigned the lattice beam")
         author = st.text_input("author (optional)", key="note-day-author")
-        if st.form_submit_button("Add note", type="primary"):
+        if st.form_submit_button("Add note", type="primary", key="note-day-submit"):
             at = dt.datetime.combine(day, time, tzinfo=ZoneInfo(zone))
             written(lambda: f"note {common.add_note(url, text, apparatus=apparatus, at=at, author=author)} added to {apparatus} on {day:%d %b %Y}")
 
 with run_column:
-    st.subheader("Note on a run", anchor=False)
+    st.markdown("#### Note on a run")
     apparatus = st.selectbox("apparatus", names, key="note-run-apparatus")
     runs = common.runs_table(url, apparatus)
     labels = {r.run: f"{r.run} · {r.sequence} · {r.local_start}" for r in runs.head(200).itertuples()}
@@ -61,11 +61,11 @@ with run_column:
         run = st.selectbox("run (newest first)", list(labels), format_func=labels.get, key="note-run-run")
         text = st.text_area("note", key="note-run-text", placeholder="e.g. camera saturated in the last shots")
         author = st.text_input("author (optional)", key="note-run-author")
-        if st.form_submit_button("Add note", type="primary"):
+        if st.form_submit_button("Add note", type="primary", key="note-run-submit"):
             written(lambda: f"note {common.add_note(url, text, run=run, apparatus=apparatus, author=author)} added to run {run}")
 
 with alarm_column:
-    st.subheader("Acknowledge an alarm", anchor=False)
+    st.markdown("#### Acknowledge an alarm")
     open_alarms = common.alarms(url)
     if not open_alarms:
         st.success("No open alarms.")
@@ -80,10 +80,10 @@ with alarm_column:
             )
             note = st.text_area("what it was", key="acknowledge-note", help="Becomes a note on the alarm's lab day.")
             author = st.text_input("author (optional)", key="acknowledge-author")
-            if st.form_submit_button("Acknowledge", type="primary"):
+            if st.form_submit_button("Acknowledge", type="primary", key="acknowledge-submit"):
                 written(lambda: f"alarm {alarm} acknowledged (note {common.acknowledge(url, alarm, note, author=author)})")
 
-st.subheader("Latest notes", anchor=False)
+st.markdown("#### Latest notes")
 notes = common.annotations(url)
 if notes.empty:
     st.caption("No notes yet.")

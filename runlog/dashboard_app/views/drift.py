@@ -40,7 +40,7 @@ quantities = top[1].multiselect(
 days = common.lab_days(url, apparatus)
 first_day, last_day = days[-1], days[0]
 row = st.columns([2, 2, 1, 3])
-chosen_days = row[0].date_input(f"lab days ({zone})", value=(first_day, last_day), min_value=first_day, max_value=last_day, key=f"drift-days-{apparatus}")
+chosen_days = row[0].date_input(f"lab days ({zone})", value=(first_day, last_day), min_value=first_day, max_value=last_day, format="YYYY-MM-DD", key=f"drift-days-{apparatus}")
 since, until = (tuple(chosen_days) + (last_day,))[:2] if chosen_days else (first_day, last_day)
 sequences = sorted(common.runs_table(url, apparatus)["sequence"].unique().tolist())
 sequence = row[1].selectbox("sequence", ["all sequences", *sequences], key=f"drift-sequence-{apparatus}")
@@ -65,12 +65,16 @@ if filtered_by:
         ranges.append((name, float(picked[0]), float(picked[1])))
     st.caption("A run counts when its constant value lies in the range, or its whole scanned range does.")
 
-charts_column, causes_column = st.columns([3, 2], gap="large")
+charts_column, causes_column = st.columns([4, 3], gap="large")
 all_changes: list[tuple[str, str, float, float]] = []
 with charts_column:
     if not quantities:
         st.info("Choose one or more quantities.")
     for quantity in quantities:
+        mixed = common.mixed_units(url, apparatus).get(quantity)
+        if mixed and sequence is None:
+            st.warning(f"{common.label(quantity)} is stored in several units: {'; '.join(mixed)}. Values in different units are not pooled: choose a sequence.")
+            continue
         try:
             view = common.drift_view(url, quantity, apparatus, sequence, since, until, tuple(ranges), baseline_days)
         except RunlogError as error:
@@ -86,29 +90,44 @@ with charts_column:
         all_changes += [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
 
 with causes_column:
-    st.subheader("What else changed", anchor=False)
+    st.markdown("#### What else changed")
     if not all_changes:
         st.info("No change in level among these panels. A detected change lists here the parameters, measurements and figures that moved with it.")
     else:
+        # Nothing is ranked until a change is chosen: the ranking reads the shots of six
+        # lab days and would hold up the first drawing of the charts.
         picked = st.selectbox(
             "change",
             all_changes,
+            index=None,
+            placeholder=f"choose one of {len(all_changes)} change{'s' if len(all_changes) > 1 else ''} in level",
             format_func=lambda c: f"{common.label(c[0])} on {c[1]}: {c[2]:.4g} → {c[3]:.4g}",
             key=f"drift-change-{apparatus}",
         )
-        ranked = common.what_else_changed(url, picked[0], pd.Timestamp(picked[1]).date(), apparatus)
-        if ranked.empty:
+        ranked = None if picked is None else common.what_else_changed(url, picked[0], pd.Timestamp(picked[1]).date(), apparatus)
+        if ranked is None:
+            pass
+        elif ranked.empty:
             st.info("Nothing to compare on both sides of this day.")
         else:
+            ranked = pd.DataFrame(
+                {
+                    "candidate": [common.label(n) for n in ranked["name"]],
+                    "Hedges' g": ranked["effect_size"],
+                    "Welch p": ranked["p_value"],
+                    "before → after": [f"{b:.4g} → {a:.4g}" for b, a in zip(ranked["before_mean"], ranked["after_mean"])],
+                    "n": [f"{b} / {a}" for b, a in zip(ranked["n_before"], ranked["n_after"])],
+                }
+            )
             st.dataframe(
-                ranked.rename(columns={"effect_size": "Hedges' g", "p_value": "Welch p", "before_mean": "before", "after_mean": "after"}),
+                ranked,
                 hide_index=True,
                 key="drift-causes",
                 column_config={
-                    "Hedges' g": st.column_config.NumberColumn(format="%+.2f"),
-                    "Welch p": st.column_config.NumberColumn(format="%.2g"),
-                    "before": st.column_config.NumberColumn(format="%.4g"),
-                    "after": st.column_config.NumberColumn(format="%.4g"),
+                    "candidate": st.column_config.TextColumn(width="medium"),
+                    "Hedges' g": st.column_config.NumberColumn(format="%+.2f", width="small"),
+                    "Welch p": st.column_config.NumberColumn(format="%.2g", width="small"),
+                    "n": st.column_config.TextColumn(width="small"),
                 },
             )
         st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; ranked by |Hedges' g|. It points at likely causes, it proves none; p-values are not corrected for the number of candidates.")

@@ -33,26 +33,42 @@ for apparatus in common.apparatus_names(url):
             continue
         row = today.iloc[-1]
         earlier = points[points["day"] < day.isoformat()]
-        delta = None if earlier.empty else f"{row['value'] - earlier.iloc[-1]['value']:+.3g} since {earlier.iloc[-1]['day']}"
         unit = common.unit_text(view["unit"])
-        column.metric(
-            common.label(name),
-            common.with_uncertainty(row["value"], row["stderr"], view["unit"]),
-            delta=delta,
-            delta_color="off",
-            help=f"95 % interval [{row['ci_low']:.4g}, {row['ci_high']:.4g}] {unit}; {int(row['runs'])} runs, {int(row['shots']):,} shots",
-            border=True,
-        )
+        value, _, error = common.with_uncertainty(row["value"], row["stderr"]).partition(" ± ")
+        decimals = len(value.partition(".")[2])  # the change to the value's own decimal place
+        delta = None if earlier.empty else f"{row['value'] - earlier.iloc[-1]['value']:+.{decimals}f} {unit} since {earlier.iloc[-1]['day'][5:]}".replace("  ", " ")
+        with column.container(border=True):
+            st.metric(common.label(name), f"{value} {unit}".strip(), delta=delta, delta_color="off", help="The day's value as on the drift page: pooled counts, or the weighted mean of the runs. The change is against the previous lab day with data.")
+            st.caption(f"± {error or '–'} · 95 % [{row['ci_low']:.4g}, {row['ci_high']:.4g}] · {int(row['runs'])} run{'s' if int(row['runs']) != 1 else ''}")
 
     runs = common.runs_table(url, apparatus)
     runs = runs[runs["day"] == day].sort_values("started")
     figures = common.figures_table(url, apparatus, since=day, until=day)
-    table = runs[["run", "sequence", "local_start", "shots", "operator"]].rename(columns={"local_start": f"started ({zone})"})
+    table = pd.DataFrame(
+        {
+            "run": [f"run_detail?apparatus={apparatus}&run={key}" for key in runs["run"]],
+            "sequence": runs["sequence"],
+            f"started ({zone})": runs["local_start"].str[11:],
+            "shots": runs["shots"],
+            "operator": runs["operator"],
+        }
+    )
+    keys = list(runs["run"])
     for name in shown:
         rows = figures[figures["name"] == name].set_index("run")
         header = common.axis_title(name, stored[name]).replace(" (dimensionless)", "")
-        table[header] = [common.with_uncertainty(rows.at[key, "value"], rows.at[key, "stderr"]) if key in rows.index else "" for key in table["run"]]
-    st.dataframe(table, hide_index=True, key=f"runs-{apparatus}")
+        table[header] = [common.with_uncertainty(rows.at[key, "value"], rows.at[key, "stderr"]) if key in rows.index else "" for key in keys]
+    st.dataframe(
+        table,
+        hide_index=True,
+        key=f"runs-{apparatus}",
+        column_config={
+            "run": st.column_config.LinkColumn("run", display_text=r"run=(.*)$", help="Open the run's detail page"),
+            "sequence": st.column_config.TextColumn(width="small"),
+            f"started ({zone})": st.column_config.TextColumn(width="small"),
+            "shots": st.column_config.NumberColumn(width="small"),
+        },
+    )
 
 # --- alarms ------------------------------------------------------------------------------
 
@@ -79,13 +95,15 @@ else:
     log = log.assign(when=common.wall_clock(log["finished_at"], zone).str.replace("T", " ").str[:16], name=[Path(f).name for f in log["file"]])
     stored_in = log[log["status"] == "ingested"]
     refused = log[log["status"] == "rejected"]
-    left, middle, right = st.columns(3)
-    if stored_in.empty:
-        left.metric("last file in", "–", border=True)
-    else:
-        last = stored_in.iloc[0]
-        left.metric("last file in", last["name"], help=str(last["file"]), border=True)
-        middle.metric(f"stored at ({zone})", last["when"], help=f"runs {last['runs']}; {int(last['shots']):,} shots", border=True)
+    left, right = st.columns([3, 1])
+    with left.container(border=True):
+        if stored_in.empty:
+            st.markdown("**last file in**: none yet")
+        else:
+            last = stored_in.iloc[0]
+            runs_in = len(str(last["runs"]).split(",")) if last["runs"] else 0
+            st.markdown(f"**last file in**: `{last['name']}`")
+            st.caption(f"stored {last['when']} ({zone}) · {runs_in} runs, {int(last['shots']):,} shots · {last['file']}")
     right.metric(f"refused (last {len(log)} attempts)", len(refused), border=True)
     if not refused.empty:
         st.dataframe(refused[["name", "when", "reason"]].rename(columns={"name": "file", "when": f"when ({zone})"}), hide_index=True, key="refused")

@@ -17,14 +17,22 @@ if not names:
     st.info("The catalogue holds no runs yet.")
     st.stop()
 
+# A link such as run_detail?apparatus=lattice-east&run=20260921-07 (the overview's run
+# column) opens that run; the pickers then start from it.
+asked_apparatus, asked_run = st.query_params.get("apparatus"), st.query_params.get("run")
 pick = st.columns([1, 1, 2])
-apparatus = pick[0].selectbox("apparatus", names, key="run-apparatus")
+apparatus = pick[0].selectbox("apparatus", names, index=names.index(asked_apparatus) if asked_apparatus in names else 0, key="run-apparatus")
+every_run = common.runs_table(url, apparatus)
+asked = every_run[every_run["run"] == asked_run]
 days = common.lab_days(url, apparatus)
-day = pick[1].selectbox(f"lab day ({zone})", days, format_func=lambda d: f"{d:%a %d %b %Y}", key=f"run-day-{apparatus}")
-runs = common.runs_table(url, apparatus)
-runs = runs[runs["day"] == day].sort_values("started")
+day = pick[1].selectbox(
+    f"lab day ({zone})", days, index=days.index(asked["day"].iloc[0]) if len(asked) else 0, format_func=lambda d: f"{d:%a %d %b %Y}", key=f"run-day-{apparatus}"
+)
+runs = every_run[every_run["day"] == day].sort_values("started")
 labels = {r.run: f"{r.run} · {r.sequence} · {r.local_start[11:]} · {r.shots} shots" for r in runs.itertuples()}
-run = pick[2].selectbox("run", list(labels), format_func=labels.get, key=f"run-run-{apparatus}-{day}")
+keys = list(labels)
+run = pick[2].selectbox("run", keys, index=keys.index(asked_run) if asked_run in keys else 0, format_func=labels.get, key=f"run-run-{apparatus}-{day}")
+st.query_params.update({"apparatus": apparatus, "run": run})
 
 try:
     info = common.run_info(url, run, apparatus)
@@ -32,17 +40,20 @@ except RunlogError as error:
     common.show_error(error)
     st.stop()
 
-started = common.wall_clock(pd.Series([info.started, info.finished]), zone).str.replace("T", " ").str[:19]
+span = common.wall_clock(pd.Series([info.started, info.finished]), zone).str.replace("T", " ").str[:19]
 st.subheader(f"{info.run} · {info.sequence} on {info.apparatus}", anchor=False)
 st.caption(
-    f"{info.shots} shots, {started[0]} to {started[1][11:]} ({zone})"
+    f"{info.shots} shots, {span[0]} to {span[1][11:]} ({zone})"
     + (f" · operator {info.operator}" if info.operator else "")
     + (f" · tags: {', '.join(info.tags)}" if info.tags else "")
 )
 if info.notes:
     st.info(info.notes, icon=":material/sticky_note_2:")
+notes = common.annotations(url, info.apparatus)
+for note in notes[notes["run"] == info.run].itertuples() if len(notes) else ():
+    st.info(f"{note.text} ({note.local_time}, {note.author or 'unknown'})", icon=":material/edit_note:")
 
-left, right = st.columns([2, 3], gap="large")
+left, right = st.columns(2, gap="large")
 with left:
     st.markdown("**Parameters**")
     rows = []
@@ -55,6 +66,7 @@ with left:
         rows.append({"parameter": name, "value": value, "unit": common.unit_text(entry["unit"]), "scanned": bool(entry["scanned"])})
     st.dataframe(pd.DataFrame(rows, columns=["parameter", "value", "unit", "scanned"]), hide_index=True, key="run-parameters", column_config={"scanned": st.column_config.CheckboxColumn("scanned")})
 
+with right:
     st.markdown("**Figures**")
     figures = pd.DataFrame(
         [
@@ -71,42 +83,41 @@ with left:
     if figures.empty:
         st.caption("No figures stored for this run.")
     else:
+        if not figures["95 % interval"].any():
+            figures = figures.drop(columns=["95 % interval"])
         st.dataframe(figures, hide_index=True, key="run-figures")
 
-with right:
-    fitted = {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures)
-    if fitted:
-        st.markdown("**Fit over the shots**")
-        scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
-        choose = st.columns(3)
-        x = choose[0].selectbox("x (scanned parameter)", scanned, key="run-fit-x") if len(scanned) > 1 else (scanned[0] if scanned else None)
-        measured = info.measurements
-        # The signal a fringe is fitted to is a fraction; offer that one first.
-        preferred = next((i for i, n in enumerate(measured) if "fraction" in n), 0)
-        y = choose[1].selectbox("y (measurement)", measured, index=preferred, key="run-fit-y")
-        envelope = "gaussian"
-        if "coherence_time" in info.figures:
-            envelope = choose[2].selectbox("envelope", ["gaussian", "exponential"], key="run-fit-envelope", help="The stored figures do not say which envelope the fit used; the rules default to gaussian.")
-        try:
-            curve = common.fit_curve(url, info.run, info.apparatus, x, y, envelope)
-        except RunlogError as error:
-            common.show_error(error)
-        else:
-            st.altair_chart(charts.fit_chart(curve), width="stretch", key="run-fit-chart")
-            if curve.offset_estimated:
-                st.caption(f"The offset a = {curve.offset:.4g} is not stored with Ramsey figures; it is the least-squares value for the stored C0, T, δ and φ.")
+if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures):
+    st.markdown("**Fit over the shots**")
+    scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
+    slots = iter(st.columns(3))
+    x = next(slots).selectbox("x (scanned parameter)", scanned, key="run-fit-x") if len(scanned) > 1 else (scanned[0] if scanned else None)
+    measured = info.measurements
+    # The signal a fringe is fitted to is a fraction; offer that one first.
+    preferred = next((i for i, n in enumerate(measured) if "fraction" in n), 0)
+    y = next(slots).selectbox("y (measurement)", measured, index=preferred, key="run-fit-y")
+    envelope = "gaussian"
+    if "coherence_time" in info.figures:
+        envelope = next(slots).selectbox("envelope", ["gaussian", "exponential"], key="run-fit-envelope", help="The stored figures do not say which envelope the fit used; the rules default to gaussian.")
+    try:
+        curve = common.fit_curve(url, info.run, info.apparatus, x, y, envelope)
+    except RunlogError as error:
+        common.show_error(error)
+    else:
+        st.altair_chart(charts.fit_chart(curve), width="stretch", key="run-fit-chart")
+        if curve.offset_estimated:
+            st.caption(f"The offset a = {curve.offset:.4g} is not stored with Ramsey figures; it is the least-squares value for the stored C0, T, δ and φ.")
 
-    loading = [name for name, image in info.images.items() if image["role"] == "loading"]
-    if loading:
-        st.markdown("**Per site**")
-        maps = st.columns(2)
-        for column, (name, what) in zip(maps, (("fill", "fill fraction"), ("survival", "survival"))):
-            try:
-                frame = common.site_map(url, info.run, info.apparatus, name)
-            except RunlogError:
-                continue  # a run without a survival image has no survival map
-            column.altair_chart(charts.site_map_chart(frame, what), key=f"run-map-{name}")
-        st.caption("Fill: shots with the site loaded / shots. Survival: shots with the loaded site kept / shots with it loaded. Grey: never loaded.")
+if any(image["role"] == "loading" for image in info.images.values()):
+    st.markdown("**Per site**")
+    maps = st.columns(2)
+    for column, (name, what) in zip(maps, (("fill", "fill fraction"), ("survival", "survival"))):
+        try:
+            frame = common.site_map(url, info.run, info.apparatus, name)
+        except RunlogError:
+            continue  # a run without a survival image has no survival map
+        column.altair_chart(charts.site_map_chart(frame, what), width="content", key=f"run-map-{name}")
+    st.caption("Fill: shots with the site loaded / shots. Survival: shots with the loaded site kept / shots with it loaded. White: never loaded. Site i sits at row i // columns, column i % columns.")
 
 st.markdown("**Shots**")
 shots, units = common.shots_table(url, info.run, info.apparatus)

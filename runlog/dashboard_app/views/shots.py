@@ -52,20 +52,26 @@ scanned = [f"p.{n}" for n, e in first.parameters.items() if e["scanned"] and f"p
 
 
 def title(column: str) -> str:
+    """An axis title: the name without its p./m. prefix, with its unit."""
     if column == "time":
         return f"time ({zone})"
     if column == "shot":
         return "shot (index in run)"
-    return common.axis_title(column, units.get(column))
+    return common.axis_title(column[2:], units.get(column))
+
+
+def option(column: str) -> str:
+    kind = {"p.": "parameter", "m.": "measurement"}.get(column[:2], "")
+    return f"{kind} {title(column)}".strip()
 
 
 axes = st.columns(2)
 x_options = [*settings, "shot", "time", *measured]
-x = axes[0].selectbox("x", x_options, index=x_options.index(scanned[0]) if scanned else x_options.index("shot"), format_func=title, key="shots-x")
+x = axes[0].selectbox("x", x_options, index=x_options.index(scanned[0]) if scanned else x_options.index("shot"), format_func=option, key="shots-x")
 y_options = [*measured, *settings] or ["shot"]
-y = axes[1].selectbox("y", y_options, format_func=title, key="shots-y")
+y = axes[1].selectbox("y", y_options, format_func=option, key="shots-y")
 
-plotted = shots[["run", "shot", *dict.fromkeys(c for c in (x, y) if c not in ("run", "shot"))]].copy()
+plotted = shots[["run", "shot", *dict.fromkeys(c for c in (x, y) if c != "shot")]].copy()
 if x == "time":
     plotted["time"] = common.wall_clock(plotted["time"], zone)
 plotted = plotted.dropna(subset=[x, y])
