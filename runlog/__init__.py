@@ -8,6 +8,7 @@ from runlog.catalogue import Catalogue, RunInfo, open_catalogue
 from runlog.errors import (
     ConfigError,
     ContractError,
+    ExportError,
     FilterError,
     FitError,
     NotFoundError,
@@ -35,6 +36,7 @@ __all__ = [
     "FitError",
     "FilterError",
     "NotFoundError",
+    "ExportError",
     "StoreError",
     "SchemaVersionError",
 ]

@@ -400,6 +400,26 @@ class Catalogue:
             rules = rules.rules
         return apply_rules(self, rules, runs)
 
+    # --- selections and exports ---------------------------------------------------
+
+    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
+        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs."""
+        from runlog.selection import select_shots
+
+        return select_shots(self, where, columns=columns, limit=limit)
+
+    def export(self, where: str, out: str | Path, **options):
+        """Write the shots chosen by ``where`` as a Frictionless Data Package (docs/export.md)."""
+        from runlog.export import export
+
+        return export(self, where, Path(out), **options)
+
+    def export_again(self, spec: str | Path, *, out: str | Path | None = None):
+        """Re-run a saved export (its ``export.toml``) and say whether the data still hash the same."""
+        from runlog.export import export_spec
+
+        return export_spec(self, Path(spec), out=None if out is None else Path(out))
+
     # --- drift -----------------------------------------------------------------------
 
     @property
@@ -540,7 +560,16 @@ class Catalogue:
                 query = query.where(s.Apparatus.name == apparatus)
             names = connection.execute(query).all()
         for apparatus_name, quantity in sorted(names):
-            self.drift(quantity, apparatus=apparatus_name)
+            try:
+                self.drift(quantity, apparatus=apparatus_name)
+            except NotFoundError:
+                # A name two kinds share in different units: look at each sequence alone.
+                with self.engine.connect() as connection:
+                    sequences = connection.execute(
+                        select(s.DailyRollup.sequence).join(s.Apparatus, s.Apparatus.id == s.DailyRollup.apparatus_id).where(and_(s.Apparatus.name == apparatus_name, s.DailyRollup.name == quantity)).distinct()
+                    ).scalars().all()
+                for sequence in sorted(sequences):
+                    self.drift(quantity, apparatus=apparatus_name, sequence=sequence)
         return self.alarms(apparatus=apparatus)
 
     def alarms(self, *, status: str | None = "open", apparatus: str | None = None) -> list[dict[str, object]]:

@@ -537,6 +537,97 @@ def dashboard(state: _State, port: int, host: str) -> None:
     sys.exit(serve(state.db, host=host, port=port, say=click.echo))
 
 
+@cli.command()
+@click.option("--where", "where", default=None, metavar="EXPR", help="Filter expression (docs/filters.md), e.g. \"sequence = 'ramsey' and wait > 100 us\".")
+@click.option("--columns", default=None, metavar="A,B", help="Only these parameter/measurement columns.")
+@click.option("--limit", type=int, default=None, help="At most N shots.")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object per shot.")
+@click.option("--csv", "as_csv", is_flag=True, help="CSV on standard output.")
+@_common
+def shots(state: _State, where: str | None, columns: str | None, limit: int | None, as_json: bool, as_csv: bool) -> None:
+    """Shots chosen by a filter, for quick looks."""
+    if as_json and as_csv:
+        raise click.UsageError("choose one of --json and --csv")
+    with _open(state) as catalogue:
+        frame = catalogue.select(where, columns=[c.strip() for c in columns.split(",")] if columns else None, limit=limit)
+    if as_csv:
+        click.echo(frame.to_csv(index=False), nl=False)
+    elif as_json:
+        click.echo(frame.to_json(orient="records", date_format="iso", indent=2))
+    elif frame.empty:
+        click.echo("no shots")
+    else:
+        import pandas as pd
+
+        with pd.option_context("display.width", 80, "display.max_columns", 8, "display.max_colwidth", 16):
+            click.echo(frame.to_string(index=False, max_rows=40))
+        click.echo(f"{len(frame)} shots")
+
+
+@cli.command()
+@click.option("--where", "where", default=None, metavar="EXPR", help="Filter expression choosing the shots.")
+@click.option("--out", "out", type=click.Path(path_type=Path, file_okay=False), default=None, help="Folder of the data package.")
+@click.option("--format", "file_format", type=click.Choice(["parquet", "csv"]), default="parquet", show_default=True)
+@click.option("--with-occupancy", is_flag=True, help="Include the site occupancy images.")
+@click.option("--title", default=None, help="Title of the package.")
+@click.option("--overwrite", is_flag=True, help="Replace an earlier export in --out.")
+@click.option("--spec", type=click.Path(path_type=Path, dir_okay=False, exists=True), default=None, help="Re-run a saved export (its export.toml).")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, as_json: bool) -> None:
+    """Write the chosen shots, their runs and provenance as a Frictionless Data Package."""
+    if spec is None and (where is None or out is None):
+        raise click.UsageError("give --where EXPR and --out DIR, or --spec FILE")
+    with _open(state) as catalogue:
+        if spec is not None:
+            result = catalogue.export_again(spec, out=out)
+        else:
+            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite)
+    if as_json:
+        _json(result.as_dict())
+        return
+    click.echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    if result.same is not None:
+        click.echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
+
+
+@cli.group()
+def plot() -> None:
+    """Publication figures (SVG, PNG or PDF by the file's suffix)."""
+
+
+@plot.command("drift")
+@click.argument("quantity")
+@click.option("--out", "out", type=click.Path(path_type=Path, dir_okay=False), required=True)
+@click.option("--apparatus", default=None)
+@click.option("--sequence", default=None)
+@click.option("--since", default=None, metavar="DATE")
+@click.option("--until", default=None, metavar="DATE")
+@_common
+def plot_drift_command(state: _State, quantity: str, out: Path, apparatus: str | None, sequence: str | None, since: str | None, until: str | None) -> None:
+    """Daily values of a figure with intervals and changes."""
+    from runlog.plots import plot_drift
+
+    with _open(state) as catalogue:
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), record_alarms=False)
+        click.echo(f"wrote {plot_drift(result, out)}")
+
+
+@plot.command("run")
+@click.argument("run")
+@click.option("--out", "out", type=click.Path(path_type=Path, dir_okay=False), required=True)
+@click.option("--apparatus", default=None)
+@click.option("--x", default=None, help="Parameter on the horizontal axis.")
+@click.option("--y", default=None, help="Measurement on the vertical axis.")
+@_common
+def plot_run_command(state: _State, run: str, out: Path, apparatus: str | None, x: str | None, y: str | None) -> None:
+    """One run: its scan with the fit drawn, or its per-site fill map."""
+    from runlog.plots import plot_run
+
+    with _open(state) as catalogue:
+        click.echo(f"wrote {plot_run(catalogue, run, out, apparatus=apparatus, x=x, y=y)}")
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning runlog's errors into one line and an exit code."""
     debug = "--debug" in (argv if argv is not None else sys.argv[1:])

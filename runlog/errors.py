@@ -9,6 +9,7 @@ the built-in type a caller would naturally catch::
      ├── FitError(RunlogError, ValueError)        a fit failed or is degenerate
      ├── FilterError(RunlogError, ValueError)     a filter expression that cannot be used
      ├── NotFoundError(RunlogError, LookupError)  an unknown run, apparatus or figure
+     ├── ExportError(RunlogError, FileExistsError) an export that would overwrite files
      └── StoreError(RunlogError, RuntimeError)    the database cannot be used as asked
           └── SchemaVersionError                  the database schema is not at our head
 
@@ -25,6 +26,7 @@ __all__ = [
     "FitError",
     "FilterError",
     "NotFoundError",
+    "ExportError",
     "StoreError",
     "SchemaVersionError",
 ]
@@ -112,6 +114,18 @@ class NotFoundError(RunlogError, LookupError):
     def __str__(self) -> str:
         tail = f" ({self.hint})" if self.hint else ""
         return f"no {self.what} '{self.name}'{tail}"
+
+
+class ExportError(RunlogError, FileExistsError):
+    """An export that would overwrite or mix with files already in its folder."""
+
+    def __init__(self, folder: str, reason: str):
+        super().__init__(folder, reason)
+        self.folder = str(folder)
+        self.reason = reason
+
+    def __str__(self) -> str:
+        return f"{self.folder}: {self.reason}"
 
 
 class StoreError(RunlogError, RuntimeError):

@@ -39,10 +39,10 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
-from sqlalchemy import and_, select
+from sqlalchemy import select
 
-from runlog.errors import ConfigError
-from runlog.selection import Selection, select_table
+from runlog.errors import ExportError, ConfigError
+from runlog.selection import Selection, select_on
 from runlog.store import schema as s
 from runlog.store.engine import redact
 
@@ -447,11 +447,15 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
         raise ValueError("an export needs a filter; 'shot >= 0' selects every shot")
     out = Path(out).absolute()
     if _holds_files(out) and not overwrite:
-        raise FileExistsError(f"{out} already holds files: choose another folder or allow overwriting")
+        raise ExportError(str(out), "already holds files: choose another folder or allow overwriting")
     title = title or f"runlog export: {where}"
     engine = catalogue.engine
-    selection = select_table(catalogue, where)
-    with engine.connect() as connection:
+    # One read transaction for everything, so shots, runs and figures agree even while
+    # an ingest is writing (SQLite's read transaction is a snapshot; PostgreSQL needs
+    # repeatable read for one).
+    options = {"isolation_level": "REPEATABLE READ"} if engine.dialect.name == "postgresql" else {}
+    with engine.connect().execution_options(**options) as connection:
+        selection = select_on(connection, where, shot_ids=with_occupancy)
         zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
         unique, counts = np.unique(selection.run_ids, return_counts=True)
         runs_table, run_order = _runs_table(connection, selection.run_ids, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
@@ -517,7 +521,7 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
 def _move_into_place(staging: Path, out: Path, overwrite: bool) -> None:
     if out.exists():
         if _holds_files(out) and not overwrite:
-            raise FileExistsError(f"{out} already holds files: choose another folder or allow overwriting")
+            raise ExportError(str(out), "already holds files: choose another folder or allow overwriting")
         retired = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
         os.replace(out, retired)
         os.replace(staging, out)
@@ -559,7 +563,7 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
     out = Path(out).absolute()
     replace = (out / MANIFEST).exists() or not _holds_files(out)
     if not replace:
-        raise FileExistsError(f"{out} holds files that are not a runlog export: give another out folder")
+        raise ExportError(str(out), "holds files that are not a runlog export: give another out folder")
     result = export(
         catalogue,
         spec["where"],

@@ -75,7 +75,7 @@ __all__ = [
 
 #: Longest filter text accepted, in characters.
 MAX_LENGTH = 2000
-#: Deepest nesting of parentheses and ``not`` accepted.
+#: Deepest nesting accepted, of parentheses and of ``and``/``or``/``not`` each.
 MAX_DEPTH = 32
 
 #: Fields of the run a shot belongs to.
@@ -275,15 +275,20 @@ def _check_parenthesis_depth(text: str) -> None:
             depth = max(0, depth - 1)
 
 
-def _tree_depth(tree) -> int:
-    """Depth of a lark tree, without recursion (the tree may be deep before we check)."""
+_LOGICAL = frozenset({"conjunction", "disjunction", "negation"})
+
+
+def _logical_depth(tree) -> int:
+    """How many and/or/not enclose the deepest comparison, counted without recursion
+    (everything after this check recurses over the tree, SQL compilation included)."""
     from lark import Tree
 
-    deepest, stack = 0, [(tree, 1)]
+    deepest, stack = 0, [(tree, 0)]
     while stack:
         node, depth = stack.pop()
+        depth += node.data in _LOGICAL
         deepest = max(deepest, depth)
-        stack.extend((child, depth + 1) for child in node.children if isinstance(child, Tree))
+        stack.extend((child, depth) for child in node.children if isinstance(child, Tree))
     return deepest
 
 
@@ -319,7 +324,7 @@ def parse(text: str) -> Filter:
         raise FilterError(text, f"expected {_expected(error.expected)}, found {found}", position) from None
     except UnexpectedEOF as error:
         raise FilterError(text, f"expected {_expected(set(error.expected))}, found the end of the filter", len(text)) from None
-    if _tree_depth(tree) > 2 * MAX_DEPTH + 4:
+    if _logical_depth(tree) > MAX_DEPTH:
         raise FilterError(text, f"nested deeper than {MAX_DEPTH} levels", 0)
     return _to_filter(tree, text)
 
@@ -448,7 +453,8 @@ _figures = s.FigureRow.__table__
 class CompiledFilter:
     """A filter as SQL: ``runs`` is a condition on the ``runs`` table that every run
     holding a matching shot meets (``None``: no run can be ruled out beforehand), and
-    ``shots`` the exact condition on the ``shots`` table (``None``: ``runs`` is exact).
+    ``shots`` the condition on the ``shots`` table that, inside those runs, picks exactly
+    the matching shots (``None``: ``runs`` alone is exact). :attr:`condition` joins them.
     """
 
     runs: ColumnElement[bool] | None
@@ -474,12 +480,14 @@ def _in_runs(condition: ColumnElement[bool]) -> ColumnElement[bool]:
 
 def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
     """``column operator values``, never NULL: a missing value compares false."""
+    # Lists are spelled out as = / != terms rather than IN (...), so the statement has a
+    # fixed set of plain bound values and can be handed to the driver as it is.
     if operator == "between":
         test = column.between(values[0], values[1])
     elif operator == "in":
-        test = column.in_(values)
+        test = or_(*[column == v for v in values])
     elif operator == "not in":
-        test = column.not_in(values)
+        test = and_(*[column != v for v in values])
     else:
         test = {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
     return and_(column.is_not(None), test)
@@ -508,7 +516,9 @@ class _Compiler:
     def error(self, reason: str, position: int | None) -> FilterError:
         return FilterError(self.text, reason, position)
 
-    def compile(self, node: Filter) -> CompiledFilter:
+    def compile(self, node: Filter, *, top: bool = False) -> CompiledFilter:
+        """``top``: the root, whose run condition is applied in front of its shot
+        condition (so a top-level ``and`` need not repeat its whole-run parts)."""
         if isinstance(node, Comparison):
             return self.comparison(node)
         if isinstance(node, Not):
@@ -525,7 +535,7 @@ class _Compiler:
             if not mixed:
                 return CompiledFilter(runs, None)
             exact = [p.shots for p in mixed]
-            if whole_runs:
+            if whole_runs and not top:
                 exact.append(_in_runs(and_(*[p.runs for p in whole_runs])))
             return CompiledFilter(runs, and_(*exact))
         runs = or_(*[p.runs for p in parts]) if all(p.runs is not None for p in parts) else None
@@ -574,7 +584,7 @@ class _Compiler:
 
     def check_operator(self, node: Comparison, allowed: frozenset[str], what: str) -> None:
         if node.operator not in allowed:
-            raise self.error(f"'{node.name}' is {what}: use =, != or in, not '{node.operator}'", node.position)
+            raise self.error(f"'{node.name}' is {what}: use =, !=, in or not in, not '{node.operator}'", node.position)
 
     def texts(self, node: Comparison) -> list[str]:
         for value in node.values:
@@ -601,7 +611,12 @@ class _Compiler:
             if factors is None:
                 raise self.error(f"'{node.name}' is stored in '{unit or 'no unit'}'; '{value.unit}' is not a unit of the same dimension", value.position)
             scale, offset = factors
-            out.append(float(value.value) * scale + offset)
+            converted = float(value.value) * scale + offset
+            if (scale, offset) != (1.0, 0.0):
+                # 0.07 ms is 70.00000000000001 us in binary; keep what one would type in
+                # the stored unit (15 significant digits), so that it equals 70 us.
+                converted = float(f"{converted:.15g}")
+            out.append(converted)
         return out
 
     def field(self, node: Comparison, name: str) -> CompiledFilter:
@@ -762,7 +777,7 @@ def compile_selection(source, filter: Filter | str) -> CompiledFilter:
     tree = parse(filter) if isinstance(filter, str) else filter
     with _connected(source) as connection:
         names = _Names.load(connection)
-    return _Compiler(text, names).compile(tree)
+    return _Compiler(text, names).compile(tree, top=True)
 
 
 def compile_filter(source, filter: Filter | str) -> ColumnElement[bool]:

@@ -235,3 +235,17 @@ def test_drift_command_ranks_causes_and_filters_by_parameter(scenario):
     assert len(json.loads(filtered.output)["points"]) == FILL_STEP_DAY
     bad = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--param", "depth=deep"])
     assert bad.exit_code == 2
+
+
+def test_a_name_stored_in_two_units_is_not_pooled(catalogue, make_file):
+    # Fringe phase (deg) and Ramsey phase (rad) share the name 'phase'.
+    catalogue.ingest([make_file(runs={"a1": 3}, sequence="phase-scan"), make_file(runs={"b1": 3}, sequence="ramsey", seed=3)])
+    catalogue.save_figures("a1", "fringe", [Figure("phase", 30.0, "deg", stderr=1.0, method="least-squares")])
+    catalogue.save_figures("b1", "coherence", [Figure("phase", 0.5, "rad", stderr=0.1, method="least-squares")])
+    from runlog import NotFoundError
+
+    with pytest.raises(NotFoundError) as caught:
+        catalogue.drift("phase")
+    assert str(caught.value) == "no single unit for 'phase' (it is stored in deg, rad by different sequences: give a sequence)"
+    assert catalogue.drift("phase", sequence="ramsey").unit == "rad"
+    catalogue.check_drift()  # looks at each sequence alone instead of failing

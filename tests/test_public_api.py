@@ -9,7 +9,7 @@ def test_all_lists_exactly_the_public_names():
         [
             "__version__", "open", "Catalogue", "RunInfo", "IngestResult", "Figure",
             "RunlogError", "ContractError", "ConfigError", "FitError", "FilterError",
-            "NotFoundError", "StoreError", "SchemaVersionError",
+            "NotFoundError", "ExportError", "StoreError", "SchemaVersionError",
         ]
     )
     for name in runlog.__all__:

@@ -142,6 +142,7 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
         query = query.where(r.day >= since)
     if until is not None:
         query = query.where(r.day <= until)
+    _one_unit(connection, select(r.unit).where(and_(r.apparatus_id == apparatus_id, r.name == quantity, *([r.sequence == sequence] if sequence is not None else []))).distinct(), quantity)
     points: list[DriftPoint] = []
     unit, counting = "", False
     for day, *sums, day_unit in connection.execute(query):
@@ -151,6 +152,13 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
             counting = counting or point.trials is not None
             points.append(point)
     return points, unit, counting
+
+
+def _one_unit(connection: Connection, units_query, quantity: str) -> None:
+    """Refuse to pool a figure stored in several units (different kinds may share a name)."""
+    units = sorted(u or "(none)" for (u,) in connection.execute(units_query))
+    if len(units) > 1:
+        raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
 
 
 def _point(day, runs, shots, successes, trials, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
@@ -214,9 +222,13 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         query = query.where(r.day >= since)
     if until is not None:
         query = query.where(r.day <= until)
+    rows = connection.execute(query).all()
+    if len({row[-1] or "" for row in rows}) > 1:
+        units = sorted({row[-1] or "(none)" for row in rows})
+        raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
     days: dict[object, list[float]] = {}
     unit = ""
-    for day, shots, value, stderr, successes, trials, figure_unit in connection.execute(query):
+    for day, shots, value, stderr, successes, trials, figure_unit in rows:
         unit = figure_unit or unit
         sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, None, None, None])
         sums[0] += 1
