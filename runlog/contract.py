@@ -36,6 +36,9 @@ CONTRACT_VERSION = 1
 RESERVED = ("run", "apparatus", "sequence", "shot", "time")
 OPTIONAL = ("operator", "notes", "tags", "status")
 
+#: Longest text the catalogue keeps for each named thing (the schema's column sizes).
+MAX_LENGTH = {"run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "tags": 2000, "status": 40, "name": 200, "unit": 60}
+
 _NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
 _IMAGE = re.compile(r"^occ\.(?P<name>[^\[\]]+)$")
 
@@ -164,6 +167,10 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
                 "or map or ignore it in runlog.toml",
                 column=source,
             )
+        if len(column.name) > MAX_LENGTH["name"]:
+            raise ContractError(file, f"name longer than {MAX_LENGTH['name']} characters", column=source[:80])
+        if len(column.unit) > MAX_LENGTH["unit"]:
+            raise ContractError(file, f"unit longer than {MAX_LENGTH['unit']} characters", column=source[:80])
         key = f"{column.role}:{column.name}"
         if column.role in ("reserved", "optional"):
             key = column.name
@@ -211,7 +218,7 @@ def _first(mask: np.ndarray) -> int:
     return int(np.flatnonzero(mask)[0])
 
 
-def _strings(file: str, array: pa.Array, column: str, first_row: int, required: bool) -> np.ndarray:
+def _strings(file: str, array: pa.Array, column: str, first_row: int, required: bool, name_of_field: str | None = None) -> np.ndarray:
     """Text values as an object array (``None`` for missing), via the dictionary.
 
     Run, apparatus and sequence repeat over thousands of rows; checking and converting
@@ -237,6 +244,13 @@ def _strings(file: str, array: pa.Array, column: str, first_row: int, required: 
             rows = np.isin(codes.to_numpy(zero_copy_only=False), empty_codes)
             if rows.any():
                 raise ContractError(file, "empty value", column=column, row=first_row + _first(rows))
+    limit = MAX_LENGTH.get(name_of_field) if name_of_field else None
+    if limit is not None and len(dictionary):
+        long_codes = np.flatnonzero(pc.greater(pc.utf8_length(dictionary), limit).to_numpy(zero_copy_only=False))
+        if len(long_codes):
+            rows = np.isin(codes.to_numpy(zero_copy_only=False), long_codes)
+            if rows.any():
+                raise ContractError(file, f"text longer than {limit} characters", column=column, row=first_row + _first(rows))
     words = np.append(dictionary.to_numpy(zero_copy_only=False).astype(object), None)
     positions = pc.fill_null(codes, len(dictionary)).to_numpy(zero_copy_only=False)
     return words[positions]
@@ -282,13 +296,13 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
         source = layout.source(name)
         return None if source is None else get(source)
 
-    run = _strings(file, reserved("run"), layout.source("run"), first_row, required=True)
+    run = _strings(file, reserved("run"), layout.source("run"), first_row, required=True, name_of_field="run")
     apparatus_array = reserved("apparatus")
     if apparatus_array is None:
         apparatus = np.full(n, layout.default_apparatus, dtype=object)
     else:
-        apparatus = _strings(file, apparatus_array, layout.source("apparatus"), first_row, required=True)
-    sequence = _strings(file, reserved("sequence"), layout.source("sequence"), first_row, required=True)
+        apparatus = _strings(file, apparatus_array, layout.source("apparatus"), first_row, required=True, name_of_field="apparatus")
+    sequence = _strings(file, reserved("sequence"), layout.source("sequence"), first_row, required=True, name_of_field="sequence")
 
     shot_source = layout.source("shot")
     shot_array = reserved("shot")
@@ -317,7 +331,7 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
 
     def optional(name: str) -> np.ndarray | None:
         array = reserved(name)
-        return None if array is None else _strings(file, array, layout.source(name), first_row, required=False)
+        return None if array is None else _strings(file, array, layout.source(name), first_row, required=False, name_of_field=name)
 
     parameters: dict[str, np.ndarray] = {}
     for column in layout.by_role("parameter"):

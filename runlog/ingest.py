@@ -215,7 +215,11 @@ class _Plan:
                         setattr(run, attribute, str(present[0]))
             if batch.tags is not None:
                 for value in set(batch.tags[rows]) - {None}:
-                    run.tags.update(t.strip() for t in str(value).split(",") if t.strip())
+                    tags = {t.strip() for t in str(value).split(",") if t.strip()}
+                    if any(len(t) > 200 for t in tags):
+                        row = batch.first_row + int(rows[0])
+                        raise ContractError(file, "a tag longer than 200 characters", column=layout.source("tags"), row=row)
+                    run.tags.update(tags)
             for name, values in batch.measurements.items():
                 run.measurement_counts[name] = run.measurement_counts.get(name, 0) + int(np.count_nonzero(~np.isnan(values[rows])))
             for column in layout.by_role("parameter"):

@@ -427,3 +427,17 @@ def test_missing_runlog_toml_is_a_config_error(tmp_path):
     with pytest.raises(ConfigError) as raised:
         load_config(tmp_path / "absent.toml")
     assert str(raised.value) == f"{tmp_path / 'absent.toml'}: file not found"
+
+
+def test_a_run_key_longer_than_the_catalogue_keeps_is_refused_on_both_backends(catalogue, make_file):
+    # Found by the hostile-input property test: PostgreSQL refused the row mid-write while
+    # SQLite would have kept it; now the contract refuses it before anything is written.
+    from conftest import shot_table
+
+    long_key = "k" * 201
+    path = make_file("long.parquet", shot_table({"ok": 2, long_key: 2}))
+    before = catalogue.counts()
+    [result] = catalogue.ingest(path)
+    assert result.status == "rejected"
+    assert result.reason == f"{path} (column 'run', row 2): text longer than 200 characters"
+    assert catalogue.counts() == before

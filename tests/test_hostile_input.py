@@ -1,0 +1,107 @@
+"""Hostile shot tables (hypothesis): every file is ingested exactly or refused with a reason —
+never a traceback, never a partial write. On SQLite and PostgreSQL."""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import uuid
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from runlog.store.schema import SCHEMA_REVISION  # noqa: F401 - the schema the files go into
+
+T0 = dt.datetime(2026, 5, 1, tzinfo=dt.timezone.utc)
+
+hostile_names = st.text(alphabet=st.characters(codec="utf-8", exclude_categories=("Cs",)), min_size=1, max_size=12)
+names = st.one_of(st.sampled_from(["wait", "depth", "detuning", "phase", "atom_number", "ü_power", "x y"]), hostile_names)
+units = st.sampled_from(["", "us", "ms", "uK", "MHz", "deg", "µs", "V", "", "us", "furlong/fortnight", "blorp", "[", "1/0"])
+numbers = st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.integers(-(2**40), 2**40), st.none())
+
+
+@st.composite
+def shot_tables(draw):
+    n = draw(st.integers(0, 12))
+    # Fresh run keys for every example: the catalogue outlives the examples.
+    tag = uuid.uuid4().hex[:8]
+    keys = [f"{tag}-a", f"{tag}-b", f"{tag}-ü-run", f"{tag}-" + "x" * 300] + ([""] if draw(st.integers(0, 9)) == 0 else [])
+    runs = draw(st.lists(st.sampled_from(keys), min_size=n, max_size=n))
+    if draw(st.integers(0, 4)):
+        shots = list(range(n))  # mostly well-formed indices
+    else:
+        shots = draw(st.lists(st.one_of(st.integers(-2, 8), st.none()), min_size=n, max_size=n))
+    columns: dict[str, pa.Array] = {
+        "run": pa.array(runs, pa.string()),
+        "apparatus": pa.array(["bench"] * n),
+        "sequence": pa.array([draw(st.sampled_from(["loading", "ramsey"]))] * n),
+        "shot": pa.array(shots, pa.int64()),
+    }
+    if draw(st.integers(0, 9)):
+        columns["time"] = pa.array([T0 + dt.timedelta(seconds=i) for i in range(n)], pa.timestamp("us", tz="UTC"))
+    else:
+        columns["time"] = pa.array([T0.replace(tzinfo=None)] * n, pa.timestamp("us"))  # zone-less
+    for _ in range(draw(st.integers(0, 3))):
+        name = f"p.{draw(names)}[{draw(units)}]"
+        kind = draw(st.sampled_from(["number", "text", "bool"]))
+        if kind == "number":
+            columns[name] = pa.array([draw(numbers) for _ in range(n)], pa.float64() if draw(st.booleans()) else None) if n else pa.array([], pa.float64())
+        elif kind == "text":
+            columns[name] = pa.array([draw(st.one_of(names, st.none())) for _ in range(n)], pa.string())
+        else:
+            columns[name] = pa.array([draw(st.one_of(st.booleans(), st.none())) for _ in range(n)], pa.bool_())
+    for _ in range(draw(st.integers(0, 2))):
+        name = f"m.{draw(names)}[{draw(units)}]"
+        values = [draw(st.one_of(numbers, st.text(max_size=4))) for _ in range(n)]
+        if all(v is None or isinstance(v, (int, float)) for v in values):
+            columns[name] = pa.array([None if v is None else float(v) for v in values], pa.float64())
+        else:
+            columns[name] = pa.array([None if v is None else str(v) for v in values], pa.string())
+    if draw(st.booleans()):
+        length = draw(st.integers(1, 9))
+        ragged = draw(st.integers(0, 3)) == 0
+        lists = [[draw(st.booleans()) for _ in range(length + (ragged and draw(st.booleans())))] for _ in range(n)]
+        columns["occ.load"] = pa.array(lists, pa.list_(pa.bool_()))
+    return pa.table(columns)
+
+
+def _state(catalogue):
+    runs = catalogue.runs()
+    return catalogue.counts(), sorted(zip(runs["run"], runs["shots"]))
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(table=shot_tables())
+def test_every_hostile_file_is_ingested_exactly_or_refused(catalogue, tmp_path, table):
+    path = tmp_path / "hostile.parquet"
+    try:
+        pq.write_table(table, path)
+    except (pa.ArrowException, ValueError, OSError):
+        return  # not even writable as Parquet: nothing to ingest
+    before = _state(catalogue)
+    [result] = catalogue.ingest(path)  # must not raise
+    assert result.status in {"ingested", "rejected", "already-present"}
+    if result.status == "rejected":
+        assert result.reason and result.reason.startswith(str(path)) and "\n" not in result.reason
+        assert _state(catalogue) == before
+    elif result.status == "ingested":
+        counts, _ = _state(catalogue)
+        assert counts["shots"] == before[0]["shots"] + table.num_rows
+        rows = table.to_pylist()
+        for run in {row["run"] for row in rows}:
+            stored = catalogue.shots(run, apparatus="bench")
+            mine = sorted((row for row in rows if row["run"] == run), key=lambda row: row["shot"])
+            assert stored["shot"].tolist() == [row["shot"] for row in mine]
+            for name in table.column_names:
+                if not name.startswith("m."):
+                    continue
+                column = f"m.{name[2:].split('[')[0].strip()}"
+                expected = [row[name] for row in mine]
+                got = stored[column].tolist() if column in stored else [None] * len(mine)
+                for want, have in zip(expected, got):
+                    want = None if want is None or (isinstance(want, float) and math.isnan(want)) else float(want)
+                    have = None if have is None or (isinstance(have, float) and math.isnan(have)) else have
+                    assert want == have or (want is not None and have is not None and math.isclose(want, have, rel_tol=1e-12)), (name, want, have)
