@@ -443,15 +443,20 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @click.option("--since", default=None, metavar="DATE", help="First lab day (ISO).")
 @click.option("--until", default=None, metavar="DATE", help="Last lab day (ISO).")
 @click.option("--baseline-days", default=7, show_default=True, help="Days that set the control limits.")
+@click.option("--baseline", "baseline_range", default=None, metavar="FROM:TO", help="Lab days that set the limits instead (ISO dates).")
 @click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
 @click.option("--causes", is_flag=True, help="Rank what else changed at each change.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
     """Daily values of a figure, control limits, changes in level and alarms."""
     parameters = dict(_range_option(text) for text in ranges)
+    baseline = None
+    if baseline_range is not None:
+        first, _, last = baseline_range.partition(":")
+        baseline = (_day_option(first, "--baseline"), _day_option(last, "--baseline"))
     with _open(state) as catalogue:
-        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, parameters=parameters or None)
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
         ranked = {c.date: catalogue.what_else_changed(quantity, c.date, apparatus=result.apparatus, top=5) for c in result.changes} if causes else {}
     if as_json:
         data = result.as_dict()

@@ -249,3 +249,15 @@ def test_a_name_stored_in_two_units_is_not_pooled(catalogue, make_file):
     assert str(caught.value) == "no single unit for 'phase' (it is stored in deg, rad by different sequences: give a sequence)"
     assert catalogue.drift("phase", sequence="ramsey").unit == "rad"
     catalogue.check_drift()  # looks at each sequence alone instead of failing
+
+
+def test_fitted_figures_get_ewma_and_cusum_and_a_named_baseline(scenario):
+    coherence = scenario.drift("coherence_time", apparatus="bench-north", baseline=(START, START + dt.timedelta(days=4)))
+    assert coherence.limits["baseline"] == [START.isoformat(), (START + dt.timedelta(days=4)).isoformat()]
+    assert len(coherence.limits["cusum_lower"]) == DAYS
+    # The 350 us drop drives the lower CUSUM past h from the step day on.
+    first = next(i for i, v in enumerate(coherence.limits["cusum_lower"]) if v > coherence.limits["cusum_h"])
+    assert abs(first - COHERENCE_STEP_DAY) <= 1
+    assert COHERENCE_STEP_DAY in coherence.out_of_limits or COHERENCE_STEP_DAY + 1 in coherence.out_of_limits
+    result = CliRunner().invoke(cli, ["--db", scenario.engine.url.render_as_string(hide_password=False), "drift", "coherence_time", "--baseline", f"{START}:{START + dt.timedelta(days=4)}", "--json"])
+    assert result.exit_code == 0, result.output

@@ -28,7 +28,7 @@ from sqlalchemy import and_, exists, func, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
-from runlog.drift.charts import ewma_chart, p_chart
+from runlog.drift.charts import cusum_chart, ewma_chart, p_chart
 from runlog.errors import NotFoundError
 from runlog.figures.intervals import wilson
 from runlog.store import schema as s
@@ -277,14 +277,22 @@ def _ewma_limits(points: list[DriftPoint], mask: np.ndarray) -> tuple[dict[str, 
     if len(base) < 2 or not np.isfinite(base).all() or np.std(base, ddof=1) == 0:
         return {"method": "ewma (NIST/SEMATECH 6.3.2.4)", "note": "baseline too short or constant for limits"}, np.zeros(len(values), dtype=bool)
     chart = ewma_chart(values, lam=0.3, k=3.0, baseline=mask)
+    # Tabular CUSUM beside the EWMA, with the usual k = sigma/2 and h = 5 sigma (common
+    # practice, no published source for this choice): it catches a small sustained shift
+    # sooner than the EWMA's limits do.
+    sigma = float(chart.sigma)
+    cusum = cusum_chart(values, target=float(chart.center), k=0.5 * sigma, h=5.0 * sigma)
     limits = {
-        "method": "ewma (NIST/SEMATECH 6.3.2.4), lambda 0.3, 3 sigma",
+        "method": "ewma (NIST/SEMATECH 6.3.2.4), lambda 0.3, 3 sigma; tabular cusum (6.3.2.3), k 0.5 sigma, h 5 sigma",
         "center": float(chart.center),
         "lower": np.broadcast_to(chart.lower, values.shape).tolist(),
         "upper": np.broadcast_to(chart.upper, values.shape).tolist(),
         "ewma": np.asarray(chart.statistic).tolist(),
+        "cusum_upper": np.asarray(cusum.upper_sum).tolist(),
+        "cusum_lower": np.asarray(cusum.lower_sum).tolist(),
+        "cusum_h": 5.0 * sigma,
     }
-    return limits, np.asarray(chart.out_of_control, dtype=bool)
+    return limits, np.asarray(chart.out_of_control, dtype=bool) | np.asarray(cusum.out_of_control, dtype=bool)
 
 
 def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None, baseline_days: int = 7, baseline: tuple[dt.date, dt.date] | None = None, parameters: dict[str, tuple[float, float]] | None = None) -> Drift:
