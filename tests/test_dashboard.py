@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 import streamlit as st
 from scipy.optimize import curve_fit
@@ -403,3 +404,30 @@ def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(l
     notes = charts(at)[0]["layers"]["notes"]
     assert "2026-09-10T08:15:00Z" in set(notes["when"]) and "repump fibre swapped" in set(notes["text"])
     assert charts(at)[0]["spec"]["layer"][-1]["encoding"]["x"]["axis"]["title"] == "lab day (Europe/Berlin)"
+
+
+# --- an independent scenario: the drift tests' 14 invented days, not the demo ---------------
+
+
+def test_pages_work_on_an_independent_scenario(db_url, tmp_path, monkeypatch):
+    import test_drift as other
+
+    rng = np.random.default_rng(2026)
+    for day in range(other.DAYS):
+        pq.write_table(other._day_table(day, rng), tmp_path / f"load-{day:02d}.parquet")
+    with runlog.open(db_url) as catalogue:
+        assert {r.status for r in catalogue.ingest(sorted(tmp_path.glob("*.parquet")))} == {"ingested"}
+        expected = catalogue.drift("fill_fraction", apparatus="bench-north", record_alarms=False)
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = start()  # the overview: one apparatus, its latest lab day
+        assert any("bench-north" in h.value for h in at.subheader) or any("bench-north" in m.value for m in at.markdown)
+        open_page(at, "drift")
+        fill = next(c for c in charts(at) if c["spec"]["title"]["text"] == "fill fraction: bench-north")
+        np.testing.assert_allclose(fill["layers"]["daily values"]["value"], [p.value for p in expected.points], rtol=1e-12)
+        assert list(fill["layers"]["changes"]["day"]) == [c.date.isoformat() for c in expected.changes]
+        open_page(at, "run_detail")
+        open_page(at, "shots")
+        open_page(at, "annotate")
+    finally:
+        _forget_cached(db_url)
