@@ -11,7 +11,7 @@ import datetime as dt
 import getpass
 from collections.abc import Iterable
 from typing import TYPE_CHECKING
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -122,11 +122,19 @@ class Catalogue:
     # --- writing -------------------------------------------------------------------
 
     def ingest(self, paths: Iterable[str | Path] | str | Path, *, config: str | Path | Mapping | None = None, progress: Progress | None = None) -> list[IngestResult]:
-        """Ingest shot-table files (folders give their ``*.parquet``); one result per file."""
+        """Ingest shot-table files (folders give their ``*.parquet``); one result per file.
+
+        With ``[[rules]]`` in the configuration, each ingested file's runs get those figures
+        (``IngestResult.derived``).
+        """
         if isinstance(paths, (str, Path)):
             paths = [paths]
         mapping = config if isinstance(config, Mapping) else load_config(config)
-        return ingest_files(self.engine, paths, mapping, progress)
+        results = ingest_files(self.engine, paths, mapping, progress)
+        if not mapping.rules:
+            return results
+        # The configuration's rules give the newly ingested runs their fitted figures.
+        return [replace(r, derived=tuple(self.apply_rules(mapping.rules, runs=r.runs))) if r.status == "ingested" else r for r in results]
 
     def annotate(self, text: str, *, run: str | None = None, apparatus: str | None = None, at: dt.datetime | str | None = None, author: str | None = None) -> int:
         """Add a note tied to a run, or to an apparatus at a time; returns its id."""

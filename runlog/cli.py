@@ -126,17 +126,16 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
         finally:
             if progress:
                 progress.close()
-        derived = [_derived_after_ingest(catalogue, mapping.rules, r) for r in results]
     if as_json:
-        _json([r.as_dict() | ({"derived": [_outcome_json(o) for o in d]} if mapping.rules else {}) for r, d in zip(results, derived)])
+        _json([r.as_dict() | ({"derived": [_outcome_json(o) for o in r.derived]} if mapping.rules else {}) for r in results])
     else:
-        for r, d in zip(results, derived):
+        for r in results:
             if r.status == "rejected":
                 click.echo(f"rejected         {r.reason}")
             else:
                 runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
                 click.echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
-            for outcome in d:
+            for outcome in r.derived:
                 _wrapped(_outcome_line(outcome))
     if any(r.status == "rejected" for r in results):
         sys.exit(1)
@@ -302,7 +301,7 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
         def ingest_and_derive(paths: list[Path]) -> list:
             results = catalogue.ingest(paths, config=mapping)
             for result in results:
-                for outcome in _derived_after_ingest(catalogue, mapping.rules, result):
+                for outcome in result.derived:
                     logger.info("%s", _outcome_line(outcome))
             return results
 
@@ -411,13 +410,6 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
     _wrapped(f"run {result.run}: {result.kind}, {len(result.figures)} figures stored", indent="")
     for name, figure in result.as_dict()["figures"].items():
         click.echo("  " + _figure_line(name, figure))
-
-
-def _derived_after_ingest(catalogue, rules: tuple[dict, ...], result) -> list:
-    """The rules applied to the runs one ingested file brought in (none for other files)."""
-    if not rules or result.status != "ingested":
-        return []
-    return catalogue.apply_rules(rules, runs=result.runs)
 
 
 def _outcome_line(outcome) -> str:

@@ -52,6 +52,9 @@ class IngestResult:
     runs: tuple[str, ...] = ()
     shots: int = 0
     reason: str | None = None
+    #: What the configuration's [[rules]] gave for this file's runs: ``DeriveResult`` or
+    #: ``FitError`` objects (empty without rules).
+    derived: tuple = ()
 
     def as_dict(self) -> dict[str, object]:
         return {
