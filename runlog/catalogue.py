@@ -606,6 +606,38 @@ class Catalogue:
             apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
             return what_else_changed(connection, apparatus_id, _as_day(day), quantity, window=window, top=top)
 
+    # --- access ----------------------------------------------------------------------
+
+    def grant_reader(self, role: str, *, password: str | None = None) -> None:
+        """Create (if needed) a PostgreSQL login role that can read the catalogue and nothing
+        more, for the dashboard and for analysis accounts. SQLite has no roles."""
+        import re
+
+        if self.engine.dialect.name != "postgresql":
+            raise StoreError("read-only roles need PostgreSQL; on SQLite give readers a copy or file permissions")
+        if not re.fullmatch(r"[a-z_][a-z0-9_]{0,62}", role):
+            raise ValueError(f"role name {role!r}: use lower-case letters, digits and _ (at most 63)")
+        from psycopg import sql
+
+        with self.engine.begin() as connection:
+            raw = connection.connection.driver_connection
+            name = sql.Identifier(role)
+            with raw.cursor() as cursor:
+                cursor.execute("SELECT 1 FROM pg_roles WHERE rolname = %s", (role,))
+                if cursor.fetchone() is None:
+                    cursor.execute(sql.SQL("CREATE ROLE {} LOGIN").format(name))
+                if password is not None:
+                    cursor.execute(sql.SQL("ALTER ROLE {} PASSWORD {}").format(name, sql.Literal(password)))
+                cursor.execute("SELECT current_database(), current_schema()")
+                database, schema = cursor.fetchone()
+                for statement in (
+                    "GRANT CONNECT ON DATABASE {database} TO {role}",
+                    "GRANT USAGE ON SCHEMA {schema} TO {role}",
+                    "GRANT SELECT ON ALL TABLES IN SCHEMA {schema} TO {role}",
+                    "ALTER DEFAULT PRIVILEGES IN SCHEMA {schema} GRANT SELECT ON TABLES TO {role}",
+                ):
+                    cursor.execute(sql.SQL(statement).format(database=sql.Identifier(database), schema=sql.Identifier(schema), role=name))
+
     # --- helpers -------------------------------------------------------------------
 
     def _find_run(self, connection, key: str, apparatus: str | None):

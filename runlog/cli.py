@@ -625,6 +625,27 @@ def plot_run_command(state: _State, run: str, out: Path, apparatus: str | None, 
         click.echo(f"wrote {plot_run(catalogue, run, out, apparatus=apparatus, x=x, y=y)}")
 
 
+@cli.group("db")
+def db_group() -> None:
+    """Catalogue administration (PostgreSQL)."""
+
+
+@db_group.command("grant-reader")
+@click.argument("role")
+@click.option("--password-env", metavar="VAR", default=None, help="Set the role's password from this environment variable (never on the command line).")
+@_common
+def grant_reader(state: _State, role: str, password_env: str | None) -> None:
+    """Create a read-only login ROLE for the dashboard and analysis accounts."""
+    password = None
+    if password_env is not None:
+        password = os.environ.get(password_env)
+        if password is None:
+            raise click.UsageError(f"environment variable {password_env} is not set")
+    with _open(state) as catalogue:
+        catalogue.grant_reader(role, password=password)
+        click.echo(f"role {role} can read {catalogue.url}")
+
+
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning runlog's errors into one line and an exit code."""
     debug = "--debug" in (argv if argv is not None else sys.argv[1:])
