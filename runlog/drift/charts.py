@@ -287,7 +287,7 @@ def p_chart(successes: ArrayLike, trials: ArrayLike, *, baseline: Baseline = Non
     if overdispersion and 0.0 < center < 1.0:
         z = _select((p - center) / sigma, baseline, "p chart", 1)
         if z.size >= 3:
-            factor = max(1.0, float(np.mean(np.abs(np.diff(z))) / 1.128))
+            factor = max(1.0, float(np.mean(np.abs(np.diff(z))) / MOVING_RANGE_D2))
     half_width = 3.0 * sigma * factor
     lower = np.clip(center - half_width, 0.0, 1.0)
     upper = np.clip(center + half_width, 0.0, 1.0)
