@@ -42,8 +42,9 @@ import pyarrow.parquet as pq
 from sqlalchemy import select
 
 from runlog.errors import ExportError, ConfigError
-from runlog.selection import Selection, select_on
+from runlog.selection import PARALLEL_READS, Selection, id_in, select_on
 from runlog.store import schema as s
+from runlog.store.arrow_reader import arrow_read
 from runlog.store.engine import redact
 
 __all__ = ["FORMATS", "ExportResult", "export", "export_spec"]
@@ -108,11 +109,11 @@ def _runs_table(connection, run_ids: np.ndarray, per_run_shots: dict[int, int], 
         rows += connection.execute(
             select(runs.c.id, runs.c.key, apparatus.c.name, runs.c.sequence, runs.c.started, runs.c.finished, runs.c.day, runs.c.operator, runs.c.shot_count)
             .join(apparatus, apparatus.c.id == runs.c.apparatus_id)
-            .where(runs.c.id.in_(chunk))
+            .where(id_in(runs.c.id, chunk))
         ).all()
     tag_lists: dict[int, list[str]] = {}
     for chunk in _chunks(wanted):
-        for run_id, tag in connection.execute(select(tags.c.run_id, tags.c.tag).where(tags.c.run_id.in_(chunk))):
+        for run_id, tag in connection.execute(select(tags.c.run_id, tags.c.tag).where(id_in(tags.c.run_id, chunk))):
             tag_lists.setdefault(int(run_id), []).append(tag)
     rows.sort(key=lambda r: (r.name, r.key))
     order = [int(r.id) for r in rows]
@@ -136,30 +137,21 @@ def _runs_table(connection, run_ids: np.ndarray, per_run_shots: dict[int, int], 
 def _figures_table(connection, run_order: list[int], runs_table: pa.Table) -> pa.Table:
     figures = s.FigureRow.__table__
     position = {rid: i for i, rid in enumerate(run_order)}
-    rows = []
+    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials")
+    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64())
+    rows: list[tuple] = []
     for chunk in _chunks(run_order):
         rows += connection.execute(
-            select(figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials).where(figures.c.run_id.in_(chunk))
+            select(figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials).where(id_in(figures.c.run_id, chunk))
         ).all()
-    rows.sort(key=lambda r: (position[int(r.run_id)], r.name))
-    keys, apparatus = runs_table.column("run").to_pylist(), runs_table.column("apparatus").to_pylist()
-    return pa.table(
-        {
-            "run": pa.array([keys[position[int(r.run_id)]] for r in rows], pa.string()),
-            "apparatus": pa.array([apparatus[position[int(r.run_id)]] for r in rows], pa.string()),
-            "figure": pa.array([r.name for r in rows], pa.string()),
-            "kind": pa.array([r.kind for r in rows], pa.string()),
-            "value": pa.array([r.value for r in rows], pa.float64()),
-            "stderr": pa.array([r.stderr for r in rows], pa.float64()),
-            "ci_low": pa.array([r.ci_low for r in rows], pa.float64()),
-            "ci_high": pa.array([r.ci_high for r in rows], pa.float64()),
-            "unit": pa.array([r.unit or "" for r in rows], pa.string()),
-            "method": pa.array([r.method for r in rows], pa.string()),
-            "method_version": pa.array([r.method_version for r in rows], pa.string()),
-            "successes": pa.array([r.successes for r in rows], pa.int64()),
-            "trials": pa.array([r.trials for r in rows], pa.int64()),
-        }
-    )
+    rows.sort(key=lambda r: (position[int(r[0])], r[1]))
+    columns = list(zip(*rows)) if rows else [()] * len(names)
+    at = pa.array([position[int(r)] for r in columns[0]], pa.int64())
+    out = {"run": runs_table.column("run").take(at), "apparatus": runs_table.column("apparatus").take(at)}
+    for name, kind, values in zip(names[1:], types[1:], columns[1:]):
+        out[name] = pa.array(values, kind)
+    out["unit"] = pc.fill_null(out["unit"], "")
+    return pa.table(out)
 
 
 def _occupancy(connection, selection: Selection, run_order: list[int], runs_table: pa.Table) -> tuple[dict[str, pa.Array], pa.Table]:
@@ -169,7 +161,7 @@ def _occupancy(connection, selection: Selection, run_order: list[int], runs_tabl
     position = {rid: i for i, rid in enumerate(run_order)}
     image_rows = []
     for chunk in _chunks(run_order):
-        image_rows += connection.execute(select(images.c.id, images.c.run_id, images.c.name, images.c.role, images.c.sites, images.c.shape).where(images.c.run_id.in_(chunk))).all()
+        image_rows += connection.execute(select(images.c.id, images.c.run_id, images.c.name, images.c.role, images.c.sites, images.c.shape).where(id_in(images.c.run_id, chunk))).all()
     image_rows.sort(key=lambda r: (position[int(r.run_id)], r.name))
     keys, apparatus = runs_table.column("run").to_pylist(), runs_table.column("apparatus").to_pylist()
     images_table = pa.table(
@@ -190,7 +182,7 @@ def _occupancy(connection, selection: Selection, run_order: list[int], runs_tabl
     sorted_ids = selection.shot_ids[by_id]
     image_ids = list(image_name)
     for chunk in _chunks(image_ids):
-        result = connection.execution_options(stream_results=True).execute(select(occupancy.c.shot_id, occupancy.c.image_id, occupancy.c.bits).where(occupancy.c.image_id.in_(chunk)))
+        result = connection.execution_options(stream_results=True).execute(select(occupancy.c.shot_id, occupancy.c.image_id, occupancy.c.bits).where(id_in(occupancy.c.image_id, chunk)))
         while rows := result.fetchmany(100_000):
             shot_ids = np.fromiter((r[0] for r in rows), np.int64, len(rows))
             where = np.searchsorted(sorted_ids, shot_ids)
@@ -454,19 +446,13 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
     # an ingest is writing (SQLite's read transaction is a snapshot; PostgreSQL needs
     # repeatable read for one).
     options = {"isolation_level": "REPEATABLE READ"} if engine.dialect.name == "postgresql" else {}
-    with engine.connect().execution_options(**options) as connection:
-        selection = select_on(connection, where, shot_ids=with_occupancy)
-        zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
-        unique, counts = np.unique(selection.run_ids, return_counts=True)
-        runs_table, run_order = _runs_table(connection, selection.run_ids, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
-        figures_table = _figures_table(connection, run_order, runs_table)
-        shots_table = selection.table
-        images_table = None
-        if with_occupancy:
-            occupancy_columns, images_table = _occupancy(connection, selection, run_order, runs_table)
-            for name, values in occupancy_columns.items():
-                shots_table = shots_table.append_column(name, values)
-        sources = _source_files(connection, runs_table)
+    with arrow_read(engine, parallel=PARALLEL_READS) as fast:
+        if fast is not None:
+            tables = _read(fast, where, with_occupancy)
+    if fast is None:
+        with engine.connect().execution_options(**options) as connection:
+            tables = _read(connection, where, with_occupancy)
+    selection, shots_table, runs_table, figures_table, images_table, sources, zone = tables
 
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
@@ -516,6 +502,23 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
         shutil.rmtree(staging, ignore_errors=True)
         raise
     return ExportResult(out, shots_table.num_rows, runs_table.num_rows, data, created)
+
+
+def _read(connection, where: str, with_occupancy: bool):
+    """Everything an export writes, read in the connection's one transaction."""
+    selection = select_on(connection, where, shot_ids=with_occupancy)
+    zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
+    unique, counts = np.unique(selection.run_ids, return_counts=True)
+    runs_table, run_order = _runs_table(connection, selection.run_ids, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
+    figures_table = _figures_table(connection, run_order, runs_table)
+    shots_table = selection.table
+    images_table = None
+    if with_occupancy:
+        occupancy_columns, images_table = _occupancy(connection, selection, run_order, runs_table)
+        for name, values in occupancy_columns.items():
+            shots_table = shots_table.append_column(name, values)
+    sources = _source_files(connection, runs_table)
+    return selection, shots_table, runs_table, figures_table, images_table, sources, zone
 
 
 def _move_into_place(staging: Path, out: Path, overwrite: bool) -> None:

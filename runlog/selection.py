@@ -14,6 +14,7 @@ the parameters and measurements that at least one selected shot has. Units are i
 
 from __future__ import annotations
 
+import os
 import uuid
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -22,20 +23,24 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import BigInteger, Column, Float, MetaData, Table, and_, cast, extract, select, type_coerce
+from sqlalchemy import BigInteger, Column, Float, MetaData, Table, and_, bindparam, cast, extract, func, select, type_coerce
 from sqlalchemy.engine import Connection
 
 from runlog.errors import NotFoundError
 from runlog.filters import CompiledFilter, compile_selection
 from runlog.store import schema as s
+from runlog.store.arrow_reader import arrow_read, fetch_arrow_parallel, is_arrow, parallel_readers
 
 if TYPE_CHECKING:
     import pandas as pd
 
-__all__ = ["BASE_COLUMNS", "Selection", "select_shots", "select_arrow", "select_table", "select_on"]
+__all__ = ["BASE_COLUMNS", "Selection", "id_in", "select_shots", "select_arrow", "select_table", "select_on"]
 
 #: The columns every selection starts with.
 BASE_COLUMNS = ("run", "apparatus", "sequence", "shot", "time")
+
+#: Connections reading one large selection side by side (SQLite).
+PARALLEL_READS = max(1, min(4, os.cpu_count() or 1))
 
 # Rows fetched per round trip: large enough that per-chunk work is amortised, small
 # enough that one chunk of Python row objects stays in the tens of megabytes.
@@ -99,7 +104,7 @@ def _stream(connection: Connection, query, size: int) -> Iterator[list[tuple]]:
     before it. PostgreSQL streams through a server-side cursor.
     """
     dialect = connection.dialect
-    compiled = query.compile(dialect=dialect)
+    compiled = query.compile(dialect=dialect, compile_kwargs={"render_postcompile": True})
 
     def value(name: str) -> object:
         raw = compiled.params[name]
@@ -118,6 +123,11 @@ def _stream(connection: Connection, query, size: int) -> Iterator[list[tuple]]:
             yield rows
     finally:
         cursor.close()
+
+
+def id_in(column, ids: Sequence[int]):
+    """``column IN (ids)`` with the integers written into the statement."""
+    return column.in_(bindparam(None, [int(i) for i in ids], expanding=True, literal_execute=True))
 
 
 def _wanted(columns: Sequence[str] | None, parameters: dict[str, object], measurements: dict[str, object]) -> tuple[set[str] | None, set[str] | None]:
@@ -152,6 +162,9 @@ def select_table(catalogue, where: str | None = None, *, columns: Sequence[str] 
     """The selected shots as an Arrow table with their run ids and, if asked, their
     shot ids (for exports; reading them costs a sixth more)."""
     engine = catalogue.engine if hasattr(catalogue, "engine") else catalogue
+    with arrow_read(engine, parallel=PARALLEL_READS) as fast:
+        if fast is not None:
+            return select_on(fast, where, columns=columns, limit=limit, shot_ids=shot_ids)
     with engine.connect() as connection:
         return select_on(connection, where, columns=columns, limit=limit, shot_ids=shot_ids)
 
@@ -166,14 +179,19 @@ def select_on(connection: Connection, where: str | None = None, *, columns: Sequ
 def _select(connection: Connection, compiled: CompiledFilter, where: str | None, columns: Sequence[str] | None, limit: int | None, with_ids: bool) -> Selection:
     dialect = connection.dialect.name
     candidate_ids = compiled.run_ids()
-    runs: dict[int, _Run] = {
-        int(rid): _Run(key, apparatus, sequence)
-        for rid, key, apparatus, sequence in connection.execute(
-            select(_runs.c.id, _runs.c.key, _apparatus.c.name, _runs.c.sequence)
-            .join(_apparatus, _apparatus.c.id == _runs.c.apparatus_id)
-            .where(_runs.c.id.in_(candidate_ids))
-        )
-    }
+    runs: dict[int, _Run] = {}
+    run_shots: dict[int, int] = {}
+    for rid, key, apparatus, sequence, shot_count in connection.execute(
+        select(_runs.c.id, _runs.c.key, _apparatus.c.name, _runs.c.sequence, _runs.c.shot_count)
+        .join(_apparatus, _apparatus.c.id == _runs.c.apparatus_id)
+        .where(_runs.c.id.in_(candidate_ids))
+    ):
+        runs[int(rid)] = _Run(key, apparatus, sequence)
+        run_shots[int(rid)] = int(shot_count or 0)
+    # The candidate runs are read once; later queries name them as a literal list of
+    # integers (from the catalogue itself) rather than repeating the filter's run
+    # conditions or binding thousands of values.
+    run_list_sql = sorted(runs)
     all_parameters = {name: (int(pid), unit or "", kind) for pid, name, unit, kind in connection.execute(select(s.Parameter.id, s.Parameter.name, s.Parameter.unit, s.Parameter.kind))}
     all_measurements = {name: (int(mid), unit or "") for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))}
     want_p, want_m = _wanted(columns, all_parameters, all_measurements)
@@ -182,7 +200,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     parameters: dict[int, _ParameterColumn] = {}
     rp = _run_parameters
     for run_id, pid, scanned, number, text_value in connection.execute(
-        select(rp.c.run_id, rp.c.parameter_id, rp.c.scanned, rp.c.number_value, rp.c.text_value).where(rp.c.run_id.in_(candidate_ids))
+        select(rp.c.run_id, rp.c.parameter_id, rp.c.scanned, rp.c.number_value, rp.c.text_value).where(id_in(rp.c.run_id, run_list_sql))
     ):
         name = by_id[int(pid)]
         if want_p is not None and name not in want_p:
@@ -194,7 +212,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         else:
             column.constant[int(run_id)] = text_value if kind == "text" else (None if number is None else (bool(number) if kind == "boolean" else float(number)))
     carried = s.RunMeasurement.__table__
-    measurement_ids = {int(m) for (m,) in connection.execute(select(carried.c.measurement_id).where(carried.c.run_id.in_(candidate_ids)).distinct())}
+    measurement_ids = {int(m) for (m,) in connection.execute(select(carried.c.measurement_id).where(id_in(carried.c.run_id, run_list_sql)).distinct())}
     measurements = sorted(
         ((name, mid, unit) for name, (mid, unit) in all_measurements.items() if mid in measurement_ids and (want_m is None or name in want_m)),
     )
@@ -211,24 +229,26 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
         source = source.outerjoin(wide, wide.c.shot_id == _shots.c.id)
         value_columns += [wide.c[s.measurement_column(mid)] for _, mid, _ in measurements]
-    query = select(*([_shots.c.id] if with_ids else []), _shots.c.run_id, _shots.c.shot, _time_us(dialect), *value_columns).select_from(source).where(compiled.condition)
-    if limit is not None:
+    query = select(*([_shots.c.id] if with_ids else []), _shots.c.run_id, _shots.c.shot, _time_us(dialect), *value_columns).select_from(source)
+
+    def shaped(condition):
+        if limit is None:
+            return query.where(condition)
         # A limit needs the final order in SQL; without one, sorting afterwards is cheaper.
-        query = (
-            query.join(_runs, _runs.c.id == _shots.c.run_id)
+        return (
+            query.where(condition)
+            .join(_runs, _runs.c.id == _shots.c.run_id)
             .join(_apparatus, _apparatus.c.id == _runs.c.apparatus_id)
             .order_by(_apparatus.c.name, _runs.c.key, _shots.c.shot)
             .limit(int(limit))
         )
+
+    parts = [shaped(part.condition) for part in _split(compiled, run_shots, parallel_readers(connection) if limit is None else 1)]
     types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
-    row_type = pa.struct([pa.field(f"c{i}", kind) for i, kind in enumerate(types)])
-    # Arrow turns each chunk of row tuples into columns in C; the row objects of a
-    # chunk are dropped before the next one is read.
-    chunks = [pa.array(rows, type=row_type) for rows in _stream(connection, query, CHUNK_ROWS)]
-    if chunks:
-        arrays = [pa.concat_arrays([chunk.field(i) for chunk in chunks]) for i in range(len(types))]
+    if is_arrow(connection):
+        arrays = _read_arrow(connection, parts, types, keys=4 if with_ids else 3)
     else:
-        arrays = [pa.array([], type=kind) for kind in types]
+        arrays = _read_rows(connection, shaped(compiled.condition), types)
 
     shot_ids = arrays.pop(0).to_numpy(zero_copy_only=False) if with_ids else None
     run_ids = arrays[0].to_numpy(zero_copy_only=False)
@@ -291,6 +311,65 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     fields = [pa.field(n, a.type, metadata={"unit": units[n]} if n in units else None) for n, a in zip(names, out)]
     table = pa.Table.from_arrays(out, schema=pa.schema(fields))
     return Selection(table, shot_ids.astype(np.int64) if shot_ids is not None else None, run_ids.astype(np.int64), where, units)
+
+
+# Below this many shots one connection reads faster than several.
+_SPLIT_SHOTS = 200_000
+
+
+def _split(compiled: CompiledFilter, run_shots: dict[int, int], readers: int) -> list[CompiledFilter]:
+    """The filter cut into up to ``readers`` pieces over contiguous ranges of run ids
+    holding about equal numbers of shots (the pieces select the same shots together)."""
+    total = sum(run_shots.values())
+    if readers < 2 or total < _SPLIT_SHOTS:
+        return [compiled]
+    ids = sorted(run_shots)
+    cumulative = np.cumsum([run_shots[i] for i in ids])
+    edges = [int(np.searchsorted(cumulative, total * k / readers)) for k in range(1, readers)]
+    bounds = [0, *sorted({min(e + 1, len(ids)) for e in edges}), len(ids)]
+    out = []
+    for low, high in zip(bounds[:-1], bounds[1:]):
+        if low >= high:
+            continue
+        in_range = _runs.c.id.between(ids[low], ids[high - 1])
+        out.append(CompiledFilter(in_range if compiled.runs is None else and_(compiled.runs, in_range), compiled.shots))
+    return out
+
+
+def _read_rows(connection: Connection, query, types: list[pa.DataType]) -> list[pa.Array]:
+    """The columns of ``query`` through the driver's row tuples."""
+    row_type = pa.struct([pa.field(f"c{i}", kind) for i, kind in enumerate(types)])
+    # Arrow turns each chunk of row tuples into columns in C; the row objects of a
+    # chunk are dropped before the next one is read.
+    chunks = [pa.array(rows, type=row_type) for rows in _stream(connection, query, CHUNK_ROWS)]
+    if chunks:
+        return [pa.concat_arrays([chunk.field(i) for chunk in chunks]) for i in range(len(types))]
+    return [pa.array([], type=kind) for kind in types]
+
+
+def _read_arrow(connection: Connection, parts: list, types: list[pa.DataType], keys: int) -> list[pa.Array]:
+    """The columns of the queries ``parts`` (one after another) as Arrow arrays from the
+    ADBC driver, each part read on its own connection of the same snapshot.
+
+    The driver infers a column's type from its first values, so no value column may
+    start with NULLs: each is read as ``coalesce(value, 0)`` beside a flag ``value IS
+    NULL``, and the NULLs are put back here. The first ``keys`` columns are integers
+    that are never NULL.
+    """
+    columns = list(parts[0].selected_columns)
+    read = columns[:keys]
+    for column, kind in zip(columns[keys:], types[keys:]):
+        read.append(func.coalesce(column, "" if kind == pa.string() else 0.0).label(None))
+        read.append(column.is_(None).label(None))
+    tables = fetch_arrow_parallel(connection, [part.with_only_columns(*read, maintain_column_froms=True) for part in parts])
+    table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
+    arrays = [table.column(i).combine_chunks().cast(kind) for i, kind in enumerate(types[:keys])]
+    for i, kind in enumerate(types[keys:]):
+        values = table.column(keys + 2 * i).combine_chunks()
+        missing = pc.not_equal(table.column(keys + 2 * i + 1).combine_chunks(), 0)
+        values = values.cast(pa.string()) if kind == pa.string() else values.cast(pa.float64())
+        arrays.append(pc.if_else(missing, pa.scalar(None, values.type), values))
+    return arrays
 
 
 def select_arrow(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None) -> pa.Table:

@@ -9,6 +9,7 @@ anything printed or logged, and reading the schema revision without importing Al
 from __future__ import annotations
 
 import os
+import threading
 from pathlib import Path
 
 from sqlalchemy import create_engine, event, inspect, text
@@ -29,6 +30,8 @@ __all__ = [
     "current_revision",
     "sqlite_files_in_use",
     "exclusive_bulk_writer",
+    "hold_for_adbc",
+    "release_from_adbc",
 ]
 
 #: How long a SQLite writer waits for another writer before giving up.
@@ -66,40 +69,71 @@ def sqlite_path(url: str | URL) -> Path | None:
 
 
 # Two copies of the SQLite library live in this process: Python's (SQLAlchemy) and the
-# one inside the ADBC driver (bulk writes). POSIX locks belong to the process, so a copy
-# that closes its file releases the other copy's locks, and can even delete a WAL file
-# the other still uses. The two must therefore never have the same file open at once:
-# SQLite engines keep no idle connections (NullPool) and these counters let each side
-# refuse to open the file while the other has it.
+# one inside the ADBC driver (bulk writes, Arrow reads). POSIX locks belong to the
+# process, so a copy that closes its file releases the other copy's locks, and can even
+# delete a WAL file the other still uses. The two must therefore never have the same
+# file open at once: SQLite engines keep no idle connections (NullPool), a Python-SQLite
+# connection waits (before it opens the file) while an ADBC user of another thread holds
+# it, and an ADBC user only takes a file no Python-SQLite connection has open.
+_guard = threading.Condition()
 _python_sqlite_open: dict[str, int] = {}
-_bulk_writer_open: set[str] = set()
+_adbc_holder: dict[str, int] = {}  # file -> thread id of its ADBC user
 
 
 def sqlite_files_in_use() -> dict[str, int]:
     """Open Python-SQLite connections per database file (for the bulk writer's check)."""
-    return {path: count for path, count in _python_sqlite_open.items() if count}
+    with _guard:
+        return {path: count for path, count in _python_sqlite_open.items() if count}
 
 
 def exclusive_bulk_writer(path: str, opening: bool) -> None:
     """Mark ``path`` as held by the bulk writer (``opening``) or released."""
     if opening:
-        if _python_sqlite_open.get(path):
+        if not hold_for_adbc(path):
             raise StoreError(f"internal: {path} is open in another connection of this process during a bulk write")
-        _bulk_writer_open.add(path)
     else:
-        _bulk_writer_open.discard(path)
+        release_from_adbc(path)
+
+
+def hold_for_adbc(path: str) -> bool:
+    """Take ``path`` for an ADBC connection of this thread; ``False`` (nothing taken)
+    while a Python-SQLite connection or another ADBC user has it open."""
+    with _guard:
+        if _python_sqlite_open.get(path) or path in _adbc_holder:
+            return False
+        _adbc_holder[path] = threading.get_ident()
+        return True
+
+
+def release_from_adbc(path: str) -> None:
+    """Give ``path`` back after :func:`hold_for_adbc`; waiting connections go on."""
+    with _guard:
+        _adbc_holder.pop(path, None)
+        _guard.notify_all()
 
 
 def _track(path: str):
-    def opened(dbapi_connection, _record) -> None:
-        if path in _bulk_writer_open:
-            raise StoreError(f"internal: {path} opened while the bulk writer of this process holds it")
-        _python_sqlite_open[path] = _python_sqlite_open.get(path, 0) + 1
+    def connect(dialect, _record, cargs, cparams):
+        # Wait before the file is opened: an open descriptor that is closed again would
+        # drop the ADBC side's locks.
+        with _guard:
+            if _adbc_holder.get(path) == threading.get_ident():
+                raise StoreError(f"internal: {path} opened while this thread's ADBC connection holds it")
+            if not _guard.wait_for(lambda: path not in _adbc_holder, timeout=BUSY_TIMEOUT_MS / 1000):
+                raise StoreError(f"{path} stayed busy with a bulk write or read of this process for {BUSY_TIMEOUT_MS // 1000} s")
+            _python_sqlite_open[path] = _python_sqlite_open.get(path, 0) + 1
+        try:
+            return dialect.connect(*cargs, **cparams)
+        except BaseException:
+            closed(None, None)
+            raise
 
     def closed(dbapi_connection, _record) -> None:
-        _python_sqlite_open[path] = max(0, _python_sqlite_open.get(path, 0) - 1)
+        with _guard:
+            _python_sqlite_open[path] = max(0, _python_sqlite_open.get(path, 0) - 1)
+            _guard.notify_all()
 
-    return opened, closed
+    return connect, closed
 
 
 def _set_sqlite_pragmas(dbapi_connection, _record) -> None:
@@ -138,8 +172,8 @@ def make_engine(url: str) -> Engine:
         if backend == "sqlite":
             engine = create_engine(parsed, connect_args={"timeout": BUSY_TIMEOUT_MS / 1000}, poolclass=NullPool)
             if path is not None:
-                opened, closed = _track(str(path.resolve()))
-                event.listen(engine, "connect", opened)
+                connect, closed = _track(str(path.resolve()))
+                event.listen(engine, "do_connect", connect)
                 event.listen(engine, "close", closed)
             event.listen(engine, "connect", _sqlite_no_implicit_transactions)
             event.listen(engine, "connect", _set_sqlite_pragmas)
