@@ -30,6 +30,8 @@ import shutil
 import tempfile
 import tomllib
 import uuid
+from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -302,7 +304,13 @@ def _schema(table: pa.Table, units: dict[str, str], primary_key: list[str], fore
     return out
 
 
-def _resource(name: str, path: Path, format: str, schema: dict[str, object], description: str) -> dict[str, object]:
+def _write_and_hash(table: pa.Table, path: Path, format: str) -> str:
+    """Write ``table`` to ``path``; its SHA-256 (hex)."""
+    _write(table, path, format)
+    return _sha256(path)
+
+
+def _resource(name: str, path: Path, format: str, schema: dict[str, object], description: str, digest: str) -> dict[str, object]:
     entry: dict[str, object] = {
         "name": name,
         "type": "table",
@@ -313,7 +321,7 @@ def _resource(name: str, path: Path, format: str, schema: dict[str, object], des
     if format == "csv":
         entry["encoding"] = "utf-8"
         entry["dialect"] = {"header": True, "delimiter": ","}
-    entry.update({"bytes": path.stat().st_size, "hash": f"sha256:{_sha256(path)}", "description": description, "schema": schema})
+    entry.update({"bytes": path.stat().st_size, "hash": f"sha256:{digest}", "description": description, "schema": schema})
     return entry
 
 
@@ -446,18 +454,28 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
     # an ingest is writing (SQLite's read transaction is a snapshot; PostgreSQL needs
     # repeatable read for one).
     options = {"isolation_level": "REPEATABLE READ"} if engine.dialect.name == "postgresql" else {}
-    with arrow_read(engine, parallel=PARALLEL_READS) as fast:
-        if fast is not None:
-            tables = _read(fast, where, with_occupancy)
-    if fast is None:
-        with engine.connect().execution_options(**options) as connection:
-            tables = _read(connection, where, with_occupancy)
-    selection, shots_table, runs_table, figures_table, images_table, sources, zone = tables
-
+    new_parents = [folder for folder in (out.parent, *out.parent.parents) if not folder.exists()]
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    suffix = "parquet" if format == "parquet" else "csv"
+    # The shots file is written (and hashed) on a second thread while the runs and
+    # figures are read: Arrow's writer and the reads both leave the interpreter lock.
+    background = ThreadPoolExecutor(max_workers=1)
+    written: dict[str, Future[str]] = {}
+
+    def write_shots_early(table: pa.Table) -> None:
+        written["shots"] = background.submit(_write_and_hash, table, staging / f"shots.{suffix}", format)
+
+    early = None if with_occupancy else write_shots_early
     try:
-        suffix = "parquet" if format == "parquet" else "csv"
+        with arrow_read(engine, parallel=PARALLEL_READS) as fast:
+            if fast is not None:
+                tables = _read(fast, where, with_occupancy, early)
+        if fast is None:
+            with engine.connect().execution_options(**options) as connection:
+                tables = _read(connection, where, with_occupancy, early)
+        selection, shots_table, runs_table, figures_table, images_table, sources, zone = tables
+
         tables = [
             ("shots", shots_table, selection.units, ["run", "apparatus", "shot"], True, "one row per shot: run fields, time, parameters (p.), measurements (m.)" + (", occupancy (occ.)" if with_occupancy else "")),
             ("runs", runs_table, {}, ["run", "apparatus"], False, "one row per run with shots in this export"),
@@ -468,8 +486,8 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
         resources, data = [], {}
         for name, table, units, key, linked, description in tables:
             path = staging / f"{name}.{suffix}"
-            _write(table, path, format)
-            resource = _resource(name, path, format, _schema(table, units, key, linked), description)
+            digest = written[name].result() if name in written else _write_and_hash(table, path, format)
+            resource = _resource(name, path, format, _schema(table, units, key, linked), description, digest)
             resources.append(resource)
             data[path.name] = str(resource["hash"])
         created = dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
@@ -499,14 +517,24 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
         (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data), encoding="utf-8")
         _move_into_place(staging, out, overwrite)
     except BaseException:
+        background.shutdown(wait=True, cancel_futures=True)
         shutil.rmtree(staging, ignore_errors=True)
+        for folder in new_parents:  # deepest first: folders made for this export only
+            try:
+                folder.rmdir()
+            except OSError:
+                break
         raise
+    background.shutdown(wait=True)
     return ExportResult(out, shots_table.num_rows, runs_table.num_rows, data, created)
 
 
-def _read(connection, where: str, with_occupancy: bool):
-    """Everything an export writes, read in the connection's one transaction."""
+def _read(connection, where: str, with_occupancy: bool, selected: Callable[[pa.Table], None] | None = None):
+    """Everything an export writes, read in the connection's one transaction;
+    ``selected`` is given the shots table as soon as it is read."""
     selection = select_on(connection, where, shot_ids=with_occupancy)
+    if selected is not None:
+        selected(selection.table)
     zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
     unique, counts = np.unique(selection.run_ids, return_counts=True)
     runs_table, run_order = _runs_table(connection, selection.run_ids, {int(r): int(c) for r, c in zip(unique, counts)}, zone)

@@ -261,9 +261,12 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     rank[np.searchsorted(run_list, np.array(ordered_runs, dtype=np.int64))] = np.arange(len(run_list))
     order = None
     if limit is None and len(shot_index) > 1:
-        order = np.lexsort((shot_index, rank[run_position]))
-        if (order[1:] > order[:-1]).all():
-            order = None  # read in order already (the usual case: run ids follow ingest)
+        key = rank[run_position]
+        step = np.diff(key)
+        # Read in order already is the usual case (run ids follow ingest): check that in
+        # one pass before sorting.
+        if not ((step >= 0).all() and (np.diff(shot_index)[step == 0] > 0).all()):
+            order = np.lexsort((shot_index, key))
     if order is not None:
         run_ids, run_position = run_ids[order], run_position[order]
         shot_ids = shot_ids[order] if shot_ids is not None else None

@@ -190,6 +190,9 @@ def test_refuses_to_overwrite_and_never_leaves_half_a_package(filled, tmp_path, 
     with pytest.raises(FilterError):
         export(filled, "shot >= ", tmp_path / "never")
     assert not (tmp_path / "never").exists()
+    with pytest.raises(FilterError):
+        export(filled, "no_such_name > 1", tmp_path / "new" / "deeper" / "never")
+    assert not (tmp_path / "new").exists()  # no folder made for a refused export is left
 
     import runlog.export as module
 
