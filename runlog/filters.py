@@ -30,7 +30,7 @@ import datetime as dt
 import difflib
 import re
 import unicodedata
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from functools import lru_cache
 from typing import Union
@@ -49,6 +49,7 @@ from sqlalchemy import (
     select,
     true,
 )
+from sqlalchemy import text as sql_text
 from sqlalchemy.engine import Connection, Engine
 
 from runlog.errors import FilterError
@@ -388,11 +389,49 @@ class _Measurement:
     unit: str
 
 
+class _FigureNames(Mapping[str, tuple[str, ...]]):
+    """The stored figures' names, each with the units its rows are stored in.
+
+    Names come from a walk down the index on ``figures.name`` (one probe per distinct
+    name, not a scan of every run's figures); the units of a name are read when a
+    filter compares that figure. Valid while ``connection`` is open.
+    """
+
+    _NAMES = sql_text(
+        "WITH RECURSIVE names(name) AS ("
+        " SELECT min(name) FROM figures"
+        " UNION ALL SELECT (SELECT min(f.name) FROM figures f WHERE f.name > names.name) FROM names WHERE names.name IS NOT NULL"
+        ") SELECT name FROM names WHERE name IS NOT NULL"
+    )
+
+    def __init__(self, connection: Connection):
+        self._connection = connection
+        self._names = [str(name) for (name,) in connection.execute(self._NAMES)]
+        self._units: dict[str, tuple[str, ...]] = {}
+
+    def __getitem__(self, name: str) -> tuple[str, ...]:
+        if name not in self._names:
+            raise KeyError(name)
+        if name not in self._units:
+            rows = self._connection.execute(select(s.FigureRow.unit).where(s.FigureRow.name == name).distinct())
+            self._units[name] = tuple(sorted(unit or "" for (unit,) in rows))
+        return self._units[name]
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._names
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._names)
+
+    def __len__(self) -> int:
+        return len(self._names)
+
+
 @dataclass(frozen=True)
 class _Names:
     parameters: dict[str, _Parameter]
     measurements: dict[str, _Measurement]
-    figures: dict[str, tuple[str, ...]]  # name -> the units its rows are stored in
+    figures: Mapping[str, tuple[str, ...]]  # name -> the units its rows are stored in
     zone: ZoneInfo
 
     @classmethod
@@ -405,11 +444,8 @@ class _Names:
             name: _Measurement(int(mid), name, unit or "")
             for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))
         }
-        figures: dict[str, list[str]] = {}
-        for name, unit in connection.execute(select(s.FigureRow.name, s.FigureRow.unit).distinct()):
-            figures.setdefault(name, []).append(unit or "")
         zone_name = connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC"
-        return cls(parameters, measurements, {k: tuple(sorted(v)) for k, v in figures.items()}, ZoneInfo(zone_name))
+        return cls(parameters, measurements, _FigureNames(connection), ZoneInfo(zone_name))
 
     def all(self) -> list[str]:
         return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures]
@@ -776,8 +812,7 @@ def compile_selection(source, filter: Filter | str) -> CompiledFilter:
     text = filter if isinstance(filter, str) else str(filter)
     tree = parse(filter) if isinstance(filter, str) else filter
     with _connected(source) as connection:
-        names = _Names.load(connection)
-    return _Compiler(text, names).compile(tree, top=True)
+        return _Compiler(text, _Names.load(connection)).compile(tree, top=True)
 
 
 def compile_filter(source, filter: Filter | str) -> ColumnElement[bool]:
