@@ -173,6 +173,8 @@ class _Plan:
         self.rows = 0
         self.runs: list[_Run] = []
         self.index: dict[tuple[str, str], int] = {}
+        # UTC calendar months the shots fall in: PostgreSQL needs their partitions.
+        self.months: set[dt.date] = set()
 
     def run_index(self, batch: Batch) -> np.ndarray:
         """The position in ``self.runs`` of every row's (apparatus, run), adding new runs."""
@@ -242,6 +244,7 @@ class _Plan:
                 if bad.any():
                     row = batch.first_row + int(rows[np.flatnonzero(bad)[0]])
                     raise ContractError(file, f"occupancy list has {int(run_lengths[bad][0])} sites, earlier shots of run '{run.key}' have {expected}", column=column.source, row=row)
+        self.months.update(_months(batch.time_us))
         self.rows += batch.length
 
     @staticmethod
@@ -290,6 +293,16 @@ class _Plan:
             for stats in run.parameters.values():
                 if stats.present < run.shot_count:
                     stats.constant = False
+
+
+def _months(time_us: np.ndarray) -> list[dt.date]:
+    """The UTC calendar months (first days) of integer-microsecond times."""
+    months = np.unique(time_us.astype("datetime64[us]").astype("datetime64[M]"))
+    return [month.astype("datetime64[D]").item() for month in months]
+
+
+def _times(time_us: np.ndarray) -> pa.Array:
+    return pa.array(time_us, pa.int64()).cast(pa.timestamp("us", tz="UTC"))
 
 
 def _utc(us: int) -> dt.datetime:
@@ -538,9 +551,11 @@ def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: 
 
 
 def _backfill(writer: Writer, run_id: int, pid: int, number: float | None, text_value: str | None) -> None:
+    # Partitioned children carry their shot's time, the partition key.
+    key = ", time" if writer.partitioned else ""
     writer.execute(
-        "INSERT INTO shot_parameters (shot_id, parameter_id, number_value, text_value) "
-        "SELECT id, :p, :n, :t FROM shots WHERE run_id = :r",
+        f"INSERT INTO shot_parameters (shot_id, parameter_id, number_value, text_value{key}) "
+        f"SELECT id, :p, :n, :t{key} FROM shots WHERE run_id = :r",
         {"p": pid, "n": number, "t": text_value, "r": run_id},
     )
 
@@ -595,7 +610,7 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
                     "id": shot_ids,
                     "run_id": run_ids[run_index],
                     "shot": batch.shot,
-                    "time": pa.array(batch.time_us, pa.int64()).cast(pa.timestamp("us", tz="UTC")),
+                    "time": _times(batch.time_us),
                     "status": status_array,
                 }
             ),
@@ -610,10 +625,10 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
                 continue
             if not keep.all():
                 lists = lists.filter(pa.array(keep))
-            writer.append(
-                "occupancy",
-                pa.table({"shot_id": shot_ids[keep], "image_id": image[run_index][keep], "bits": _pack(lists)}),
-            )
+            data = {"shot_id": shot_ids[keep], "image_id": image[run_index][keep], "bits": _pack(lists)}
+            if writer.partitioned:
+                data["time"] = _times(batch.time_us[keep])
+            writer.append("occupancy", pa.table(data))
         _count_sites(plan, batch, run_index)
         written += batch.length
         if progress is not None:
@@ -687,7 +702,7 @@ def _store_counting_figures(writer: Writer, plan: _Plan, interval: str) -> None:
 
 
 def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_shot, ids) -> None:
-    shot_parts, id_parts, number_parts, text_parts = [], [], [], []
+    row_parts, id_parts, number_parts, text_parts = [], [], [], []
     for column in columns:
         values = batch.parameters[column.name]
         needed = per_shot[column.name][run_index]
@@ -703,24 +718,23 @@ def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_sho
             scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
             number_parts.append(pa.array(values[keep] * scale + offset, pa.float64()))
             text_parts.append(pa.nulls(int(keep.sum()), pa.string()))
-        shot_parts.append(shot_ids[keep])
+        row_parts.append(np.flatnonzero(keep))
         id_parts.append(np.full(int(keep.sum()), pid, dtype=np.int64))
-    if not shot_parts:
+    if not row_parts:
         return
-    shots = np.concatenate(shot_parts)
+    rows = np.concatenate(row_parts)
+    shots = shot_ids[rows]
     pids = np.concatenate(id_parts)
     order = pa.array(np.lexsort((pids, shots)))
-    writer.append(
-        "shot_parameters",
-        pa.table(
-            {
-                "shot_id": shots,
-                "parameter_id": pids,
-                "number_value": pa.concat_arrays(number_parts),
-                "text_value": pa.concat_arrays(text_parts),
-            }
-        ).take(order),
-    )
+    table = {
+        "shot_id": shots,
+        "parameter_id": pids,
+        "number_value": pa.concat_arrays(number_parts),
+        "text_value": pa.concat_arrays(text_parts),
+    }
+    if writer.partitioned:
+        table["time"] = _times(batch.time_us[rows])
+    writer.append("shot_parameters", pa.table(table).take(order))
 
 
 def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
@@ -742,6 +756,8 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
         return
     keep = None if present.all() else present
     table = {"shot_id": shot_ids if keep is None else shot_ids[keep]}
+    if writer.partitioned:
+        table["time"] = _times(batch.time_us if keep is None else batch.time_us[keep])
     for name, (values, missing) in data.items():
         if keep is not None:
             values, missing = values[keep], missing[keep]
@@ -808,7 +824,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         plan.finish()
         read_s = time.perf_counter() - tick
         tick = time.perf_counter()
-        writer = open_writer(engine)
+        writer = open_writer(engine, plan.months)
         try:
             if writer.rows("SELECT 1 FROM ingest_log WHERE sha256 = :h AND status = 'ingested'", {"h": sha}):
                 return IngestResult(name, "already-present", tuple(r.key for r in plan.runs), plan.rows)

@@ -93,3 +93,50 @@ def test_a_large_file_read_twice_when_over_the_keep_budget(db_url, make_file, mo
         [result] = catalogue.ingest(make_file(runs={"r1": 10, "r2": 9}))
         assert (result.status, result.shots) == ("ingested", 19)
         assert list(catalogue.shots("r2")["shot"]) == list(range(9))
+
+
+def _layout(engine) -> dict[str, object]:
+    """Every table's columns, keys, foreign keys, unique constraints and indexes, and on
+    PostgreSQL which tables are partitioned and on what (the partitions of months)."""
+    from sqlalchemy import inspect, text
+
+    with engine.connect() as connection:
+        found = inspect(connection)
+        layout: dict[str, object] = {}
+        for table in sorted(found.get_table_names()):
+            layout[table] = (
+                sorted((c["name"], str(c["type"]), c["nullable"]) for c in found.get_columns(table)),  # 0003 appended runs.day
+                found.get_pk_constraint(table),
+                sorted((fk["name"], tuple(fk["constrained_columns"]), fk["referred_table"], tuple(fk["referred_columns"]), tuple(sorted(fk["options"].items()))) for fk in found.get_foreign_keys(table)),
+                sorted((u["name"], tuple(u["column_names"])) for u in found.get_unique_constraints(table)),
+                sorted((i["name"], tuple(i["column_names"]), i["unique"]) for i in found.get_indexes(table)),
+            )
+        if engine.dialect.name == "postgresql":
+            layout["partitioned"] = connection.execute(
+                text("SELECT c.relname, pg_get_partkeydef(c.oid) FROM pg_partitioned_table p JOIN pg_class c ON c.oid = p.partrelid ORDER BY 1")
+            ).all()
+    return layout
+
+
+def test_models_and_scripts_give_the_same_layout(db_url, tmp_path, request):
+    # A fresh catalogue (models, then on PostgreSQL the month partitioning) and one built by
+    # the scripts (0001 .. head) must be the same database, not only agree on the models.
+    from conftest import _fresh_postgres_database
+
+    if db_url.startswith("sqlite"):
+        other_url, drop = f"sqlite:///{tmp_path / 'scripts.sqlite'}", None
+    else:
+        other_url, drop = _fresh_postgres_database(request.getfixturevalue("postgres_url"))
+    try:
+        with runlog.open(db_url) as catalogue:
+            fresh = _layout(catalogue.engine)
+        engine = make_engine(other_url)
+        migrate.upgrade(engine)
+        scripted = _layout(engine)
+        engine.dispose()
+    finally:
+        if drop is not None:
+            drop()
+    assert fresh == scripted
+    if db_url.startswith("postgresql"):
+        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("occupancy", "shot_measurements", "shot_parameters", "shots"))]

@@ -6,6 +6,10 @@ timeout instead of failing half-way. PostgreSQL: the SQLAlchemy/psycopg connecti
 ``COPY ... FROM STDIN`` for appends and a transaction-scoped advisory lock so that shot ids
 are allocated by one writer at a time. Both speak the same tiny interface, so ingest is
 written once. Statements use ``:name`` parameters.
+
+On PostgreSQL the shot-level tables are partitioned by month: the writer first makes the
+months it is told of, in a short transaction of its own under the same lock, so the data
+transaction never creates tables and the common case (the months exist) costs one query.
 """
 
 from __future__ import annotations
@@ -13,6 +17,7 @@ from __future__ import annotations
 import datetime as dt
 import io
 import re
+from collections.abc import Iterable
 from typing import Any, Protocol
 
 import numpy as np
@@ -22,6 +27,7 @@ from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
 from runlog.store.engine import BUSY_TIMEOUT_MS, exclusive_bulk_writer, sqlite_path
+from runlog.store.partitions import ensure_months, missing_months
 from runlog.store.schema import to_epoch_us
 
 __all__ = ["Writer", "open_writer"]
@@ -33,6 +39,9 @@ _WRITER_LOCK = 0x72756E6C6F67
 
 class Writer(Protocol):
     dialect: str
+    #: Whether the shot-level tables are partitioned by month, so that the children carry
+    #: the shot's ``time`` (PostgreSQL).
+    partitioned: bool
 
     def rows(self, sql: str, params: dict[str, Any] | None = None) -> list[tuple]: ...
 
@@ -77,6 +86,7 @@ def _sqlite_arrow(data: pa.Table) -> pa.Table:
 
 class _SqliteWriter:
     dialect = "sqlite"
+    partitioned = False
 
     def __init__(self, engine: Engine):
         import adbc_driver_sqlite.dbapi as adbc_sqlite
@@ -145,10 +155,33 @@ def _copy_text(data: pa.Table) -> pa.Table:
     return pa.table(columns, names=data.column_names)
 
 
+def _make_months(engine: Engine, months: Iterable[dt.date]) -> None:
+    """Create the missing month partitions, committed before the data transaction begins.
+
+    Waiting for the writer lock holds no other lock, and attaching a month blocks neither
+    readers nor writers (runlog.store.partitions), so a new month costs the dashboard
+    nothing; under the lock, no other writer adds a measurement column meanwhile.
+    """
+    months = sorted(set(months))
+    if not months:
+        return
+    with engine.connect() as connection:
+        missing = missing_months(connection, months)
+        connection.rollback()
+        if not missing:
+            return
+        with connection.begin():
+            connection.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _WRITER_LOCK})
+            for month in missing:
+                ensure_months(connection, month, month)
+
+
 class _PostgresWriter:
     dialect = "postgresql"
+    partitioned = True
 
-    def __init__(self, engine: Engine):
+    def __init__(self, engine: Engine, months: Iterable[dt.date] = ()):
+        _make_months(engine, months)
         self._connection = engine.connect()
         self._transaction = self._connection.begin()
         self._connection.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _WRITER_LOCK})
@@ -188,8 +221,12 @@ class _PostgresWriter:
             self._connection.close()
 
 
-def open_writer(engine: Engine) -> Writer:
-    """A writer holding an open write transaction on the catalogue."""
+def open_writer(engine: Engine, months: Iterable[dt.date] = ()) -> Writer:
+    """A writer holding an open write transaction on the catalogue.
+
+    ``months`` (UTC calendar months, as dates) are those the shots to be written fall in;
+    on PostgreSQL their partitions are made first. Rows outside them cannot be written there.
+    """
     if engine.dialect.name == "sqlite":
         return _SqliteWriter(engine)
-    return _PostgresWriter(engine)
+    return _PostgresWriter(engine, months)

@@ -5,21 +5,45 @@ Alembic is imported only here, so that opening an up-to-date catalogue stays fas
 
 from __future__ import annotations
 
+import re
 from importlib import resources
 
 from sqlalchemy.engine import Engine
 
 from runlog.errors import StoreError
 
+from runlog.store.partitions import SHOT_TABLES, partition_shot_tables
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
 __all__ = ["alembic_config", "upgrade", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
 
 
+# What the PostgreSQL partitioned layout (runlog.store.partitions) has instead of the
+# models' SQLite layout: the children's partition key column, shots' unique key with the
+# partition key, no foreign keys from the children, and one table per month.
+_CHILDREN = frozenset(SHOT_TABLES[1:])
+_PARTITION = re.compile(rf"({'|'.join(SHOT_TABLES)})_y\d{{4}}m\d{{2}}")
+
+
 def include_object(obj, name, type_, reflected, compare_to) -> bool:
-    """Alembic filter: measurement columns of ``shot_measurements`` are data, added by ingest."""
-    if type_ == "column" and reflected and obj.table.name == "shot_measurements":
-        return not str(name).startswith(MEASUREMENT_COLUMN_PREFIX)
+    """Alembic filter: what the models and migrations need not agree on.
+
+    Measurement columns of ``shot_measurements`` are data, added by ingest. On PostgreSQL
+    the shot-level tables are partitioned by month (``runlog.store.partitions``): their
+    month partitions, the children's ``time`` column, the unique key of ``shots`` and the
+    children's foreign keys differ from the models by design, so they are not compared
+    (on SQLite they are the models' own: ``tests/test_partitions.py`` checks that layout).
+    """
+    if type_ == "column" and reflected and obj.table.name == "shot_measurements" and str(name).startswith(MEASUREMENT_COLUMN_PREFIX):
+        return False
+    if type_ == "table" and reflected and _PARTITION.fullmatch(str(name)):
+        return False
+    if type_ == "column" and reflected and obj.table.name in _CHILDREN and name == "time":
+        return False
+    if type_ == "unique_constraint" and obj.table.name == "shots" and {c.name for c in obj.columns} in ({"run_id", "shot"}, {"run_id", "shot", "time"}):
+        return False
+    if type_ == "foreign_key_constraint" and not reflected and obj.table.name in _CHILDREN:
+        return False
     return True
 
 
@@ -79,7 +103,8 @@ def downgrade(engine: Engine, revision: str) -> None:
 def create_or_upgrade(engine: Engine) -> None:
     """Bring the catalogue to head: an empty database is created from the models and
     stamped (Alembic's recipe for building a database from scratch, no scripts to run),
-    any other is upgraded through the migration history.
+    any other is upgraded through the migration history. On PostgreSQL the shot-level
+    tables are then partitioned by month by the same code migration 0004 runs.
 
     ``tests/test_migrations.py`` keeps the two paths equal: models match migrations.
     """
@@ -91,6 +116,7 @@ def create_or_upgrade(engine: Engine) -> None:
         with connection.begin():
             if not inspect(connection).get_table_names():
                 Base.metadata.create_all(connection)
+                partition_shot_tables(connection)
                 # The same version table Alembic itself would create.
                 version = Table(
                     "alembic_version",

@@ -9,6 +9,10 @@ value), then checks single shots only inside the runs that survive.
 The per-shot tables (``shot_parameters``, ``measurement_values``, ``occupancy``) are keyed
 by ``(shot_id, ...)`` and on SQLite stored WITHOUT ROWID, so a bulk append in shot order
 writes the B-tree sequentially.
+
+These models are the SQLite layout. On PostgreSQL the four shot-level tables are then
+partitioned by month, with the shot's time in every child and in every key
+(:mod:`runlog.store.partitions`).
 """
 
 from __future__ import annotations
@@ -61,7 +65,7 @@ __all__ = [
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0003"
+SCHEMA_REVISION = "0004"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",

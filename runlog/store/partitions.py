@@ -1,0 +1,271 @@
+"""Monthly partitions of the shot-level tables on PostgreSQL.
+
+Owns the PostgreSQL layout of ``shots``, ``shot_parameters``, ``shot_measurements`` and
+``occupancy``: each is PARTITIONED BY RANGE (time), one partition per UTC calendar month
+(``shots_y2026m03`` holds March 2026), so that the indexes of a catalogue of many years and
+apparatus stay the size of a month. Owned here: the conversion of the plain tables the
+models create into partitioned ones (a fresh catalogue, and migration 0004), its reverse,
+the partition names and bounds, and :func:`ensure_months`, which creates missing months.
+
+On PostgreSQL the children carry the shot's ``time`` (the partition key), every primary
+key ends with it, and ``shots``' unique (run, shot) becomes (run, shot, time); ingest refuses
+a shot index already in the catalogue by query, so that one stays unique per run. The
+children have no foreign keys there (to shots, parameters or images): their rows are
+written by ingest alone, with ids it has just read or allocated under the writer lock,
+and the per-row trigger checks cost more than the rows themselves (docs/architecture.md).
+``shots.run_id`` keeps its key to ``runs``. The models in :mod:`runlog.store.schema` stay
+the SQLite layout, which this module never touches.
+
+A new month is made as a plain table and then attached (``CREATE TABLE .. (LIKE ..)`` then
+``ALTER TABLE .. ATTACH PARTITION``): attaching takes SHARE UPDATE EXCLUSIVE on the parent,
+which neither readers nor writers wait for, where ``CREATE TABLE .. PARTITION OF`` would
+take ACCESS EXCLUSIVE and queue every dashboard query behind the longest one running
+(PostgreSQL 15 manual, 5.11.2.2 "Partition Maintenance"). Copying ``shots``' key to the new
+month takes SHARE ROW EXCLUSIVE on ``runs``, which readers do not wait for either, and
+runlog's writers of ``runs`` hold the writer lock the month is made under. There is no
+DEFAULT partition: attaching a month would have to scan and lock it.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Iterable
+
+from sqlalchemy import text
+from sqlalchemy.engine import Connection
+
+from runlog.errors import StoreError
+
+__all__ = [
+    "SHOT_TABLES",
+    "partition_name",
+    "month_start",
+    "is_partitioned",
+    "missing_months",
+    "ensure_months",
+    "partition_shot_tables",
+    "unpartition_shot_tables",
+]
+
+#: The shot-level tables, parent first; partitioned alike, month by month.
+SHOT_TABLES = ("shots", "shot_parameters", "shot_measurements", "occupancy")
+
+_KEY = "time"
+
+# Each table's primary key on PostgreSQL: the SQLite key, then the partition key.
+_PRIMARY_KEYS = {
+    "shots": ("id", _KEY),
+    "shot_parameters": ("shot_id", "parameter_id", _KEY),
+    "shot_measurements": ("shot_id", _KEY),
+    "occupancy": ("shot_id", "image_id", _KEY),
+}
+_SHOTS_UNIQUE = ("run_id", "shot", _KEY)
+
+
+def month_start(value: dt.date | dt.datetime) -> dt.date:
+    """The first day of the UTC calendar month holding ``value`` (an aware time, or a date)."""
+    if isinstance(value, dt.datetime):
+        if value.tzinfo is None:
+            raise ValueError(f"naive datetime {value!r}: times must carry a time zone")
+        value = value.astimezone(dt.timezone.utc).date()
+    return value.replace(day=1)
+
+
+def _next_month(month: dt.date) -> dt.date:
+    return dt.date(month.year + month.month // 12, month.month % 12 + 1, 1)
+
+
+def _months(first: dt.date | dt.datetime, last: dt.date | dt.datetime) -> list[dt.date]:
+    month, end = month_start(first), month_start(last)
+    months = []
+    while month <= end:
+        months.append(month)
+        month = _next_month(month)
+    return months
+
+
+def partition_name(table: str, month: dt.date | dt.datetime) -> str:
+    """The partition of ``table`` that holds ``month``, e.g. ``shots_y2026m03``."""
+    if table not in SHOT_TABLES:
+        raise ValueError(f"'{table}' is not a shot-level table")
+    month = month_start(month)
+    return f"{table}_y{month.year:04d}m{month.month:02d}"
+
+
+def is_partitioned(connection: Connection) -> bool:
+    """Whether ``shots`` is a partitioned table here (PostgreSQL at revision 0004 or later)."""
+    if connection.dialect.name != "postgresql":
+        return False
+    found = connection.execute(text("SELECT 1 FROM pg_partitioned_table WHERE partrelid = to_regclass('shots')")).first()
+    return found is not None
+
+
+def _attached(connection: Connection) -> set[str]:
+    """The partitions attached to the shot-level tables."""
+    rows = connection.execute(
+        text(
+            "SELECT child.relname FROM pg_inherits JOIN pg_class child ON child.oid = pg_inherits.inhrelid "
+            "WHERE pg_inherits.inhparent IN (SELECT to_regclass(name) FROM unnest(CAST(:tables AS text[])) AS name)"
+        ),
+        {"tables": list(SHOT_TABLES)},
+    )
+    return {name for (name,) in rows}
+
+
+def missing_months(connection: Connection, months: Iterable[dt.date | dt.datetime]) -> list[dt.date]:
+    """Those of ``months`` that lack a partition of any shot-level table, in order.
+
+    A catalogue query that waits for no lock: ingest asks it first, so that the common
+    case (every month already there) costs nothing more.
+    """
+    attached = _attached(connection)
+    wanted = sorted({month_start(month) for month in months})
+    return [month for month in wanted if any(partition_name(table, month) not in attached for table in SHOT_TABLES)]
+
+
+def ensure_months(connection: Connection, first: dt.date | dt.datetime, last: dt.date | dt.datetime) -> list[str]:
+    """Create the missing month partitions of every shot-level table, ``first``..``last``
+    (whole UTC months, both included); returns the partitions created, in order.
+
+    Idempotent. Two sessions must not run it at once (both would create the same table):
+    ingest calls it in a short transaction of its own under the writer lock (see
+    :mod:`runlog.store.bulk`), before its data transaction; migrations run alone.
+    """
+    attached = _attached(connection)
+    created = []
+    for month in _months(first, last):
+        low = dt.datetime(month.year, month.month, 1, tzinfo=dt.timezone.utc)
+        end = _next_month(month)
+        high = dt.datetime(end.year, end.month, 1, tzinfo=dt.timezone.utc)
+        for table in SHOT_TABLES:
+            name = partition_name(table, month)
+            if name in attached:
+                continue
+            # LIKE copies the columns (measurement columns included) and NOT NULLs; attaching
+            # adds the parent's keys, indexes and foreign keys to the new, empty table.
+            connection.exec_driver_sql(f"CREATE TABLE IF NOT EXISTS {name} (LIKE {table})")
+            connection.exec_driver_sql(
+                f"ALTER TABLE {table} ATTACH PARTITION {name} "
+                f"FOR VALUES FROM ('{low.isoformat(sep=' ')}') TO ('{high.isoformat(sep=' ')}')"
+            )
+            created.append(name)
+    return created
+
+
+def _columns(connection: Connection, table: str) -> list[tuple[str, str, bool]]:
+    """(name, SQL type, NOT NULL) of each column of ``table`` in order, measurement columns included."""
+    rows = connection.execute(
+        text(
+            "SELECT attname, format_type(atttypid, atttypmod), attnotnull FROM pg_attribute "
+            "WHERE attrelid = to_regclass(:t) AND attnum > 0 AND NOT attisdropped ORDER BY attnum"
+        ),
+        {"t": table},
+    )
+    return [(name, sql_type, bool(not_null)) for name, sql_type, not_null in rows]
+
+
+def _constraints(connection: Connection, table: str, kinds: str) -> list[tuple[str, str]]:
+    """(name, definition) of the constraints of ``table`` whose kind is in ``kinds`` ('p', 'u', 'f')."""
+    rows = connection.execute(
+        text("SELECT conname, pg_get_constraintdef(oid) FROM pg_constraint WHERE conrelid = to_regclass(:t) AND contype = ANY(:k) ORDER BY conname"),
+        {"t": table, "k": list(kinds)},
+    )
+    return [(name, definition) for name, definition in rows]
+
+
+def _step_aside(connection: Connection, table: str, suffix: str) -> None:
+    """Rename ``table`` and the indexes of its keys (index names are unique per schema, and
+    the table that replaces it reuses them)."""
+    for name, _ in _constraints(connection, table, "pu"):
+        connection.exec_driver_sql(f'ALTER INDEX "{name}" RENAME TO "{(name + suffix)[:63]}"')
+    connection.exec_driver_sql(f"ALTER TABLE {table} RENAME TO {table}{suffix}")
+
+
+def _listed(names: Iterable[str], alias: str = "") -> str:
+    return ", ".join(f'{alias}"{name}"' for name in names)
+
+
+def _move_rows(connection: Connection, table: str, source: str, columns: list[str], select: str) -> int:
+    moved = connection.exec_driver_sql(f"INSERT INTO {table} ({_listed(columns)}) {select}").rowcount
+    before = int(connection.exec_driver_sql(f"SELECT count(*) FROM {source}").scalar_one())
+    if moved != before:
+        raise StoreError(f"moving the rows of {table}: {before - moved} of its {before} rows have no shot; nothing was changed")
+    return moved
+
+
+def partition_shot_tables(connection: Connection) -> dict[str, int]:
+    """Turn the four plain shot-level tables into monthly partitioned ones, moving every row
+    (measurement columns included); returns the rows moved per table.
+
+    Runs inside the caller's transaction: migration 0004, and a fresh catalogue right after
+    ``create_all``, so both end with the same layout. A no-op on SQLite and on a catalogue
+    already partitioned. A child row without its shot raises :class:`StoreError` (the
+    caller's transaction then rolls back and nothing changes).
+    """
+    if connection.dialect.name != "postgresql" or is_partitioned(connection):
+        return {}
+    old = "_unpartitioned"
+    columns = {table: _columns(connection, table) for table in SHOT_TABLES}
+    shots_foreign_keys = _constraints(connection, "shots", "f")
+    for table in SHOT_TABLES:
+        _step_aside(connection, table, old)
+    for table in SHOT_TABLES:
+        definitions = [f'"{name}" {sql_type}{" NOT NULL" if not_null else ""}' for name, sql_type, not_null in columns[table]]
+        if table != "shots":
+            definitions.append(f'"{_KEY}" timestamp with time zone NOT NULL')
+        definitions.append(f"CONSTRAINT pk_{table} PRIMARY KEY ({', '.join(_PRIMARY_KEYS[table])})")
+        if table == "shots":
+            definitions.append(f"CONSTRAINT uq_shots_{'_'.join(_SHOTS_UNIQUE)} UNIQUE ({', '.join(_SHOTS_UNIQUE)})")
+            definitions += [f'CONSTRAINT "{name}" {definition}' for name, definition in shots_foreign_keys]
+        connection.exec_driver_sql(f"CREATE TABLE {table} ({', '.join(definitions)}) PARTITION BY RANGE ({_KEY})")
+    months = connection.exec_driver_sql(f"SELECT DISTINCT date_trunc('month', time AT TIME ZONE 'UTC')::date FROM shots{old}").scalars().all()
+    for month in sorted(months):
+        ensure_months(connection, month, month)
+    moved = {}
+    for table in SHOT_TABLES:
+        names = [name for name, _, _ in columns[table]]
+        if table == "shots":
+            select = f"SELECT {_listed(names)} FROM shots{old}"
+            moved[table] = _move_rows(connection, table, f"shots{old}", names, select)
+        else:
+            # The join gives each child row its shot's time; a row without a shot would drop out.
+            select = f"SELECT {_listed(names, 'c.')}, s.time FROM {table}{old} c JOIN shots{old} s ON s.id = c.shot_id"
+            moved[table] = _move_rows(connection, table, f"{table}{old}", [*names, _KEY], select)
+    # Children first: the old ones still refer to the old shots.
+    for table in reversed(SHOT_TABLES):
+        connection.exec_driver_sql(f"DROP TABLE {table}{old}")
+    if any(moved.values()):
+        # Autovacuum analyses the partitions, never a partitioned parent.
+        connection.exec_driver_sql(f"ANALYZE {', '.join(SHOT_TABLES)}")
+    return moved
+
+
+def unpartition_shot_tables(connection: Connection) -> dict[str, int]:
+    """The reverse of :func:`partition_shot_tables` (downgrade below 0004): plain tables as the
+    models define them, every row and measurement column moved back; rows moved per table.
+
+    A child row without its shot fails the models' foreign keys, and the caller's
+    transaction rolls back.
+    """
+    if connection.dialect.name != "postgresql" or not is_partitioned(connection):
+        return {}
+    from runlog.store.schema import Base
+
+    old = "_partitioned"
+    columns = {table: [(name, sql_type) for name, sql_type, _ in _columns(connection, table) if not (name == _KEY and table != "shots")] for table in SHOT_TABLES}
+    for table in SHOT_TABLES:
+        _step_aside(connection, table, old)
+    for table in SHOT_TABLES:
+        Base.metadata.tables[table].create(connection)
+        known = {column.name for column in Base.metadata.tables[table].columns}
+        for name, sql_type in columns[table]:
+            if name not in known:  # a measurement column
+                connection.exec_driver_sql(f'ALTER TABLE {table} ADD COLUMN "{name}" {sql_type}')
+    moved = {}
+    for table in SHOT_TABLES:
+        names = [name for name, _ in columns[table]]
+        select = f"SELECT {_listed(names)} FROM {table}{old}"
+        moved[table] = _move_rows(connection, table, f"{table}{old}", names, select)
+    for table in reversed(SHOT_TABLES):
+        connection.exec_driver_sql(f"DROP TABLE {table}{old}")
+    return moved
