@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import BigInteger, Column, Float, MetaData, Table, and_, bindparam, cast, extract, func, select, type_coerce
+from sqlalchemy import BigInteger, Column, ColumnElement, Float, Integer, MetaData, String, Table, and_, bindparam, cast, extract, func, select, type_coerce
 from sqlalchemy.engine import Connection
 
 from runlog.errors import NotFoundError
@@ -51,6 +51,16 @@ _shots = s.Shot.__table__
 _run_parameters = s.RunParameter.__table__
 _shot_parameters = s.ShotParameter.__table__
 _apparatus = s.Apparatus.__table__
+# shot_parameters as PostgreSQL holds it: with its shot's time, the partition key.
+_SHOT_PARAMETERS_WITH_TIME = Table(
+    "shot_parameters",
+    MetaData(),
+    Column("shot_id", s.BigId),
+    Column("parameter_id", Integer),
+    Column("number_value", Float),
+    Column("text_value", String),
+    Column("time", s.UTCDateTime),
+)
 
 
 @dataclass
@@ -181,13 +191,16 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     candidate_ids = compiled.run_ids()
     runs: dict[int, _Run] = {}
     run_shots: dict[int, int] = {}
-    for rid, key, apparatus, sequence, shot_count in connection.execute(
-        select(_runs.c.id, _runs.c.key, _apparatus.c.name, _runs.c.sequence, _runs.c.shot_count)
+    first = last = None
+    for rid, key, apparatus, sequence, shot_count, started, finished in connection.execute(
+        select(_runs.c.id, _runs.c.key, _apparatus.c.name, _runs.c.sequence, _runs.c.shot_count, _runs.c.started, _runs.c.finished)
         .join(_apparatus, _apparatus.c.id == _runs.c.apparatus_id)
         .where(_runs.c.id.in_(candidate_ids))
     ):
         runs[int(rid)] = _Run(key, apparatus, sequence)
         run_shots[int(rid)] = int(shot_count or 0)
+        first = started if first is None or started < first else first
+        last = finished if last is None or finished > last else last
     # The candidate runs are read once; later queries name them as a literal list of
     # integers (from the catalogue itself) rather than repeating the filter's run
     # conditions or binding thousands of values.
@@ -219,17 +232,31 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
 
     # One query: the shots, the per-shot values of scanned parameters, the measurements.
     scanned = sorted((c for c in parameters.values() if c.scanned), key=lambda c: c.name)
+    # On PostgreSQL the shot-level tables are partitioned by month of the shot's time
+    # (runlog.store.partitions) and the children carry that time: joining on it, and
+    # bounding every table by the candidate runs' time span, lets the planner read only
+    # the months the runs lie in.
+    months = dialect == "postgresql" and first is not None
+
+    def same_shot(child) -> ColumnElement[bool]:
+        on = child.c.shot_id == _shots.c.id
+        return and_(on, child.c.time == _shots.c.time, child.c.time.between(first, last)) if months else on
+
     source = _shots
     value_columns = []
+    per_shot_parameters = _SHOT_PARAMETERS_WITH_TIME if months else _shot_parameters
     for column in scanned:
-        alias = _shot_parameters.alias(f"sp{column.id}")
-        source = source.outerjoin(alias, and_(alias.c.shot_id == _shots.c.id, alias.c.parameter_id == column.id))
+        alias = per_shot_parameters.alias(f"sp{column.id}")
+        source = source.outerjoin(alias, and_(same_shot(alias), alias.c.parameter_id == column.id))
         value_columns.append(alias.c.text_value if column.kind == "text" else alias.c.number_value)
     if measurements:
-        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
-        source = source.outerjoin(wide, wide.c.shot_id == _shots.c.id)
+        time_column = [Column("time", s.UTCDateTime)] if months else []
+        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *time_column, *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
+        source = source.outerjoin(wide, same_shot(wide))
         value_columns += [wide.c[s.measurement_column(mid)] for _, mid, _ in measurements]
     query = select(*([_shots.c.id] if with_ids else []), _shots.c.run_id, _shots.c.shot, _time_us(dialect), *value_columns).select_from(source)
+    if months:
+        query = query.where(_shots.c.time.between(first, last))
 
     def shaped(condition):
         if limit is None:
