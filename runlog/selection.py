@@ -29,7 +29,7 @@ from sqlalchemy.engine import Connection
 from runlog.errors import NotFoundError
 from runlog.filters import CompiledFilter, compile_selection
 from runlog.store import schema as s
-from runlog.store.arrow_reader import arrow_read, fetch_arrow_parallel, is_arrow, parallel_readers
+from runlog.store.arrow_reader import arrow_read, fetch_arrow_parallel, fetch_postgres_arrow, is_arrow, parallel_readers
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -272,9 +272,18 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
 
     parts = [shaped(part.condition) for part in _split(compiled, run_shots, parallel_readers(connection) if limit is None else 1)]
     types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
+    arrays = None
     if is_arrow(connection):
         arrays = _read_arrow(connection, parts, types, keys=4 if with_ids else 3)
-    else:
+    elif dialect == "postgresql":
+        if limit is None:
+            table = fetch_postgres_arrow(connection, shaped(compiled.condition), sum(run_shots.values()))
+            if table is not None:
+                arrays = [column.combine_chunks().cast(kind) for column, kind in zip(table.columns, types)]
+        if arrays is None:
+            # A plan compiled for this one read costs more than it saves.
+            connection.exec_driver_sql("SET LOCAL jit = off")
+    if arrays is None:
         arrays = _read_rows(connection, shaped(compiled.condition), types)
 
     shot_ids = arrays.pop(0).to_numpy(zero_copy_only=False) if with_ids else None

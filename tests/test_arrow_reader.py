@@ -19,6 +19,7 @@ import runlog
 from conftest import T0, shot_table, write_table
 from runlog import selection as selection_module
 from runlog.selection import select_on, select_table
+from runlog.store import arrow_reader
 from runlog.store import schema as s
 from runlog.store.arrow_reader import arrow_read, fetch_arrow, fetch_arrow_parallel, is_arrow, parallel_readers
 from runlog.store.engine import hold_for_adbc, release_from_adbc, sqlite_path
@@ -37,16 +38,21 @@ FILTERS = [
 
 
 @pytest.mark.parametrize("where", FILTERS)
-def test_both_read_paths_give_the_same_table(lab, where):  # noqa: F811 - fixture imported above
+def test_both_read_paths_give_the_same_table(lab, where, monkeypatch):  # noqa: F811 - fixture imported above
     catalogue = lab
-    with arrow_read(catalogue.engine) as fast:
-        if catalogue.engine.dialect.name != "sqlite":
-            assert fast is None  # PostgreSQL reads through psycopg
-            with catalogue.engine.connect() as connection:
-                assert select_on(connection, where).table.num_rows > 0
-            return
-        assert fast is not None and is_arrow(fast)
-        arrow = select_on(fast, where, shot_ids=True)
+    if catalogue.engine.dialect.name == "postgresql":
+        # The ADBC PostgreSQL read (second connection, same snapshot) against psycopg's rows.
+        monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 0)
+        used = []
+        monkeypatch.setattr(selection_module, "fetch_postgres_arrow", lambda *a: used.append(1) or arrow_reader.fetch_postgres_arrow(*a))
+        with catalogue.engine.connect().execution_options(isolation_level="REPEATABLE READ") as connection:
+            arrow = select_on(connection, where, shot_ids=True)
+        assert used
+        monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 10**12)
+    else:
+        with arrow_read(catalogue.engine) as fast:
+            assert fast is not None and is_arrow(fast)
+            arrow = select_on(fast, where, shot_ids=True)
     with catalogue.engine.connect() as connection:
         assert not is_arrow(connection)
         rows = select_on(connection, where, shot_ids=True)
@@ -61,7 +67,7 @@ def _ingest_in_another_process(url: str, path) -> None:
     subprocess.run([sys.executable, "-c", code, url, str(path)], check=True, timeout=120)
 
 
-def test_one_read_is_one_snapshot(db_url, tmp_path):
+def test_one_read_is_one_snapshot(db_url, tmp_path, monkeypatch):
     with runlog.open(db_url) as catalogue:
         first = write_table(tmp_path / "first.parquet", shot_table({"r1": 20}, seed=1))
         catalogue.ingest([first])
@@ -78,6 +84,7 @@ def test_one_read_is_one_snapshot(db_url, tmp_path):
                 assert select_on(fast, None).table.num_rows == 20
         if fast is None:
             assert engine.dialect.name == "postgresql"
+            monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 0)  # the large-read path, on a few shots
             with engine.connect().execution_options(isolation_level="REPEATABLE READ") as connection:
                 assert connection.execute(count).scalar() == 20
                 _ingest_in_another_process(db_url, later)
