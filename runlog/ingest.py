@@ -119,6 +119,26 @@ def file_sha256(path: Path) -> tuple[str, int]:
     return digest.hexdigest(), size
 
 
+def _signature(path: Path) -> tuple[int, int, int, int] | None:
+    """What tells that a file changed: device, inode, size, modification time (``None``:
+    gone)."""
+    try:
+        stat = path.stat()
+    except FileNotFoundError:
+        return None
+    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns
+
+
+def _unchanged_since(path: Path, before: tuple[int, int, int, int] | None) -> None:
+    """Refuse a file that was replaced, written to or deleted while it was being read:
+    what was checked, hashed and written would not be one file."""
+    now = _signature(path)
+    if now is None:
+        raise ContractError(str(path), "the file disappeared while being read; nothing was written")
+    if now != before:
+        raise ContractError(str(path), "the file changed while being read (still being written?); nothing was written, ingest it again once it is complete")
+
+
 def expand_paths(paths: Iterable[str | Path]) -> list[Path]:
     """Files as given, folders as their ``*.parquet`` files (sorted, not recursive)."""
     out: list[Path] = []
@@ -794,6 +814,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
     sha, size = "", 0
     read_s = write_s = 0.0
     try:
+        before = _signature(path)
         try:
             sha, size = file_sha256(path)
         except FileNotFoundError:
@@ -838,6 +859,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
                 after_write(writer, [run.run_id for run in plan.runs])
             write_s = time.perf_counter() - tick
             result = IngestResult(name, "ingested", tuple(r.key for r in plan.runs), shots)
+            _unchanged_since(path, before)
             _log(engine, result, sha, size, started, read_s, write_s, writer)
             if os.environ.get("RUNLOG_TEST_PAUSE_BEFORE_COMMIT"):
                 # Lets the crash test kill the process with the transaction still open.

@@ -73,3 +73,52 @@ def test_watch_command_runs_and_logs(db_url, tmp_path):
     assert done.returncode == 0, done.stderr
     log = (folder / "runlog-watch.log").read_text()
     assert "ingested a.parquet: r1 (4 shots)" in log
+
+
+def _change_during_write(monkeypatch, change):
+    """Run ``change()`` once, in the middle of the next ingest (after the file was checked,
+    before its rows are written)."""
+    import runlog.ingest as ingest_module
+
+    real = ingest_module._write_runs
+    done = []
+
+    def write_runs(*args, **kwargs):
+        if not done:
+            done.append(True)
+            change()
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(ingest_module, "_write_runs", write_runs)
+
+
+def test_a_file_that_grows_while_being_read_is_refused_whole_then_taken_when_complete(catalogue, tmp_path, monkeypatch):
+    folder = tmp_path / "export"
+    folder.mkdir()
+    path = write_table(folder / "grow.parquet", shot_table({"r1": 20}))
+    complete = write_table(tmp_path / "complete.parquet", shot_table({"r1": 20, "r2": 15}))
+    _change_during_write(monkeypatch, lambda: path.write_bytes(complete.read_bytes()))
+    [result] = catalogue.ingest([path])
+    assert result.status == "rejected" and "changed while being read" in result.reason
+    assert catalogue.counts()["shots"] == 0  # nothing of either version was written
+    # The watcher looks again once the file is stable, and takes the complete file once.
+    watcher = Watcher(folder, catalogue.ingest)
+    assert watcher.poll() == []
+    [result] = watcher.poll()
+    assert result.status == "ingested" and result.shots == 35
+    assert catalogue.counts()["shots"] == 35
+    assert not (folder / "quarantine").exists()
+
+
+def test_a_file_deleted_while_being_read_is_refused_with_nothing_written(catalogue, tmp_path, monkeypatch):
+    folder = tmp_path / "export"
+    folder.mkdir()
+    path = write_table(folder / "gone.parquet", shot_table({"r1": 12}))
+    watcher = Watcher(folder, catalogue.ingest)
+    assert watcher.poll() == []  # first sight; stable on the next poll
+    _change_during_write(monkeypatch, path.unlink)
+    assert watcher.poll() == []  # disappeared while being read: nothing to report, nothing kept
+    assert catalogue.counts()["shots"] == 0
+    log = catalogue.ingest_log()
+    assert list(log["status"]) == ["rejected"] and "disappeared while being read" in log["reason"].iloc[0]
+    assert not (folder / "quarantine").exists()
