@@ -72,6 +72,7 @@ __all__ = [
     "compile_filter",
     "compile_selection",
     "known_names",
+    "FigureNames",
 ]
 
 #: Longest filter text accepted, in characters.
@@ -389,12 +390,13 @@ class _Measurement:
     unit: str
 
 
-class _FigureNames(Mapping[str, tuple[str, ...]]):
+class FigureNames(Mapping[str, tuple[str, ...]]):
     """The stored figures' names, each with the units its rows are stored in.
 
     Names come from a walk down the index on ``figures.name`` (one probe per distinct
     name, not a scan of every run's figures); the units of a name are read when a
-    filter compares that figure. Valid while ``connection`` is open.
+    filter compares that figure. Valid while ``connection`` is open. Filters look their
+    figures up here, and ``Catalogue.figure_names`` lists them from here.
     """
 
     _NAMES = sql_text(
@@ -445,7 +447,7 @@ class _Names:
             for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))
         }
         zone_name = connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC"
-        return cls(parameters, measurements, _FigureNames(connection), ZoneInfo(zone_name))
+        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name))
 
     def all(self) -> list[str]:
         return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures]

@@ -51,6 +51,7 @@ __all__ = [
     "counts",
     "drift_view",
     "figure_names",
+    "figure_units",
     "figures_table",
     "fit_curve",
     "ingest_log",
@@ -61,6 +62,7 @@ __all__ = [
     "parameters_table",
     "run_info",
     "runs_table",
+    "sequences",
     "shots_table",
     "show_error",
     "site_map",
@@ -210,37 +212,64 @@ def runs_table(url: str, apparatus: str | None = None, sequence: str | None = No
     return frame
 
 
+# Pickers ask the catalogue for distinct values only: the runs or figures of a busy
+# apparatus take seconds to read, their names and days milliseconds.
+
+
+@_cached
 def apparatus_names(url: str) -> list[str]:
-    return sorted(runs_table(url)["apparatus"].unique().tolist())
+    """The apparatus with runs, sorted."""
+    return catalogue(url).apparatus_names()
 
 
+@_cached
 def lab_days(url: str, apparatus: str) -> list[dt.date]:
     """Lab days with runs on ``apparatus``, newest first."""
-    return sorted(runs_table(url, apparatus)["day"].unique().tolist(), reverse=True)
+    return catalogue(url).lab_days(apparatus=apparatus)
+
+
+@_cached
+def sequences(url: str, apparatus: str) -> list[str]:
+    """The sequences with runs on ``apparatus``, sorted."""
+    return catalogue(url).sequences(apparatus=apparatus)
+
+
+@_cached
+def figure_units(url: str, apparatus: str) -> pd.DataFrame:
+    """Every distinct (name, unit, sequence) of the figures stored for ``apparatus``."""
+    return catalogue(url).figure_units(apparatus=apparatus)
+
+
+def _sequences_by_unit(url: str, apparatus: str) -> dict[str, dict[str, list[str]]]:
+    """name -> stored unit -> the sequences storing it in that unit."""
+    found: dict[str, dict[str, list[str]]] = {}
+    for name, unit, sequence in figure_units(url, apparatus).itertuples(index=False):
+        found.setdefault(name, {}).setdefault(unit, []).append(sequence)
+    return found
+
+
+def figure_names(url: str, apparatus: str) -> dict[str, str]:
+    """Every figure stored for ``apparatus``: name -> stored unit. A name stored in several
+    units (see :func:`mixed_units`) maps to all of them as people write them: ``deg, rad``."""
+    return {
+        name: next(iter(units)) if len(units) == 1 else ", ".join(unit_text(unit) or "no unit" for unit in units)
+        for name, units in _sequences_by_unit(url, apparatus).items()
+    }
+
+
+def mixed_units(url: str, apparatus: str) -> dict[str, list[str]]:
+    """Figures stored under one name in several units (``phase``: deg from fringes, rad from
+    Ramsey fits), with the sequences of each unit."""
+    return {
+        name: [f"{unit_text(unit) or 'no unit'} ({', '.join(sequences)})" for unit, sequences in units.items()]
+        for name, units in _sequences_by_unit(url, apparatus).items()
+        if len(units) > 1
+    }
 
 
 @_cached
 def figures_table(url: str, apparatus: str | None = None, since: dt.date | None = None, until: dt.date | None = None, runs: tuple[str, ...] | None = None) -> pd.DataFrame:
     return catalogue(url).figures(apparatus=apparatus, since=since, until=until, runs=list(runs) if runs is not None else None)
-
-
-@_cached
-def figure_names(url: str, apparatus: str) -> dict[str, str]:
-    """Every figure stored for ``apparatus``: name -> unit (the first, see :func:`mixed_units`)."""
-    frame = figures_table(url, apparatus)
-    return dict(frame.groupby("name")["unit"].first())
-
-
-@_cached
-def mixed_units(url: str, apparatus: str) -> dict[str, list[str]]:
-    """Figures stored under one name in several units (``phase``: deg from fringes, rad from
-    Ramsey fits), with the sequences of each unit."""
-    frame = figures_table(url, apparatus)
-    found = {}
-    for name, group in frame.groupby("name"):
-        if group["unit"].nunique() > 1:
-            found[name] = [f"{unit_text(unit) or 'no unit'} ({', '.join(sorted(rows['sequence'].unique()))})" for unit, rows in group.groupby("unit")]
-    return found
 
 
 @_cached

@@ -42,7 +42,7 @@ first_day, last_day = days[-1], days[0]
 row = st.columns([2, 2, 1, 3])
 chosen_days = row[0].date_input(f"lab days ({zone})", value=(first_day, last_day), min_value=first_day, max_value=last_day, format="YYYY-MM-DD", key=f"drift-days-{apparatus}")
 since, until = (tuple(chosen_days) + (last_day,))[:2] if chosen_days else (first_day, last_day)
-sequences = sorted(common.runs_table(url, apparatus)["sequence"].unique().tolist())
+sequences = common.sequences(url, apparatus)
 sequence = row[1].selectbox("sequence", ["all sequences", *sequences], key=f"drift-sequence-{apparatus}")
 sequence = None if sequence == "all sequences" else sequence
 baseline_days = int(row[2].number_input("baseline days", min_value=2, max_value=60, value=7, key="drift-baseline", help="The first days with data that set the control limits."))
