@@ -627,7 +627,7 @@ def plot_run_command(state: _State, run: str, out: Path, apparatus: str | None, 
 
 @cli.group("db")
 def db_group() -> None:
-    """Catalogue administration (PostgreSQL)."""
+    """Catalogue administration: read-only roles, copying to another store."""
 
 
 @db_group.command("grant-reader")
@@ -644,6 +644,36 @@ def grant_reader(state: _State, role: str, password_env: str | None) -> None:
     with _open(state) as catalogue:
         catalogue.grant_reader(role, password=password)
         click.echo(f"role {role} can read {catalogue.url}")
+
+
+@db_group.command("copy")
+@click.option("--to", "target", required=True, metavar="URL", help="Where to copy: an empty PostgreSQL database or SQLite file, or a catalogue with no rows yet.")
+@click.option("--json", "as_json", is_flag=True, help="Print the rows copied per table as JSON.")
+@_common
+def copy_command(state: _State, target: str, as_json: bool) -> None:
+    """Copy the whole catalogue into another, empty store.
+
+    The source is --db (else $RUNLOG_DB); --to is typically a shared PostgreSQL server
+    for a group that outgrew one SQLite file. Every table is copied with its ids, in one
+    transaction on the target: a failure or Ctrl-C leaves the target as it was. The row
+    counts of both sides are compared and printed.
+    """
+    from runlog.store.copy import copy_catalogue
+    from runlog.store.engine import redact, resolve_url
+
+    source = resolve_url(state.db)
+    progress = None if as_json or not sys.stderr.isatty() else _progress_bar()
+    try:
+        rows = copy_catalogue(source, target, progress=progress and progress.update)
+    finally:
+        if progress:
+            progress.close()
+    if as_json:
+        _json({"source": redact(source), "target": redact(target), "rows": rows})
+        return
+    click.echo(f"copied {redact(source)} to {redact(target)}: {rows['runs']} runs, {rows['shots']} shots")
+    for table, count in rows.items():
+        click.echo(f"  {table:<20} {count:>12}")
 
 
 def main(argv: list[str] | None = None) -> None:

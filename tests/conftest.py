@@ -63,10 +63,26 @@ def db_url(request, tmp_path):
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path / 'catalogue.sqlite'}"
         return
+    yield from _postgres_database(request)
+
+
+def _postgres_database(request):
     server = request.getfixturevalue("postgres_url")
     url, drop = _fresh_postgres_database(server)
     yield url
     drop()
+
+
+@pytest.fixture
+def pg_url(request):
+    """A URL of an empty database on the private PostgreSQL server (PostgreSQL-only tests)."""
+    yield from _postgres_database(request)
+
+
+@pytest.fixture
+def other_pg_url(request):
+    """A second empty PostgreSQL database, for tests that need two."""
+    yield from _postgres_database(request)
 
 
 @pytest.fixture
@@ -136,3 +152,16 @@ def make_file(tmp_path):
         return write_table(tmp_path / name, table if table is not None else shot_table(**kwargs))
 
     return make
+
+
+def run_main(capsys, *args: str) -> tuple[int, str, str]:
+    """``runlog.cli.main`` in-process: (exit code, stdout, stderr)."""
+    from runlog.cli import main
+
+    code: int | str | None = 0
+    try:
+        main(list(args))
+    except SystemExit as done:
+        code = done.code
+    captured = capsys.readouterr()
+    return (0 if code is None else code), captured.out, captured.err

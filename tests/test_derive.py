@@ -20,12 +20,12 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from click.testing import CliRunner
-from conftest import T0, shot_table
+from conftest import T0, run_main, shot_table
 from scipy.optimize import curve_fit
 from sqlalchemy import select
 
 import runlog
-from runlog.cli import cli, main
+from runlog.cli import cli
 from runlog.config import check_rules, load_config
 from runlog.demo import SCENARIO, write_demo_files
 from runlog.derive import KINDS, DeriveResult, apply_rules, derive, derive_all
@@ -81,16 +81,6 @@ def near(figure, truth: float, relative: float = 0.15) -> bool:
 
 def invoke(*args: str):
     return CliRunner().invoke(cli, list(args))
-
-
-def run_main(capsys, *args: str) -> tuple[int, str, str]:
-    code: int | str | None = 0
-    try:
-        main(list(args))
-    except SystemExit as done:
-        code = done.code
-    captured = capsys.readouterr()
-    return (0 if code is None else code), captured.out, captured.err
 
 
 def stored_rows(catalogue, run: str) -> dict:

@@ -20,7 +20,7 @@ from collections import Counter
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
-from conftest import _fresh_postgres_database, shot_table, write_table
+from conftest import shot_table, write_table
 from sqlalchemy import inspect, text
 
 import runlog
@@ -32,13 +32,6 @@ from runlog.store.schema import Base
 
 UTC = dt.timezone.utc
 
-
-@pytest.fixture
-def pg_url(request):
-    server = request.getfixturevalue("postgres_url")
-    url, drop = _fresh_postgres_database(server)
-    yield url
-    drop()
 
 
 def _rows(engine, sql: str, **params) -> list[tuple]:
