@@ -44,10 +44,15 @@ def test_both_read_paths_give_the_same_table(lab, where, monkeypatch):  # noqa: 
         # The ADBC PostgreSQL read (second connection, same snapshot) against psycopg's rows.
         monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 0)
         used = []
-        monkeypatch.setattr(selection_module, "fetch_postgres_arrow", lambda *a: used.append(1) or arrow_reader.fetch_postgres_arrow(*a))
+        def through_adbc(*args):
+            table = arrow_reader.fetch_postgres_arrow(*args)
+            used.append(table is not None)
+            return table
+
+        monkeypatch.setattr(selection_module, "fetch_postgres_arrow", through_adbc)
         with catalogue.engine.connect().execution_options(isolation_level="REPEATABLE READ") as connection:
             arrow = select_on(connection, where, shot_ids=True)
-        assert used
+        assert used == [True]  # read through ADBC, not the fallback
         monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 10**12)
     else:
         with arrow_read(catalogue.engine) as fast:
