@@ -40,7 +40,9 @@ from sqlalchemy import (
     Column,
     ColumnElement,
     Float,
+    Integer,
     MetaData,
+    String,
     Table,
     and_,
     exists,
@@ -435,6 +437,9 @@ class _Names:
     measurements: dict[str, _Measurement]
     figures: Mapping[str, tuple[str, ...]]  # name -> the units its rows are stored in
     zone: ZoneInfo
+    # PostgreSQL: the shot-level tables are partitioned by month and the children carry
+    # their shot's time (runlog.store.partitions).
+    partitioned: bool = False
 
     @classmethod
     def load(cls, connection: Connection) -> _Names:
@@ -447,7 +452,7 @@ class _Names:
             for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))
         }
         zone_name = connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC"
-        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name))
+        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql")
 
     def all(self) -> list[str]:
         return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures]
@@ -485,6 +490,16 @@ _shots = s.Shot.__table__
 _run_parameters = s.RunParameter.__table__
 _shot_parameters = s.ShotParameter.__table__
 _figures = s.FigureRow.__table__
+# shot_parameters as PostgreSQL holds it: with its shot's time, the partition key.
+_SHOT_PARAMETERS_WITH_TIME = Table(
+    "shot_parameters",
+    MetaData(),
+    Column("shot_id", s.BigId),
+    Column("parameter_id", Integer),
+    Column("number_value", Float),
+    Column("text_value", String),
+    Column("time", s.UTCDateTime),
+)
 
 
 @dataclass(frozen=True)
@@ -759,8 +774,15 @@ class _Compiler:
         bound = self.day_start(values[0])
         return CompiledFilter(runs_overlap(bound, None), time >= bound)
 
+    def same_shot(self, child: Table) -> ColumnElement[bool]:
+        """``child``'s row belongs to the outer query's shot. On PostgreSQL the time is
+        matched too, so each probe reads the one month partition holding the shot."""
+        on = child.c.shot_id == _shots.c.id
+        return and_(on, child.c.time == _shots.c.time) if self.names.partitioned else on
+
     def parameter(self, node: Comparison, parameter: _Parameter) -> CompiledFilter:
-        rp, sp = _run_parameters, _shot_parameters
+        rp = _run_parameters
+        sp = _SHOT_PARAMETERS_WITH_TIME if self.names.partitioned else _shot_parameters
         if parameter.kind == "text":
             self.check_operator(node, _TEXT_OPERATORS, "a text parameter")
             values: list = self.texts(node)
@@ -783,7 +805,7 @@ class _Compiler:
         constant_match = select(rp.c.run_id).where(and_(this, rp.c.scanned.is_(False), _compare(run_column, node.operator, values)))
         scanned_may_match = select(rp.c.run_id).where(and_(this, rp.c.scanned.is_(True), may_hold))
         prune = _runs.c.id.in_(select(rp.c.run_id).where(and_(this, or_(and_(rp.c.scanned.is_(False), _compare(run_column, node.operator, values)), and_(rp.c.scanned.is_(True), may_hold)))))
-        shot_value = exists().where(and_(sp.c.shot_id == _shots.c.id, sp.c.parameter_id == parameter.id, _compare(shot_column, node.operator, values))).correlate(_shots)
+        shot_value = exists().where(and_(self.same_shot(sp), sp.c.parameter_id == parameter.id, _compare(shot_column, node.operator, values))).correlate(_shots)
         exact = or_(_shots.c.run_id.in_(constant_match), and_(_shots.c.run_id.in_(scanned_may_match), shot_value))
         return CompiledFilter(prune, exact)
 
@@ -791,11 +813,12 @@ class _Compiler:
         values = self.numbers(node, measurement.unit, f" (stored in '{measurement.unit}')" if measurement.unit else "")
         # The wide table's columns are data, not schema: describe just the one we need,
         # named from the measurement's integer id.
-        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), Column(s.measurement_column(measurement.id), Float))
+        time = [Column("time", s.UTCDateTime)] if self.names.partitioned else []
+        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *time, Column(s.measurement_column(measurement.id), Float))
         column = wide.c[s.measurement_column(measurement.id)]
         carried = s.RunMeasurement.__table__
         prune = _runs.c.id.in_(select(carried.c.run_id).where(carried.c.measurement_id == measurement.id))
-        exact = exists().where(and_(wide.c.shot_id == _shots.c.id, _compare(column, node.operator, values))).correlate(_shots)
+        exact = exists().where(and_(self.same_shot(wide), _compare(column, node.operator, values))).correlate(_shots)
         return CompiledFilter(prune, exact)
 
     def figure(self, node: Comparison, name: str) -> CompiledFilter:
