@@ -31,7 +31,7 @@ import difflib
 import re
 import unicodedata
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from functools import lru_cache
 from typing import Union
 from zoneinfo import ZoneInfo
@@ -512,6 +512,8 @@ class CompiledFilter:
 
     runs: ColumnElement[bool] | None
     shots: ColumnElement[bool] | None
+    #: Ids of the parameters the filter compares.
+    parameters: frozenset[int] = field(default=frozenset(), compare=False)
 
     def run_ids(self):
         """The ids of the runs that may hold matching shots, as a subquery."""
@@ -562,9 +564,11 @@ def _range_may_hold(low, high, operator: str, values: list[float]) -> ColumnElem
 
 
 class _Compiler:
-    def __init__(self, text: str, names: _Names):
+    def __init__(self, text: str, names: _Names, whole_run: frozenset[int] = frozenset()):
         self.text = text
         self.names = names
+        self.whole_run = whole_run
+        self.used: set[int] = set()
 
     def error(self, reason: str, position: int | None) -> FilterError:
         return FilterError(self.text, reason, position)
@@ -801,8 +805,13 @@ class _Compiler:
             values = self.numbers(node, parameter.unit, f" (stored in '{parameter.unit}')" if parameter.unit else "")
             run_column, shot_column = rp.c.number_value, sp.c.number_value
             may_hold = _range_may_hold(rp.c.minimum, rp.c.maximum, node.operator, values)
+        self.used.add(parameter.id)
         this = rp.c.parameter_id == parameter.id
         constant_match = select(rp.c.run_id).where(and_(this, rp.c.scanned.is_(False), _compare(run_column, node.operator, values)))
+        if parameter.id in self.whole_run:
+            # The caller knows no run it will look at scans this parameter: the run's
+            # constant value decides for all its shots.
+            return CompiledFilter(_runs.c.id.in_(constant_match), None)
         scanned_may_match = select(rp.c.run_id).where(and_(this, rp.c.scanned.is_(True), may_hold))
         prune = _runs.c.id.in_(select(rp.c.run_id).where(and_(this, or_(and_(rp.c.scanned.is_(False), _compare(run_column, node.operator, values)), and_(rp.c.scanned.is_(True), may_hold)))))
         shot_value = exists().where(and_(self.same_shot(sp), sp.c.parameter_id == parameter.id, _compare(shot_column, node.operator, values))).correlate(_shots)
@@ -830,14 +839,21 @@ class _Compiler:
         return CompiledFilter(exists().where(and_(_figures.c.run_id == _runs.c.id, _figures.c.name == name, or_(*per_unit))).correlate(_runs), None)
 
 
-def compile_selection(source, filter: Filter | str) -> CompiledFilter:
+def compile_selection(source, filter: Filter | str, *, whole_run: frozenset[int] = frozenset()) -> CompiledFilter:
     """The filter as SQL in two steps: a run condition to prune on, and the exact shot
     condition (see :class:`CompiledFilter`). ``source`` is a Catalogue, Engine or
-    Connection; it resolves names, units and the lab time zone."""
+    Connection; it resolves names, units and the lab time zone.
+
+    ``whole_run``: ids of parameters that no run the result will be applied to scans; a
+    comparison on one of them is decided by each run's constant value alone (simpler SQL).
+    The caller must then restrict the result to such runs itself.
+    """
     text = filter if isinstance(filter, str) else str(filter)
     tree = parse(filter) if isinstance(filter, str) else filter
     with _connected(source) as connection:
-        return _Compiler(text, _Names.load(connection)).compile(tree, top=True)
+        compiler = _Compiler(text, _Names.load(connection), whole_run)
+        compiled = compiler.compile(tree, top=True)
+    return replace(compiled, parameters=frozenset(compiler.used))
 
 
 def compile_filter(source, filter: Filter | str) -> ColumnElement[bool]:

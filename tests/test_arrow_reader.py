@@ -208,3 +208,40 @@ def test_a_busy_writer_means_one_reader_not_a_wait(tmp_path):
             assert time.monotonic() - started < 3
     finally:
         holder.wait(timeout=30)
+
+
+SIMPLE_FILTERS = [
+    "depth > 62 uK",  # scanned in one run: the general form
+    "depth > 62 uK and apparatus = 'west'",
+    "wait = 200 us",
+    "not wait = 200 us",
+    "beam = 'horizontal' or wait < 20 us",
+    "wait between 100 us and 0.5 ms and date >= '2026-03-01'",
+]
+
+
+@pytest.mark.parametrize("where", SIMPLE_FILTERS)
+def test_deciding_unscanned_parameters_by_run_gives_the_same_shots(lab, where, monkeypatch):  # noqa: F811
+    # The selection compiles a comparison on a parameter that no candidate run scans as
+    # a whole-run test; the same filter with that shortcut disabled must select the same.
+    catalogue = lab
+    shortcut = selection_module._exact_condition
+    fast = select_table(catalogue, where, shot_ids=True)
+    monkeypatch.setattr(selection_module, "_exact_condition", lambda c, compiled, w, scanned, candidates: shortcut(c, compiled, w, scanned | compiled.parameters, candidates))
+    general = select_table(catalogue, where, shot_ids=True)
+    assert fast.table.equals(general.table) and (fast.shot_ids == general.shot_ids).all()
+    assert fast.table.num_rows > 0
+
+
+def test_the_shortcut_is_taken_when_no_candidate_run_scans_the_parameter(lab, monkeypatch):  # noqa: F811
+    taken = []
+    shortcut = selection_module._exact_condition
+
+    def watched(connection, compiled, where_text, scanned_here, candidates):
+        taken.append(bool(compiled.parameters) and not (compiled.parameters & scanned_here))
+        return shortcut(connection, compiled, where_text, scanned_here, candidates)
+
+    monkeypatch.setattr(selection_module, "_exact_condition", watched)
+    select_table(lab, "wait = 200 us and beam = 'horizontal'")
+    select_table(lab, "wait between 0 us and 1 ms")  # runs scanning wait are candidates
+    assert taken == [True, False]
