@@ -281,8 +281,10 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         arrays = _read_arrow(connection, parts, types, keys=4 if with_ids else 3)
     elif dialect == "postgresql":
         if limit is None:
-            table = fetch_postgres_arrow(connection, shaped(exact()), sum(run_shots.values()))
-            if table is not None:
+            pieces = [shaped(exact(*bounds)) for bounds in _split(run_shots, PARALLEL_READS)]
+            tables = fetch_postgres_arrow(connection, pieces, sum(run_shots.values()))
+            if tables is not None:
+                table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
                 arrays = [column.combine_chunks().cast(kind) for column, kind in zip(table.columns, types)]
         if arrays is None:
             # A plan compiled for this one read costs more than it saves.

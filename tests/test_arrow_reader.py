@@ -41,18 +41,23 @@ FILTERS = [
 def test_both_read_paths_give_the_same_table(lab, where, monkeypatch):  # noqa: F811 - fixture imported above
     catalogue = lab
     if catalogue.engine.dialect.name == "postgresql":
-        # The ADBC PostgreSQL read (second connection, same snapshot) against psycopg's rows.
+        # The ADBC PostgreSQL read (more connections, same snapshot, split by runs as a
+        # large read is) against psycopg's rows.
         monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 0)
+        monkeypatch.setattr(selection_module, "_SPLIT_SHOTS", 1)
+        monkeypatch.setattr(selection_module, "PARALLEL_READS", 3)
         used = []
-        def through_adbc(*args):
-            table = arrow_reader.fetch_postgres_arrow(*args)
-            used.append(table is not None)
-            return table
+
+        def through_adbc(connection, queries, rows):
+            tables = arrow_reader.fetch_postgres_arrow(connection, queries, rows)
+            used.append(None if tables is None else len(tables))
+            return tables
 
         monkeypatch.setattr(selection_module, "fetch_postgres_arrow", through_adbc)
         with catalogue.engine.connect().execution_options(isolation_level="REPEATABLE READ") as connection:
             arrow = select_on(connection, where, shot_ids=True)
-        assert used == [True]  # read through ADBC, not the fallback
+        assert len(used) == 1 and used[0] is not None and used[0] >= 2  # through ADBC, split
+        monkeypatch.setattr(selection_module, "_SPLIT_SHOTS", 200_000)
         monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 10**12)
     else:
         with arrow_read(catalogue.engine) as fast:

@@ -257,16 +257,16 @@ def _fetch(adbc: Any, query: Any, dialect: Any) -> pa.Table:
 _POSTGRES_ARROW_ROWS = 50_000
 
 
-def fetch_postgres_arrow(connection: Connection, query: Any, rows: int) -> pa.Table | None:
-    """The rows of ``query`` as an Arrow table through the ADBC PostgreSQL driver (binary
-    COPY into Arrow), reading the snapshot of ``connection``'s transaction; ``None`` when
-    not worth it (fewer than about 50 000 ``rows`` expected) or not possible (driver
-    missing, the server refusing a second connection): the caller then reads the rows
-    through ``connection``.
+def fetch_postgres_arrow(connection: Connection, queries: list[Any], rows: int) -> list[pa.Table] | None:
+    """The rows of each of ``queries`` as an Arrow table through the ADBC PostgreSQL
+    driver (binary COPY into Arrow), each on a connection of its own, side by side, all
+    reading the snapshot of ``connection``'s transaction; ``None`` when not worth it (fewer
+    than about 50 000 ``rows`` expected) or not possible (driver missing, the server
+    refusing more connections): the caller then reads the rows through ``connection``.
 
-    The second connection imports the first one's snapshot (``pg_export_snapshot`` and
-    ``SET TRANSACTION SNAPSHOT``, PostgreSQL manual 9.27.5), so it sees exactly what the
-    queries before it saw when ``connection`` is in a repeatable-read transaction.
+    The other connections import the first one's snapshot (``pg_export_snapshot`` and
+    ``SET TRANSACTION SNAPSHOT``, PostgreSQL manual 9.27.5), so they see exactly what the
+    queries before them saw when ``connection`` is in a repeatable-read transaction.
     """
     if rows < _POSTGRES_ARROW_ROWS or connection.dialect.name != "postgresql":
         return None
@@ -278,15 +278,20 @@ def fetch_postgres_arrow(connection: Connection, query: Any, rows: int) -> pa.Ta
     from sqlalchemy import text
 
     snapshot = connection.execute(text("SELECT pg_export_snapshot()")).scalar()
-    url = connection.engine.url.set(drivername="postgresql")
+    address = connection.engine.url.set(drivername="postgresql").render_as_string(hide_password=False)
+    readers: list[Any] = []
     try:
-        reader = adbc_postgres.connect(url.render_as_string(hide_password=False), autocommit=True)
+        for _ in queries:
+            readers.append(adbc_postgres.connect(address, autocommit=True))
     except Exception:  # e.g. no connection slot left: the rows path still works
+        for reader in readers:
+            reader.close()
         return None
     # The driver binds numbered parameters ($1, $2, ...): compile for a dialect that writes them.
     dialect = asyncpg.dialect()
-    compiled = query.compile(dialect=dialect, compile_kwargs={"render_postcompile": True})
-    try:
+
+    def read(reader: Any, query: Any) -> pa.Table:
+        compiled = query.compile(dialect=dialect, compile_kwargs={"render_postcompile": True})
         cursor = reader.cursor()
         try:
             cursor.execute("BEGIN ISOLATION LEVEL REPEATABLE READ READ ONLY")
@@ -304,5 +309,15 @@ def fetch_postgres_arrow(connection: Connection, query: Any, rows: int) -> pa.Ta
             return table
         finally:
             cursor.close()
+
+    try:
+        if len(queries) == 1:
+            return [read(readers[0], queries[0])]
+        from concurrent.futures import ThreadPoolExecutor
+
+        # Each server process runs its part of the join on a core of its own.
+        with ThreadPoolExecutor(max_workers=len(queries)) as pool:
+            return [future.result() for future in [pool.submit(read, reader, query) for reader, query in zip(readers, queries)]]
     finally:
-        reader.close()
+        for reader in readers:
+            reader.close()
