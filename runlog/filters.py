@@ -40,9 +40,7 @@ from sqlalchemy import (
     Column,
     ColumnElement,
     Float,
-    Integer,
     MetaData,
-    String,
     Table,
     and_,
     exists,
@@ -56,6 +54,7 @@ from sqlalchemy.engine import Connection, Engine
 
 from runlog.errors import FilterError
 from runlog.store import schema as s
+from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
 from runlog.units import check_unit, conversion
 
 __all__ = [
@@ -490,16 +489,6 @@ _shots = s.Shot.__table__
 _run_parameters = s.RunParameter.__table__
 _shot_parameters = s.ShotParameter.__table__
 _figures = s.FigureRow.__table__
-# shot_parameters as PostgreSQL holds it: with its shot's time, the partition key.
-_SHOT_PARAMETERS_WITH_TIME = Table(
-    "shot_parameters",
-    MetaData(),
-    Column("shot_id", s.BigId),
-    Column("parameter_id", Integer),
-    Column("number_value", Float),
-    Column("text_value", String),
-    Column("time", s.UTCDateTime),
-)
 
 
 @dataclass(frozen=True)
@@ -786,7 +775,7 @@ class _Compiler:
 
     def parameter(self, node: Comparison, parameter: _Parameter) -> CompiledFilter:
         rp = _run_parameters
-        sp = _SHOT_PARAMETERS_WITH_TIME if self.names.partitioned else _shot_parameters
+        sp = SHOT_PARAMETERS_WITH_TIME if self.names.partitioned else _shot_parameters
         if parameter.kind == "text":
             self.check_operator(node, _TEXT_OPERATORS, "a text parameter")
             values: list = self.texts(node)

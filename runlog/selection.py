@@ -23,12 +23,13 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import BigInteger, Column, ColumnElement, Float, Integer, MetaData, String, Table, and_, bindparam, cast, extract, func, select, type_coerce
+from sqlalchemy import BigInteger, Column, ColumnElement, Float, MetaData, Table, and_, bindparam, cast, extract, func, select, type_coerce
 from sqlalchemy.engine import Connection
 
 from runlog.errors import NotFoundError
 from runlog.filters import CompiledFilter, compile_selection
 from runlog.store import schema as s
+from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
 from runlog.store.arrow_reader import arrow_read, fetch_arrow_parallel, fetch_postgres_arrow, is_arrow, parallel_readers
 
 if TYPE_CHECKING:
@@ -51,16 +52,6 @@ _shots = s.Shot.__table__
 _run_parameters = s.RunParameter.__table__
 _shot_parameters = s.ShotParameter.__table__
 _apparatus = s.Apparatus.__table__
-# shot_parameters as PostgreSQL holds it: with its shot's time, the partition key.
-_SHOT_PARAMETERS_WITH_TIME = Table(
-    "shot_parameters",
-    MetaData(),
-    Column("shot_id", s.BigId),
-    Column("parameter_id", Integer),
-    Column("number_value", Float),
-    Column("text_value", String),
-    Column("time", s.UTCDateTime),
-)
 
 
 @dataclass
@@ -247,7 +238,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
 
     source = _shots
     value_columns = []
-    per_shot_parameters = _SHOT_PARAMETERS_WITH_TIME if months else _shot_parameters
+    per_shot_parameters = SHOT_PARAMETERS_WITH_TIME if months else _shot_parameters
     for column in scanned:
         alias = per_shot_parameters.alias(f"sp{column.id}")
         source = source.outerjoin(alias, and_(same_shot(alias), alias.c.parameter_id == column.id))

@@ -31,12 +31,14 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Iterable
 
-from sqlalchemy import text
+from sqlalchemy import Column, Float, Integer, MetaData, String, Table, text
 from sqlalchemy.engine import Connection
 
 from runlog.errors import StoreError
+from runlog.store.schema import BigId, UTCDateTime
 
 __all__ = [
+    "SHOT_PARAMETERS_WITH_TIME",
     "SHOT_TABLES",
     "partition_name",
     "month_start",
@@ -46,6 +48,18 @@ __all__ = [
     "partition_shot_tables",
     "unpartition_shot_tables",
 ]
+
+#: ``shot_parameters`` as PostgreSQL holds it, with its shot's time (the partition key),
+#: for queries that match a child row to its shot by id and time.
+SHOT_PARAMETERS_WITH_TIME = Table(
+    "shot_parameters",
+    MetaData(),
+    Column("shot_id", BigId),
+    Column("parameter_id", Integer),
+    Column("number_value", Float),
+    Column("text_value", String),
+    Column("time", UTCDateTime),
+)
 
 #: The shot-level tables, parent first; partitioned alike, month by month.
 SHOT_TABLES = ("shots", "shot_parameters", "shot_measurements", "occupancy")
