@@ -195,7 +195,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     # The candidate runs are read once; later queries name them as a literal list of
     # integers (from the catalogue itself) rather than repeating the filter's run
     # conditions or binding thousands of values.
-    run_list_sql = sorted(runs)
+    candidates = sorted(runs)
     all_parameters = {name: (int(pid), unit or "", kind) for pid, name, unit, kind in connection.execute(select(s.Parameter.id, s.Parameter.name, s.Parameter.unit, s.Parameter.kind))}
     all_measurements = {name: (int(mid), unit or "") for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))}
     want_p, want_m = _wanted(columns, all_parameters, all_measurements)
@@ -205,7 +205,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     scanned_here: set[int] = set()  # parameters some candidate run scans
     rp = _run_parameters
     for run_id, pid, scanned, number, text_value in connection.execute(
-        select(rp.c.run_id, rp.c.parameter_id, rp.c.scanned, rp.c.number_value, rp.c.text_value).where(id_in(rp.c.run_id, run_list_sql))
+        select(rp.c.run_id, rp.c.parameter_id, rp.c.scanned, rp.c.number_value, rp.c.text_value).where(id_in(rp.c.run_id, candidates))
     ).all():
         if scanned:
             scanned_here.add(int(pid))
@@ -219,7 +219,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         else:
             column.constant[int(run_id)] = text_value if kind == "text" else (None if number is None else (bool(number) if kind == "boolean" else float(number)))
     carried = s.RunMeasurement.__table__
-    measurement_ids = {int(m) for (m,) in connection.execute(select(carried.c.measurement_id).where(id_in(carried.c.run_id, run_list_sql)).distinct())}
+    measurement_ids = {int(m) for (m,) in connection.execute(select(carried.c.measurement_id).where(id_in(carried.c.run_id, candidates)).distinct())}
     measurements = sorted(
         ((name, mid, unit) for name, (mid, unit) in all_measurements.items() if mid in measurement_ids and (want_m is None or name in want_m)),
     )
@@ -264,16 +264,18 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
             .limit(int(limit))
         )
 
-    exact = _exact_condition(connection, compiled, where, scanned_here, run_list_sql)
-    parts = [shaped(exact(*bounds)) for bounds in _split(run_shots, parallel_readers(connection) if limit is None else 1)]
+    exact = _exact_condition(connection, compiled, where, scanned_here, candidates)
+    # A large read is cut into run-id ranges, each read on a connection of its own (of the
+    # same snapshot): SQLite through ADBC, PostgreSQL through ADBC with imported snapshots.
+    readers = 1 if limit is not None else parallel_readers(connection) if is_arrow(connection) else PARALLEL_READS if dialect == "postgresql" else 1
+    parts = [shaped(exact(*bounds)) for bounds in _split(run_shots, readers)]
     types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
     arrays = None
     if is_arrow(connection):
         arrays = _read_arrow(connection, parts, types, keys=4 if with_ids else 3)
     elif dialect == "postgresql":
         if limit is None:
-            pieces = [shaped(exact(*bounds)) for bounds in _split(run_shots, PARALLEL_READS)]
-            tables = fetch_postgres_arrow(connection, pieces, sum(run_shots.values()))
+            tables = fetch_postgres_arrow(connection, parts, sum(run_shots.values()))
             if tables is not None:
                 table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
                 arrays = [column.combine_chunks().cast(kind) for column, kind in zip(table.columns, types)]
