@@ -427,12 +427,17 @@ def _read_arrow(connection: Connection, parts: list, types: list[pa.DataType], k
         read.append(func.coalesce(column, "" if kind == pa.string() else 0.0).label(None))
         read.append(column.is_(None).label(None))
     tables = fetch_arrow_parallel(connection, [part.with_only_columns(*read, maintain_column_froms=True) for part in parts])
-    table = pa.concat_tables(tables) if len(tables) > 1 else tables[0]
-    arrays = [table.column(i).combine_chunks().cast(kind) for i, kind in enumerate(types[:keys])]
-    for i, kind in enumerate(types[keys:]):
+    # What was read, column by column: keys, then each value beside its NULL flag. A
+    # piece that found no rows comes back typed int64 throughout: cast every piece.
+    read_types = [*types[:keys]]
+    for kind in types[keys:]:
+        read_types += [pa.string() if kind == pa.string() else pa.float64(), pa.int64()]
+    schema = pa.schema([pa.field(f"c{i}", kind) for i, kind in enumerate(read_types)])
+    table = pa.concat_tables([pa.Table.from_arrays([column.cast(kind) for column, kind in zip(piece.columns, read_types)], schema=schema) for piece in tables])
+    arrays = [table.column(i).combine_chunks() for i in range(keys)]
+    for i in range(len(types) - keys):
         values = table.column(keys + 2 * i).combine_chunks()
         missing = pc.not_equal(table.column(keys + 2 * i + 1).combine_chunks(), 0)
-        values = values.cast(pa.string()) if kind == pa.string() else values.cast(pa.float64())
         arrays.append(pc.if_else(missing, pa.scalar(None, values.type), values))
     return arrays
 

@@ -250,3 +250,17 @@ def test_the_shortcut_is_taken_when_no_candidate_run_scans_the_parameter(lab, mo
     select_table(lab, "wait = 200 us and beam = 'horizontal'")
     select_table(lab, "wait between 0 us and 1 ms")  # runs scanning wait are candidates
     assert taken == [True, False]
+
+
+def test_a_split_read_where_one_piece_finds_nothing(tmp_path, monkeypatch):
+    # The first run-id range holds only runs with fewer than 46 shots: its piece is empty,
+    # and an empty result carries no column types of its own.
+    url = f"sqlite:///{tmp_path / 'c.sqlite'}"
+    with runlog.open(url) as catalogue:
+        catalogue.ingest([write_table(tmp_path / "a.parquet", shot_table({f"r{i:02d}": 40 + i for i in range(12)}, seed=11))])
+        whole = select_table(catalogue, "shot >= 45", shot_ids=True)
+        monkeypatch.setattr(selection_module, "_SPLIT_SHOTS", 1)
+        with arrow_read(catalogue.engine, parallel=3) as fast:
+            split = select_on(fast, "shot >= 45", shot_ids=True)
+        assert split.table.equals(whole.table, check_metadata=True)
+        assert split.table.num_rows == sum(max(0, 40 + i - 45) for i in range(12))
