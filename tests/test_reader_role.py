@@ -7,9 +7,11 @@ from sqlalchemy.engine import make_url
 
 import runlog
 from runlog import StoreError
+from runlog.selection import select_shots
+from runlog.store import arrow_reader
 
 
-def test_grant_reader_on_postgresql_reads_and_cannot_write(db_url, make_file):
+def test_grant_reader_on_postgresql_reads_and_cannot_write(db_url, make_file, monkeypatch):
     with runlog.open(db_url) as catalogue:
         catalogue.ingest(make_file(runs={"r1": 5}))
         if catalogue.engine.dialect.name == "sqlite":
@@ -26,6 +28,11 @@ def test_grant_reader_on_postgresql_reads_and_cannot_write(db_url, make_file):
         assert reader.runs()["run"].tolist() == ["r1"]
         assert set(reader.run("r1").figures) == {"fill_fraction", "survival", "loss"}
         assert len(reader.drift("fill_fraction", record_alarms=False).points) == 1
+        # A large selection's second connections (ADBC, imported snapshot) work under the role.
+        monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 0)
+        through_adbc = select_shots(reader, "shot >= 0")
+        monkeypatch.setattr(arrow_reader, "_POSTGRES_ARROW_ROWS", 10**12)
+        assert len(through_adbc) == 5 and through_adbc.equals(select_shots(reader, "shot >= 0"))
         before = reader.counts()
         with pytest.raises(Exception) as refused:
             reader.ingest(make_file(runs={"r2": 3}, seed=5))

@@ -277,6 +277,10 @@ def fetch_postgres_arrow(connection: Connection, queries: list[Any], rows: int) 
         return None
     from sqlalchemy import text
 
+    # A hot standby cannot export snapshots (and a failed statement would spoil the
+    # caller's transaction; a savepoint is no way out: subtransactions cannot export).
+    if connection.execute(text("SELECT pg_is_in_recovery()")).scalar():
+        return None
     snapshot = connection.execute(text("SELECT pg_export_snapshot()")).scalar()
     address = connection.engine.url.set(drivername="postgresql").render_as_string(hide_password=False)
     readers: list[Any] = []
