@@ -264,3 +264,29 @@ def test_a_split_read_where_one_piece_finds_nothing(tmp_path, monkeypatch):
             split = select_on(fast, "shot >= 45", shot_ids=True)
         assert split.table.equals(whole.table, check_metadata=True)
         assert split.table.num_rows == sum(max(0, 40 + i - 45) for i in range(12))
+
+
+def test_rows_come_out_slice_by_slice_in_order(monkeypatch):
+    # The cursor under SQLAlchemy converts Arrow results to rows a slice at a time; every
+    # way of fetching must hand out each row once, in order, across slice boundaries.
+    import adbc_driver_sqlite.dbapi as adbc_sqlite
+
+    monkeypatch.setattr(arrow_reader._Cursor, "_SLICE", 7)
+    connection = adbc_sqlite.connect(":memory:", autocommit=True)
+    try:
+        setup = connection.cursor()
+        setup.execute("CREATE TABLE t (i INTEGER, x REAL, s TEXT)")
+        setup.execute("WITH RECURSIVE n(i) AS (SELECT 0 UNION ALL SELECT i + 1 FROM n WHERE i < 24) INSERT INTO t SELECT i, i * 0.5, NULL FROM n")
+        setup.close()
+        cursor = arrow_reader._Connection(connection).cursor()
+        cursor.execute("SELECT i, x, s FROM t ORDER BY i")
+        got = [cursor.fetchone(), *cursor.fetchmany(9), *cursor.fetchmany(3)]
+        got += cursor.fetchall()
+        assert [row[0] for row in got] == list(range(25))
+        assert got[10] == (10, 5.0, None)
+        assert cursor.fetchone() is None and cursor.fetchmany(5) == [] and cursor.fetchall() == []
+        cursor.execute("PRAGMA user_version = 3")  # no result set
+        assert cursor.fetchall() == []
+        cursor.close()
+    finally:
+        connection.close()

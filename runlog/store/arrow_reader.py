@@ -42,46 +42,69 @@ class _Cursor:
     """An ADBC cursor whose rows come from one Arrow table per statement.
 
     The driver's own ``fetchone`` builds each row value by value (about 13 µs a row);
-    converting the whole result column by column is twenty times faster.
+    converting the result column by column, a slice of rows at a time, is twenty times
+    faster and keeps only one slice of Python rows in memory.
     """
+
+    _SLICE = 10_000
 
     def __init__(self, cursor: Any):
         self._cursor = cursor
-        self._rows: list[tuple] | None = None
-        self._at = 0
+        self._table: pa.Table | None = None
+        self._done = False
+        self._at = 0  # next row of the table not yet in the buffer
+        self._buffer: list[tuple] = []
+        self._taken = 0  # rows of the buffer handed out
 
     def execute(self, operation: str, parameters: Any = None) -> None:
-        self._rows = None
+        self._table, self._done, self._at, self._buffer, self._taken = None, False, 0, [], 0
         self._cursor.execute(operation, parameters if parameters else None)
 
-    def _result(self) -> list[tuple]:
-        if self._rows is None:
-            self._at = 0
-            if self._cursor.description is None:
-                self._rows = []
-            else:
-                table = self._cursor.fetch_arrow_table()
-                self._rows = list(zip(*(column.to_pylist() for column in table.columns)))
-        return self._rows
+    def _result(self) -> pa.Table | None:
+        if self._table is None and not self._done:
+            self._done = True
+            if self._cursor.description is not None:
+                self._table = self._cursor.fetch_arrow_table()
+        return self._table
+
+    @staticmethod
+    def _rows(table: pa.Table) -> list[tuple]:
+        return list(zip(*(column.to_pylist() for column in table.columns)))
+
+    def _fill(self) -> bool:
+        """Rows waiting in the buffer, converting the next slice if needed; ``False`` at the end."""
+        if self._taken < len(self._buffer):
+            return True
+        table = self._result()
+        if table is None or self._at >= table.num_rows:
+            return False
+        piece = table.slice(self._at, self._SLICE)
+        self._at += piece.num_rows
+        self._buffer, self._taken = self._rows(piece), 0
+        return True
 
     def fetchone(self) -> tuple | None:
-        rows = self._result()
-        if self._at >= len(rows):
+        if not self._fill():
             return None
-        self._at += 1
-        return rows[self._at - 1]
+        self._taken += 1
+        return self._buffer[self._taken - 1]
 
     def fetchmany(self, size: int | None = None) -> list[tuple]:
-        rows = self._result()
         size = self._cursor.arraysize if size is None else size
-        out = rows[self._at : self._at + size]
-        self._at += len(out)
+        out: list[tuple] = []
+        while len(out) < size and self._fill():
+            part = self._buffer[self._taken : self._taken + size - len(out)]
+            self._taken += len(part)
+            out += part
         return out
 
     def fetchall(self) -> list[tuple]:
-        rows = self._result()
-        out = rows[self._at :]
-        self._at = len(rows)
+        out = self._buffer[self._taken :]
+        self._taken = len(self._buffer)
+        table = self._result()
+        if table is not None and self._at < table.num_rows:
+            out += self._rows(table.slice(self._at))
+            self._at = table.num_rows
         return out
 
     def __getattr__(self, name: str) -> Any:
