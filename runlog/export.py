@@ -103,9 +103,9 @@ class ExportResult:
 # --- tables ----------------------------------------------------------------------------
 
 
-def _runs_table(connection, run_ids: np.ndarray, per_run_shots: dict[int, int], zone: ZoneInfo) -> tuple[pa.Table, list[int]]:
+def _runs_table(connection, per_run_shots: dict[int, int], zone: ZoneInfo) -> tuple[pa.Table, list[int]]:
     runs, apparatus, tags = s.Run.__table__, s.Apparatus.__table__, s.RunTag.__table__
-    wanted = [int(r) for r in np.unique(run_ids)]
+    wanted = sorted(per_run_shots)
     rows = []
     for chunk in _chunks(wanted):
         rows += connection.execute(
@@ -537,7 +537,7 @@ def _read(connection, where: str, with_occupancy: bool, selected: Callable[[pa.T
         selected(selection.table)
     zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
     unique, counts = np.unique(selection.run_ids, return_counts=True)
-    runs_table, run_order = _runs_table(connection, selection.run_ids, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
+    runs_table, run_order = _runs_table(connection, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
     figures_table = _figures_table(connection, run_order, runs_table)
     shots_table = selection.table
     images_table = None

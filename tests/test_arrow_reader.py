@@ -179,19 +179,6 @@ def test_parallel_readers_share_one_snapshot(tmp_path):
             assert [t.column(0)[0].as_py() for t in fetch_arrow_parallel(fast, [count, count])] == [50, 50]
 
 
-def test_a_split_read_gives_the_same_rows_as_one_read(tmp_path, monkeypatch):
-    url = f"sqlite:///{tmp_path / 'c.sqlite'}"
-    with runlog.open(url) as catalogue:
-        catalogue.ingest([write_table(tmp_path / "a.parquet", shot_table({f"r{i}": 40 + i for i in range(12)}, seed=9))])
-        whole = select_table(catalogue, "shot >= 3", shot_ids=True)
-        monkeypatch.setattr(selection_module, "_SPLIT_SHOTS", 1)
-        with arrow_read(catalogue.engine, parallel=3) as fast:
-            assert parallel_readers(fast) == 3
-            split = select_on(fast, "shot >= 3", shot_ids=True)
-        assert split.table.equals(whole.table, check_metadata=True)
-        assert (split.shot_ids == whole.shot_ids).all()
-
-
 def test_a_busy_writer_means_one_reader_not_a_wait(tmp_path):
     url = f"sqlite:///{tmp_path / 'c.sqlite'}"
     with runlog.open(url) as catalogue:
@@ -252,18 +239,23 @@ def test_the_shortcut_is_taken_when_no_candidate_run_scans_the_parameter(lab, mo
     assert taken == [True, False]
 
 
-def test_a_split_read_where_one_piece_finds_nothing(tmp_path, monkeypatch):
-    # The first run-id range holds only runs with fewer than 46 shots: its piece is empty,
-    # and an empty result carries no column types of its own.
+@pytest.mark.parametrize("where", ["shot >= 3", "shot >= 45"])
+def test_a_split_read_gives_the_same_rows_as_one_read(tmp_path, monkeypatch, where):
+    # With "shot >= 45" the first run-id range holds only runs with fewer than 46 shots:
+    # its piece is empty, and an empty result carries no column types of its own.
     url = f"sqlite:///{tmp_path / 'c.sqlite'}"
+    sizes = {f"r{i:02d}": 40 + i for i in range(12)}
     with runlog.open(url) as catalogue:
-        catalogue.ingest([write_table(tmp_path / "a.parquet", shot_table({f"r{i:02d}": 40 + i for i in range(12)}, seed=11))])
-        whole = select_table(catalogue, "shot >= 45", shot_ids=True)
+        catalogue.ingest([write_table(tmp_path / "a.parquet", shot_table(sizes, seed=9))])
+        whole = select_table(catalogue, where, shot_ids=True)
         monkeypatch.setattr(selection_module, "_SPLIT_SHOTS", 1)
         with arrow_read(catalogue.engine, parallel=3) as fast:
-            split = select_on(fast, "shot >= 45", shot_ids=True)
+            assert parallel_readers(fast) == 3
+            split = select_on(fast, where, shot_ids=True)
         assert split.table.equals(whole.table, check_metadata=True)
-        assert split.table.num_rows == sum(max(0, 40 + i - 45) for i in range(12))
+        assert (split.shot_ids == whole.shot_ids).all()
+        lowest = int(where.split(">=")[1])
+        assert split.table.num_rows == sum(max(0, size - lowest) for size in sizes.values())
 
 
 def test_rows_come_out_slice_by_slice_in_order(monkeypatch):
