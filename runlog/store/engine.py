@@ -28,7 +28,6 @@ __all__ = [
     "make_engine",
     "sqlite_path",
     "current_revision",
-    "sqlite_files_in_use",
     "exclusive_bulk_writer",
     "hold_for_adbc",
     "release_from_adbc",
@@ -78,12 +77,6 @@ def sqlite_path(url: str | URL) -> Path | None:
 _guard = threading.Condition()
 _python_sqlite_open: dict[str, int] = {}
 _adbc_holder: dict[str, int] = {}  # file -> thread id of its ADBC user
-
-
-def sqlite_files_in_use() -> dict[str, int]:
-    """Open Python-SQLite connections per database file (for the bulk writer's check)."""
-    with _guard:
-        return {path: count for path, count in _python_sqlite_open.items() if count}
 
 
 def exclusive_bulk_writer(path: str, opening: bool) -> None:
