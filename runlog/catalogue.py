@@ -143,7 +143,7 @@ class Catalogue:
         if not mapping.rules:
             return results
         # The configuration's rules give the newly ingested runs their fitted figures.
-        return [replace(r, derived=tuple(self.apply_rules(mapping.rules, runs=r.runs))) if r.status == "ingested" else r for r in results]
+        return [replace(r, derived=tuple(self.apply_rules(mapping, runs=r.runs))) if r.status == "ingested" else r for r in results]
 
     def annotate(self, text: str, *, run: str | None = None, apparatus: str | None = None, at: dt.datetime | str | None = None, author: str | None = None) -> int:
         """Add a note tied to a run, or to an apparatus at a time; returns its id."""
@@ -474,11 +474,12 @@ class Catalogue:
         from runlog.config import Mapping, load_config
         from runlog.derive import apply_rules
 
+        settings = None
         if isinstance(rules, (str, Path)):
-            rules = load_config(rules).rules
-        elif isinstance(rules, Mapping):
-            rules = rules.rules
-        return apply_rules(self, rules, runs)
+            rules = load_config(rules)
+        if isinstance(rules, Mapping):
+            rules, settings = rules.rules, rules.apparatus_settings
+        return apply_rules(self, rules, runs, apparatus_settings=settings)
 
     # --- selections and exports ---------------------------------------------------
 

@@ -369,28 +369,30 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
 
 @cli.command()
 @click.argument("run", required=False)
-@click.option("--kind", default=None, metavar="KIND", help="counting, fringe, coherence, spreading, sorting or correlator.")
+@click.option("--kind", default=None, metavar="KIND", help="counting, fringe, coherence, spreading, sorting, correlator, rabi, spectroscopy, echo, t1 or lifetime.")
 @click.option("--x", "x", default=None, metavar="PARAMETER", help="The scanned parameter (default: the only suitable one).")
 @click.option("--y", "y", default=None, metavar="MEASUREMENT", help="The measurement; correlator: q1,q2,q3 or a,b (default: the only one).")
 @click.option("--envelope", type=click.Choice(["gaussian", "exponential"]), default="gaussian", show_default=True, help="Coherence decay shape.")
 @click.option("--target", default=None, metavar="SITES", help="Sorting target: site indices like 0,1,2,5, or a parameter holding them.")
 @click.option("--image", default=None, help="Occupancy image for spreading and sorting (default: the last).")
+@click.option("--model", default=None, help="The model of a kind that has several: spectroscopy lorentzian|rabi, rabi oscillation|lineshape, lifetime single|two-body.")
+@click.option("--set", "settings", multiple=True, metavar="NAME=VALUE", help="A kind's setting, e.g. pulse=20us, stretch=2, reference=no_pushout; repeatable.")
 @click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
 @click.option("--all", "everything", is_flag=True, help="Recompute counting figures of every run and apply every rule.")
-@click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml whose [[rules]] --all applies.")
+@click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml: the [[rules]] --all applies, and the [apparatus] constants (field_sensitivity).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, apparatus: str | None, everything: bool, config: Path | None, as_json: bool) -> None:
+def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, as_json: bool) -> None:
     """Compute and store the figures of one KIND for RUN, or recompute all (--all)."""
     from runlog.config import load_config
     from runlog.derive import derive_all
 
     if everything:
-        if run is not None or kind is not None or any(v is not None for v in (x, y, target, image, apparatus)):
+        if run is not None or kind is not None or settings or model is not None or any(v is not None for v in (x, y, target, image, apparatus)):
             raise click.UsageError("--all recomputes every run as the rules say: give no RUN, --kind or other choices")
         mapping = load_config(config)
         with _open(state) as catalogue:
-            summary = derive_all(catalogue, mapping.rules, interval=mapping.interval if config else None)
+            summary = derive_all(catalogue, mapping.rules, interval=mapping.interval if config else None, apparatus_settings=mapping.apparatus_settings)
         if as_json:
             _json(summary.as_dict())
             return
@@ -400,10 +402,16 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
         return
     if run is None or kind is None:
         raise click.UsageError("give RUN and --kind KIND, or --all")
-    if config is not None:
-        raise click.UsageError("--config goes with --all")
+    chosen: dict[str, str] = {}
+    for text in settings:
+        name, sep, value = text.partition("=")
+        if not sep or not name.strip() or not value.strip():
+            raise click.UsageError(f"--set {text!r}: give NAME=VALUE")
+        chosen[name.strip()] = value.strip()
+    mapping = load_config(config)
     with _open(state) as catalogue:
-        result = catalogue.derive(run, kind, x=x, y=y, envelope=envelope, target=target, image=image, apparatus=apparatus)
+        info = catalogue.run(run, apparatus=apparatus)
+        result = catalogue.derive(run, kind, x=x, y=y, envelope=envelope, target=target, image=image, apparatus=info.apparatus, model=model, settings=chosen or None, constants=mapping.apparatus_settings.get(info.apparatus))
     if as_json:
         _json(result.as_dict())
         return

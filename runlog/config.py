@@ -25,6 +25,10 @@ Example::
     kind = "coherence"
     x = "wait"
     y = "bright_fraction"
+
+    [apparatus."lattice-east"]  # constants of one apparatus the figures need
+    field_sensitivity = "2.0 kHz/mG"          # transition frequency per magnetic field
+    zero_field_frequency = "6834.682611 MHz"  # optional: the transition at zero field
 """
 
 from __future__ import annotations
@@ -35,7 +39,7 @@ from pathlib import Path
 
 from runlog.errors import ConfigError
 
-__all__ = ["Mapping", "check_rules", "load_config"]
+__all__ = ["APPARATUS_KEYS", "Mapping", "check_apparatus_settings", "check_rules", "load_config"]
 
 
 @dataclass(frozen=True)
@@ -51,6 +55,8 @@ class Mapping:
     interval: str = "wilson"
     rules: tuple[dict, ...] = ()
     source: str = "<defaults>"
+    #: ``[apparatus."NAME"]`` tables: per apparatus, its constants as quantity texts.
+    apparatus_settings: dict[str, dict[str, str]] = field(default_factory=dict)
 
 
 def load_config(path: str | Path | None) -> Mapping:
@@ -64,7 +70,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -87,6 +93,7 @@ def load_config(path: str | Path | None) -> Mapping:
     if interval not in ("wilson", "clopper-pearson"):
         raise ConfigError(str(path), f"[figures] interval must be 'wilson' or 'clopper-pearson', not {interval!r}")
     rules = check_rules(data.get("rules", []), str(path))
+    settings = check_apparatus_settings(data.get("apparatus", {}), str(path))
     return Mapping(
         rename=columns,
         ignore=frozenset(ignore),
@@ -97,15 +104,44 @@ def load_config(path: str | Path | None) -> Mapping:
         interval=interval,
         rules=rules,
         source=str(path),
+        apparatus_settings=settings,
     )
+
+
+#: The keys of an ``[apparatus."NAME"]`` table, each a quantity text.
+APPARATUS_KEYS = ("field_sensitivity", "zero_field_frequency")
+
+
+def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dict[str, dict[str, str]]:
+    """``[apparatus."NAME"]`` tables checked: known keys, texts that pint reads as quantities."""
+    from runlog.units import registry
+
+    if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
+        raise ConfigError(source, '[apparatus."NAME"] must be tables, one per apparatus')
+    checked: dict[str, dict[str, str]] = {}
+    for name, table in tables.items():
+        unknown = sorted(set(table) - set(APPARATUS_KEYS))
+        if unknown:
+            raise ConfigError(source, f"[apparatus.\"{name}\"]: unknown key '{unknown[0]}' (known: {', '.join(APPARATUS_KEYS)})")
+        for key, text in table.items():
+            try:
+                if not isinstance(text, str):
+                    raise TypeError
+                registry().Quantity(text)
+            except Exception:
+                raise ConfigError(source, f"[apparatus.\"{name}\"] {key} = {text!r} is not a quantity with a unit such as '2.0 kHz/mG'") from None
+        checked[name] = dict(table)
+    return checked
 
 
 # The figure kinds a rule may name: those of runlog.derive.KINDS, which sits above this
 # module and so cannot be imported here; tests/test_derive.py keeps the two equal.
-_RULE_KINDS = ("coherence", "correlator", "counting", "fringe", "sorting", "spreading")
+_RULE_KINDS = ("coherence", "correlator", "counting", "echo", "fringe", "lifetime", "rabi", "sorting", "spectroscopy", "spreading", "t1")
 _RULE_ENVELOPES = ("gaussian", "exponential")
-_RULE_TEXT_KEYS = ("sequence", "kind", "x", "y", "envelope", "apparatus", "image")
-_RULE_KEYS = (*_RULE_TEXT_KEYS, "target")
+_RULE_TEXT_KEYS = ("sequence", "kind", "x", "y", "envelope", "apparatus", "image", "model", "pulse", "reference")
+# Kind-specific settings (docs/figures.md): numbers, or texts naming a parameter or a quantity.
+_RULE_SETTING_KEYS = ("stretch",)
+_RULE_KEYS = (*_RULE_TEXT_KEYS, *_RULE_SETTING_KEYS, "target")
 
 
 def check_rules(rules: object, source: str = "<rules>") -> tuple[dict, ...]:
@@ -132,6 +168,9 @@ def check_rules(rules: object, source: str = "<rules>") -> tuple[dict, ...]:
             raise ConfigError(source, f"rule {number}: unknown kind '{rule['kind']}' (known: {', '.join(_RULE_KINDS)})")
         if rule.get("envelope", "gaussian") not in _RULE_ENVELOPES:
             raise ConfigError(source, f"rule {number}: envelope must be 'gaussian' or 'exponential', not {rule['envelope']!r}")
+        for key in _RULE_SETTING_KEYS:
+            if key in rule and (isinstance(rule[key], bool) or not isinstance(rule[key], (int, float, str))):
+                raise ConfigError(source, f"rule {number}: '{key}' must be a number or text")
         target = rule.get("target")
         if target is not None and not (
             (isinstance(target, str) and target.strip())

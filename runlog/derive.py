@@ -22,7 +22,19 @@ What each kind reads (``docs/figures.md`` has the definitions):
 * ``sorting``: the target sites (a text parameter such as ``"0,1,2,5"``, or ``target``),
   the occupancy of the last image;
 * ``correlator``: ``y`` three ±1 outcomes ``"q1,q2,q3"`` measured in the same shots, or two
-  outcomes ``"a,b"`` and a pair-selector parameter ``x`` holding ``12``, ``23`` or ``13``.
+  outcomes ``"a,b"`` and a pair-selector parameter ``x`` holding ``12``, ``23`` or ``13``;
+* ``rabi``: ``x`` the scanned pulse duration (a time), or a scanned frequency for the Rabi
+  lineshape (with the pulse duration ``pulse``), and the signal per shot;
+* ``spectroscopy``: ``x`` the scanned frequency, the signal per shot; ``model`` the
+  lineshape; the apparatus' ``field_sensitivity`` adds the ``field``;
+* ``echo``, ``t1``, ``lifetime``: ``x`` the scanned wait or hold time and the signal per
+  shot (``echo`` also a contrast per wait; ``t1`` a ``reference`` parameter marking shots
+  without state selection).
+
+The signal per shot of the last four kinds is ``y`` when given (or the run's only
+measurement); a run without measurements gives each shot's surviving fraction (sites
+occupied in both images / sites occupied in the loading image), or the occupied fraction
+of its only image.
 
 Every shot of the run counts; a shot lacking ``x`` or ``y`` (NaN) is left out of a fit.
 """
@@ -47,6 +59,10 @@ from runlog.figures.correlator import PAIR_LABELS, correlators, correlators_from
 from runlog.figures.counting import counts_fill, counts_survival, proportion_figure
 from runlog.figures.fringe import fit_fringe
 from runlog.figures.intervals import INTERVAL_METHODS
+from runlog.figures.lifetime import fit_lifetime, lifetime_model
+from runlog.figures.rabi import fit_rabi, rabi_model
+from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_model
+from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
 from runlog.figures.spreading import fit_spreading, position_spread
 from runlog.units import conversion, convert, registry
@@ -57,10 +73,24 @@ if TYPE_CHECKING:
 __all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve"]
 
 #: The figure kinds :func:`derive` can apply to a run.
-KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator"})
+KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime"})
 
 _SAME_CORRELATOR_OUTCOMES = ("q1", "q2", "q3")
-_RULE_OPTIONS = ("x", "y", "envelope", "target", "image")
+_RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
+#: Kind-specific settings a rule or ``derive(settings=...)`` may give, by kind.
+SETTINGS = {
+    "rabi": ("pulse",),
+    "spectroscopy": ("pulse",),
+    "echo": ("stretch",),
+    "t1": ("reference",),
+}
+#: The models a kind offers (``model=``); the first is the default.
+MODELS = {
+    "spectroscopy": LINESHAPES,
+    "rabi": ("oscillation", "lineshape"),
+    "lifetime": ("single", "two-body"),
+    "echo": ("stretched",),
+}
 
 
 @dataclass(frozen=True)
@@ -125,6 +155,10 @@ class _Options:
     target: str | Sequence[int] | None
     image: str | None
     interval: str | None
+    model: str | None = None
+    settings: dict = dataclasses.field(default_factory=dict)
+    #: The apparatus' constants from runlog.toml (``field_sensitivity`` ...).
+    constants: dict = dataclasses.field(default_factory=dict)
 
 
 class _Source:
@@ -178,6 +212,9 @@ def derive(
     target: str | Sequence[int] | None = None,
     image: str | None = None,
     interval: str | None = None,
+    model: str | None = None,
+    settings: dict | None = None,
+    constants: dict | None = None,
     store: bool = True,
 ) -> DeriveResult:
     """Compute the figures of ``kind`` for ``run`` and (``store=True``) store them.
@@ -191,6 +228,15 @@ def derive(
     * ``image``: the occupancy image of spreading and sorting. Default: the run's last image.
     * ``interval``: ``wilson``, ``clopper-pearson`` or ``wilson-cc`` for counted figures.
       Default: counting keeps the method of the stored fill fraction; sorting uses Wilson.
+    * ``model``: the model of kinds that offer several (:data:`MODELS`): spectroscopy
+      ``lorentzian`` or ``rabi``; rabi ``oscillation`` (a duration scan) or ``lineshape``
+      (a frequency scan; default from ``x``'s unit); lifetime ``single`` or ``two-body``.
+    * ``settings``: kind-specific settings (:data:`SETTINGS`): ``pulse`` (the pulse
+      duration of a Rabi lineshape: a parameter name or a quantity such as ``"20 us"``),
+      ``stretch`` (a fixed echo exponent), ``reference`` (t1: the parameter that is true on
+      shots imaged without state selection).
+    * ``constants``: the apparatus' ``[apparatus."NAME"]`` table of runlog.toml
+      (``field_sensitivity``, ``zero_field_frequency``).
 
     Raises :class:`FitError` (with the run named) when the figures cannot be computed, and
     :class:`NotFoundError` for an unknown run, kind, parameter, measurement or image, or when
@@ -201,9 +247,16 @@ def derive(
         raise NotFoundError("figure kind", kind, "known: " + ", ".join(sorted(KINDS)))
     if envelope not in ENVELOPES:
         raise NotFoundError("envelope", envelope, "known: " + ", ".join(ENVELOPES))
+    allowed = MODELS.get(kind, ())
+    if model is not None and model not in allowed:
+        raise NotFoundError(f"model of kind {kind}", model, "known: " + (", ".join(allowed) or "none (the kind has one model)"))
+    settings = dict(settings or {})
+    unknown = sorted(set(settings) - set(SETTINGS.get(kind, ())))
+    if unknown:
+        raise NotFoundError(f"setting of kind {kind}", unknown[0], "known: " + (", ".join(SETTINGS.get(kind, ())) or "none"))
     info = catalogue.run(run, apparatus=apparatus)
     source = _Source(catalogue, info, kind)
-    options = _Options(x, y, envelope, target, image, interval)
+    options = _Options(x, y, envelope, target, image, interval, model, settings, dict(constants or {}))
     try:
         figures = list(deriver(source, options))
     except FitError as error:
@@ -227,6 +280,8 @@ def apply_rules(
     catalogue: Catalogue,
     rules: Iterable[dict],
     runs: Iterable[str] | None = None,
+    *,
+    apparatus_settings: dict[str, dict] | None = None,
 ) -> list[DeriveResult | FitError]:
     """Apply every rule to the runs it matches; one outcome per (run, rule), oldest run first.
 
@@ -234,8 +289,10 @@ def apply_rules(
     its ``sequence`` glob and, when given, whose apparatus matches its ``apparatus`` glob
     (``fnmatch`` patterns, case-sensitive). ``runs`` limits the runs to those keys. A run the
     rule cannot be applied to gives a :class:`FitError` in the list and stores nothing.
+    ``apparatus_settings`` are the ``[apparatus."NAME"]`` tables of runlog.toml.
     """
     checked = check_rules(list(rules))
+    apparatus_settings = apparatus_settings or {}
     if not checked:
         return []
     wanted = None if runs is None else set(runs)
@@ -249,12 +306,17 @@ def apply_rules(
                 continue
             if "apparatus" in rule and not fnmatchcase(row.apparatus, rule["apparatus"]):
                 continue
-            options = {key: rule[key] for key in _RULE_OPTIONS if key in rule}
+            options: dict[str, object] = {key: rule[key] for key in _RULE_OPTIONS if key in rule}
+            settings = {key: rule[key] for key in SETTINGS.get(rule["kind"], ()) if key in rule}
+            if settings:
+                options["settings"] = settings
+            if row.apparatus in apparatus_settings:
+                options["constants"] = apparatus_settings[row.apparatus]
             outcomes.append(_attempt(catalogue, row.run, rule["kind"], row.apparatus, options))
     return outcomes
 
 
-def derive_all(catalogue: Catalogue, rules: Iterable[dict] = (), *, interval: str | None = None) -> DeriveSummary:
+def derive_all(catalogue: Catalogue, rules: Iterable[dict] = (), *, interval: str | None = None, apparatus_settings: dict[str, dict] | None = None) -> DeriveSummary:
     """Recompute the counting figures of every run with images, then apply every rule.
 
     ``interval`` overrides the interval method of counted figures; by default each run keeps
@@ -267,7 +329,7 @@ def derive_all(catalogue: Catalogue, rules: Iterable[dict] = (), *, interval: st
         info = catalogue.run(row.run, apparatus=row.apparatus)
         if any(image["role"] == "loading" for image in info.images.values()):
             outcomes.append(_attempt(catalogue, row.run, "counting", row.apparatus, {"interval": interval}))
-    outcomes.extend(apply_rules(catalogue, rules))
+    outcomes.extend(apply_rules(catalogue, rules, apparatus_settings=apparatus_settings))
     return DeriveSummary(tuple(outcomes))
 
 
@@ -541,6 +603,139 @@ def _pair_label(value: object) -> str | None:
     return str(value)
 
 
+# --- the health-figure kinds: a signal per shot against a scanned time or frequency -----
+
+
+def _is_frequency(unit: str) -> bool:
+    root = _root(unit)
+    return bool(unit) and root is not None and str(root[1]) == "1 / second"
+
+
+def _signal(source: _Source, options: _Options) -> tuple[np.ndarray, np.ndarray, str, str]:
+    """``(keep, y, name, unit)``: the signal of the shots that have one, by the rule of the module docstring."""
+    known = source.info.measurements
+    if options.y is not None or known:
+        name = _measurement(source, options.y)
+        values = source.numbers(f"m.{name}")
+        return np.isfinite(values), values, name, source.unit(f"m.{name}")
+    images = source.info.images
+    if not images:
+        raise FitError(source.kind, "the run has neither a measurement nor an occupancy image to give a signal per shot")
+    loading = next((n for n, e in images.items() if e["role"] == "loading"), None)
+    survival = next((n for n, e in images.items() if e["role"] == "survival"), None)
+    if loading is not None and survival is not None and images[loading]["sites"] == images[survival]["sites"]:
+        loaded = source.occupancy(loading)
+        kept = np.count_nonzero(loaded & source.occupancy(survival), axis=1)
+        tries = np.count_nonzero(loaded, axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            values = kept / tries
+        return tries > 0, values, "surviving fraction", ""
+    image = _image(source, options.image)
+    occupancy = source.occupancy(image)
+    return np.ones(occupancy.shape[0], dtype=bool), occupancy.mean(axis=1), f"occupied fraction of {image}", ""
+
+
+def _scan(source: _Source, options: _Options, suits: Callable[[str], bool], what: str) -> tuple[str, str, np.ndarray, np.ndarray, np.ndarray]:
+    """``(x name, x unit, x, y, keep)`` of the shots with both a scanned value and a signal."""
+    x = _scanned(source, options.x, suits, what)
+    unit = source.unit(f"p.{x}")
+    if not suits(unit):
+        raise FitError(source.kind, f"parameter '{x}' has unit '{unit or 'none'}', not a {what.replace(' parameter', '')}")
+    keep, values, _, _ = _signal(source, options)
+    scanned = source.numbers(f"p.{x}")
+    keep = keep & np.isfinite(scanned) & np.isfinite(values)
+    return x, unit, scanned[keep], values[keep], keep
+
+
+def _quantity_setting(source: _Source, value: object, unit: str, what: str) -> float:
+    """A setting that is a parameter name (its run value) or a quantity text, in ``unit``."""
+    from runlog.units import registry
+
+    parameters = source.info.parameters
+    if isinstance(value, str) and value in parameters:
+        entry = parameters[value]
+        if entry["scanned"] or not isinstance(entry.get("value"), (int, float)):
+            raise FitError(source.kind, f"{what} parameter '{value}' must hold one number for the whole run")
+        text_unit = str(entry["unit"] or "")
+        factors = conversion(text_unit, unit)
+        if factors is None:
+            raise FitError(source.kind, f"{what} parameter '{value}' is in '{text_unit or 'no unit'}', not convertible to '{unit}'")
+        return float(entry["value"]) * factors[0] + factors[1]
+    try:
+        return float(registry().Quantity(str(value)).to(unit).magnitude)
+    except Exception:
+        raise FitError(source.kind, f"{what} {value!r} is neither a parameter of the run nor a quantity in a unit convertible to '{unit}'") from None
+
+
+def _pulse(source: _Source, options: _Options, frequency_unit: str) -> float:
+    """The pulse duration of a Rabi lineshape in 1/``frequency_unit``."""
+    reciprocal = f"1/({frequency_unit})"
+    given = options.settings.get("pulse")
+    if given is None:
+        found = [n for n, e in source.info.parameters.items() if not e["scanned"] and isinstance(e.get("value"), (int, float)) and not isinstance(e.get("value"), bool) and _is_time(str(e["unit"] or ""))]
+        if len(found) != 1:
+            raise NotFoundError("single pulse-duration parameter in run", source.info.run, f"fixed time parameters: {_listed(found)}; give pulse=")
+        given = found[0]
+    return _quantity_setting(source, given, reciprocal, "pulse")
+
+
+def _rabi(source: _Source, options: _Options) -> list[Figure]:
+    mode = options.model
+    if mode is None:
+        scanned = [e for n, e in source.info.parameters.items() if e["scanned"] and "min" in e and (options.x is None or n == options.x)]
+        times = [e for e in scanned if _is_time(str(e["unit"] or ""))]
+        mode = "oscillation" if times or not any(_is_frequency(str(e["unit"] or "")) for e in scanned) else "lineshape"
+    if mode == "lineshape":
+        figures = _lineshape(source, options, "rabi")
+        return [f for f in figures if f.name in ("resonance", "rabi_frequency")]
+    _, unit, duration, signal, _ = _scan(source, options, _is_time, "time parameter")
+    return fit_rabi(duration, signal, duration_unit=unit)
+
+
+def _lineshape(source: _Source, options: _Options, lineshape: str) -> list[Figure]:
+    _, unit, frequency, signal, _ = _scan(source, options, _is_frequency, "frequency parameter")
+    pulse = _pulse(source, options, unit) if lineshape == "rabi" else None
+    return fit_lineshape(frequency, signal, lineshape=lineshape, pulse=pulse, frequency_unit=unit)
+
+
+def _spectroscopy(source: _Source, options: _Options) -> list[Figure]:
+    figures = _lineshape(source, options, options.model or LINESHAPES[0])
+    sensitivity = options.constants.get("field_sensitivity")
+    if sensitivity is not None:
+        resonance = next(f for f in figures if f.name == "resonance")
+        figures.append(field_from_resonance(resonance, sensitivity, options.constants.get("zero_field_frequency")))
+    return figures
+
+
+def _echo(source: _Source, options: _Options) -> list[Figure]:
+    _, unit, wait, signal, _ = _scan(source, options, _is_time, "time parameter")
+    named = options.y if options.y is not None else (source.info.measurements[0] if len(source.info.measurements) == 1 else "")
+    stretch = options.settings.get("stretch")
+    try:
+        stretch = None if stretch is None else float(stretch)
+    except (TypeError, ValueError):
+        raise FitError("echo", f"stretch {stretch!r} is not a number") from None
+    return fit_echo(wait, signal, wait_unit=unit, contrast_series="contrast" in named.lower(), stretch=stretch)
+
+
+def _t1(source: _Source, options: _Options) -> list[Figure]:
+    _, unit, wait, signal, keep = _scan(source, options, _is_time, "time parameter")
+    name = options.settings.get("reference")
+    if name is None:
+        return fit_t1(wait, signal, wait_unit=unit)
+    if name not in source.info.parameters:
+        raise NotFoundError("parameter", str(name), f"run '{source.info.run}' has {_listed(list(source.info.parameters))}")
+    flags = source.numbers(f"p.{name}")[keep]
+    if not np.all(np.isfinite(flags)):
+        raise FitError("t1", f"reference parameter '{name}' is missing on some shots")
+    return fit_t1(wait, signal, reference=flags != 0, wait_unit=unit)
+
+
+def _lifetime(source: _Source, options: _Options) -> list[Figure]:
+    _, unit, hold, signal, _ = _scan(source, options, _is_time, "time parameter")
+    return fit_lifetime(hold, signal, hold_unit=unit, two_body=options.model == "two-body")
+
+
 _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "counting": _counting,
     "fringe": _fringe,
@@ -548,6 +743,11 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "spreading": _spreading,
     "sorting": _sorting,
     "correlator": _correlator,
+    "rabi": _rabi,
+    "spectroscopy": _spectroscopy,
+    "echo": _echo,
+    "t1": _t1,
+    "lifetime": _lifetime,
 }
 
 
@@ -616,7 +816,11 @@ def fit_curve(
     figures = info.figures
     kind = next((k for k, names in _CURVE_FIGURES.items() if all(n in figures for n in names)), None)
     if kind is None:
-        raise FitError("curve", "the run has no stored fringe or Ramsey fit (derive --kind fringe or coherence first)", info.run)
+        health = next((k for k, marker in _HEALTH_CURVES.items() if marker in figures), None)
+        if health is not None:
+            return _health_curve(catalogue, info, health, x, y, points)
+    if kind is None:
+        raise FitError("curve", "the run has no stored fit to draw (derive --kind fringe, coherence, rabi, spectroscopy, echo, t1 or lifetime first)", info.run)
     source = _Source(catalogue, info, kind)
     x_name = _scanned(source, x, _is_angle if kind == "fringe" else _is_time, "angle parameter" if kind == "fringe" else "time parameter")
     y_name = _measurement(source, y)
@@ -658,3 +862,91 @@ def fit_curve(
     decay = "exp(-(t/T)²)" if envelope == "gaussian" else "exp(-t/T)"
     formula = f"y = a (1 + C0 E(t) cos(2π δ t + φ)), E(t) = {decay}"
     return FitCurve(info.run, kind, formula, x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, offset * shape_only(grid), offset, True)
+
+
+#: The figure that marks each health kind's stored fit.
+_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime"}
+
+
+def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None, y: str | None, points: int) -> FitCurve:
+    """The stored fit of a health kind over its shots.
+
+    Every model of these kinds is linear in its level and amplitude once its times, rates
+    and frequencies are fixed; the stored figures fix those, and the linear coefficients are
+    the least-squares values over the shots (``offset_estimated``), as for the Ramsey offset.
+    """
+    figures = info.figures
+    source = _Source(catalogue, info, kind)
+    options = _Options(x, y, "gaussian", None, None, None)
+    suits, what = (_is_frequency, "frequency parameter") if kind == "spectroscopy" else (_is_time, "time parameter")
+    x_name, x_unit, shots_x, shots_y, keep = _scan(source, options, suits, what)
+    if shots_x.size == 0:
+        raise FitError(kind, "no shot has both a scanned value and a signal", info.run)
+    _, _, y_name, y_unit = _signal(source, options)
+
+    def value(name: str) -> float:
+        return float(figures[name]["value"])
+
+    def in_unit(name: str, values: np.ndarray) -> np.ndarray:
+        unit = str(figures[name]["unit"] or x_unit)
+        if conversion(x_unit, unit) is None:
+            raise FitError(kind, f"parameter '{x_name}' is in '{x_unit}', the stored fit in '{unit}'", info.run)
+        return convert(values, x_unit, unit)
+
+    if kind == "rabi":
+        t_of = lambda v: in_unit("pi_time", v)  # noqa: E731
+        rate = 1.0 / value("damping_time") if "damping_time" in figures else 0.0
+        frequency = 0.5 / value("pi_time")
+
+        def basis(v: np.ndarray) -> np.ndarray:
+            t = t_of(v)
+            return np.column_stack([np.ones_like(t), rabi_model(t, 0.0, 2.0, frequency, rate)])
+
+        formula = "y = a + (C/2)(1 − e^(−t/τ) cos(2π f t))"
+    elif kind == "spectroscopy":
+        x0, width = value("resonance"), value("linewidth")
+        f_of = lambda v: in_unit("resonance", v)  # noqa: E731
+        if "rabi_frequency" in figures:
+            pulse = _pulse(source, options, str(figures["resonance"]["unit"] or x_unit))
+
+            def basis(v: np.ndarray) -> np.ndarray:
+                f = f_of(v)
+                return np.column_stack([np.ones_like(f), rabi_lineshape(f, 0.0, 1.0, x0, value("rabi_frequency"), pulse)])
+
+            formula = "y = a + A Ω²/(Ω² + Δ²) sin²(√(Ω² + Δ²) T/2)"
+        else:
+
+            def basis(v: np.ndarray) -> np.ndarray:
+                f = f_of(v)
+                return np.column_stack([np.ones_like(f), lorentzian(f, 0.0, 1.0, x0, width)])
+
+            formula = "y = a + A / (1 + (2 (x − x0)/Γ)²)"
+    elif kind == "echo":
+        stretch = value("stretch") if "stretch" in figures else 1.0
+        series = "contrast" in y_name.lower()
+
+        def basis(v: np.ndarray) -> np.ndarray:
+            decay = echo_model(in_unit("t2", v), 0.0, 1.0, value("t2"), stretch)
+            return decay[:, None] if series else np.column_stack([np.ones_like(decay), decay])
+
+        formula = "C(t) = C0 exp(−(t/T2)ⁿ)" if series else "y = a + C0 exp(−(t/T2)ⁿ)"
+    elif kind == "t1":
+        loss = 1.0 / value("loss_lifetime") if "loss_lifetime" in figures else 0.0
+
+        def basis(v: np.ndarray) -> np.ndarray:
+            t = in_unit("t1", v)
+            kept = np.exp(-loss * t)
+            return np.column_stack([kept * relaxation_model(t, 0.0, 1.0, 1.0 / value("t1")), kept * relaxation_model(t, 1.0, 0.0, 1.0 / value("t1"))])
+
+        formula = "P(t) = P∞ + (P0 − P∞) e^(−t/T1)"
+    else:
+        two_body = value("two_body_fraction") if "two_body_fraction" in figures else 0.0
+
+        def basis(v: np.ndarray) -> np.ndarray:
+            return lifetime_model(in_unit("lifetime", v), 1.0, 1.0 / value("lifetime"), two_body)[:, None]
+
+        formula = "S(t) = S0 e^(−t/τ)" + (" / (1 + b (1 − e^(−t/τ)))" if two_body else "")
+    matrix = basis(shots_x)
+    coefficients, *_ = np.linalg.lstsq(matrix, shots_y, rcond=None)
+    grid = np.linspace(float(shots_x.min()), float(shots_x.max()), points)
+    return FitCurve(info.run, kind, formula, x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, basis(grid) @ coefficients, float(coefficients[0]), True)

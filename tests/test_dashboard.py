@@ -346,7 +346,7 @@ def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
     assert curve.offset == pytest.approx(refit[0], rel=1e-6)
     np.testing.assert_allclose(refit[1:], start_values[1:], rtol=1e-4)
     np.testing.assert_allclose(curve.curve_y, ramsey(curve.curve_x, *refit), rtol=1e-5)
-    with pytest.raises(runlog.FitError, match="no stored fringe or Ramsey fit"):
+    with pytest.raises(runlog.FitError, match="no stored fit to draw"):
         fit_curve(lab, lab.runs(apparatus="lattice-east", sequence="loading").iloc[0]["run"], apparatus="lattice-east")
 
 

@@ -87,7 +87,8 @@ with right:
             figures = figures.drop(columns=["95 % interval"])
         st.dataframe(figures, hide_index=True, key="run-figures")
 
-if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures):
+# A stored fit to draw: fringe, Ramsey, or one of the health kinds (marked by one figure each).
+if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime"}:
     st.markdown("**Fit over the shots**")
     scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
     slots = iter(st.columns(3))
