@@ -553,7 +553,9 @@ class Catalogue:
         with self.engine.connect() as connection:
             result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, since=since, until=until, baseline_days=baseline_days, baseline=baseline, parameters=parameters)
         if record_alarms and result.points and not parameters:
-            with self.engine.begin() as connection:
+            # A writer from the start on SQLite: a deferred transaction that read first
+            # could not become a writer once another process had recorded alarms.
+            with self.engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection, connection.begin():
                 result.alarms = alarm_store.record(connection, result)
         if result.points:
             notes = self.annotations(apparatus=result.apparatus, since=dt.datetime.combine(result.points[0].date, dt.time(), dt.timezone.utc) - dt.timedelta(days=1))
