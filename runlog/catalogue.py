@@ -99,6 +99,10 @@ class Catalogue:
             self.init()
         elif found != s.SCHEMA_REVISION:
             self.engine.dispose()
+            from runlog.store.migrate import UNKNOWN_REVISION, known_revisions
+
+            if found is not None and found not in known_revisions():
+                raise SchemaVersionError(self.url, found, s.SCHEMA_REVISION, UNKNOWN_REVISION)
             raise SchemaVersionError(self.url, found, s.SCHEMA_REVISION)
 
     @property
