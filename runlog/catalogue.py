@@ -35,6 +35,8 @@ if TYPE_CHECKING:
 
 __all__ = ["Catalogue", "RunInfo", "open_catalogue"]
 
+_RUN_COLUMNS = ("run", "apparatus", "sequence", "shots", "started", "finished", "operator")
+
 
 @dataclass(frozen=True)
 class RunInfo:
@@ -172,6 +174,11 @@ class Catalogue:
 
     def runs(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> "pd.DataFrame":
         """Runs, newest first: run, apparatus, sequence, shots, started, finished, operator."""
+        rows = self.run_records(apparatus=apparatus, sequence=sequence, since=since, until=until)
+        return _frame([tuple(r.values()) for r in rows], list(_RUN_COLUMNS))
+
+    def run_records(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> list[dict[str, object]]:
+        """The rows of :meth:`runs` as plain dicts, without pandas (for quick commands)."""
         query = (
             select(
                 s.Run.key.label("run"),
@@ -195,7 +202,7 @@ class Catalogue:
             query = query.where(s.Run.started < _as_utc(until))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
-        return _frame(rows, ["run", "apparatus", "sequence", "shots", "started", "finished", "operator"])
+        return [dict(zip(_RUN_COLUMNS, row)) for row in rows]
 
     # --- what the catalogue holds, for pickers and menus ---------------------------------
     # Each asks the database for distinct values only, never for the rows they come from:
