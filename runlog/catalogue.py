@@ -400,6 +400,23 @@ class Catalogue:
         packed = np.frombuffer(b"".join(bytes(b) for b in blobs), dtype=np.uint8).reshape(len(blobs), -1)
         return np.unpackbits(packed, axis=1, count=sites).astype(bool)
 
+    def photon_counts(self, run: str, image: str | None = None, *, apparatus: str | None = None) -> tuple[np.ndarray, float | None]:
+        """Per-site photon counts of one image of a run as a (shots, sites) float array, by
+        shot index, and the threshold ingest derived the occupancy with (``None``: the file
+        carried the occupancy). ``image`` defaults to the run's loading image.
+        """
+        with self.engine.connect() as connection:
+            found = self._find_run(connection, run, apparatus)
+            query = select(s.Image.id, s.Image.name).where(s.Image.run_id == found.id)
+            query = query.where(s.Image.name == image) if image else query.where(s.Image.role == "loading")
+            picked = connection.execute(query).first()
+            rows = [] if picked is None else connection.execute(select(s.PhotonCounts.shots, s.PhotonCounts.counts, s.PhotonCounts.sites, s.PhotonCounts.threshold).where(s.PhotonCounts.image_id == picked.id).order_by(s.PhotonCounts.id)).all()
+        if not rows:
+            raise NotFoundError("photon counts of image", image or "(loading)", f"run '{run}' has none (the files carried no counts.<image> column)")
+        shots = np.concatenate([np.frombuffer(bytes(r.shots), dtype="<i8") for r in rows])
+        counts = np.concatenate([np.frombuffer(bytes(r.counts), dtype="<f8").reshape(-1, r.sites) for r in rows])
+        return counts[np.argsort(shots, kind="stable")], rows[-1].threshold
+
     def annotations(self, *, apparatus: str | None = None, since: dt.datetime | dt.date | str | None = None) -> "pd.DataFrame":
         """Annotations, oldest first: apparatus, run, at, text, author."""
         query = (

@@ -13,6 +13,8 @@ Example::
     loading = "first"         # image names (after renaming, without 'occ.')
     survival = "second"
     shape = [10, 10]          # lattice shape when the file does not carry one
+    threshold = 12            # optional: occupied when counts.<image> >= 12 (one number, or
+                              # a table per image); default: from the run's count histogram
 
     [defaults]
     apparatus = "lattice-east"  # when the file has no apparatus column
@@ -57,6 +59,8 @@ class Mapping:
     source: str = "<defaults>"
     #: ``[apparatus."NAME"]`` tables: per apparatus, its constants as quantity texts.
     apparatus_settings: dict[str, dict[str, str]] = field(default_factory=dict)
+    #: ``[occupancy] threshold``: per image name, ``"*"`` for every image.
+    thresholds: dict[str, float] = field(default_factory=dict)
 
 
 def load_config(path: str | Path | None) -> Mapping:
@@ -87,6 +91,11 @@ def load_config(path: str | Path | None) -> Mapping:
         if not (isinstance(shape, list) and shape and all(isinstance(n, int) and n > 0 for n in shape)):
             raise ConfigError(str(path), "[occupancy] shape must be a list of positive integers")
         shape = tuple(shape)
+    thresholds = occupancy.get("threshold", {})
+    if isinstance(thresholds, (int, float)) and not isinstance(thresholds, bool):
+        thresholds = {"*": float(thresholds)}
+    if not isinstance(thresholds, dict) or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in thresholds.values()):
+        raise ConfigError(str(path), "[occupancy] threshold must be a number, or a table of numbers per image")
     defaults = data.get("defaults", {})
     figures = data.get("figures", {})
     interval = figures.get("interval", "wilson")
@@ -105,6 +114,7 @@ def load_config(path: str | Path | None) -> Mapping:
         rules=rules,
         source=str(path),
         apparatus_settings=settings,
+        thresholds={str(k): float(v) for k, v in thresholds.items()},
     )
 
 
@@ -136,11 +146,11 @@ def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dic
 
 # The figure kinds a rule may name: those of runlog.derive.KINDS, which sits above this
 # module and so cannot be imported here; tests/test_derive.py keeps the two equal.
-_RULE_KINDS = ("coherence", "correlator", "counting", "echo", "fringe", "lifetime", "rabi", "sorting", "spectroscopy", "spreading", "t1")
+_RULE_KINDS = ("coherence", "correlator", "counting", "detection", "echo", "fringe", "lifetime", "rabi", "sorting", "spectroscopy", "spreading", "t1")
 _RULE_ENVELOPES = ("gaussian", "exponential")
 _RULE_TEXT_KEYS = ("sequence", "kind", "x", "y", "envelope", "apparatus", "image", "model", "pulse", "reference")
 # Kind-specific settings (docs/figures.md): numbers, or texts naming a parameter or a quantity.
-_RULE_SETTING_KEYS = ("stretch",)
+_RULE_SETTING_KEYS = ("stretch", "threshold")
 _RULE_KEYS = (*_RULE_TEXT_KEYS, *_RULE_SETTING_KEYS, "target")
 
 

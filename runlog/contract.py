@@ -1,6 +1,7 @@
 """The shot-table contract, version 1: which columns a file must have and what they mean.
 
-Owns: naming (reserved columns, ``p.<name>[<unit>]``, ``m.<name>[<unit>]``, ``occ.<image>``),
+Owns: naming (reserved columns, ``p.<name>[<unit>]``, ``m.<name>[<unit>]``, ``occ.<image>``,
+``counts.<image>``),
 the mapping of a lab's own column names onto those roles, the checks that can be made
 from the schema alone, and turning one record batch into plain numpy arrays with every
 per-row check done (null keys, negative shots, non-finite numbers, text in numeric
@@ -11,7 +12,7 @@ run) belong to ingest, which sees the whole file. See docs/shot-table.md.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pyarrow as pa
@@ -30,6 +31,8 @@ __all__ = [
     "Batch",
     "read_layout",
     "normalise_batch",
+    "threshold_counts",
+    "FROM_COUNTS",
 ]
 
 CONTRACT_VERSION = 1
@@ -41,16 +44,21 @@ MAX_LENGTH = {"run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "t
 
 _NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
 _IMAGE = re.compile(r"^occ\.(?P<name>[^\[\]]+)$")
+_COUNTS = re.compile(r"^counts\.(?P<name>[^\[\]]+)$")
+#: ``Column.kind`` of an occupancy image the file does not carry, to be derived from its counts.
+FROM_COUNTS = "from-counts"
 
 
 @dataclass(frozen=True)
 class Column:
     """One column of the file in its contract role.
 
-    ``role`` is one of 'reserved', 'optional', 'parameter', 'measurement', 'occupancy';
-    ``source`` is the column's name in the file, ``name`` its name in the catalogue.
-    ``kind`` is 'number', 'boolean' or 'text' for parameters; ``shape`` is the lattice
-    shape of an occupancy image when the file or the mapping gives one.
+    ``role`` is one of 'reserved', 'optional', 'parameter', 'measurement', 'occupancy',
+    'counts'; ``source`` is the column's name in the file, ``name`` its name in the
+    catalogue. ``kind`` is 'number', 'boolean' or 'text' for parameters, and
+    ``FROM_COUNTS`` for an occupancy image the file lacks and ingest derives from the image's
+    ``counts.<image>`` column (its ``source``) with a threshold; ``shape`` is the lattice
+    shape of an image when the file or the mapping gives one.
     """
 
     source: str
@@ -70,6 +78,15 @@ class Layout:
     loading: str | None
     survival: str | None
     default_apparatus: str | None
+    #: Thresholds from runlog.toml, per image name (``"*"``: every image).
+    thresholds: dict[str, float] = field(default_factory=dict)
+
+    def threshold(self, image: str) -> float | None:
+        return self.thresholds.get(image, self.thresholds.get("*"))
+
+    def sources(self) -> list[str]:
+        """The file's columns to read, each once (a counts column also feeds its image)."""
+        return list(dict.fromkeys(column.source for column in self.columns))
 
     def by_role(self, role: str) -> list[Column]:
         return [column for column in self.columns if column.role == role]
@@ -104,11 +121,13 @@ class Batch:
     parameters: dict[str, np.ndarray]
     measurements: dict[str, np.ndarray]
     occupancy: dict[str, pa.ListArray]
+    #: ``counts.<image>`` lists as read (checked: no empty sites, finite numbers).
+    counts: dict[str, pa.ListArray] = field(default_factory=dict)
 
     def nbytes(self) -> int:
         """Memory held by the batch (object arrays counted by their pointers only)."""
         arrays = [self.run, self.apparatus, self.sequence, self.shot, self.time_us, *self.parameters.values(), *self.measurements.values()]
-        return sum(a.nbytes for a in arrays) + sum(a.nbytes for a in self.occupancy.values())
+        return sum(a.nbytes for a in arrays) + sum(a.nbytes for a in self.occupancy.values()) + sum(a.nbytes for a in self.counts.values())
 
 
 def _shape_of(field: pa.Field) -> tuple[int, ...] | None:
@@ -160,10 +179,12 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
                 column = Column(source, "measurement", name, unit)
         elif (match := _IMAGE.match(target)) is not None:
             column = Column(source, "occupancy", match["name"].strip(), shape=_shape_of(field) or mapping.shape)
+        elif (match := _COUNTS.match(target)) is not None:
+            column = Column(source, "counts", match["name"].strip(), shape=_shape_of(field) or mapping.shape)
         else:
             raise ContractError(
                 file,
-                "not a shot-table column: name it p.<name>[unit], m.<name>[unit] or occ.<image>, "
+                "not a shot-table column: name it p.<name>[unit], m.<name>[unit], occ.<image> or counts.<image>, "
                 "or map or ignore it in runlog.toml",
                 column=source,
             )
@@ -202,6 +223,16 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
             if not (pa.types.is_boolean(arrow_type.value_type) or pa.types.is_integer(arrow_type.value_type)):
                 raise ContractError(file, f"occupancy must be a list of booleans, found {arrow_type}", column=column.source, row=0)
 
+        if column.role == "counts":
+            if not (pa.types.is_list(arrow_type) or pa.types.is_large_list(arrow_type) or pa.types.is_fixed_size_list(arrow_type)):
+                raise ContractError(file, f"counts must be a list of numbers, one per site, found {arrow_type}", column=column.source, row=0)
+            if not (pa.types.is_integer(arrow_type.value_type) or pa.types.is_floating(arrow_type.value_type)):
+                raise ContractError(file, f"counts must be a list of numbers, one per site, found {arrow_type}", column=column.source, row=0)
+
+    # An image with counts but no occupancy column gets its occupancy from the counts.
+    carried = {c.name for c in columns if c.role == "occupancy"}
+    for column in [c for c in columns if c.role == "counts" and c.name not in carried]:
+        columns.append(Column(column.source, "occupancy", column.name, kind=FROM_COUNTS, shape=column.shape))
     images = [c.name for c in columns if c.role == "occupancy"]
     loading, survival = mapping.loading, mapping.survival
     for role, name in (("loading", loading), ("survival", survival)):
@@ -211,7 +242,7 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         loading = images[0]
     if survival is None and len(images) == 2:
         survival = images[-1]
-    return Layout(file, tuple(columns), loading, survival, mapping.apparatus)
+    return Layout(file, tuple(columns), loading, survival, mapping.apparatus, dict(mapping.thresholds))
 
 
 def _first(mask: np.ndarray) -> int:
@@ -343,9 +374,27 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
 
     measurements = {column.name: _numbers(file, get(column.source), column.source, first_row) for column in layout.by_role("measurement")}
 
+    counts: dict[str, pa.ListArray] = {}
+    for column in layout.by_role("counts"):
+        array = get(column.source)
+        values = array.flatten()
+        bad = values.is_null().to_numpy(zero_copy_only=False)
+        if pa.types.is_floating(values.type):
+            bad = bad | ~np.isfinite(values.to_numpy(zero_copy_only=False))
+        if bad.any():
+            lengths = pc.fill_null(pc.list_value_length(array), 0).to_numpy(zero_copy_only=False)
+            row = int(np.searchsorted(np.cumsum(lengths), _first(bad), side="right"))
+            raise ContractError(file, "empty or non-finite site in counts list", column=column.source, row=first_row + row)
+        counts[column.name] = array
+
     occupancy: dict[str, pa.ListArray] = {}
     for column in layout.by_role("occupancy"):
         array = get(column.source)
+        if column.kind == FROM_COUNTS:
+            # A placeholder with the counts' shape: ingest sets it from the threshold once
+            # the whole run's counts are known.
+            occupancy[column.name] = _placeholder(counts[column.name])
+            continue
         # A null list means the shot has no such image; ingest checks that a run has
         # the image in all of its shots or in none.
         values = array.flatten()
@@ -377,4 +426,23 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
         parameters=parameters,
         measurements=measurements,
         occupancy=occupancy,
+        counts=counts,
     )
+
+
+def _placeholder(counts: pa.ListArray) -> pa.ListArray:
+    """A list of ``False`` per site, null where ``counts`` is null (the shot lacks the image)."""
+    lengths = pc.fill_null(pc.list_value_length(counts), 0).to_numpy(zero_copy_only=False)
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int32)
+    mask = counts.is_null()
+    return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), pa.array(np.zeros(int(offsets[-1]), dtype=bool)), mask=mask if mask.true_count else None)
+
+
+def threshold_counts(counts: pa.ListArray, thresholds: np.ndarray) -> pa.ListArray:
+    """Occupancy lists from counts: a site is occupied when its counts reach its row's threshold."""
+    lengths = pc.fill_null(pc.list_value_length(counts), 0).to_numpy(zero_copy_only=False)
+    values = counts.flatten().to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+    occupied = values >= np.repeat(np.asarray(thresholds, dtype=np.float64), lengths)
+    offsets = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int32)
+    mask = counts.is_null()
+    return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), pa.array(occupied), mask=mask if mask.true_count else None)

@@ -29,7 +29,9 @@ What each kind reads (``docs/figures.md`` has the definitions):
   lineshape; the apparatus' ``field_sensitivity`` adds the ``field``;
 * ``echo``, ``t1``, ``lifetime``: ``x`` the scanned wait or hold time and the signal per
   shot (``echo`` also a contrast per wait; ``t1`` a ``reference`` parameter marking shots
-  without state selection).
+  without state selection);
+* ``detection``: the stored photon counts of an image (the loading image by default), and
+  of the survival image for the corrected survival.
 
 The signal per shot of the last four kinds is ``y`` when given (or the run's only
 measurement); a run without measurements gives each shot's surviving fraction (sites
@@ -57,6 +59,7 @@ from runlog.figures.base import Figure
 from runlog.figures.coherence import ENVELOPES, fit_envelope, fit_ramsey
 from runlog.figures.correlator import PAIR_LABELS, correlators, correlators_from_pairs
 from runlog.figures.counting import counts_fill, counts_survival, proportion_figure
+from runlog.figures.detection import COUNT_MODELS, corrected_fill, corrected_survival, detection_figures, fit_counts
 from runlog.figures.fringe import fit_fringe
 from runlog.figures.intervals import INTERVAL_METHODS
 from runlog.figures.lifetime import fit_lifetime, lifetime_model
@@ -73,7 +76,7 @@ if TYPE_CHECKING:
 __all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve"]
 
 #: The figure kinds :func:`derive` can apply to a run.
-KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime"})
+KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime", "detection"})
 
 _SAME_CORRELATOR_OUTCOMES = ("q1", "q2", "q3")
 _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
@@ -83,6 +86,7 @@ SETTINGS = {
     "spectroscopy": ("pulse",),
     "echo": ("stretch",),
     "t1": ("reference",),
+    "detection": ("threshold",),
 }
 #: The models a kind offers (``model=``); the first is the default.
 MODELS = {
@@ -90,6 +94,7 @@ MODELS = {
     "rabi": ("oscillation", "lineshape"),
     "lifetime": ("single", "two-body"),
     "echo": ("stretched",),
+    "detection": COUNT_MODELS,
 }
 
 
@@ -736,6 +741,42 @@ def _lifetime(source: _Source, options: _Options) -> list[Figure]:
     return fit_lifetime(hold, signal, hold_unit=unit, two_body=options.model == "two-body")
 
 
+def _detection(source: _Source, options: _Options) -> list[Figure]:
+    images = source.info.images
+    loading = next((n for n, e in images.items() if e["role"] == "loading"), None)
+    survival = next((n for n, e in images.items() if e["role"] == "survival"), None)
+    image = _image(source, options.image) if options.image is not None else (loading or _image(source, None))
+    given = options.settings.get("threshold")
+    try:
+        threshold = None if given is None else float(given)
+    except (TypeError, ValueError):
+        raise FitError("detection", f"threshold {given!r} is not a number") from None
+
+    def counts_of(name: str) -> np.ndarray:
+        counts, _ = source.catalogue.photon_counts(source.info.run, name, apparatus=source.info.apparatus)
+        return counts
+
+    fits = {image: fit_counts(counts_of(image), model=options.model)}
+    if threshold is not None:
+        fits[image] = dataclasses.replace(fits[image], threshold=threshold)
+    figures = detection_figures(fits[image])
+    if image != loading or loading is None:
+        return figures
+    # Fill and survival corrected for the detection errors, from the counts thresholded here.
+    first = counts_of(loading) >= fits[loading].threshold
+    figures.append(corrected_fill(int(first.sum()), int(first.size), fits[loading]))
+    if survival is not None and images[survival]["sites"] == images[loading]["sites"]:
+        try:
+            later = counts_of(survival)
+            fits[survival] = fit_counts(later, model=options.model)
+            second = later >= fits[survival].threshold
+        except NotFoundError:
+            # No counts for the survival image: its stored occupancy, with the loading image's errors.
+            second = source.occupancy(survival)
+        figures.extend(corrected_survival(int(first.sum()), int((first & second).sum()), int(first.size), fits[loading], fits.get(survival)))
+    return figures
+
+
 _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "counting": _counting,
     "fringe": _fringe,
@@ -748,6 +789,7 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "echo": _echo,
     "t1": _t1,
     "lifetime": _lifetime,
+    "detection": _detection,
 }
 
 
@@ -865,7 +907,7 @@ def fit_curve(
 
 
 #: The figure that marks each health kind's stored fit.
-_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime"}
+_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime", "detection": "fidelity"}
 
 
 def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None, y: str | None, points: int) -> FitCurve:
@@ -877,6 +919,8 @@ def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None,
     """
     figures = info.figures
     source = _Source(catalogue, info, kind)
+    if kind == "detection":
+        return _histogram_curve(source)
     options = _Options(x, y, "gaussian", None, None, None)
     suits, what = (_is_frequency, "frequency parameter") if kind == "spectroscopy" else (_is_time, "time parameter")
     x_name, x_unit, shots_x, shots_y, keep = _scan(source, options, suits, what)
@@ -950,3 +994,34 @@ def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None,
     coefficients, *_ = np.linalg.lstsq(matrix, shots_y, rcond=None)
     grid = np.linspace(float(shots_x.min()), float(shots_x.max()), points)
     return FitCurve(info.run, kind, formula, x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, basis(grid) @ coefficients, float(coefficients[0]), True)
+
+
+def _histogram_curve(source: _Source) -> FitCurve:
+    """The count histogram of the loading image (fraction of site observations per bin)
+    with the refitted two-component model over it; the threshold is the stored one."""
+    info = source.info
+    image = next((n for n, e in info.images.items() if e["role"] == "loading"), None) or _image(source, None)
+    counts, _ = source.catalogue.photon_counts(info.run, image, apparatus=info.apparatus)
+    method = str(info.figures["fidelity"]["method"])
+    model = "gaussian" if "gaussian" in method else "poisson"
+    fit = fit_counts(counts, model=model)
+    values = counts.ravel()
+    if model == "poisson":
+        edges = np.arange(np.floor(values.min()), np.ceil(values.max()) + 2) - 0.5
+    else:
+        edges = np.histogram_bin_edges(values, bins=60)
+    frequency, edges = np.histogram(values, bins=edges)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    width = float(edges[1] - edges[0])
+    grid = centres if model == "poisson" else np.linspace(edges[0], edges[-1], 400)
+    from scipy import stats
+
+    w = fit.bright_fraction
+    if model == "poisson":
+        density = (1 - w) * stats.poisson.pmf(grid, fit.dark_mean) + w * stats.poisson.pmf(grid, fit.bright_mean)
+        formula = "(1 − w) Pois(k; d) + w Pois(k; b)"
+    else:
+        density = width * ((1 - w) * stats.norm.pdf(grid, fit.dark_mean, fit.dark_sd) + w * stats.norm.pdf(grid, fit.bright_mean, fit.bright_sd))
+        formula = "(1 − w) N(d, s_d) + w N(b, s_b)"
+    formula += f", threshold {info.figures['threshold']['value']:.4g}"
+    return FitCurve(info.run, "detection", formula, f"counts of {image}", "", "fraction of sites", "", centres, frequency / values.size, grid, density, w, True)

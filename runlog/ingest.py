@@ -27,7 +27,7 @@ from sqlalchemy import insert
 from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
-from runlog.contract import Batch, Layout, normalise_batch, read_layout
+from runlog.contract import FROM_COUNTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
 from runlog.errors import ContractError
 from runlog.store.bulk import Writer, open_writer
@@ -97,6 +97,10 @@ class _Run:
     measurement_counts: dict[str, int] = field(default_factory=dict)
     # Per-site counts of this file's shots: name -> (successes, trials), for counting figures.
     site_counts: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+    # Photon counts per image: (shot indices, shots x sites matrix) per batch.
+    photon_counts: dict[str, list[tuple[np.ndarray, np.ndarray]]] = field(default_factory=dict)
+    # The threshold of each image whose occupancy comes from its counts.
+    thresholds: dict[str, float] = field(default_factory=dict)
     # Filled in the write transaction.
     run_id: int = 0
     apparatus_id: int = 0
@@ -169,7 +173,7 @@ def _short(error: Exception) -> str:
 def _batches(path: Path, parquet: pq.ParquetFile, layout: Layout) -> Iterator[tuple[int, Batch]]:
     first_row = 0
     try:
-        for record_batch in parquet.iter_batches(batch_size=BATCH_ROWS, columns=[c.source for c in layout.columns]):
+        for record_batch in parquet.iter_batches(batch_size=BATCH_ROWS, columns=layout.sources()):
             yield first_row, normalise_batch(layout, record_batch, first_row)
             first_row += record_batch.num_rows
     except (pa.ArrowException, OSError) as error:
@@ -264,8 +268,49 @@ class _Plan:
                 if bad.any():
                     row = batch.first_row + int(rows[np.flatnonzero(bad)[0]])
                     raise ContractError(file, f"occupancy list has {int(run_lengths[bad][0])} sites, earlier shots of run '{run.key}' have {expected}", column=column.source, row=row)
+            for column in layout.by_role("counts"):
+                self._add_counts(run, column.source, column.name, batch, rows)
         self.months.update(_months(batch.time_us))
         self.rows += batch.length
+
+    def _add_counts(self, run: _Run, source: str, name: str, batch: Batch, rows: np.ndarray) -> None:
+        lists = batch.counts[name]
+        lengths = pc.fill_null(pc.list_value_length(lists), -1).to_numpy(zero_copy_only=False)[rows]
+        present = rows[lengths >= 0]
+        if present.size == 0:
+            return
+        sites = run.image_sites.get(name, int(lengths[lengths >= 0][0]))
+        bad = (lengths >= 0) & (lengths != sites)
+        if bad.any():
+            row = batch.first_row + int(rows[np.flatnonzero(bad)[0]])
+            raise ContractError(str(self.path), f"counts list has {int(lengths[bad][0])} sites, the image of run '{run.key}' has {sites}", column=source, row=row)
+        run.photon_counts.setdefault(name, []).append((batch.shot[present], _number_matrix(lists, present, sites)))
+
+    def set_thresholds(self) -> None:
+        """Each run's threshold for every image whose occupancy comes from its counts."""
+        from runlog.errors import FitError
+        from runlog.figures.detection import fit_counts
+
+        for column in self.layout.by_role("occupancy"):
+            if column.kind != FROM_COUNTS:
+                continue
+            for run in self.runs:
+                parts = run.photon_counts.get(column.name)
+                if not parts:
+                    continue
+                fixed = self.layout.threshold(column.name)
+                if fixed is not None:
+                    run.thresholds[column.name] = fixed
+                    continue
+                try:
+                    run.thresholds[column.name] = fit_counts(np.concatenate([m for _, m in parts])).threshold
+                except FitError as error:
+                    raise ContractError(
+                        str(self.path),
+                        f"run '{run.key}': no occupancy threshold from the counts ({error.reason}); set [occupancy] threshold in runlog.toml",
+                        column=column.source,
+                        row=run.first_row,
+                    ) from None
 
     @staticmethod
     def _add_parameter(run: _Run, name: str, kind: str, unit: str, values: np.ndarray) -> None:
@@ -313,6 +358,7 @@ class _Plan:
             for stats in run.parameters.values():
                 if stats.present < run.shot_count:
                     stats.constant = False
+        self.set_thresholds()
 
 
 def _months(time_us: np.ndarray) -> list[dt.date]:
@@ -618,8 +664,12 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
         for name in run.image_sites:
             image_ids[(run.run_id, name)] = int(_one(writer, "SELECT id FROM images WHERE run_id = :r AND name = :n", {"r": run.run_id, "n": name}))
     written = 0
+    derived = [c.name for c in layout.by_role("occupancy") if c.kind == FROM_COUNTS]
     for first_row, batch in batches:
         run_index = plan.run_index(batch)
+        for name in derived:
+            thresholds = np.array([run.thresholds.get(name, np.inf) for run in plan.runs])
+            batch.occupancy[name] = threshold_counts(batch.counts[name], thresholds[run_index])
         shot_ids = base + first_row + np.arange(batch.length, dtype=np.int64)
         status = batch.status if batch.status is not None else None
         status_array = pa.array(np.where(status == None, "ok", status).astype(str) if status is not None else np.full(batch.length, "ok"))  # noqa: E711
@@ -656,6 +706,21 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
     return written
 
 
+def _store_photon_counts(writer: Writer, plan: _Plan) -> None:
+    """One row per run and image with counts: shot indices, counts, the threshold used."""
+    for run in plan.runs:
+        for name, parts in run.photon_counts.items():
+            image_id = _one(writer, "SELECT id FROM images WHERE run_id = :r AND name = :n", {"r": run.run_id, "n": name})
+            if image_id is None:
+                continue
+            shots = np.concatenate([shot for shot, _ in parts]).astype("<i8")
+            matrix = np.concatenate([m for _, m in parts]).astype("<f8")
+            writer.execute(
+                "INSERT INTO photon_counts (run_id, image_id, sites, threshold, shots, counts) VALUES (:r, :i, :n, :t, :s, :c)",
+                {"r": run.run_id, "i": int(image_id), "n": int(matrix.shape[1]), "t": run.thresholds.get(name), "s": shots.tobytes(), "c": np.ascontiguousarray(matrix).tobytes()},
+            )
+
+
 def _rollup_groups(plan: _Plan) -> set[tuple[int, dt.date, str]]:
     groups = {(run.apparatus_id, run.day, run.sequence) for run in plan.runs}
     for run in plan.runs:
@@ -665,9 +730,18 @@ def _rollup_groups(plan: _Plan) -> set[tuple[int, dt.date, str]]:
 
 def _occupancy_matrix(lists: pa.ListArray, rows: np.ndarray, sites: int) -> np.ndarray:
     """The (len(rows), sites) boolean occupancy of the given rows of a list column."""
+    return _list_matrix(lists, rows, sites, bool)
+
+
+def _number_matrix(lists: pa.ListArray, rows: np.ndarray, sites: int) -> np.ndarray:
+    """The (len(rows), sites) float64 values of the given rows of a counts column."""
+    return _list_matrix(lists, rows, sites, np.float64)
+
+
+def _list_matrix(lists: pa.ListArray, rows: np.ndarray, sites: int, dtype) -> np.ndarray:
     lengths = pc.fill_null(pc.list_value_length(lists), 0).to_numpy(zero_copy_only=False)
     starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
-    values = lists.flatten().to_numpy(zero_copy_only=False).astype(bool, copy=False)
+    values = lists.flatten().to_numpy(zero_copy_only=False).astype(dtype, copy=False)
     return values[starts[rows][:, None] + np.arange(sites)[None, :]]
 
 
@@ -853,6 +927,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             _write_runs(writer, plan, ids)
             batches = kept if kept is not None else _batches(path, parquet, layout)
             shots = _write_shots(writer, path, batches, plan, ids, progress)
+            _store_photon_counts(writer, plan)
             _store_counting_figures(writer, plan, mapping.interval)
             refresh_rollups(writer, _rollup_groups(plan))
             if after_write is not None:

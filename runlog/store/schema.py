@@ -57,6 +57,7 @@ __all__ = [
     "Occupancy",
     "FigureRow",
     "SiteCounts",
+    "PhotonCounts",
     "Setting",
     "DailyRollup",
     "Alarm",
@@ -65,7 +66,7 @@ __all__ = [
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0004"
+SCHEMA_REVISION = "0010"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -322,6 +323,24 @@ class SiteCounts(Base):
     sites: Mapped[int] = mapped_column(Integer)
     successes: Mapped[bytes] = mapped_column(LargeBinary)
     trials: Mapped[bytes] = mapped_column(LargeBinary)
+
+
+class PhotonCounts(Base):
+    """Per-site photon counts of one image of a run, as one file brought them.
+
+    ``shots`` holds the shot indices (little-endian int64) and ``counts`` the shots x sites
+    matrix (little-endian float64, row by row); ``threshold`` is the one ingest used to
+    derive the image's occupancy from them (``None`` when the file carried the occupancy).
+    """
+
+    __tablename__ = "photon_counts"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), index=True)
+    image_id: Mapped[int] = mapped_column(ForeignKey("images.id", ondelete="CASCADE"))
+    sites: Mapped[int] = mapped_column(Integer)
+    threshold: Mapped[float | None] = mapped_column(Float, nullable=True)
+    shots: Mapped[bytes] = mapped_column(LargeBinary)
+    counts: Mapped[bytes] = mapped_column(LargeBinary)
 
 
 class Setting(Base):

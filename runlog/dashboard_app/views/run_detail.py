@@ -88,7 +88,7 @@ with right:
         st.dataframe(figures, hide_index=True, key="run-figures")
 
 # A stored fit to draw: fringe, Ramsey, or one of the health kinds (marked by one figure each).
-if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime"}:
+if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime", "fidelity"}:
     st.markdown("**Fit over the shots**")
     scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
     slots = iter(st.columns(3))
@@ -106,8 +106,12 @@ if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"}
         common.show_error(error)
     else:
         st.altair_chart(charts.fit_chart(curve), width="stretch", key="run-fit-chart")
-        if curve.offset_estimated:
+        if curve.kind == "coherence" and curve.offset_estimated:
             st.caption(f"The offset a = {curve.offset:.4g} is not stored with Ramsey figures; it is the least-squares value for the stored C0, T, δ and φ.")
+        elif curve.kind == "detection":
+            st.caption("Fraction of the loading image's site observations per count; the two-component model refitted to them.")
+        elif curve.offset_estimated:
+            st.caption("Levels and amplitudes of the curve are the least-squares values over the shots for the stored times, rates and frequencies.")
 
 if any(image["role"] == "loading" for image in info.images.values()):
     st.markdown("**Per site**")
