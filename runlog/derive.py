@@ -30,6 +30,9 @@ What each kind reads (``docs/figures.md`` has the definitions):
 * ``echo``, ``t1``, ``lifetime``: ``x`` the scanned wait or hold time and the signal per
   shot (``echo`` also a contrast per wait; ``t1`` a ``reference`` parameter marking shots
   without state selection);
+* ``release_recapture``: ``x`` the scanned release time, the recaptured fraction per shot,
+  and the trap's ``depth``, ``waist``, ``mass`` (and ``wavelength``) from parameters or
+  settings;
 * ``detection``: the stored photon counts of an image (the loading image by default), and
   of the survival image for the corrected survival.
 
@@ -63,6 +66,7 @@ from runlog.figures.detection import COUNT_MODELS, corrected_fill, corrected_sur
 from runlog.figures.fringe import fit_fringe
 from runlog.figures.intervals import INTERVAL_METHODS
 from runlog.figures.lifetime import fit_lifetime, lifetime_model
+from runlog.figures.recapture import Trap, atom_mass, critical_temperatures, depth_in_joules, fit_release_recapture, recapture_probability
 from runlog.figures.rabi import fit_rabi, rabi_model
 from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_model
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
@@ -76,7 +80,7 @@ if TYPE_CHECKING:
 __all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve"]
 
 #: The figure kinds :func:`derive` can apply to a run.
-KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime", "detection"})
+KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime", "detection", "release_recapture"})
 
 _SAME_CORRELATOR_OUTCOMES = ("q1", "q2", "q3")
 _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
@@ -87,6 +91,7 @@ SETTINGS = {
     "echo": ("stretch",),
     "t1": ("reference",),
     "detection": ("threshold",),
+    "release_recapture": ("depth", "waist", "mass", "wavelength", "gravity"),
 }
 #: The models a kind offers (``model=``); the first is the default.
 MODELS = {
@@ -777,6 +782,65 @@ def _detection(source: _Source, options: _Options) -> list[Figure]:
     return figures
 
 
+def _trap_setting(source: _Source, options: _Options, name: str) -> tuple[float, str]:
+    """``(value, unit)`` of a trap setting: ``settings[name]``, else the run's only fixed
+    parameter whose name contains ``name``."""
+    from runlog.units import registry
+
+    given = options.settings.get(name)
+    if given is None:
+        given = _trap_setting_name(source, name)
+    parameters = source.info.parameters
+    if isinstance(given, str) and given in parameters:
+        entry = parameters[given]
+        if entry["scanned"] or not isinstance(entry.get("value"), (int, float)):
+            raise FitError(source.kind, f"{name} parameter '{given}' must hold one number for the whole run")
+        return float(entry["value"]), str(entry["unit"] or "")
+    try:
+        quantity = registry().Quantity(str(given))
+    except Exception:
+        raise FitError(source.kind, f"{name} {given!r} is neither a parameter of the run nor a quantity with a unit") from None
+    return float(quantity.magnitude), str(quantity.units)
+
+
+def _release_recapture(source: _Source, options: _Options, trap_only: bool = False):
+    _, unit, release, signal, _ = _scan(source, options, _is_time, "time parameter")
+    depth_value, depth_unit = _trap_setting(source, options, "depth")
+    try:
+        depth = depth_in_joules(depth_value, depth_unit)
+    except ValueError as error:
+        raise FitError("release_recapture", str(error)) from None
+    waist = _quantity_setting(source, options.settings.get("waist") or _trap_setting_name(source, "waist"), "m", "waist")
+    wavelength = None  # without one the trap has no axial dependence (module docstring)
+    if options.settings.get("wavelength") is not None or any("wavelength" in n.lower() for n in source.info.parameters):
+        wavelength = _quantity_setting(source, options.settings.get("wavelength") or _trap_setting_name(source, "wavelength"), "m", "wavelength")
+    gravity = 9.80665 if options.settings.get("gravity") is None else _quantity_setting(source, options.settings["gravity"], "m/s^2", "gravity")
+    mass_text = options.settings.get("mass")
+    if mass_text is None:
+        found = [e["value"] for n, e in source.info.parameters.items() if n.lower() in ("atom", "species", "isotope", "mass") and not e["scanned"] and e.get("value") is not None]
+        if len(found) != 1:
+            raise NotFoundError("atom of run", source.info.run, "give mass= (an atom such as 87Rb, or a mass such as '86.909 u'), or a text parameter 'atom'")
+        mass_text = found[0]
+    try:
+        mass = atom_mass(str(mass_text))
+    except KeyError:
+        mass = _quantity_setting(source, mass_text, "kg", "mass")
+    try:
+        trap = Trap(depth=depth, waist=waist, mass=mass, wavelength=wavelength, gravity=gravity)
+    except ValueError as error:
+        raise FitError("release_recapture", str(error)) from None
+    if trap_only:
+        return trap
+    return fit_release_recapture(release, signal, trap, release_unit=unit)
+
+
+def _trap_setting_name(source: _Source, name: str) -> str:
+    found = [n for n, e in source.info.parameters.items() if name in n.lower() and not e["scanned"]]
+    if len(found) != 1:
+        raise NotFoundError(f"single {name} parameter in run", source.info.run, f"parameters named like '{name}': {_listed(found)}; give {name}=")
+    return found[0]
+
+
 _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "counting": _counting,
     "fringe": _fringe,
@@ -790,6 +854,7 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "t1": _t1,
     "lifetime": _lifetime,
     "detection": _detection,
+    "release_recapture": _release_recapture,
 }
 
 
@@ -907,7 +972,7 @@ def fit_curve(
 
 
 #: The figure that marks each health kind's stored fit.
-_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime", "detection": "fidelity"}
+_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime", "detection": "fidelity", "release_recapture": "temperature"}
 
 
 def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None, y: str | None, points: int) -> FitCurve:
@@ -983,6 +1048,17 @@ def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None,
             return np.column_stack([kept * relaxation_model(t, 0.0, 1.0, 1.0 / value("t1")), kept * relaxation_model(t, 1.0, 0.0, 1.0 / value("t1"))])
 
         formula = "P(t) = P∞ + (P0 − P∞) e^(−t/T1)"
+    elif kind == "release_recapture":
+        trap = _release_recapture(source, options, trap_only=True)
+        grid_seconds = convert(np.linspace(0.0, float(shots_x.max()), points), x_unit, "s")
+        critical = critical_temperatures(trap, grid_seconds)
+        curve_p = recapture_probability(critical, value("temperature") * 1e-6)
+        release_grid = np.linspace(0.0, float(shots_x.max()), points)
+
+        def basis(v: np.ndarray) -> np.ndarray:
+            return np.interp(v, release_grid, curve_p)[:, None]
+
+        formula = f"y = A P(t; T), T = {value('temperature'):.3g} uK (classical trajectories)"
     else:
         two_body = value("two_body_fraction") if "two_body_fraction" in figures else 0.0
 

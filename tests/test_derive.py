@@ -430,7 +430,7 @@ def test_rule_checks_name_the_rule_and_know_every_kind(tmp_path):
         ('[[rules]]\nsequence = "a"\nkind = "fit"\n', f"rule 1: unknown kind 'fit' (known: {', '.join(sorted(KINDS))})"),
         ('[[rules]]\nkind = "fringe"\n', "rule 1: 'sequence' is missing (a rule needs sequence and kind)"),
         ('[[rules]]\nsequence = "a"\nkind = "fringe"\n[[rules]]\nsequence = "b"\nkind = "coherence"\nenvelope = "lorentz"\n', "rule 2: envelope must be 'gaussian' or 'exponential', not 'lorentz'"),
-        ('[[rules]]\nsequence = "a"\nkind = "fringe"\nwhen = "now"\n', "rule 1: unknown key 'when' (known: sequence, kind, x, y, envelope, apparatus, image, model, pulse, reference, stretch, target)"),
+        ('[[rules]]\nsequence = "a"\nkind = "fringe"\nwhen = "now"\n', "rule 1: unknown key 'when' (known: sequence, kind, x, y, envelope, apparatus, image, model, pulse, reference, stretch, threshold, depth, waist, mass, wavelength, gravity, target)"),
         ('[[rules]]\nsequence = "a"\nkind = "sorting"\ntarget = [1, -2]\n', "rule 1: 'target' must be site indices ('0,1,2' or [0, 1, 2]) or a parameter name"),
     ]
     for text, reason in cases:
