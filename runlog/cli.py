@@ -367,7 +367,7 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
 
 @cli.command()
 @click.argument("run", required=False)
-@click.option("--kind", default=None, metavar="KIND", help="counting, fringe, coherence, spreading, sorting, correlator, rabi, spectroscopy, echo, t1, lifetime, detection or release_recapture.")
+@click.option("--kind", default=None, metavar="KIND", help="counting, fringe, coherence, spreading, sorting, correlator, rabi, spectroscopy, echo, t1, lifetime, detection, release_recapture or two_atom.")
 @click.option("--x", "x", default=None, metavar="PARAMETER", help="The scanned parameter (default: the only suitable one).")
 @click.option("--y", "y", default=None, metavar="MEASUREMENT", help="The measurement; correlator: q1,q2,q3 or a,b (default: the only one).")
 @click.option("--envelope", type=click.Choice(["gaussian", "exponential"]), default="gaussian", show_default=True, help="Coherence decay shape.")

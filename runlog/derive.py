@@ -33,6 +33,9 @@ What each kind reads (``docs/figures.md`` has the definitions):
 * ``release_recapture``: ``x`` the scanned release time, the recaptured fraction per shot,
   and the trap's ``depth``, ``waist``, ``mass`` (and ``wavelength``) from parameters or
   settings;
+* ``two_atom``: the coincidences of site pairs (0, 1), (2, 3), ... loaded in the loading
+  image and both occupied in the last image, against ``x`` the scanned delay or overlap (or
+  at one setting), or ``y`` a coincidence fraction per shot;
 * ``detection``: the stored photon counts of an image (the loading image by default), and
   of the survival image for the corrected survival.
 
@@ -64,6 +67,7 @@ from runlog.figures.correlator import PAIR_LABELS, correlators, correlators_from
 from runlog.figures.counting import counts_fill, counts_survival, proportion_figure
 from runlog.figures.detection import COUNT_MODELS, corrected_fill, corrected_survival, detection_figures, fit_counts
 from runlog.figures.fringe import fit_fringe
+from runlog.figures.interference import coincidences, dip_model, fit_visibility, visibility_at_one_setting
 from runlog.figures.intervals import INTERVAL_METHODS
 from runlog.figures.lifetime import fit_lifetime, lifetime_model
 from runlog.figures.recapture import Trap, atom_mass, critical_temperatures, depth_in_joules, fit_release_recapture, recapture_probability
@@ -80,7 +84,7 @@ if TYPE_CHECKING:
 __all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve"]
 
 #: The figure kinds :func:`derive` can apply to a run.
-KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime", "detection", "release_recapture"})
+KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime", "detection", "release_recapture", "two_atom"})
 
 _SAME_CORRELATOR_OUTCOMES = ("q1", "q2", "q3")
 _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
@@ -841,6 +845,32 @@ def _trap_setting_name(source: _Source, name: str) -> str:
     return found[0]
 
 
+def _two_atom(source: _Source, options: _Options) -> list[Figure]:
+    if options.y is not None:
+        name = _measurement(source, options.y)
+        keep = np.isfinite(source.numbers(f"m.{name}"))
+        coincidence = source.numbers(f"m.{name}")[keep]
+        coincident = pairs = None
+    else:
+        images = source.info.images
+        loading = next((n for n, e in images.items() if e["role"] == "loading"), None)
+        final = _image(source, options.image)
+        if loading is None or final == loading:
+            raise FitError("two_atom", "two images are needed: the loading image and one after the beam-splitter step")
+        coincident, pairs = coincidences(source.occupancy(loading), source.occupancy(final))
+        keep = pairs > 0
+        coincidence = coincident[keep] / pairs[keep]
+    scanned = [n for n, e in source.info.parameters.items() if e["scanned"] and "min" in e]
+    if options.x is None and not scanned:
+        if coincident is None:
+            raise FitError("two_atom", "a coincidence measurement at one setting has no pair counts for an interval; give the images instead")
+        return visibility_at_one_setting(int(coincident.sum()), int(pairs.sum()), interval=options.interval or "wilson")
+    x = _scanned(source, options.x, lambda unit: True, "parameter")
+    values = source.numbers(f"p.{x}")[keep]
+    good = np.isfinite(values)
+    return fit_visibility(values[good], coincidence[good], x_unit=source.unit(f"p.{x}"))
+
+
 _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "counting": _counting,
     "fringe": _fringe,
@@ -855,6 +885,7 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
     "lifetime": _lifetime,
     "detection": _detection,
     "release_recapture": _release_recapture,
+    "two_atom": _two_atom,
 }
 
 
@@ -972,7 +1003,7 @@ def fit_curve(
 
 
 #: The figure that marks each health kind's stored fit.
-_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime", "detection": "fidelity", "release_recapture": "temperature"}
+_HEALTH_CURVES = {"rabi": "pi_time", "spectroscopy": "linewidth", "echo": "t2", "t1": "t1", "lifetime": "lifetime", "detection": "fidelity", "release_recapture": "temperature", "two_atom": "overlap_width"}
 
 
 def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None, y: str | None, points: int) -> FitCurve:
@@ -987,11 +1018,19 @@ def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None,
     if kind == "detection":
         return _histogram_curve(source)
     options = _Options(x, y, "gaussian", None, None, None)
-    suits, what = (_is_frequency, "frequency parameter") if kind == "spectroscopy" else (_is_time, "time parameter")
-    x_name, x_unit, shots_x, shots_y, keep = _scan(source, options, suits, what)
+    if kind == "two_atom":
+        x_name = _scanned(source, x, lambda unit: True, "parameter")
+        x_unit, y_name, y_unit = source.unit(f"p.{x_name}"), "coincidence fraction", ""
+        loading = next(n for n, e in info.images.items() if e["role"] == "loading")
+        coincident, pairs = coincidences(source.occupancy(loading), source.occupancy(_image(source, None)))
+        keep = pairs > 0
+        shots_x, shots_y = source.numbers(f"p.{x_name}")[keep], coincident[keep] / pairs[keep]
+    else:
+        suits, what = (_is_frequency, "frequency parameter") if kind == "spectroscopy" else (_is_time, "time parameter")
+        x_name, x_unit, shots_x, shots_y, keep = _scan(source, options, suits, what)
+        _, _, y_name, y_unit = _signal(source, options)
     if shots_x.size == 0:
         raise FitError(kind, "no shot has both a scanned value and a signal", info.run)
-    _, _, y_name, y_unit = _signal(source, options)
 
     def value(name: str) -> float:
         return float(figures[name]["value"])
@@ -1048,6 +1087,12 @@ def _health_curve(catalogue: Catalogue, info: RunInfo, kind: str, x: str | None,
             return np.column_stack([kept * relaxation_model(t, 0.0, 1.0, 1.0 / value("t1")), kept * relaxation_model(t, 1.0, 0.0, 1.0 / value("t1"))])
 
         formula = "P(t) = P∞ + (P0 − P∞) e^(−t/T1)"
+    elif kind == "two_atom":
+
+        def basis(v: np.ndarray) -> np.ndarray:
+            return dip_model(v, 1.0, value("visibility"), value("overlap_centre"), value("overlap_width"))[:, None]
+
+        formula = "P_c = B (1 − V exp(−(x − x0)²/(2s²)))"
     elif kind == "release_recapture":
         trap = _release_recapture(source, options, trap_only=True)
         grid_seconds = convert(np.linspace(0.0, float(shots_x.max()), points), x_unit, "s")

@@ -88,7 +88,7 @@ with right:
         st.dataframe(figures, hide_index=True, key="run-figures")
 
 # A stored fit to draw: fringe, Ramsey, or one of the health kinds (marked by one figure each).
-if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime", "fidelity", "temperature"}:
+if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime", "fidelity", "temperature", "overlap_width"}:
     st.markdown("**Fit over the shots**")
     scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
     slots = iter(st.columns(3))
