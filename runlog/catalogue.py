@@ -636,6 +636,13 @@ class Catalogue:
             rows = connection.execute(query).all()
         return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method"])
 
+    def calibrations(self, *, apparatus: str | None = None, names: Iterable[str] | None = None) -> list:
+        """The calibration register: per apparatus, the latest stored value of each
+        calibration figure, its run and when (:func:`runlog.calibrations.current_calibrations`)."""
+        from runlog.calibrations import current_calibrations
+
+        return current_calibrations(self, apparatus=apparatus, names=names)
+
     def parameters(self, *, apparatus: str | None = None) -> "pd.DataFrame":
         """Every parameter with its stored unit, kind, value range over runs and run count."""
         rp = s.RunParameter

@@ -509,6 +509,28 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
     click.echo("advisory only: not a replacement for the lab's interlocks or rules")
 
 
+@cli.command()
+@click.argument("names", nargs=-1)
+@click.option("--apparatus", default=None, help="Only this apparatus.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def calibrations(state: _State, names: tuple[str, ...], apparatus: str | None, as_json: bool) -> None:
+    """The current value of each calibration figure per apparatus (pi time, resonance,
+    threshold ...): the latest run's, with the run and when. NAMES limits the figures."""
+    with _open(state) as catalogue:
+        found = catalogue.calibrations(apparatus=apparatus, names=list(names) or None)
+    if as_json:
+        _json([c.as_dict() for c in found])
+        return
+    if not found:
+        click.echo("no calibration figures stored")
+        return
+    for c in found:
+        error = f" ± {c.stderr:.2g}" if c.stderr is not None else ""
+        unit = f" {c.unit}" if c.unit else ""
+        _wrapped(f"{c.apparatus} {c.name} = {c.value:.6g}{error}{unit}  (run {c.run}, {c.started:%Y-%m-%d %H:%M} UTC, {c.age_days:.1f} days ago)", indent="")
+
+
 def _range_option(text: str) -> tuple[str, tuple[float, float]]:
     name, _, span = text.partition("=")
     low, _, high = span.partition(":")

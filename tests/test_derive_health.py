@@ -263,3 +263,25 @@ def test_run_page_draws_the_stored_health_fit_over_the_shots(health, db_url, mon
         common.catalogue(db_url).close()
         st.cache_resource.clear()
         st.cache_data.clear()
+
+
+def test_calibration_register_lists_the_latest_value_per_apparatus(catalogue, make_file, db_url, capsys):
+    rng = np.random.default_rng(18)
+    for day, apparatus in ((0, "bench-a"), (1, "bench-a"), (2, "bench-b")):
+        run = f"rabi-{apparatus}-{day}"
+        catalogue.ingest(make_file(table=rabi_run(rng, run=run, start=T0 + dt.timedelta(days=day), apparatus=apparatus)))
+        catalogue.derive(run, "rabi", apparatus=apparatus)
+    found = {(c.apparatus, c.name): c for c in catalogue.calibrations(names=["pi_time", "contrast"])}
+    assert set(found) == {("bench-a", "pi_time"), ("bench-a", "contrast"), ("bench-b", "pi_time"), ("bench-b", "contrast")}
+    current = found[("bench-a", "pi_time")]
+    # The latest run of bench-a (day 1), not the earlier one.
+    assert current.run == "rabi-bench-a-1" and current.started == T0 + dt.timedelta(days=1)
+    assert current.value == catalogue.run("rabi-bench-a-1", apparatus="bench-a").figures["pi_time"]["value"] and current.unit == "us"
+    default = catalogue.calibrations(apparatus="bench-b")
+    assert {c.name for c in default} == {"pi_time", "rabi_frequency"}  # contrast is no calibration figure by default
+    code, out, _ = run_main(capsys, "--db", db_url, "calibrations", "pi_time", "--apparatus", "bench-a", "--json")
+    assert code == 0
+    (entry,) = json.loads(out)
+    assert entry["run"] == "rabi-bench-a-1" and entry["value"] == current.value and entry["started"].startswith("2026-03-03")
+    code, out, _ = run_main(capsys, "--db", db_url, "calibrations", "--apparatus", "bench-b")
+    assert code == 0 and out.startswith("bench-b pi_time = ") and "run rabi-bench-b-2" in out
