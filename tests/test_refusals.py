@@ -188,8 +188,8 @@ def unknown_unit(catalogue, make_file, tmp_path, monkeypatch):
 def not_a_contract_column(catalogue, make_file, tmp_path, monkeypatch):
     path = make_file("foo.parquet", shot_table({"r1": 5}, extra={"foo": np.arange(5)}))
     return path, (
-        f"{path} (column 'foo'): not a shot-table column: name it p.<name>[unit], m.<name>[unit] "
-        "or occ.<image>, or map or ignore it in runlog.toml"
+        f"{path} (column 'foo'): not a shot-table column: name it p.<name>[unit], m.<name>[unit], "
+        "occ.<image> or counts.<image>, or map or ignore it in runlog.toml"
     )
 
 
@@ -371,8 +371,8 @@ def test_runlog_toml_maps_the_labs_own_names_and_ignores_a_column(catalogue, mak
     before = snapshot(catalogue)
     [refused] = catalogue.ingest(path)
     assert refused.reason == (
-        f"{path} (column 'seq_id'): not a shot-table column: name it p.<name>[unit], m.<name>[unit] "
-        "or occ.<image>, or map or ignore it in runlog.toml"
+        f"{path} (column 'seq_id'): not a shot-table column: name it p.<name>[unit], m.<name>[unit], "
+        "occ.<image> or counts.<image>, or map or ignore it in runlog.toml"
     )
     assert snapshot(catalogue) == before
 
@@ -408,7 +408,7 @@ def test_runlog_toml_that_is_not_toml_raises_config_error_with_its_message(catal
 @pytest.mark.parametrize(
     ("text", "reason"),
     [
-        ('[colums]\nseq_id = "run"\n', "unknown section [colums] (known: columns, defaults, figures, occupancy, rules)"),
+        ('[colums]\nseq_id = "run"\n', "unknown section [colums] (known: apparatus, columns, defaults, figures, occupancy, rules)"),
         ('[columns]\nignore = "comment"\n', "[columns] ignore must be a list of column names"),
         ("[columns]\nseq_id = 3\n", "[columns] 'seq_id' must map to a contract column name"),
         ("[occupancy]\nshape = [10, 0]\n", "[occupancy] shape must be a list of positive integers"),
