@@ -23,6 +23,7 @@ from runlog.units import check_unit
 
 __all__ = [
     "CONTRACT_VERSION",
+    "ANALYSIS_METADATA_KEY",
     "RESERVED",
     "OPTIONAL",
     "Column",
@@ -32,12 +33,16 @@ __all__ = [
     "normalise_batch",
 ]
 
-CONTRACT_VERSION = 1
+#: 2 added the optional ``analysis`` (a column, or the file's key-value metadata): files of
+#: version 1 are version-2 files of the unnamed analysis.
+CONTRACT_VERSION = 2
+#: The Parquet key-value metadata key that names a whole file's analysis version.
+ANALYSIS_METADATA_KEY = "analysis"
 RESERVED = ("run", "apparatus", "sequence", "shot", "time")
-OPTIONAL = ("operator", "notes", "tags", "status")
+OPTIONAL = ("operator", "notes", "tags", "status", "analysis")
 
 #: Longest text the catalogue keeps for each named thing (the schema's column sizes).
-MAX_LENGTH = {"run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "tags": 2000, "status": 40, "name": 200, "unit": 60}
+MAX_LENGTH = {"analysis": 200, "run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "tags": 2000, "status": 40, "name": 200, "unit": 60}
 
 _NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
 _IMAGE = re.compile(r"^occ\.(?P<name>[^\[\]]+)$")
@@ -70,6 +75,8 @@ class Layout:
     loading: str | None
     survival: str | None
     default_apparatus: str | None
+    #: The analysis version the file's key-value metadata names (a column overrides it).
+    analysis: str | None = None
 
     def by_role(self, role: str) -> list[Column]:
         return [column for column in self.columns if column.role == role]
@@ -104,6 +111,7 @@ class Batch:
     parameters: dict[str, np.ndarray]
     measurements: dict[str, np.ndarray]
     occupancy: dict[str, pa.ListArray]
+    analysis: np.ndarray | None = None
 
     def nbytes(self) -> int:
         """Memory held by the batch (object arrays counted by their pointers only)."""
@@ -211,7 +219,13 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         loading = images[0]
     if survival is None and len(images) == 2:
         survival = images[-1]
-    return Layout(file, tuple(columns), loading, survival, mapping.apparatus)
+    analysis = None
+    raw = (schema.metadata or {}).get(ANALYSIS_METADATA_KEY.encode())
+    if raw is not None:
+        analysis = raw.decode("utf-8", errors="replace").strip()
+        if len(analysis) > MAX_LENGTH["analysis"]:
+            raise ContractError(file, f"analysis name in the file's metadata is longer than {MAX_LENGTH['analysis']} characters")
+    return Layout(file, tuple(columns), loading, survival, mapping.apparatus, analysis)
 
 
 def _first(mask: np.ndarray) -> int:
@@ -374,6 +388,7 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
         operator=optional("operator"),
         notes=optional("notes"),
         tags=optional("tags"),
+        analysis=optional("analysis"),
         parameters=parameters,
         measurements=measurements,
         occupancy=occupancy,
