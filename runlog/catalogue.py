@@ -35,6 +35,8 @@ if TYPE_CHECKING:
 
 __all__ = ["Catalogue", "RunInfo", "open_catalogue"]
 
+_RUN_COLUMNS = ("run", "apparatus", "sequence", "shots", "started", "finished", "operator")
+
 
 @dataclass(frozen=True)
 class RunInfo:
@@ -110,6 +112,10 @@ class Catalogue:
             self.init()
         elif found != s.SCHEMA_REVISION:
             self.engine.dispose()
+            from runlog.store.migrate import UNKNOWN_REVISION, known_revisions
+
+            if found is not None and found not in known_revisions():
+                raise SchemaVersionError(self.url, found, s.SCHEMA_REVISION, UNKNOWN_REVISION)
             raise SchemaVersionError(self.url, found, s.SCHEMA_REVISION)
 
     @property
@@ -179,6 +185,11 @@ class Catalogue:
 
     def runs(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> "pd.DataFrame":
         """Runs, newest first: run, apparatus, sequence, shots, started, finished, operator."""
+        rows = self.run_records(apparatus=apparatus, sequence=sequence, since=since, until=until)
+        return _frame([tuple(r.values()) for r in rows], list(_RUN_COLUMNS))
+
+    def run_records(self, *, apparatus: str | None = None, sequence: str | None = None, since: dt.datetime | dt.date | str | None = None, until: dt.datetime | dt.date | str | None = None) -> list[dict[str, object]]:
+        """The rows of :meth:`runs` as plain dicts, without pandas (for quick commands)."""
         query = (
             select(
                 s.Run.key.label("run"),
@@ -203,7 +214,7 @@ class Catalogue:
             query = query.where(s.Run.started < _as_utc(until))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
-        return _frame(rows, ["run", "apparatus", "sequence", "shots", "started", "finished", "operator"])
+        return [dict(zip(_RUN_COLUMNS, row)) for row in rows]
 
     # --- what the catalogue holds, for pickers and menus ---------------------------------
     # Each asks the database for distinct values only, never for the rows they come from:
@@ -721,7 +732,9 @@ class Catalogue:
         with self.engine.connect() as connection:
             result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, since=since, until=until, baseline_days=baseline_days, baseline=baseline, parameters=parameters)
         if record_alarms and result.points and not parameters:
-            with self.engine.begin() as connection:
+            # A writer from the start on SQLite: a deferred transaction that read first
+            # could not become a writer once another process had recorded alarms.
+            with self.engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection, connection.begin():
                 result.alarms = alarm_store.record(connection, result)
         if result.points:
             notes = self.annotations(apparatus=result.apparatus, since=dt.datetime.combine(result.points[0].date, dt.time(), dt.timezone.utc) - dt.timedelta(days=1))

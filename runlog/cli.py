@@ -21,6 +21,7 @@ from typing import Any
 
 import click
 
+from runlog import __version__
 from runlog.errors import RunlogError, StoreError
 
 __all__ = ["main", "cli"]
@@ -75,7 +76,7 @@ def _when(value: Any) -> str:
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 80})
 @click.option("--db", "db", metavar="URL", default=None, help="Catalogue URL (SQLAlchemy); else $RUNLOG_DB; else the default SQLite file.")
 @click.option("--debug", is_flag=True, default=False, help="Show tracebacks.")
-@click.version_option(package_name="runlog")
+@click.version_option(version=__version__, prog_name="runlog")
 @click.pass_context
 def cli(ctx: click.Context, db: str | None, debug: bool) -> None:
     """runlog: the run catalogue and shot statistics of a neutral-atom lab."""
@@ -175,20 +176,17 @@ class _progress_bar:
 def runs(state: _State, apparatus: str | None, since: str | None, as_json: bool) -> None:
     """List runs, newest first."""
     with _open(state) as catalogue:
-        frame = catalogue.runs(apparatus=apparatus, since=_date_option(since, "--since"))
-    records = [
-        {"run": r.run, "apparatus": r.apparatus, "sequence": r.sequence, "shots": int(r.shots), "started": r.started.isoformat(), "finished": r.finished.isoformat()}
-        for r in frame.itertuples(index=False)
-    ]
+        # Plain records, not the DataFrame of catalogue.runs(): this command stays free of pandas.
+        rows = catalogue.run_records(apparatus=apparatus, since=_date_option(since, "--since"))
     if as_json:
-        _json(records)
+        _json([{"run": r["run"], "apparatus": r["apparatus"], "sequence": r["sequence"], "shots": int(r["shots"]), "started": r["started"].isoformat(), "finished": r["finished"].isoformat()} for r in rows])
         return
-    if not records:
+    if not rows:
         click.echo("no runs")
         return
     click.echo(f"{'run':<22} {'apparatus':<14} {'sequence':<12} {'shots':>6}  started (UTC)")
-    for r in frame.itertuples(index=False):
-        click.echo(f"{str(r.run)[:22]:<22} {str(r.apparatus)[:14]:<14} {str(r.sequence)[:12]:<12} {int(r.shots):>6}  {_when(r.started)}")
+    for r in rows:
+        click.echo(f"{str(r['run'])[:22]:<22} {str(r['apparatus'])[:14]:<14} {str(r['sequence'])[:12]:<12} {int(r['shots']):>6}  {_when(r['started'])}")
 
 
 def _date_option(value: str | None, option: str) -> dt.datetime | None:

@@ -135,13 +135,16 @@ class StoreError(RunlogError, RuntimeError):
 class SchemaVersionError(StoreError):
     """The database schema is not at the revision this runlog expects."""
 
-    def __init__(self, url: str, found: str | None, expected: str):
-        super().__init__(url, found, expected)
+    def __init__(self, url: str, found: str | None, expected: str, reason: str | None = None):
+        super().__init__(url, found, expected, reason)
         self.url = url
         self.found = found
         self.expected = expected
+        self.reason = reason  # set when the catalogue cannot be upgraded at all
 
     def __str__(self) -> str:
+        if self.reason:
+            return f"catalogue {self.url} is at schema revision {self.found or 'none'}, {self.reason}; it was not upgraded"
         return (
             f"catalogue {self.url} is at schema revision {self.found or 'none'}, "
             f"this runlog needs {self.expected}: run 'runlog init' to upgrade"

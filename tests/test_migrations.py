@@ -2,7 +2,11 @@
 
 from __future__ import annotations
 
+import hashlib
+from pathlib import Path
+
 import pytest
+from conftest import run_main
 from alembic.autogenerate import compare_metadata
 from alembic.migration import MigrationContext
 from alembic.script import ScriptDirectory
@@ -58,15 +62,65 @@ def test_round_trip_keeps_rows(db_url, make_file):
         assert catalogue.ingest(make_file(runs={"r2": 3}, seed=2))[0].status == "ingested"
 
 
-def test_opening_a_catalogue_at_another_revision_is_refused(db_url):
+def test_opening_a_catalogue_at_an_older_revision_asks_for_init(db_url):
+    engine = make_engine(db_url)
+    migrate.upgrade(engine, "0002")
+    engine.dispose()
+    with pytest.raises(SchemaVersionError) as caught:
+        runlog.open(db_url)
+    assert str(caught.value).endswith(f"is at schema revision 0002, this runlog needs {SCHEMA_REVISION}: run 'runlog init' to upgrade")
+
+
+def test_a_catalogue_at_a_revision_outside_the_history_is_refused_not_upgraded(db_url, capsys):
     engine = make_engine(db_url)
     migrate.upgrade(engine)
     with engine.begin() as connection:
         connection.exec_driver_sql("UPDATE alembic_version SET version_num = '0000'")
-    engine.dispose()
+    message = "is at schema revision 0000, which is not in this runlog's migration history (a newer runlog, or one whose history was edited); it was not upgraded"
     with pytest.raises(SchemaVersionError) as caught:
         runlog.open(db_url)
-    assert str(caught.value).endswith(f"is at schema revision 0000, this runlog needs {SCHEMA_REVISION}: run 'runlog init' to upgrade")
+    assert str(caught.value).endswith(message)
+    code, out, err = run_main(capsys, "--db", db_url, "init")
+    assert code == 1 and out == "" and err.strip().endswith(message) and len(err.strip().splitlines()) == 1
+    assert current_revision(engine) == "0000"
+    engine.dispose()
+
+
+def test_a_catalogue_made_by_an_edited_revision_is_refused_not_upgraded(db_url, capsys):
+    # Revision 0001 was once edited after release: its first version made measurement_values
+    # where the released one makes shot_measurements and run_measurements. A catalogue of
+    # that first version says "0001" but is not what the shipped 0001 makes.
+    engine = make_engine(db_url)
+    migrate.upgrade(engine, "0001")
+    with engine.begin() as connection:
+        connection.exec_driver_sql("DROP TABLE shot_measurements")
+        connection.exec_driver_sql("DROP TABLE run_measurements")
+        connection.exec_driver_sql("CREATE TABLE measurement_values (shot_id BIGINT NOT NULL REFERENCES shots (id), measurement_id INTEGER NOT NULL, value FLOAT NOT NULL)")
+    code, out, err = run_main(capsys, "--db", db_url, "init")
+    assert code == 1 and out == ""
+    assert err.strip().endswith(
+        "is at schema revision 0001, but its tables are not the ones revision 0001 makes "
+        "(unexpected table measurement_values; missing table run_measurements, shot_measurements); it was not upgraded"
+    )
+    assert current_revision(engine) == "0001"
+    with engine.connect() as connection:
+        assert connection.exec_driver_sql("SELECT count(*) FROM measurement_values").scalar_one() == 0
+    engine.dispose()
+
+
+def test_released_revision_files_are_never_edited():
+    # Append-only history: migrations/released.sha256 holds the SHA-256 of every revision
+    # file on main. A new revision adds its line in the same change; a line is never edited.
+    folder = Path(migrate.__file__).resolve().parents[2] / "migrations"
+    registry = {}
+    for line in (folder / "released.sha256").read_text().splitlines():
+        digest, name = line.split()
+        registry[name] = digest
+    files = sorted(p.name for p in (folder / "versions").glob("*.py") if p.name != "__init__.py")
+    assert files == sorted(registry), "every revision file needs its line in migrations/released.sha256 (see DEVELOPERS.md)"
+    for name in files:
+        digest = hashlib.sha256((folder / "versions" / name).read_bytes()).hexdigest()
+        assert digest == registry[name], f"{name} changed after release: add a new revision instead"
 
 
 def test_a_catalogue_created_from_the_models_equals_the_migrated_one(db_url):

@@ -20,7 +20,10 @@ from runlog.drift.series import Drift
 from runlog.errors import NotFoundError
 from runlog.store import schema as s
 
-__all__ = ["findings", "record", "list_alarms", "acknowledge"]
+__all__ = ["ALARM_KEY", "findings", "record", "list_alarms", "acknowledge"]
+
+#: The columns that identify one alarm: the same finding found again is the same alarm.
+ALARM_KEY = ("apparatus_id", "quantity", "sequence", "day", "reason")
 
 
 def findings(drift: Drift) -> list[dict[str, object]]:
@@ -54,11 +57,29 @@ def _as_dict(row, apparatus: str) -> dict[str, object]:
 
 
 def record(connection: Connection, drift: Drift) -> list[dict[str, object]]:
-    """Store the findings of ``drift`` as alarms (new ones open); returns all of them."""
+    """Store the findings of ``drift`` as alarms (new ones open); returns all of them.
+
+    Idempotent under concurrency: each finding is an insert that does nothing when the
+    alarms' unique key (apparatus, quantity, sequence, day, reason) already holds it, so
+    two processes recording the same drift at once both succeed and leave one alarm (a
+    select-then-insert let both see "absent" and one fail on the key).
+    """
     apparatus_id = connection.execute(select(s.Apparatus.id).where(s.Apparatus.name == drift.apparatus)).scalar_one()
     now = dt.datetime.now(dt.timezone.utc)
+    if connection.dialect.name == "postgresql":
+        from sqlalchemy.dialects.postgresql import insert
+    else:
+        from sqlalchemy.dialects.sqlite import insert
     out = []
     for finding in findings(drift):
+        connection.execute(
+            insert(s.Alarm.__table__)
+            .values(
+                apparatus_id=apparatus_id, quantity=drift.quantity, sequence=drift.sequence or "", day=finding["day"], reason=finding["reason"],
+                method=finding["method"], value=finding["value"], size=finding["size"], detail="", status="open", created_at=now,
+            )
+            .on_conflict_do_nothing(index_elements=list(ALARM_KEY))
+        )
         key = and_(
             s.Alarm.apparatus_id == apparatus_id,
             s.Alarm.quantity == drift.quantity,
@@ -66,16 +87,7 @@ def record(connection: Connection, drift: Drift) -> list[dict[str, object]]:
             s.Alarm.day == finding["day"],
             s.Alarm.reason == finding["reason"],
         )
-        row = connection.execute(select(s.Alarm).where(key)).first()
-        if row is None:
-            connection.execute(
-                s.Alarm.__table__.insert().values(
-                    apparatus_id=apparatus_id, quantity=drift.quantity, sequence=drift.sequence or "", day=finding["day"], reason=finding["reason"],
-                    method=finding["method"], value=finding["value"], size=finding["size"], detail="", status="open", created_at=now,
-                )
-            )
-            row = connection.execute(select(s.Alarm).where(key)).first()
-        out.append(_as_dict(row, drift.apparatus))
+        out.append(_as_dict(connection.execute(select(s.Alarm).where(key)).one(), drift.apparatus))
     return out
 
 

@@ -10,12 +10,12 @@ from importlib import resources
 
 from sqlalchemy.engine import Engine
 
-from runlog.errors import StoreError
+from runlog.errors import SchemaVersionError, StoreError
 
 from runlog.store.partitions import SHOT_TABLES, partition_shot_tables
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
-__all__ = ["alembic_config", "upgrade", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
+__all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
 
 
 # What the PostgreSQL partitioned layout (runlog.store.partitions) has instead of the
@@ -91,8 +91,100 @@ def _run(engine: Engine, command_name: str, revision: str) -> None:
 
 
 def upgrade(engine: Engine, revision: str = "head") -> None:
-    """Create the schema or upgrade it to ``revision``; a no-op when already there."""
+    """Create the schema or upgrade it to ``revision``; a no-op when already there.
+
+    A catalogue whose recorded revision is not in the shipped history, or whose tables are
+    not what the shipped scripts make at that revision (a catalogue made by an edited
+    revision file), is refused with :class:`SchemaVersionError` and left as it was:
+    running later scripts over a layout they were not written for leaves a catalogue that
+    says "upgraded" and cannot be read.
+    """
+    check_history(engine)
     _run(engine, "upgrade", revision)
+
+
+#: Why a catalogue at a revision outside the shipped history is refused.
+UNKNOWN_REVISION = "which is not in this runlog's migration history (a newer runlog, or one whose history was edited)"
+
+
+def known_revisions() -> list[str]:
+    """Every revision of the shipped history, oldest first."""
+    from alembic.script import ScriptDirectory
+
+    return [script.revision for script in reversed(list(ScriptDirectory.from_config(alembic_config()).walk_revisions()))]
+
+
+def check_history(engine: Engine) -> None:
+    """Refuse a catalogue at a revision we do not ship, or whose layout is not that
+    revision's; an empty database and one at head pass without a look at its tables."""
+    from runlog.store.engine import current_revision, redact
+    from runlog.store.schema import SCHEMA_REVISION
+
+    found = current_revision(engine)
+    if found is None or found == SCHEMA_REVISION:
+        return
+    shown = redact(engine.url)
+    if found not in known_revisions():
+        raise SchemaVersionError(shown, found, SCHEMA_REVISION, UNKNOWN_REVISION)
+    expected = _scripted_layout(found)
+    actual = _table_columns(engine)
+    if actual != expected:
+        raise SchemaVersionError(shown, found, SCHEMA_REVISION, f"but its tables are not the ones revision {found} makes ({_difference(expected, actual)})")
+
+
+def _table_columns(engine: Engine) -> dict[str, frozenset[str]]:
+    """Tables and their columns, without what is data or the PostgreSQL layout by design
+    (measurement columns, month partitions, the children's partition key)."""
+    from sqlalchemy import inspect
+
+    with engine.connect() as connection:
+        found = inspect(connection)
+        layout = {}
+        for table in found.get_table_names():
+            if _PARTITION.fullmatch(table):
+                continue
+            names = {c["name"] for c in found.get_columns(table)}
+            if table == "shot_measurements":
+                names = {n for n in names if not n.startswith(MEASUREMENT_COLUMN_PREFIX)}
+            if table in _CHILDREN and engine.dialect.name == "postgresql":
+                names.discard("time")
+            layout[table] = frozenset(names)
+    return layout
+
+
+_layouts: dict[str, dict[str, frozenset[str]]] = {}
+
+
+def _scripted_layout(revision: str) -> dict[str, frozenset[str]]:
+    """The tables the shipped scripts make at ``revision``, built once in a scratch SQLite file."""
+    if revision not in _layouts:
+        import tempfile
+        from pathlib import Path
+
+        from runlog.store.engine import make_engine
+
+        with tempfile.TemporaryDirectory(prefix="runlog-history-") as folder:
+            scratch = make_engine(f"sqlite:///{Path(folder) / 'scripts.sqlite'}")
+            try:
+                _run(scratch, "upgrade", revision)
+                _layouts[revision] = _table_columns(scratch)
+            finally:
+                scratch.dispose()
+    return _layouts[revision]
+
+
+def _difference(expected: dict[str, frozenset[str]], actual: dict[str, frozenset[str]]) -> str:
+    parts = []
+    if extra := sorted(set(actual) - set(expected)):
+        parts.append("unexpected table " + ", ".join(extra))
+    if missing := sorted(set(expected) - set(actual)):
+        parts.append("missing table " + ", ".join(missing))
+    for table in sorted(set(expected) & set(actual)):
+        if extra := sorted(actual[table] - expected[table]):
+            parts.append(f"unexpected column {table}." + f", {table}.".join(extra))
+        if missing := sorted(expected[table] - actual[table]):
+            parts.append(f"missing column {table}." + f", {table}.".join(missing))
+    return "; ".join(parts)
 
 
 def downgrade(engine: Engine, revision: str) -> None:
