@@ -55,9 +55,15 @@ class RunInfo:
     measurements: list[str]
     images: dict[str, dict[str, object]]
     figures: dict[str, dict[str, object]] = field(default_factory=dict)
+    #: The analysis version shown (the current one unless another was asked for).
+    analysis: str = ""
+    #: Every version of the run, oldest first (``runlog.store.versions.Version.as_dict``).
+    analyses: list[dict[str, object]] = field(default_factory=list)
+    #: Every figure record of the shown version, newest first (only when asked for).
+    figure_history: list[dict[str, object]] | None = None
 
     def as_dict(self) -> dict[str, object]:
-        return {
+        out = {
             "run": self.run,
             "apparatus": self.apparatus,
             "sequence": self.sequence,
@@ -71,7 +77,12 @@ class RunInfo:
             "measurements": self.measurements,
             "images": self.images,
             "figures": self.figures,
+            "analysis": self.analysis,
+            "analyses": self.analyses,
         }
+        if self.figure_history is not None:
+            out["figure_history"] = self.figure_history
+        return out
 
 
 def _as_utc(value: dt.datetime | dt.date | str | None) -> dt.datetime | None:
@@ -190,6 +201,7 @@ class Catalogue:
                 s.Run.operator,
             )
             .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .where(s.Run.is_current)
             .order_by(s.Run.started.desc(), s.Run.id.desc())
         )
         if apparatus is not None:
@@ -210,7 +222,7 @@ class Catalogue:
 
     def apparatus_names(self) -> list[str]:
         """The apparatus that have runs, sorted by name."""
-        has_runs = select(s.Run.id).where(s.Run.apparatus_id == s.Apparatus.id).exists()
+        has_runs = select(s.Run.id).where(and_(s.Run.apparatus_id == s.Apparatus.id, s.Run.is_current)).exists()
         with self.engine.connect() as connection:
             return sorted(connection.execute(select(s.Apparatus.name).where(has_runs)).scalars())
 
@@ -220,7 +232,7 @@ class Catalogue:
         A run's lab day is the day it started on in the catalogue's lab time zone
         (:attr:`lab_timezone`). Raises :class:`NotFoundError` for an unknown apparatus.
         """
-        query = select(s.Run.day).where(s.Run.day.is_not(None)).distinct()
+        query = select(s.Run.day).where(and_(s.Run.day.is_not(None), s.Run.is_current)).distinct()
         with self.engine.connect() as connection:
             if apparatus is not None:
                 query = query.where(s.Run.apparatus_id == self._apparatus_id(connection, apparatus))
@@ -232,7 +244,7 @@ class Catalogue:
 
         Raises :class:`NotFoundError` for an unknown apparatus.
         """
-        query = select(s.Run.sequence).distinct()
+        query = select(s.Run.sequence).where(s.Run.is_current).distinct()
         with self.engine.connect() as connection:
             if apparatus is not None:
                 query = query.where(s.Run.apparatus_id == self._apparatus_id(connection, apparatus))
@@ -254,7 +266,7 @@ class Catalogue:
                 held = (
                     select(s.FigureRow.id)
                     .join(s.Run, s.Run.id == s.FigureRow.run_id)
-                    .where(and_(s.Run.apparatus_id == apparatus_id, s.FigureRow.name == bindparam("name")))
+                    .where(and_(s.Run.apparatus_id == apparatus_id, s.Run.is_current, s.FigureRow.name == bindparam("name")))
                     .exists()
                 )
                 names = [name for name in names if connection.execute(select(held), {"name": name}).scalar()]
@@ -268,7 +280,7 @@ class Catalogue:
         fits) has a row per unit; values in different units must not be pooled. Raises
         :class:`NotFoundError` for an unknown apparatus.
         """
-        query = select(s.FigureRow.name, s.FigureRow.unit, s.Run.sequence).join(s.Run, s.Run.id == s.FigureRow.run_id).distinct()
+        query = select(s.FigureRow.name, s.FigureRow.unit, s.Run.sequence).join(s.Run, s.Run.id == s.FigureRow.run_id).where(s.Run.is_current).distinct()
         with self.engine.connect() as connection:
             if apparatus is not None:
                 query = query.where(s.Run.apparatus_id == self._apparatus_id(connection, apparatus))
@@ -276,10 +288,14 @@ class Catalogue:
         # Sorted here, not in SQL: a PostgreSQL collation may order text differently.
         return _frame(sorted(tuple(row) for row in rows), ["name", "unit", "sequence"])
 
-    def run(self, key: str, *, apparatus: str | None = None) -> RunInfo:
-        """Everything stored about one run (parameters, measurements, images, figures)."""
+    def run(self, key: str, *, apparatus: str | None = None, analysis: str | None = None, history: bool = False) -> RunInfo:
+        """Everything stored about one run (parameters, measurements, images, figures) in
+        its current analysis version, or in version ``analysis``; with its versions, and
+        (``history=True``) every figure record of that version, newest first."""
+        from runlog.store.versions import versions
+
         with self.engine.connect() as connection:
-            found = self._find_run(connection, key, apparatus)
+            found = self._find_run(connection, key, apparatus, analysis)
             apparatus_name = connection.execute(select(s.Apparatus.name).where(s.Apparatus.id == found.apparatus_id)).scalar_one()
             parameters: dict[str, dict[str, object]] = {}
             for name, unit, kind, scanned, number, text_value, low, high in connection.execute(
@@ -322,7 +338,9 @@ class Catalogue:
                 entry["method"] = row.method
                 figures[row.name] = entry
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
-        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures)
+            listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
+            records = _figure_records(connection, found.id) if history else None
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records)
 
     def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
@@ -446,8 +464,8 @@ class Catalogue:
         with self.engine.connect() as connection:
             return {
                 "apparatus": connection.execute(select(func.count()).select_from(s.Apparatus)).scalar_one(),
-                "runs": connection.execute(select(func.count()).select_from(s.Run)).scalar_one(),
-                "shots": connection.execute(select(func.count()).select_from(s.Shot)).scalar_one(),
+                "runs": connection.execute(select(func.count()).select_from(s.Run).where(s.Run.is_current)).scalar_one(),
+                "shots": int(connection.execute(select(func.coalesce(func.sum(s.Run.shot_count), 0)).where(s.Run.is_current)).scalar_one()),
             }
 
     def site_counts(self, run: str, name: str = "fill", *, apparatus: str | None = None) -> tuple[np.ndarray, np.ndarray, tuple[int, ...]]:
@@ -465,8 +483,10 @@ class Catalogue:
         dims = tuple(int(n) for n in shape.split(",")) if shape else (len(successes),)
         return successes, trials, dims
 
-    def save_figures(self, run: str, kind: str, figures, *, apparatus: str | None = None) -> None:
-        """Store ``figures`` (``runlog.Figure``) for a run, replacing those of the same names."""
+    def save_figures(self, run: str, kind: str, figures, *, apparatus: str | None = None, options: dict[str, object] | None = None) -> list[int]:
+        """Record ``figures`` (``runlog.Figure``) for the run's current version, computed with
+        ``options``; they replace those of the same names in force (the old records stay).
+        Returns the new record ids."""
         from runlog.store.bulk import open_writer
         from runlog.store.figures import store_figures
 
@@ -476,12 +496,13 @@ class Catalogue:
             found = self._find_run(connection, run, apparatus)
         writer = open_writer(self.engine)
         try:
-            store_figures(writer, found.id, kind, list(figures))
+            records = store_figures(writer, found.id, kind, list(figures), options=options)
             if found.day is not None:
                 refresh_rollups(writer, [(found.apparatus_id, as_date(found.day), found.sequence)])
             writer.commit()
         finally:
             writer.close()
+        return records
 
     def derive(self, run: str, kind: str, **options) -> "runlog.derive.DeriveResult":
         """Compute and store the figures of ``kind`` for one run (see :func:`runlog.derive.derive`).
@@ -508,6 +529,153 @@ class Catalogue:
         if isinstance(rules, Mapping):
             rules, settings = rules.rules, rules.apparatus_settings
         return apply_rules(self, rules, runs, apparatus_settings=settings)
+
+    # --- analysis versions, withdrawals ---------------------------------------------
+
+    def analyses(self, run: str, *, apparatus: str | None = None) -> list[dict[str, object]]:
+        """Every analysis version of ``run``, oldest first: name, current, withdrawn, shots,
+        when it came and from which files."""
+        from runlog.store.versions import versions
+
+        with self.engine.connect() as connection:
+            found = self._any_version(connection, run, apparatus)
+            return [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
+
+    def use_analysis(self, run: str, analysis: str, *, apparatus: str | None = None) -> dict[str, object]:
+        """Make version ``analysis`` of ``run`` the current one; figures, rollups, drift,
+        selections and exports follow it (the rollups change in the same transaction)."""
+        from runlog.store.bulk import open_writer
+        from runlog.store.versions import use_version
+
+        with self.engine.connect() as connection:
+            found = self._any_version(connection, run, apparatus)
+        writer = open_writer(self.engine)
+        try:
+            before, now = use_version(writer, found.apparatus_id, found.key, analysis)
+            writer.commit()
+        finally:
+            writer.close()
+        return {"run": found.key, "before": before, "current": now}
+
+    def withdraw(self, *, file: str | Path | None = None, run: str | None = None, reason: str, apparatus: str | None = None, author: str | None = None) -> dict[str, object]:
+        """Take a file's run versions, or a whole run, out of the catalogue with a reason.
+
+        Withdrawn data leaves figures, rollups, drift, selections and exports; it is kept
+        (and listed by :meth:`withdrawals`) and :meth:`restore` brings it back exactly. A
+        file can be withdrawn when the run versions it wrote hold no other file's shots.
+        """
+        from runlog.store.bulk import open_writer
+        from runlog.store.versions import withdraw
+
+        if (file is None) == (run is None):
+            raise ValueError("withdraw needs a file or a run, not both")
+        if not reason or not reason.strip():
+            raise ValueError("a withdrawal needs a reason (--reason)")
+        with self.engine.connect() as connection:
+            if run is not None:
+                found = self._any_version(connection, run, apparatus)
+                ids = {int(r) for (r,) in connection.execute(select(s.Run.id).where(and_(s.Run.apparatus_id == found.apparatus_id, s.Run.key == found.key)))}
+                targets, name, sha = [(found.apparatus_id, found.key, ids)], found.key, None
+            else:
+                targets, name, sha = self._file_runs(connection, file)
+        writer = open_writer(self.engine)
+        try:
+            withdrawal = withdraw(writer, target="run" if run is not None else "file", name=name, runs=targets, reason=reason, author=author or _user(), sha256=sha)
+            writer.commit()
+        finally:
+            writer.close()
+        return next(w for w in self.withdrawals() if w["id"] == withdrawal)
+
+    def restore(self, *, file: str | Path | None = None, run: str | None = None, apparatus: str | None = None, author: str | None = None) -> list[dict[str, object]]:
+        """Undo the withdrawals of a file, or every withdrawal touching a run; returns them."""
+        from runlog.store.bulk import open_writer
+        from runlog.store.versions import restore
+
+        if (file is None) == (run is None):
+            raise ValueError("restore needs a file or a run, not both")
+        with self.engine.connect() as connection:
+            open_ones = connection.execute(select(*s.Withdrawal.__table__.columns).where(s.Withdrawal.restored_at.is_(None)).order_by(s.Withdrawal.id.desc())).all()
+            if run is not None:
+                found = self._any_version(connection, run, apparatus)
+                ids = {int(r) for (r,) in connection.execute(select(s.Run.id).where(and_(s.Run.apparatus_id == found.apparatus_id, s.Run.key == found.key)))}
+                chosen = [w.id for w in open_ones if ids & {int(i) for i in w.runs.split(",") if i}]
+                label = f"run '{run}'"
+            else:
+                sha = _sha_of(file)
+                chosen = [w.id for w in open_ones if w.target == "file" and (w.name in _file_names(file) or (sha is not None and w.sha256 == sha))]
+                label = f"file {file}"
+        if not chosen:
+            raise NotFoundError("withdrawal of", label, "nothing of it is withdrawn")
+        writer = open_writer(self.engine)
+        try:
+            for withdrawal in chosen:
+                restore(writer, withdrawal, author or _user())
+            writer.commit()
+        finally:
+            writer.close()
+        return [w for w in self.withdrawals() if w["id"] in chosen]
+
+    def withdrawals(self) -> list[dict[str, object]]:
+        """Every withdrawal, newest first: what, why, who, when, and when it was restored."""
+        from runlog.store.versions import withdrawals
+
+        with self.engine.connect() as connection:
+            return withdrawals(_rows_of(connection))
+
+    def figure_history(self, run: str, *, apparatus: str | None = None, analysis: str | None = None) -> list[dict[str, object]]:
+        """Every figure record of the run's current version (or of ``analysis``), newest
+        first, with kind, model, options, analysis version, runlog version and time."""
+        with self.engine.connect() as connection:
+            found = self._find_run(connection, run, apparatus, analysis)
+            return _figure_records(connection, found.id)
+
+    def impact(self, run: str, *, apparatus: str | None = None, from_analysis: str | None = None, to_analysis: str | None = None) -> list[dict[str, object]]:
+        """What moved between two analysis versions of ``run`` (default: the current one and
+        the one before; with one version, its figure records in force and the ones before):
+        per figure, old and new value ± stderr, the difference in combined standard errors,
+        the drift point it moves and the pins holding the old version (``runlog.impact``)."""
+        from runlog.impact import impact
+
+        with self.engine.connect() as connection:
+            found = self._any_version(connection, run, apparatus)
+            return impact(_rows_of(connection), found.apparatus_id, found.key, from_analysis, to_analysis)
+
+    def _any_version(self, connection, key: str, apparatus: str | None):
+        """The run's current version, else (a withdrawn run) its newest version."""
+        try:
+            return self._find_run(connection, key, apparatus)
+        except NotFoundError:
+            query = select(*s.Run.__table__.columns).where(s.Run.key == key).order_by(s.Run.id.desc())
+            if apparatus is not None:
+                query = query.join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id).where(s.Apparatus.name == apparatus)
+            found = connection.execute(query).first()
+            if found is None:
+                raise
+            return found
+
+    def _file_runs(self, connection, file: str | Path):
+        """The run versions an ingested file wrote: ([(apparatus id, key, {run ids})], name, sha)."""
+        sha = _sha_of(file)
+        log = s.IngestLogEntry
+        entries = connection.execute(
+            select(log.id, log.file, log.sha256).where(and_(log.status == "ingested", (log.file.in_(_file_names(file))) | (log.sha256 == (sha or "")))).order_by(log.id)
+        ).all()
+        if not entries:
+            raise NotFoundError("ingested file", str(file), "the ingest log has no such file (runlog log lists them)")
+        ingest_ids = {int(e.id) for e in entries}
+        rows = connection.execute(
+            select(s.Run.id, s.Run.apparatus_id, s.Run.key, s.Run.analysis).join(s.RunFile, s.RunFile.run_id == s.Run.id).where(s.RunFile.ingest_id.in_(ingest_ids))
+        ).all()
+        targets: dict[tuple[int, str], set[int]] = {}
+        for run_id, apparatus_id, key, analysis in rows:
+            others = connection.execute(select(s.RunFile.ingest_id).where(and_(s.RunFile.run_id == run_id, s.RunFile.ingest_id.not_in(ingest_ids)))).first()
+            if others is not None:
+                raise StoreError(
+                    f"run '{key}' (analysis '{analysis}') also holds shots of other files: a file can be withdrawn when the run "
+                    f"versions it wrote came from it alone; withdraw the run instead (--run {key})"
+                )
+            targets.setdefault((int(apparatus_id), key), set()).add(int(run_id))
+        return [(a, k, ids) for (a, k), ids in sorted(targets.items())], str(entries[-1].file), sha or entries[-1].sha256
 
     # --- selections and exports ---------------------------------------------------
 
@@ -620,6 +788,7 @@ class Catalogue:
             select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method)
             .join(s.Run, s.Run.id == s.FigureRow.run_id)
             .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .where(s.Run.is_current)
             .order_by(s.Run.started, s.Run.id, s.FigureRow.name)
         )
         if apparatus is not None:
@@ -661,6 +830,7 @@ class Catalogue:
         )
         if apparatus is not None:
             query = query.join(s.Run, s.Run.id == rp.run_id).join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id).where(s.Apparatus.name == apparatus)
+        query = query.where(rp.run_id.in_(select(s.Run.id).where(s.Run.is_current)))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
         return _frame(rows, ["name", "unit", "kind", "min", "max", "runs"])
@@ -746,13 +916,20 @@ class Catalogue:
 
     # --- helpers -------------------------------------------------------------------
 
-    def _find_run(self, connection, key: str, apparatus: str | None):
+    def _find_run(self, connection, key: str, apparatus: str | None, analysis: str | None = None):
+        """The run's current version, or its version ``analysis`` when named."""
         query = select(*s.Run.__table__.columns).where(s.Run.key == key)
         if apparatus is not None:
             query = query.join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id).where(s.Apparatus.name == apparatus)
-        found = connection.execute(query).all()
+        versions = connection.execute(query).all()
+        found = [v for v in versions if (v.is_current if analysis is None else v.analysis == analysis)]
         if not found:
-            raise NotFoundError("run", key, self._suggest(connection, s.Run.key, key))
+            if not versions:
+                raise NotFoundError("run", key, self._suggest(connection, s.Run.key, key))
+            if analysis is not None:
+                known = ", ".join(repr(v.analysis) for v in sorted(versions, key=lambda v: v.id))
+                raise NotFoundError("analysis version", analysis, f"run '{key}' has {known}")
+            raise NotFoundError("current version of run", key, f"the run is withdrawn: 'runlog restore --run {key}' brings it back")
         if len(found) > 1:
             raise NotFoundError("single run", key, "several apparatus have a run of that name: give --apparatus")
         return found[0]
@@ -772,6 +949,45 @@ class Catalogue:
         return f"did you mean {', '.join(repr(c) for c in close)}?" if close else ""
 
 
+def _rows_of(connection):
+    """``rows(sql, params)`` on a connection, as the store's version functions take it."""
+
+    def rows(sql: str, params: dict | None = None) -> list[tuple]:
+        return [tuple(row) for row in connection.execute(text(sql), params or {})]
+
+    return rows
+
+
+def _figure_records(connection, run_id: int) -> list[dict[str, object]]:
+    """Every figure record of a run version, newest first, with what it was made with."""
+    import json
+
+    fr = s.FigureRecord
+    in_force = {int(r) for (r,) in connection.execute(select(s.FigureRow.record_id).where(s.FigureRow.run_id == run_id)) if r is not None}
+    out = []
+    for row in connection.execute(select(*fr.__table__.columns).where(fr.run_id == run_id).order_by(fr.id.desc())):
+        entry: dict[str, object] = {"record": int(row.id), "figure": row.name, "kind": row.kind, "value": row.value, "unit": row.unit}
+        if row.stderr is not None:
+            entry["stderr"] = row.stderr
+        if row.ci_low is not None:
+            entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
+        entry.update(
+            {
+                "method": row.method,
+                "method_version": row.method_version,
+                "model": row.model,
+                "options": json.loads(row.options) if row.options else {},
+                "analysis": row.analysis,
+                "shots": row.shots,
+                "runlog_version": row.runlog_version,
+                "computed_at": row.computed_at.isoformat(),
+                "in_force": int(row.id) in in_force,
+            }
+        )
+        out.append(entry)
+    return out
+
+
 def _frame(rows, columns: list[str], **options) -> "pd.DataFrame":
     """A DataFrame of result rows, built from plain tuples.
 
@@ -782,6 +998,20 @@ def _frame(rows, columns: list[str], **options) -> "pd.DataFrame":
     import pandas as pd
 
     return pd.DataFrame([tuple(row) for row in rows], columns=columns, **options)
+
+
+def _file_names(file: str | Path) -> list[str]:
+    """The ways the ingest log may name a file: as given, and its absolute path."""
+    return sorted({str(file), str(Path(file).absolute())})
+
+
+def _sha_of(file: str | Path) -> str | None:
+    path = Path(file)
+    if not path.is_file():
+        return None
+    from runlog.ingest import file_sha256
+
+    return file_sha256(path)[0]
 
 
 def _as_day(value: dt.date | str | None) -> dt.date | None:

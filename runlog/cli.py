@@ -202,16 +202,21 @@ def _date_option(value: str | None, option: str) -> dt.datetime | None:
 @cli.command()
 @click.argument("run")
 @click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@click.option("--analysis", default=None, metavar="VERSION", help="Show this analysis version (default: the current one).")
+@click.option("--history", is_flag=True, help="Also every figure record of the version, newest first.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def show(state: _State, run: str, apparatus: str | None, as_json: bool) -> None:
+def show(state: _State, run: str, apparatus: str | None, analysis: str | None, history: bool, as_json: bool) -> None:
     """Show one run: parameters, measurements, images and figures."""
     with _open(state) as catalogue:
-        info = catalogue.run(run, apparatus=apparatus)
+        info = catalogue.run(run, apparatus=apparatus, analysis=analysis, history=history)
     if as_json:
         _json(info.as_dict())
         return
     _wrapped(f"run {info.run}  ({info.apparatus}, {info.sequence})", indent="")
+    if len(info.analyses) > 1 or info.analysis:
+        listed = ", ".join(f"'{a['analysis']}'" + (" (current)" if a["current"] else " (withdrawn)" if a["withdrawn"] else "") for a in info.analyses)
+        _wrapped(f"analysis '{info.analysis}'; versions: {listed}")
     _wrapped(f"{info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
     if info.notes:
         _wrapped(f"notes: {info.notes}")
@@ -238,6 +243,93 @@ def show(state: _State, run: str, apparatus: str | None, as_json: bool) -> None:
         click.echo("figures")
         for name, figure in info.figures.items():
             click.echo("  " + _figure_line(name, figure))
+    if info.figure_history is not None:
+        click.echo("figure records, newest first")
+        for record in info.figure_history:
+            options = ", ".join(f"{k}={v}" for k, v in record["options"].items())
+            mark = "*" if record["in_force"] else " "
+            click.echo(f" {mark}{_figure_line(record['figure'], record)}  {record['computed_at'][:19]}" + (f"  [{options}]" if options else ""))
+
+
+@cli.command("use-analysis")
+@click.argument("run")
+@click.argument("version")
+@click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@_common
+def use_analysis(state: _State, run: str, version: str, apparatus: str | None) -> None:
+    """Make analysis VERSION of RUN the current one ('' is the unnamed version)."""
+    with _open(state) as catalogue:
+        switched = catalogue.use_analysis(run, version, apparatus=apparatus)
+    click.echo(f"run {switched['run']}: analysis '{switched['current']}' is current (was '{switched['before']}')")
+
+
+@cli.command()
+@click.argument("run")
+@click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@click.option("--from", "from_analysis", default=None, metavar="VERSION", help="The old version (default: the one before --to).")
+@click.option("--to", "to_analysis", default=None, metavar="VERSION", help="The new version (default: the current one).")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def impact(state: _State, run: str, apparatus: str | None, from_analysis: str | None, to_analysis: str | None, as_json: bool) -> None:
+    """What a new analysis version of RUN moved: old and new figures, in combined errors."""
+    with _open(state) as catalogue:
+        report = catalogue.impact(run, apparatus=apparatus, from_analysis=from_analysis, to_analysis=to_analysis)
+    if as_json:
+        _json(report)
+        return
+    for entry in report:
+        old, new = entry["old"], entry["new"]
+
+        def side(value: dict[str, Any] | None) -> str:
+            if value is None:
+                return "-"
+            error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
+            return f"{value['value']:.5g}{error} ('{value['analysis']}')"
+
+        moved = f"{entry['sigma']:+.2f} sigma" if entry["sigma"] is not None else ""
+        click.echo(f"{entry['figure']:<20} {side(old):>30} -> {side(new):<30} {moved}")
+        if entry["pins"]:
+            _wrapped(f"pins holding the old version: {', '.join(entry['pins'])}")
+
+
+@cli.command()
+@click.option("--file", "file", type=click.Path(path_type=Path, dir_okay=False), default=None, help="An ingested file whose run versions go out.")
+@click.option("--run", default=None, help="A run, every analysis version of it.")
+@click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@click.option("--reason", required=True, help="Why (kept with the withdrawal).")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def withdraw(state: _State, file: Path | None, run: str | None, apparatus: str | None, reason: str, as_json: bool) -> None:
+    """Take a file's shots or a run out of figures, rollups, drift and exports (kept, restorable)."""
+    if (file is None) == (run is None):
+        raise click.UsageError("give --file PATH or --run RUN")
+    with _open(state) as catalogue:
+        done = catalogue.withdraw(file=file, run=run, apparatus=apparatus, reason=reason)
+    if as_json:
+        _json(done)
+        return
+    versions = ", ".join(f"{r['run']} '{r['analysis']}'" for r in done["runs"])
+    click.echo(f"withdrawn ({done['id']}): {versions}")
+
+
+@cli.command()
+@click.option("--file", "file", type=click.Path(path_type=Path, dir_okay=False), default=None, help="A withdrawn file.")
+@click.option("--run", default=None, help="A run with withdrawn versions.")
+@click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def restore(state: _State, file: Path | None, run: str | None, apparatus: str | None, as_json: bool) -> None:
+    """Bring back what ``withdraw`` took out, exactly as it was."""
+    if (file is None) == (run is None):
+        raise click.UsageError("give --file PATH or --run RUN")
+    with _open(state) as catalogue:
+        done = catalogue.restore(file=file, run=run, apparatus=apparatus)
+    if as_json:
+        _json(done)
+        return
+    for withdrawal in done:
+        versions = ", ".join(f"{r['run']} '{r['analysis']}'" for r in withdrawal["runs"])
+        click.echo(f"restored ({withdrawal['id']}): {versions}")
 
 
 def _wrapped(text: str, indent: str = "  ") -> None:

@@ -24,6 +24,7 @@ from runlog.units import check_unit
 
 __all__ = [
     "CONTRACT_VERSION",
+    "ANALYSIS_METADATA_KEY",
     "RESERVED",
     "OPTIONAL",
     "Column",
@@ -35,12 +36,16 @@ __all__ = [
     "FROM_COUNTS",
 ]
 
-CONTRACT_VERSION = 1
+#: 2 added the optional ``analysis`` (a column, or the file's key-value metadata): files of
+#: version 1 are version-2 files of the unnamed analysis.
+CONTRACT_VERSION = 2
+#: The Parquet key-value metadata key that names a whole file's analysis version.
+ANALYSIS_METADATA_KEY = "analysis"
 RESERVED = ("run", "apparatus", "sequence", "shot", "time")
-OPTIONAL = ("operator", "notes", "tags", "status")
+OPTIONAL = ("operator", "notes", "tags", "status", "analysis")
 
 #: Longest text the catalogue keeps for each named thing (the schema's column sizes).
-MAX_LENGTH = {"run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "tags": 2000, "status": 40, "name": 200, "unit": 60}
+MAX_LENGTH = {"analysis": 200, "run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "tags": 2000, "status": 40, "name": 200, "unit": 60}
 
 _NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
 _IMAGE = re.compile(r"^occ\.(?P<name>[^\[\]]+)$")
@@ -87,6 +92,8 @@ class Layout:
     def sources(self) -> list[str]:
         """The file's columns to read, each once (a counts column also feeds its image)."""
         return list(dict.fromkeys(column.source for column in self.columns))
+    #: The analysis version the file's key-value metadata names (a column overrides it).
+    analysis: str | None = None
 
     def by_role(self, role: str) -> list[Column]:
         return [column for column in self.columns if column.role == role]
@@ -123,6 +130,7 @@ class Batch:
     occupancy: dict[str, pa.ListArray]
     #: ``counts.<image>`` lists as read (checked: no empty sites, finite numbers).
     counts: dict[str, pa.ListArray] = field(default_factory=dict)
+    analysis: np.ndarray | None = None
 
     def nbytes(self) -> int:
         """Memory held by the batch (object arrays counted by their pointers only)."""
@@ -242,7 +250,13 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         loading = images[0]
     if survival is None and len(images) == 2:
         survival = images[-1]
-    return Layout(file, tuple(columns), loading, survival, mapping.apparatus, dict(mapping.thresholds))
+    analysis = None
+    raw = (schema.metadata or {}).get(ANALYSIS_METADATA_KEY.encode())
+    if raw is not None:
+        analysis = raw.decode("utf-8", errors="replace").strip()
+        if len(analysis) > MAX_LENGTH["analysis"]:
+            raise ContractError(file, f"analysis name in the file's metadata is longer than {MAX_LENGTH['analysis']} characters")
+    return Layout(file, tuple(columns), loading, survival, mapping.apparatus, thresholds=dict(mapping.thresholds), analysis=analysis)
 
 
 def _first(mask: np.ndarray) -> int:
@@ -423,6 +437,7 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
         operator=optional("operator"),
         notes=optional("notes"),
         tags=optional("tags"),
+        analysis=optional("analysis"),
         parameters=parameters,
         measurements=measurements,
         occupancy=occupancy,

@@ -286,7 +286,8 @@ def derive(
         if not (figure.method and figure.method_version):
             raise ValueError(f"figure '{figure.name}' of kind {kind} has no method or method version")
     if store:
-        catalogue.save_figures(info.run, kind, figures, apparatus=info.apparatus)
+        recorded = {"x": x, "y": y, "envelope": envelope if kind == "coherence" else None, "target": target, "image": image, "interval": interval}
+        catalogue.save_figures(info.run, kind, figures, apparatus=info.apparatus, options=recorded)
     return DeriveResult(info.run, kind, figures, info.apparatus)
 
 

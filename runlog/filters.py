@@ -505,17 +505,16 @@ class CompiledFilter:
     parameters: frozenset[int] = field(default=frozenset(), compare=False)
 
     def run_ids(self):
-        """The ids of the runs that may hold matching shots, as a subquery."""
-        query = select(_runs.c.id)
+        """The ids of the runs that may hold matching shots, as a subquery: current
+        analysis versions only (older versions and withdrawn runs are never selected)."""
+        query = select(_runs.c.id).where(_runs.c.is_current)
         return query.where(self.runs) if self.runs is not None else query
 
     @property
     def condition(self) -> ColumnElement[bool]:
         """The exact condition on ``shots``, with the run pruning in front."""
-        in_runs = _shots.c.run_id.in_(self.run_ids()) if self.runs is not None else None
-        if self.shots is None:
-            return in_runs if in_runs is not None else true()
-        return and_(in_runs, self.shots) if in_runs is not None else self.shots
+        in_runs = _shots.c.run_id.in_(self.run_ids())
+        return in_runs if self.shots is None else and_(in_runs, self.shots)
 
 
 def _in_runs(condition: ColumnElement[bool]) -> ColumnElement[bool]:

@@ -90,6 +90,8 @@ class _Run:
     rows: list[np.ndarray] = field(default_factory=list)
     operator: str | None = None
     notes: str | None = None
+    # The analysis version the file gives the run's shots ('' = the unnamed one).
+    analysis: str | None = None
     tags: set[str] = field(default_factory=set)
     parameters: dict[str, _Parameter] = field(default_factory=dict)
     image_sites: dict[str, int] = field(default_factory=dict)
@@ -242,6 +244,8 @@ class _Plan:
                     present = [v for v in values[rows] if v]
                     if present:
                         setattr(run, attribute, str(present[0]))
+            if batch.analysis is not None:
+                self._add_analysis(run, batch, rows)
             if batch.tags is not None:
                 for value in set(batch.tags[rows]) - {None}:
                     tags = {t.strip() for t in str(value).split(",") if t.strip()}
@@ -312,6 +316,17 @@ class _Plan:
                         row=run.first_row,
                     ) from None
 
+    def _add_analysis(self, run: _Run, batch: Batch, rows: np.ndarray) -> None:
+        """A run's shots in one file come from one analysis version."""
+        values = batch.analysis[rows]
+        names = [v.strip() if v else "" for v in values]
+        first = run.analysis if run.analysis is not None else names[0]
+        for position, name in enumerate(names):
+            if name != first:
+                row = batch.first_row + int(rows[position])
+                raise ContractError(str(self.path), f"run '{run.key}' changes analysis from '{first}' to '{name}': a file gives each run's shots one analysis version", column=self.layout.source("analysis"), row=row)
+        run.analysis = first
+
     @staticmethod
     def _add_parameter(run: _Run, name: str, kind: str, unit: str, values: np.ndarray) -> None:
         stats = run.parameters.setdefault(name, _Parameter(kind, unit))
@@ -355,6 +370,8 @@ class _Plan:
         if first_bad is not None:
             raise ContractError(file, first_bad[1], column=shot_source, row=first_bad[0])
         for run in self.runs:
+            if run.analysis is None:
+                run.analysis = self.layout.analysis or ""
             for stats in run.parameters.values():
                 if stats.present < run.shot_count:
                     stats.constant = False
@@ -453,10 +470,14 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
     new_measurements: list[dict[str, object]] = []
     for run in plan.runs:
         apparatus_id = ids.apparatus_id(run.apparatus)
-        found = writer.rows(
-            "SELECT id, sequence, shot_count, started, day FROM runs WHERE apparatus_id = :a AND key = :k",
+        versions = writer.rows(
+            "SELECT id, sequence, shot_count, started, day, analysis, is_current, withdrawn, operator, notes FROM runs WHERE apparatus_id = :a AND key = :k",
             {"a": apparatus_id, "k": run.key},
         )
+        # The file lands in its analysis version of the run: extending it, or as a new one.
+        found = [v[:5] for v in versions if v[5] == run.analysis]
+        if found and versions[[v[5] for v in versions].index(run.analysis)][7]:
+            raise ContractError(file, f"analysis version '{run.analysis}' of run '{run.key}' is withdrawn: restore it before adding shots to it", column=layout.source("analysis"), row=run.first_row)
         started, finished = _utc(run.started_us), _utc(run.finished_us)
         run.apparatus_id = apparatus_id
         if found:
@@ -485,12 +506,22 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                     raise ContractError(file, f"occupancy list has {sites} sites, stored shots of run '{run.key}' have {int(stored_sites)}", column=f"occ.{name}", row=run.first_row)
         else:
             run.day = lab_day(started, zone)
+            # A new analysis version becomes the run's current one; the version it replaces
+            # keeps its shots and figures, and its rollup group is refreshed without it.
+            for version_id, sequence, _, _, stored_day, _, is_current, _, operator, notes in versions:
+                if sequence != run.sequence:
+                    raise ContractError(file, f"run '{run.key}' is stored with sequence '{sequence}', this file says '{run.sequence}'", column=layout.source("sequence"), row=run.first_row)
+                if is_current:
+                    run.groups.add((apparatus_id, as_date(stored_day), sequence) if stored_day is not None else None)
+                    run.operator = run.operator or operator
+                    run.notes = run.notes or notes
+                    writer.execute("UPDATE runs SET is_current = :no WHERE id = :r", {"no": False, "r": version_id})
             writer.execute(
-                "INSERT INTO runs (apparatus_id, key, sequence, started, finished, day, shot_count, operator, notes) "
-                "VALUES (:a, :k, :q, :s, :f, :d, :n, :o, :t)",
-                {"a": apparatus_id, "k": run.key, "q": run.sequence, "s": started, "f": finished, "d": run.day, "n": run.shot_count, "o": run.operator, "t": run.notes},
+                "INSERT INTO runs (apparatus_id, key, analysis, is_current, withdrawn, sequence, started, finished, day, shot_count, operator, notes) "
+                "VALUES (:a, :k, :v, :yes, :no, :q, :s, :f, :d, :n, :o, :t)",
+                {"a": apparatus_id, "k": run.key, "v": run.analysis, "yes": True, "no": False, "q": run.sequence, "s": started, "f": finished, "d": run.day, "n": run.shot_count, "o": run.operator, "t": run.notes},
             )
-            run.run_id = int(_one(writer, "SELECT id FROM runs WHERE apparatus_id = :a AND key = :k", {"a": apparatus_id, "k": run.key}))
+            run.run_id = int(_one(writer, "SELECT id FROM runs WHERE apparatus_id = :a AND key = :k AND analysis = :v", {"a": apparatus_id, "k": run.key, "v": run.analysis}))
             for name, stats in run.parameters.items():
                 if stats.present == 0:
                     continue
@@ -533,6 +564,7 @@ _RUN_PARAMETER_SCHEMA = pa.schema(
     [("run_id", pa.int64()), ("parameter_id", pa.int64()), ("scanned", pa.bool_()), ("number_value", pa.float64()),
      ("text_value", pa.string()), ("minimum", pa.float64()), ("maximum", pa.float64())]
 )
+_RUN_FILE_SCHEMA = pa.schema([("run_id", pa.int64()), ("ingest_id", pa.int64()), ("shots", pa.int64()), ("first_shot_id", pa.int64()), ("last_shot_id", pa.int64())])
 _RUN_MEASUREMENT_SCHEMA = pa.schema([("run_id", pa.int64()), ("measurement_id", pa.int64()), ("shots", pa.int64())])
 
 
@@ -651,7 +683,8 @@ def _pack(array: pa.ListArray) -> pa.Array:
     return merged.take(pa.array(np.argsort(np.concatenate(positions), kind="stable")))
 
 
-def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]], plan: _Plan, ids: _Catalogue, progress: Progress | None) -> int:
+def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]], plan: _Plan, ids: _Catalogue, progress: Progress | None) -> tuple[int, int]:
+    """Append the file's shots; returns (shots written, id of the file's first shot)."""
     layout = plan.layout
     next_id = _one(writer, "SELECT MAX(id) FROM shots", {})
     base = 1 if next_id is None else int(next_id) + 1
@@ -703,7 +736,17 @@ def _write_shots(writer: Writer, path: Path, batches: Iterable[tuple[int, Batch]
         written += batch.length
         if progress is not None:
             progress(str(path), written, plan.rows)
-    return written
+    return written, base
+
+
+def _record_files(writer: Writer, plan: _Plan, log_id: int, first_id: int) -> None:
+    """Which shot ids of this file went into which run version (the file's shots have
+    consecutive ids in row order, so each run's are the ids of its rows)."""
+    rows = [
+        {"run_id": run.run_id, "ingest_id": log_id, "shots": run.shot_count, "first_shot_id": first_id + int(run.rows[0].min()), "last_shot_id": first_id + int(run.rows[0].max())}
+        for run in plan.runs
+    ]
+    _append_rows(writer, "run_files", rows, _RUN_FILE_SCHEMA)
 
 
 def _store_photon_counts(writer: Writer, plan: _Plan) -> None:
@@ -792,7 +835,7 @@ def _store_counting_figures(writer: Writer, plan: _Plan, interval: str) -> None:
                 figures.append(replace(proportion_figure("survival", total, tries, interval), successes=total, trials=tries))
                 figures.append(replace(proportion_figure("loss", tries - total, tries, interval), successes=tries - total, trials=tries))
         if figures:
-            store_figures(writer, run.run_id, "counting", figures)
+            store_figures(writer, run.run_id, "counting", figures, options={"interval": interval})
 
 
 def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_shot, ids) -> None:
@@ -859,7 +902,8 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
     writer.append("shot_measurements", pa.table(table))
 
 
-def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float, writer: Writer | None = None) -> None:
+def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float, writer: Writer | None = None) -> int | None:
+    """Write the ingest-log entry (inside the writer's transaction when given; its id then)."""
     row = {
         "file": result.file,
         "sha256": sha,
@@ -875,10 +919,10 @@ def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.
     }
     if writer is not None:
         columns = ", ".join(row)
-        writer.execute(f"INSERT INTO ingest_log ({columns}) VALUES ({', '.join(':' + c for c in row)})", row)
-        return
+        return int(writer.rows(f"INSERT INTO ingest_log ({columns}) VALUES ({', '.join(':' + c for c in row)}) RETURNING id", row)[0][0])
     with engine.begin() as connection:
         connection.execute(insert(IngestLogEntry), row)
+    return None
 
 
 def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress | None = None, after_write: Callable | None = None) -> IngestResult:
@@ -926,7 +970,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             ids = _Catalogue(writer, name)
             _write_runs(writer, plan, ids)
             batches = kept if kept is not None else _batches(path, parquet, layout)
-            shots = _write_shots(writer, path, batches, plan, ids, progress)
+            shots, first_id = _write_shots(writer, path, batches, plan, ids, progress)
             _store_photon_counts(writer, plan)
             _store_counting_figures(writer, plan, mapping.interval)
             refresh_rollups(writer, _rollup_groups(plan))
@@ -935,7 +979,8 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             write_s = time.perf_counter() - tick
             result = IngestResult(name, "ingested", tuple(r.key for r in plan.runs), shots)
             _unchanged_since(path, before)
-            _log(engine, result, sha, size, started, read_s, write_s, writer)
+            log_id = _log(engine, result, sha, size, started, read_s, write_s, writer)
+            _record_files(writer, plan, int(log_id), first_id)
             if os.environ.get("RUNLOG_TEST_PAUSE_BEFORE_COMMIT"):
                 # Lets the crash test kill the process with the transaction still open.
                 time.sleep(float(os.environ["RUNLOG_TEST_PAUSE_BEFORE_COMMIT"]))

@@ -169,25 +169,19 @@ def _snapshot(engine) -> dict[str, list[tuple]]:
     return out
 
 
-class _Revision0003Writer(bulk._PostgresWriter):
-    partitioned = False
-
-    def __init__(self, engine, months=()):
-        super().__init__(engine)  # no month partitions at 0003
-
-
-def test_upgrade_from_0003_keeps_every_row_and_value(pg_url, tmp_path, monkeypatch):
+def test_upgrade_from_0003_keeps_every_row_and_value(pg_url, tmp_path):
     engine = make_engine(pg_url)
-    migrate.upgrade(engine, "0003")
+    migrate.upgrade(engine)
     files = [
         write_table(tmp_path / "jan.parquet", shot_table({"r1": 40, "r2": 30}, start=dt.datetime(2026, 1, 31, 23, 58, tzinfo=UTC), seed=5)),
         # Continues r1 in April with a changed depth (back-fill) and a second measurement.
         write_table(tmp_path / "apr.parquet", shot_table({"r1": 20}, first_shot=40, start=dt.datetime(2026, 4, 1, tzinfo=UTC), seed=6, extra={"p.depth[uK]": np.full(20, 80.0), "m.fluorescence": np.arange(20.0)})),
     ]
-    # The ingest of revision 0003 is today's ingest writing the unpartitioned layout.
-    monkeypatch.setattr(runlog.ingest, "open_writer", _Revision0003Writer)
+    # A catalogue of revision 0003: today's ingest (which writes analysis versions, 0008),
+    # then down to the unpartitioned layout of 0003.
     assert [r.status for r in runlog.ingest.ingest_files(engine, files)] == ["ingested", "ingested"]
-    monkeypatch.undo()
+    migrate.downgrade(engine, "0003")
+    assert not _rows(engine, "SELECT 1 FROM pg_partitioned_table")
     before = _snapshot(engine)
     # Per-shot parameters: 'wait' of all 90 shots, and 'depth' of r1's 60 once April's
     # shots changed it (40 back-filled, 20 new).

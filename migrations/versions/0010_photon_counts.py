@@ -5,7 +5,7 @@ them, with the threshold ingest used when it derived the image's occupancy from 
 that the detection figures can be computed from the count histogram of a run.
 
 Revision ID: 0010
-Revises: 0004
+Revises: 0008
 Create Date: 2026-12-02
 """
 from typing import Sequence, Union
@@ -14,7 +14,7 @@ from alembic import op
 import sqlalchemy as sa
 
 revision: str = '0010'
-down_revision: Union[str, None] = '0004'
+down_revision: Union[str, None] = '0008'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 

@@ -24,7 +24,7 @@ __all__ = ["what_else_changed"]
 
 
 def _run_ids(connection: Connection, apparatus_id: int, first: dt.date, last: dt.date) -> list[int]:
-    return [r for (r,) in connection.execute(select(s.Run.id).where(and_(s.Run.apparatus_id == apparatus_id, s.Run.day >= first, s.Run.day <= last)))]
+    return [r for (r,) in connection.execute(select(s.Run.id).where(and_(s.Run.apparatus_id == apparatus_id, s.Run.day >= first, s.Run.day <= last, s.Run.is_current)))]
 
 
 def _parameters(connection: Connection, runs: list[int]) -> dict[str, list[float]]:

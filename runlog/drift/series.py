@@ -197,7 +197,7 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
     query = (
         select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.unit)
         .join(r, r.id == f.run_id)
-        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity))
+        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current))
         .order_by(r.day)
     )
     for name, (low, high) in parameters.items():

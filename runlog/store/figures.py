@@ -2,45 +2,93 @@
 
 One function per table, on the same :class:`~runlog.store.bulk.Writer` that ingest uses,
 so figures computed at ingest go in with the shots, in the same transaction.
+
+Every figure stored is first written as an immutable record (``figure_records``: kind,
+model, options, the analysis version and shot count of the run version it used, runlog's
+version, when); the run version's ``figures`` row of that name is then replaced by a copy
+of the record, so the newest record is the one in force and readers need no history.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Iterable
+import json
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
 from runlog.figures.base import Figure
 from runlog.store.bulk import Writer
 
-__all__ = ["store_figures", "read_site_counts", "store_site_counts"]
+__all__ = ["store_figures", "read_site_counts", "store_site_counts", "options_text"]
+
+_COLUMNS = (
+    "run_id", "name", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version",
+    "successes", "trials", "model", "options", "analysis", "runlog_version", "computed_at",
+)
 
 
-def store_figures(writer: Writer, run_id: int, kind: str, figures: Iterable[Figure], computed_at: dt.datetime | None = None) -> None:
-    """Replace the run's figures of the same names with ``figures``."""
+def options_text(options: Mapping[str, object] | None) -> str:
+    """The options of a computation as canonical JSON (sorted keys, no None values)."""
+    kept = {key: (list(value) if isinstance(value, (tuple, list, np.ndarray)) else value) for key, value in (options or {}).items() if value is not None}
+    return json.dumps(kept, sort_keys=True, default=str)
+
+
+def store_figures(
+    writer: Writer,
+    run_id: int,
+    kind: str,
+    figures: Iterable[Figure],
+    computed_at: dt.datetime | None = None,
+    *,
+    options: Mapping[str, object] | None = None,
+) -> list[int]:
+    """Record ``figures`` for the run version ``run_id`` and put them in force; returns the
+    record ids. ``options`` are those the kind was computed with (a figure's own
+    ``options``, when it carries them, are merged over these)."""
+    from runlog import __version__
+
     computed_at = computed_at or dt.datetime.now(dt.timezone.utc)
+    found = writer.rows("SELECT analysis, shot_count FROM runs WHERE id = :r", {"r": run_id})
+    analysis, shots = (found[0][0], int(found[0][1] or 0)) if found else ("", None)
+    records = []
     for figure in figures:
-        writer.execute("DELETE FROM figures WHERE run_id = :r AND name = :n", {"r": run_id, "n": figure.name})
-        writer.execute(
-            "INSERT INTO figures (run_id, name, kind, value, stderr, ci_low, ci_high, unit, method, method_version, computed_at, successes, trials) "
-            "VALUES (:r, :n, :k, :v, :se, :lo, :hi, :u, :m, :mv, :at, :s, :t)",
-            {
-                "r": run_id,
-                "n": figure.name,
-                "k": kind,
-                "v": float(figure.value),
-                "se": None if figure.stderr is None else float(figure.stderr),
-                "lo": None if figure.ci_low is None else float(figure.ci_low),
-                "hi": None if figure.ci_high is None else float(figure.ci_high),
-                "u": figure.unit,
-                "m": figure.method,
-                "mv": figure.method_version,
-                "at": computed_at,
-                "s": figure.successes,
-                "t": figure.trials,
-            },
-        )
+        merged = dict(options or {})
+        merged.update(getattr(figure, "options", None) or {})
+        model = getattr(figure, "model", None) or _model(kind, merged)
+        row = {
+            "run_id": run_id,
+            "name": figure.name,
+            "kind": kind,
+            "value": float(figure.value),
+            "stderr": None if figure.stderr is None else float(figure.stderr),
+            "ci_low": None if figure.ci_low is None else float(figure.ci_low),
+            "ci_high": None if figure.ci_high is None else float(figure.ci_high),
+            "unit": figure.unit,
+            "method": figure.method,
+            "method_version": figure.method_version,
+            "successes": figure.successes,
+            "trials": figure.trials,
+            "model": model,
+            "options": options_text(merged),
+            "analysis": analysis,
+            "runlog_version": __version__,
+            "computed_at": computed_at,
+        }
+        names = ", ".join(_COLUMNS)
+        values = ", ".join(f":{c}" for c in _COLUMNS)
+        record_id = int(writer.rows(f"INSERT INTO figure_records ({names}, shots) VALUES ({values}, :shots) RETURNING id", {**row, "shots": shots})[0][0])
+        writer.execute("DELETE FROM figures WHERE run_id = :run_id AND name = :name", row)
+        writer.execute(f"INSERT INTO figures ({names}, record_id) VALUES ({values}, :record_id)", {**row, "record_id": record_id})
+        records.append(record_id)
+    return records
+
+
+def _model(kind: str, options: Mapping[str, object]) -> str:
+    """The model a kind fits when the figure does not name its own."""
+    if kind == "coherence":
+        return f"ramsey, {options.get('envelope') or 'gaussian'} envelope"
+    return kind
 
 
 def _blob(values: np.ndarray) -> bytes:

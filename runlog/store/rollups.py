@@ -30,7 +30,7 @@ SELECT r.apparatus_id, r.day, r.sequence, f.name, MAX(f.unit), COUNT(*), SUM(r.s
        SUM(CASE WHEN f.stderr > 0 THEN f.value / (f.stderr * f.stderr) END),
        SUM(CASE WHEN f.stderr > 0 THEN f.value * f.value / (f.stderr * f.stderr) END)
 FROM figures f JOIN runs r ON r.id = f.run_id
-WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q
+WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current
 GROUP BY r.apparatus_id, r.day, r.sequence, f.name
 """
 

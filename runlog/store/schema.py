@@ -33,6 +33,9 @@ from sqlalchemy import (
     String,
     Text,
     UniqueConstraint,
+    false,
+    text,
+    true,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 from sqlalchemy.types import TypeDecorator
@@ -63,6 +66,11 @@ __all__ = [
     "Alarm",
     "IngestLogEntry",
     "Annotation",
+    "RunFile",
+    "FigureRecord",
+    "Withdrawal",
+    "Pin",
+    "PinRun",
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
@@ -136,13 +144,31 @@ class Apparatus(Base):
 
 
 class Run(Base):
-    """A set of shots of one sequence, most parameters fixed, one or two scanned."""
+    """One analysis version of a run: a set of shots of one sequence, most parameters
+    fixed, one or two scanned.
+
+    A run (apparatus, key) has one row per analysis version (``analysis``, '' for the
+    unnamed one); the shots, parameters, measurements, images, per-site counts and figures
+    of a version hang off its row. Exactly one row of a run is current (``is_current``; none
+    while the run is withdrawn): every query of runs, shots or figures that means "the
+    catalogue as it stands" restricts to ``runs.is_current`` (docs/architecture.md, "Analysis versions").
+    """
 
     __tablename__ = "runs"
-    __table_args__ = (UniqueConstraint("apparatus_id", "key"), Index(None, "started"), Index(None, "apparatus_id", "day"))
+    __table_args__ = (
+        UniqueConstraint("apparatus_id", "key", "analysis"),
+        Index(None, "started"),
+        Index(None, "apparatus_id", "day"),
+        # At most one current version per run.
+        Index("uq_runs_current_version", "apparatus_id", "key", unique=True, sqlite_where=text("is_current"), postgresql_where=text("is_current")),
+    )
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
     key: Mapped[str] = mapped_column(String(200))
+    # The analysis version's name ('' = the unnamed default version).
+    analysis: Mapped[str] = mapped_column(String(200), default="", server_default="")
+    is_current: Mapped[bool] = mapped_column(Boolean, default=True, server_default=true())
+    withdrawn: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
     sequence: Mapped[str] = mapped_column(String(200), index=True)
     started: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     finished: Mapped[dt.datetime] = mapped_column(UTCDateTime())
@@ -289,13 +315,9 @@ class Occupancy(Base):
     bits: Mapped[bytes] = mapped_column(LargeBinary)
 
 
-class FigureRow(Base):
-    """A stored figure of merit of a run, with the method that produced it."""
+class _FigureColumns:
+    """What a figure is and how it was made: shared by the records and the figures in force."""
 
-    __tablename__ = "figures"
-    __table_args__ = (UniqueConstraint("run_id", "name"), Index(None, "name"))
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
     name: Mapped[str] = mapped_column(String(100))
     kind: Mapped[str] = mapped_column(String(40))
     value: Mapped[float] = mapped_column(Float)
@@ -309,6 +331,23 @@ class FigureRow(Base):
     # Counting figures keep their counts, so days and filters can pool them exactly.
     successes: Mapped[int | None] = mapped_column(BigInteger)
     trials: Mapped[int | None] = mapped_column(BigInteger)
+    # The model and options (a JSON object: envelope, x, y, image, interval ...) it was
+    # computed with, the analysis version of its run version, and runlog's version.
+    model: Mapped[str | None] = mapped_column(String(100))
+    options: Mapped[str | None] = mapped_column(Text)
+    analysis: Mapped[str | None] = mapped_column(String(200))
+    runlog_version: Mapped[str | None] = mapped_column(String(40))
+
+
+class FigureRow(_FigureColumns, Base):
+    """A figure of merit in force for a run version: the newest of its records
+    (``record_id``, :class:`FigureRecord`), copied here so that readers need no history."""
+
+    __tablename__ = "figures"
+    __table_args__ = (UniqueConstraint("run_id", "name"), Index(None, "name"))
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
+    record_id: Mapped[int | None] = mapped_column(ForeignKey("figure_records.id"))
 
 
 class SiteCounts(Base):
@@ -429,3 +468,87 @@ class Annotation(Base):
     text: Mapped[str] = mapped_column(Text)
     author: Mapped[str | None] = mapped_column(String(200))
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+
+
+class RunFile(Base):
+    """Which ingested file wrote shots into which run version, and which shot ids.
+
+    A file's shots get consecutive ids, so ``first_shot_id``..``last_shot_id`` with the run
+    version name them exactly (NULL for catalogues ingested before revision 0008).
+    """
+
+    __tablename__ = "run_files"
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
+    ingest_id: Mapped[int] = mapped_column(ForeignKey("ingest_log.id"), primary_key=True, index=True)
+    shots: Mapped[int | None] = mapped_column(Integer)
+    first_shot_id: Mapped[int | None] = mapped_column(BigInteger)
+    last_shot_id: Mapped[int | None] = mapped_column(BigInteger)
+
+
+class FigureRecord(_FigureColumns, Base):
+    """One computation of a figure, never changed once written.
+
+    Records its kind, the model and options it was computed with (JSON), the analysis
+    version of the shots it used (its run version), how many shots that version had,
+    runlog's version and when. Deriving again adds a record; the newest one of a run
+    version is in force (copied into ``figures``).
+    """
+
+    __tablename__ = "figure_records"
+    __table_args__ = (Index(None, "run_id", "name"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"))
+    shots: Mapped[int | None] = mapped_column(Integer)
+
+
+class Withdrawal(Base):
+    """A file or a run taken out of the catalogue, with why and by whom; kept after a restore.
+
+    ``runs`` lists the run versions (ids) taken out, ``current`` those of them that were
+    current, so a restore puts back exactly what was there.
+    """
+
+    __tablename__ = "withdrawals"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    target: Mapped[str] = mapped_column(String(10))  # 'file' | 'run'
+    name: Mapped[str] = mapped_column(Text)  # the file's path or the run's key
+    sha256: Mapped[str | None] = mapped_column(String(64))
+    runs: Mapped[str] = mapped_column(Text)
+    current: Mapped[str] = mapped_column(Text, default="")
+    reason: Mapped[str] = mapped_column(Text)
+    author: Mapped[str | None] = mapped_column(String(200))
+    withdrawn_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    restored_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime())
+    restored_by: Mapped[str | None] = mapped_column(String(200))
+
+
+class Pin(Base):
+    """A frozen selection: the filter text and when; its shots are in ``pin_runs``."""
+
+    __tablename__ = "pins"
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), unique=True)
+    where_text: Mapped[str] = mapped_column(Text)  # the filter
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+    author: Mapped[str | None] = mapped_column(String(200))
+    runlog_version: Mapped[str] = mapped_column(String(40))
+    shots: Mapped[int] = mapped_column(BigInteger)
+    runs: Mapped[int] = mapped_column(Integer)
+
+
+class PinRun(Base):
+    """The shots of one run version in a pin, and the figure records then in force.
+
+    ``shot_ids`` are the pinned shots' ids, sorted, as zlib-compressed little-endian int64
+    differences; ``figure_records`` the record ids, comma-separated; ``shot_count`` the
+    run version's shots at pin time (the exported runs table gives it).
+    """
+
+    __tablename__ = "pin_runs"
+    pin_id: Mapped[int] = mapped_column(ForeignKey("pins.id", ondelete="CASCADE"), primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id"), primary_key=True, index=True)
+    analysis: Mapped[str] = mapped_column(String(200))
+    shot_count: Mapped[int] = mapped_column(Integer)
+    shots: Mapped[int] = mapped_column(Integer)
+    shot_ids: Mapped[bytes] = mapped_column(LargeBinary)
+    figure_records: Mapped[str] = mapped_column(Text, default="")
