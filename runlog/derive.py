@@ -287,6 +287,9 @@ def derive(
             raise ValueError(f"figure '{figure.name}' of kind {kind} has no method or method version")
     if store:
         recorded = {"x": x, "y": y, "envelope": envelope if kind == "coherence" else None, "target": target, "image": image, "interval": interval}
+        if model is not None:
+            recorded["model"] = model
+        recorded.update({f"setting.{k}": str(v) for k, v in settings.items()})
         catalogue.save_figures(info.run, kind, figures, apparatus=info.apparatus, options=recorded)
     return DeriveResult(info.run, kind, figures, info.apparatus)
 
