@@ -45,7 +45,7 @@ from scipy.signal import lombscargle
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 
 __all__ = ["ENVELOPES", "fit_envelope", "fit_ramsey", "frequency_unit"]
 
@@ -214,12 +214,7 @@ def _envelope(name: str) -> Callable[[np.ndarray, float], np.ndarray]:
 def _arrays(
     wait: np.ndarray | Sequence[float], y: np.ndarray | Sequence[float], kind: str
 ) -> tuple[np.ndarray, np.ndarray]:
-    t = np.asarray(wait, dtype=float).ravel()
-    values = np.asarray(y, dtype=float).ravel()
-    if t.shape != values.shape:
-        raise ValueError(f"wait and signal differ in length ({t.size} and {values.size})")
-    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(values))):
-        raise FitError(kind, "wait or signal contains non-finite values")
+    t, values = scan_points(wait, y, kind=kind, x_name="wait", y_name="signal")
     if np.any(t < 0):
         raise FitError(kind, "negative waits")
     return t, values

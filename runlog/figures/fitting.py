@@ -83,6 +83,7 @@ __all__ = [
     "SIGNIFICANCE",
     "FitResult",
     "least_squares_fit",
+    "scan_points",
 ]
 
 #: The covariance estimators ``least_squares_fit`` offers.
@@ -107,6 +108,21 @@ _TOLERANCE = 1e-14  # ftol, xtol and gtol of the minimiser: tight, NIST asks for
 _SEED = 20_011_989  # any fixed value: the restarts must be the same every run
 # A restart "beats" the start only when it is lower by more than rounding can explain.
 _IMPROVEMENT = 1e-9
+
+
+def scan_points(x, y, *, kind: str, x_name: str, y_name: str) -> tuple[np.ndarray, np.ndarray]:
+    """A scan's settings and signal as flat float arrays of one length, all finite.
+
+    Every fitted figure family checks its input this way; ``x_name`` and ``y_name`` name
+    the two in the messages.
+    """
+    xs = np.asarray(x, dtype=float).ravel()
+    ys = np.asarray(y, dtype=float).ravel()
+    if xs.shape != ys.shape:
+        raise ValueError(f"{x_name} and {y_name} differ in length ({xs.size} and {ys.size})")
+    if not (np.all(np.isfinite(xs)) and np.all(np.isfinite(ys))):
+        raise FitError(kind, f"{x_name} or {y_name} contains non-finite values")
+    return xs, ys
 
 
 @dataclass(frozen=True)

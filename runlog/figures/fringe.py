@@ -37,7 +37,7 @@ import numpy as np
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 
 __all__ = ["fit_fringe"]
 
@@ -71,12 +71,7 @@ def fit_fringe(
     """
     if phase_unit not in ("rad", "deg"):
         raise ValueError(f"phase_unit must be 'rad' or 'deg', got {phase_unit!r}")
-    x = np.asarray(phase, dtype=float).ravel()
-    signal = np.asarray(y, dtype=float).ravel()
-    if x.shape != signal.shape:
-        raise ValueError(f"phase and y differ in length ({x.size} and {signal.size})")
-    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(signal))):
-        raise FitError(_KIND, "phase or signal contains non-finite values")
+    x, signal = scan_points(phase, y, kind=_KIND, x_name="phase", y_name="signal")
     radians = np.deg2rad(x) if phase_unit == "deg" else x
 
     _check_phase_coverage(radians, phase_unit)

@@ -37,7 +37,7 @@ import numpy as np
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 from runlog.figures.intervals import INTERVAL_METHODS
 
 __all__ = ["DISTINGUISHABLE", "coincidences", "dip_model", "fit_visibility", "visibility_at_one_setting"]
@@ -81,12 +81,7 @@ def fit_visibility(x: np.ndarray | Sequence[float], coincidence: np.ndarray | Se
     Returns ``visibility``, ``coincidence_baseline``, ``overlap_centre`` and
     ``overlap_width`` (x's unit), each with its standard error.
     """
-    xs = np.asarray(x, dtype=float).ravel()
-    ys = np.asarray(coincidence, dtype=float).ravel()
-    if xs.shape != ys.shape:
-        raise ValueError(f"x and coincidence differ in length ({xs.size} and {ys.size})")
-    if not (np.all(np.isfinite(xs)) and np.all(np.isfinite(ys))):
-        raise FitError(_KIND, "x or coincidence contains non-finite values")
+    xs, ys = scan_points(x, coincidence, kind=_KIND, x_name="x", y_name="coincidence")
     values = np.unique(xs)
     if values.size < 5:
         raise FitError(_KIND, f"{values.size} distinct settings; at least 5 are needed for 4 parameters")

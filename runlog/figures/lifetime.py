@@ -36,7 +36,7 @@ from scipy import stats
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 from runlog.figures.relaxation import time_from_rate
 
 __all__ = ["fit_lifetime", "lifetime_model"]
@@ -61,12 +61,7 @@ def fit_lifetime(
 ) -> list[Figure]:
     """Fit the surviving fraction per shot; returns ``lifetime``, ``survival_at_zero`` (and
     ``two_body_fraction`` with ``two_body=True``)."""
-    t = np.asarray(hold, dtype=float).ravel()
-    values = np.asarray(survival, dtype=float).ravel()
-    if t.shape != values.shape:
-        raise ValueError(f"hold and survival differ in length ({t.size} and {values.size})")
-    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(values))):
-        raise FitError(_KIND, "hold time or survival contains non-finite values")
+    t, values = scan_points(hold, survival, kind=_KIND, x_name="hold time", y_name="survival")
     if np.any(t < 0):
         raise FitError(_KIND, "negative hold times")
     holds = np.unique(t)

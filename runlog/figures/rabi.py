@@ -38,7 +38,7 @@ import numpy as np
 from runlog.errors import FitError
 from runlog.figures.base import Figure
 from runlog.figures.coherence import _starting_detunings, frequency_unit
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 
 __all__ = ["fit_rabi", "rabi_model"]
 
@@ -67,12 +67,7 @@ def fit_rabi(
     ``pi_time`` (in ``duration_unit``), ``contrast`` and, when the damping is resolved,
     ``damping_time`` (in ``duration_unit``); each with its standard error.
     """
-    t = np.asarray(duration, dtype=float).ravel()
-    signal = np.asarray(y, dtype=float).ravel()
-    if t.shape != signal.shape:
-        raise ValueError(f"duration and signal differ in length ({t.size} and {signal.size})")
-    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(signal))):
-        raise FitError(_KIND, "duration or signal contains non-finite values")
+    t, signal = scan_points(duration, y, kind=_KIND, x_name="duration", y_name="signal")
     if np.any(t < 0):
         raise FitError(_KIND, "negative pulse durations")
     durations = np.unique(t)

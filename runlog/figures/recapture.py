@@ -45,7 +45,7 @@ from scipy.special import ndtr
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 
 __all__ = ["ATOM_MASSES", "Trap", "atom_mass", "fit_release_recapture", "recapture_probability"]
 
@@ -197,12 +197,7 @@ def fit_release_recapture(
     """Fit ``y = A P(t; T)`` to one recaptured fraction per shot; returns ``temperature`` (uK)."""
     from runlog.units import convert
 
-    t = np.asarray(release, dtype=float).ravel()
-    values = np.asarray(y, dtype=float).ravel()
-    if t.shape != values.shape:
-        raise ValueError(f"release time and signal differ in length ({t.size} and {values.size})")
-    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(values))):
-        raise FitError(_KIND, "release time or signal contains non-finite values")
+    t, values = scan_points(release, y, kind=_KIND, x_name="release time", y_name="signal")
     if np.any(t < 0):
         raise FitError(_KIND, "negative release times")
     times = np.unique(t)

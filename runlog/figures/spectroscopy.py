@@ -42,7 +42,7 @@ from scipy.optimize import brentq
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit
+from runlog.figures.fitting import least_squares_fit, scan_points
 
 __all__ = ["LINESHAPES", "field_from_resonance", "fit_lineshape", "lorentzian", "rabi_lineshape", "rabi_linewidth"]
 
@@ -108,12 +108,7 @@ def fit_lineshape(
     """
     if lineshape not in LINESHAPES:
         raise ValueError(f"lineshape must be one of {', '.join(LINESHAPES)}, got {lineshape!r}")
-    x = np.asarray(frequency, dtype=float).ravel()
-    signal = np.asarray(y, dtype=float).ravel()
-    if x.shape != signal.shape:
-        raise ValueError(f"frequency and signal differ in length ({x.size} and {signal.size})")
-    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(signal))):
-        raise FitError(_KIND, "frequency or signal contains non-finite values")
+    x, signal = scan_points(frequency, y, kind=_KIND, x_name="frequency", y_name="signal")
     values = np.unique(x)
     if values.size < _MIN_FREQUENCIES:
         raise FitError(_KIND, f"{values.size} distinct frequencies; at least {_MIN_FREQUENCIES} are needed")
