@@ -55,9 +55,12 @@ class IngestResult:
     #: What the configuration's [[rules]] gave for this file's runs: ``DeriveResult`` or
     #: ``FitError`` objects (empty without rules).
     derived: tuple = ()
+    #: A monitor table (runlog.monitors): the monitors it brought and how many values.
+    monitors: tuple[str, ...] = ()
+    values: int = 0
 
     def as_dict(self) -> dict[str, object]:
-        return {
+        found: dict[str, object] = {
             "file": self.file,
             "status": self.status,
             "run": self.runs[0] if len(self.runs) == 1 else (list(self.runs) if self.runs else None),
@@ -65,6 +68,9 @@ class IngestResult:
             "shots": self.shots,
             "reason": self.reason,
         }
+        if self.monitors:
+            found |= {"monitors": list(self.monitors), "values": self.values}
+        return found
 
 
 @dataclass
@@ -125,6 +131,21 @@ def file_sha256(path: Path) -> tuple[str, int]:
     return digest.hexdigest(), size
 
 
+def hash_file(path: Path) -> tuple[tuple[int, int, int, int] | None, str, int]:
+    """(signature, SHA-256, size) of a file to ingest; an unreadable one is a :class:`ContractError`."""
+    name = str(path)
+    before = _signature(path)
+    try:
+        sha, size = file_sha256(path)
+    except FileNotFoundError:
+        raise ContractError(name, "file not found") from None
+    except IsADirectoryError:
+        raise ContractError(name, "is a folder, not a file") from None
+    except OSError as error:
+        raise ContractError(name, f"cannot read file ({_short(error)})") from None
+    return before, sha, size
+
+
 def _signature(path: Path) -> tuple[int, int, int, int] | None:
     """What tells that a file changed: device, inode, size, modification time (``None``:
     gone)."""
@@ -146,12 +167,12 @@ def _unchanged_since(path: Path, before: tuple[int, int, int, int] | None) -> No
 
 
 def expand_paths(paths: Iterable[str | Path]) -> list[Path]:
-    """Files as given, folders as their ``*.parquet`` files (sorted, not recursive)."""
+    """Files as given, folders as their ``*.parquet`` and ``*.csv`` (monitor) files (sorted, not recursive)."""
     out: list[Path] = []
     for raw in paths:
         path = Path(raw)
         if path.is_dir():
-            out.extend(sorted(p for p in path.glob("*.parquet") if p.is_file()))
+            out.extend(sorted(p for p in (*path.glob("*.parquet"), *path.glob("*.csv")) if p.is_file()))
         else:
             out.append(path)
     return out
@@ -932,15 +953,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
     sha, size = "", 0
     read_s = write_s = 0.0
     try:
-        before = _signature(path)
-        try:
-            sha, size = file_sha256(path)
-        except FileNotFoundError:
-            raise ContractError(name, "file not found") from None
-        except IsADirectoryError:
-            raise ContractError(name, "is a folder, not a file") from None
-        except OSError as error:
-            raise ContractError(name, f"cannot read file ({_short(error)})") from None
+        before, sha, size = hash_file(path)
         tick = time.perf_counter()
         layout = read_layout(name, _open(path).schema_arrow, mapping)
         # Text columns are read as dictionaries: a run key repeats over all its shots.
@@ -994,7 +1007,17 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         return result
 
 
-def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None) -> list[IngestResult]:
-    """Ingest every file (folders give their ``*.parquet``); one result per file, in order."""
+def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None, apparatus: str | None = None) -> list[IngestResult]:
+    """Ingest every file (folders give their ``*.parquet`` and ``*.csv``); one result per file, in order.
+
+    ``apparatus`` is that of monitor tables without an apparatus column (before the
+    ``[defaults]`` of the mapping)."""
+    from runlog.monitors.contract import is_monitor_table
+    from runlog.monitors.ingest import ingest_monitor_file
+
     mapping = mapping or Mapping()
-    return [ingest_file(engine, path, mapping, progress, after_write) for path in expand_paths(paths)]
+    # Monitor tables are told apart by the contract (or runlog.toml's [monitors] files rule).
+    return [
+        ingest_monitor_file(engine, path, mapping, apparatus) if is_monitor_table(path, mapping) else ingest_file(engine, path, mapping, progress, after_write)
+        for path in expand_paths(paths)
+    ]

@@ -28,7 +28,7 @@ STATE_FILE = ".runlog-watch.json"
 
 @dataclass
 class Watcher:
-    """Polls ``folder`` for ``*.parquet`` files and hands complete ones to ``ingest``.
+    """Polls ``folder`` for ``*.parquet`` (shot or monitor) and ``*.csv`` (monitor) files and hands complete ones to ``ingest``.
 
     ``ingest`` takes a list of paths and returns one :class:`IngestResult` per path (in
     practice ``Catalogue.ingest``).
@@ -70,7 +70,7 @@ class Watcher:
     def poll(self) -> list[IngestResult]:
         """One look at the folder: ingest every file that has stopped changing."""
         current: dict[str, tuple[int, int]] = {}
-        for path in sorted(self.folder.glob("*.parquet")):
+        for path in sorted((*self.folder.glob("*.parquet"), *self.folder.glob("*.csv"))):
             try:
                 stat = path.stat()
             except FileNotFoundError:  # deleted between listing and looking
