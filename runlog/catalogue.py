@@ -893,7 +893,9 @@ class Catalogue:
             return acknowledge(connection, alarm_id, note, zone, author)
 
     def what_else_changed(self, quantity: str, day: dt.date | str, *, apparatus: str | None = None, window: int = 3, top: int = 10) -> list[dict[str, object]]:
-        """Parameters, measurements and figures ranked by how much they moved across ``day``."""
+        """Suspects of a change on ``day``: setting changes, then every registered candidate
+        (parameters, measurements, figures, ...) ranked by its standardised change
+        (:mod:`runlog.drift.candidates`)."""
         from runlog.drift.causes import what_else_changed
         from runlog.drift.series import _apparatus_id
 

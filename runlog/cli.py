@@ -606,7 +606,7 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
     for change in result.changes:
         _wrapped(f"change on {change.date.isoformat()}: {change.before:.4g} -> {change.after:.4g}{unit} ({change.method})")
         for cause in ranked.get(change.date, []):
-            _wrapped(f"  moved too: {cause['name']}: {cause['before_mean']:.4g} -> {cause['after_mean']:.4g} (effect {cause['effect_size']:+.2f})")
+            _wrapped(f"  suspect: {cause['words']}")
     if not result.changes and len(result.points) >= 3:
         click.echo("  no change in level found")
     click.echo("advisory only: not a replacement for the lab's interlocks or rules")

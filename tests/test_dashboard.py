@@ -244,10 +244,10 @@ def test_drift_page_follows_its_widgets(lab):
     (fill_change,) = [option for option in change.options if option.startswith(f"fill fraction on {CHANGE_DAY}")]
     change.select_index(change.options.index(fill_change)).run()
     assert at.selectbox(key="drift-change-tweezer-west").value[:2] == ("fill_fraction", CHANGE_DAY)
-    causes = table(at, "candidate", "Hedges' g")
+    causes = table(at, "candidate", "standard errors")
     ranked = lab.what_else_changed("fill_fraction", CHANGE_DAY, apparatus="tweezer-west")
     assert list(causes["candidate"]) == [c["name"].replace("_", " ") for c in ranked]
-    np.testing.assert_allclose(causes["Hedges' g"], [c["effect_size"] for c in ranked], rtol=1e-12)
+    np.testing.assert_allclose(causes["standard errors"].astype(float), [np.nan if c["standardised_change"] is None else c["standardised_change"] for c in ranked], rtol=1e-12)
 
     # A sequence, a parameter range and a date range each narrow the same query.
     at.selectbox(key="drift-sequence-tweezer-west").set_value("loading").run()

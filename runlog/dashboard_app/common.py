@@ -334,7 +334,7 @@ def fit_curve(url: str, run: str, apparatus: str, x: str | None, y: str | None, 
 @_cached
 def what_else_changed(url: str, quantity: str, day: dt.date, apparatus: str) -> pd.DataFrame:
     ranked = catalogue(url).what_else_changed(quantity, day, apparatus=apparatus)
-    return pd.DataFrame(ranked, columns=["name", "effect_size", "p_value", "before_mean", "after_mean", "n_before", "n_after"])
+    return pd.DataFrame(ranked, columns=["name", "kind", "words", "standardised_change", "q_value", "setting_changed", "before_mean", "after_mean", "n_before", "n_after"])
 
 
 @_cached
