@@ -685,8 +685,27 @@ class Catalogue:
 
         return select_shots(self, where, columns=columns, limit=limit)
 
-    def export(self, where: str, out: str | Path, **options):
-        """Write the shots chosen by ``where`` as a Frictionless Data Package (docs/export.md)."""
+    def pin(self, name: str, where: str, *, author: str | None = None) -> dict[str, object]:
+        """Freeze the shots ``where`` selects now, with their analysis versions and the
+        figure records in force, under ``name`` (``runlog.pins``); ``export(None, out,
+        pin=name)`` writes them again byte for byte later. Returns the pin as :meth:`pins` lists it."""
+        from runlog.pins import make_pin
+
+        made = make_pin(self.engine, name, where, author=author or _user())
+        return next(p for p in self.pins() if p["name"] == made.name)
+
+    def pins(self) -> list[dict[str, object]]:
+        """Every pin: filter, when, by whom, shots, runs, the analysis versions it holds, and
+        ``changes``: what the catalogue as it stands would change in it (newer analysis
+        versions, figures derived again), in the form of the impact report."""
+        from runlog.pins import pins
+
+        with self.engine.connect() as connection:
+            return pins(connection)
+
+    def export(self, where: str | None, out: str | Path, **options):
+        """Write the shots chosen by ``where`` (or ``pin=NAME``: a pinned selection) as a
+        Frictionless Data Package (docs/export.md)."""
         from runlog.export import export
 
         return export(self, where, Path(out), **options)

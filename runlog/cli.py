@@ -280,16 +280,55 @@ def impact(state: _State, run: str, apparatus: str | None, from_analysis: str | 
     for entry in report:
         old, new = entry["old"], entry["new"]
 
-        def side(value: dict[str, Any] | None) -> str:
-            if value is None:
-                return "-"
-            error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
-            return f"{value['value']:.5g}{error} ('{value['analysis']}')"
-
-        moved = f"{entry['sigma']:+.2f} sigma" if entry["sigma"] is not None else ""
-        click.echo(f"{entry['figure']:<20} {side(old):>30} -> {side(new):<30} {moved}")
+        click.echo(_moved_line(entry["figure"], old, new, entry["sigma"]))
         if entry["pins"]:
             _wrapped(f"pins holding the old version: {', '.join(entry['pins'])}")
+
+
+def _side(value: dict[str, Any] | None) -> str:
+    if value is None:
+        return "-"
+    error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
+    return f"{value['value']:.5g}{error} ('{value['analysis']}')"
+
+
+def _moved_line(figure: str, old: dict[str, Any] | None, new: dict[str, Any] | None, sigma: float | None) -> str:
+    moved = f"{sigma:+.2f} sigma" if sigma is not None else ""
+    return f"{figure:<20} {_side(old):>30} -> {_side(new):<30} {moved}"
+
+
+@cli.command()
+@click.argument("name")
+@click.option("--where", "where", required=True, metavar="EXPR", help="Filter expression choosing the shots to freeze.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def pin(state: _State, name: str, where: str, as_json: bool) -> None:
+    """Freeze the shots EXPR selects now, their analysis versions and figures, as NAME."""
+    with _open(state) as catalogue:
+        made = catalogue.pin(name, where)
+    if as_json:
+        _json(made)
+        return
+    click.echo(f"pinned '{made['name']}': {made['shots']} shots of {made['runs']} runs; runlog export --pin {made['name']} --out DIR writes them")
+
+
+@cli.command()
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def pins(state: _State, as_json: bool) -> None:
+    """The pinned selections, and what newer analyses would change in each."""
+    with _open(state) as catalogue:
+        listed = catalogue.pins()
+    if as_json:
+        _json(listed)
+        return
+    for entry in listed:
+        click.echo(f"{entry['name']}: {entry['shots']} shots of {entry['runs']} runs, pinned {entry['created_at'][:16].replace('T', ' ')} by {entry['author'] or '?'}")
+        _wrapped(f"filter: {entry['where']}")
+        if not entry["changes"]:
+            _wrapped("the catalogue still holds these versions and figures as current")
+        for change in entry["changes"]:
+            _wrapped(f"{change['run']}: " + _moved_line(change["figure"], change["old"], change["new"], change["sigma"]))
 
 
 @cli.command()
@@ -689,21 +728,24 @@ def shots(state: _State, where: str | None, columns: str | None, limit: int | No
 @click.option("--title", default=None, help="Title of the package.")
 @click.option("--overwrite", is_flag=True, help="Replace an earlier export in --out.")
 @click.option("--spec", type=click.Path(path_type=Path, dir_okay=False, exists=True), default=None, help="Re-run a saved export (its export.toml).")
+@click.option("--pin", "pin_name", default=None, metavar="NAME", help="Export a pinned selection (runlog pin) as it was pinned.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, as_json: bool) -> None:
+def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, pin_name: str | None, as_json: bool) -> None:
     """Write the chosen shots, their runs and provenance as a Frictionless Data Package."""
-    if spec is None and (where is None or out is None):
-        raise click.UsageError("give --where EXPR and --out DIR, or --spec FILE")
+    if spec is None and ((where is None) == (pin_name is None) or out is None):
+        raise click.UsageError("give --where EXPR (or --pin NAME) and --out DIR, or --spec FILE")
     with _open(state) as catalogue:
         if spec is not None:
             result = catalogue.export_again(spec, out=out)
         else:
-            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite)
+            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite, pin=pin_name)
     if as_json:
         _json(result.as_dict())
         return
     click.echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    if result.pin is not None and result.pin_changes:
+        click.echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
     if result.same is not None:
         click.echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
 

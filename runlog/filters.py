@@ -43,6 +43,7 @@ from sqlalchemy import (
     MetaData,
     Table,
     and_,
+    bindparam,
     exists,
     not_,
     or_,
@@ -503,11 +504,18 @@ class CompiledFilter:
     shots: ColumnElement[bool] | None
     #: Ids of the parameters the filter compares.
     parameters: frozenset[int] = field(default=frozenset(), compare=False)
+    #: Run version ids to select from instead of the current versions (a pinned
+    #: selection, :mod:`runlog.pins`, names the versions it was made on).
+    versions: tuple[int, ...] | None = None
 
     def run_ids(self):
         """The ids of the runs that may hold matching shots, as a subquery: current
-        analysis versions only (older versions and withdrawn runs are never selected)."""
-        query = select(_runs.c.id).where(_runs.c.is_current)
+        analysis versions only (older versions and withdrawn runs are never selected),
+        unless :attr:`versions` names the run versions."""
+        if self.versions is not None:
+            query = select(_runs.c.id).where(_runs.c.id.in_(bindparam(None, list(self.versions), expanding=True, literal_execute=True)))
+        else:
+            query = select(_runs.c.id).where(_runs.c.is_current)
         return query.where(self.runs) if self.runs is not None else query
 
     @property
