@@ -47,9 +47,9 @@ from runlog.errors import ExportError, ConfigError
 from runlog.selection import PARALLEL_READS, Selection, id_in, select_on
 from runlog.store import schema as s
 from runlog.store.arrow_reader import arrow_read
-from runlog.store.engine import redact
+from runlog.store.engine import redact, sqlite_path
 
-__all__ = ["FORMATS", "ExportResult", "export", "export_spec"]
+__all__ = ["FORMATS", "ExportResult", "export", "export_spec", "check_replaceable"]
 
 #: Data file formats an export can write.
 FORMATS = ("parquet", "csv")
@@ -449,7 +449,68 @@ def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: P
 
 
 def _holds_files(path: Path) -> bool:
-    return path.exists() and (not path.is_dir() or any(path.iterdir()))
+    return path.is_symlink() or path.exists() and (not path.is_dir() or any(path.iterdir()))
+
+
+def _catalogue_files(catalogue) -> list[Path]:
+    """The SQLite catalogue file (and its WAL companions) of ``catalogue``, resolved."""
+    url = getattr(getattr(catalogue, "engine", None), "url", None)
+    path = sqlite_path(url) if url is not None else None
+    if path is None:
+        return []
+    path = path.resolve()
+    return [path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")]
+
+
+def _package_files(folder: Path) -> set[str] | None:
+    """The names a runlog export wrote in ``folder`` (from its manifest), ``None`` when
+    the folder holds no manifest written by runlog."""
+    try:
+        manifest = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        return None
+    if not isinstance(manifest, dict) or manifest.get("name") != "runlog-export":
+        return None
+    provenance = manifest.get("provenance")
+    if not isinstance(provenance, dict) or "runlog_version" not in provenance or not isinstance(manifest.get("resources"), list):
+        return None
+    names = {MANIFEST, README, SPEC}
+    for resource in manifest["resources"]:
+        path = resource.get("path") if isinstance(resource, dict) else None
+        if not isinstance(path, str) or "/" in path or "\\" in path:
+            return None
+        names.add(path)
+    return names
+
+
+def check_replaceable(out: str | Path, catalogue=None) -> None:
+    """Refuse (``ExportError``) unless ``out`` is absent, an empty folder, or a folder
+    holding one runlog export and nothing else, and holds no catalogue file.
+
+    Replacing deletes the folder, so it has to be one an export wrote: recognised by
+    its manifest, every entry a file the manifest names. A folder that is, or lies
+    above, the catalogue's own file is never replaced.
+    """
+    out = Path(out).absolute()
+    if out.is_symlink():
+        raise ExportError(str(out), "is a symbolic link: give the export folder itself")
+    if not out.exists():
+        return
+    if not out.is_dir():
+        raise ExportError(str(out), "is a file, not an export folder: nothing was replaced")
+    resolved = out.resolve()
+    for file in _catalogue_files(catalogue):
+        if file.exists() and resolved in file.parents:
+            raise ExportError(str(out), f"holds the catalogue {file.name}: an export never replaces it; choose another folder")
+    entries = sorted(out.iterdir())
+    if not entries:
+        return
+    names = _package_files(out)
+    if names is None:
+        raise ExportError(str(out), f"holds files that are not a runlog export (no runlog {MANIFEST}): nothing was replaced; choose another folder")
+    for entry in entries:
+        if entry.name not in names or entry.is_symlink() or not entry.is_file():
+            raise ExportError(str(out), f"holds '{entry.name}', which the runlog export there did not write: nothing was replaced; move it or choose another folder")
 
 
 def _catalogue_url(catalogue) -> str:
@@ -462,7 +523,8 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
 
     ``format`` is ``"parquet"`` or ``"csv"``; ``with_occupancy`` adds the ``occ.<image>``
     columns and the images resource. An ``out`` that exists and holds files is refused
-    (``FileExistsError``) unless ``overwrite``; it is then replaced as a whole.
+    (``FileExistsError``) unless ``overwrite``; it is then replaced as a whole, and only
+    when it holds an earlier runlog export and nothing else (:func:`check_replaceable`).
 
     ``pin`` (instead of ``where``) exports a pinned selection (:mod:`runlog.pins`): its
     shots under the analysis versions, figure records and run fields it froze, so the
@@ -485,6 +547,7 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
     out = Path(out).absolute()
     if _holds_files(out) and not overwrite:
         raise ExportError(str(out), "already holds files: choose another folder or allow overwriting")
+    check_replaceable(out, catalogue)
     title = title or (f"runlog export of pin '{pin}': {where}" if pin is not None else f"runlog export: {where}")
     engine = catalogue.engine
     # One read transaction for everything, so shots, runs and figures agree even while
@@ -558,7 +621,7 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
         files = [(f"{name}.{suffix}", description) for name, _, _, _, _, description in tables]
         (staging / README).write_text(_readme(title, where, shots_table, runs_table, headline, zone, files, pinned), encoding="utf-8")
         (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data, pin), encoding="utf-8")
-        _move_into_place(staging, out, overwrite)
+        _move_into_place(staging, out, overwrite, catalogue)
     except BaseException:
         background.shutdown(wait=True, cancel_futures=True)
         shutil.rmtree(staging, ignore_errors=True)
@@ -612,10 +675,12 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
     return selection, shots_table, runs_table, figures_table, images_table, sources, zone, pinned
 
 
-def _move_into_place(staging: Path, out: Path, overwrite: bool) -> None:
-    if out.exists():
+def _move_into_place(staging: Path, out: Path, overwrite: bool, catalogue) -> None:
+    if out.exists() or out.is_symlink():
         if _holds_files(out) and not overwrite:
             raise ExportError(str(out), "already holds files: choose another folder or allow overwriting")
+        # Checked again: the folder may have changed while the package was written.
+        check_replaceable(out, catalogue)
         retired = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
         os.replace(out, retired)
         os.replace(staging, out)
@@ -655,9 +720,7 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
         else:
             raise ConfigError(str(spec_path), "the export spec names no 'out' folder")
     out = Path(out).absolute()
-    replace = (out / MANIFEST).exists() or not _holds_files(out)
-    if not replace:
-        raise ExportError(str(out), "holds files that are not a runlog export: give another out folder")
+    check_replaceable(out, catalogue)
     pin = spec.get("pin")
     result = export(
         catalogue,
