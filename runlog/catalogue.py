@@ -533,6 +533,23 @@ class Catalogue:
 
     # --- analysis versions, withdrawals ---------------------------------------------
 
+    def derive_series(self, name: str, figure: str, parameter: str, *, model: str = "exponential", where: str | None = None) -> dict[str, object]:
+        """Fit ``figure`` of many runs against their constant ``parameter`` with ``model``
+        (``exponential``, ``power_law``, ``linear``: :mod:`runlog.figures.across_runs`), over
+        the current runs holding shots ``where`` selects (default: all), and store it as the
+        series ``name`` with its member runs (``runlog.run_series``). Returns the series."""
+        from runlog.run_series import derive_series
+
+        return derive_series(self.engine, name, figure, parameter, model=model, where=where)
+
+    def series(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
+        """The series in force (newest fit of each name), or every fit of ``name`` with
+        ``history``: fitted values with standard errors, χ², member runs (x, y, stderr)."""
+        from runlog.run_series import series
+
+        with self.engine.connect() as connection:
+            return series(connection, name, history=history)
+
     def analyses(self, run: str, *, apparatus: str | None = None) -> list[dict[str, object]]:
         """Every analysis version of ``run``, oldest first: name, current, withdrawn, shots,
         when it came and from which files."""

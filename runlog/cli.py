@@ -509,13 +509,28 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
 @click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
 @click.option("--all", "everything", is_flag=True, help="Recompute counting figures of every run and apply every rule.")
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml: the [[rules]] --all applies, and the [apparatus] constants (field_sensitivity).")
+@click.option("--series", "series_name", default=None, metavar="NAME", help="Fit a series across runs instead: figure --y of the runs against their parameter --x, with --model exponential|power_law|linear.")
+@click.option("--where", "where", default=None, metavar="EXPR", help="With --series: the runs holding shots EXPR selects (default: every run).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, as_json: bool) -> None:
-    """Compute and store the figures of one KIND for RUN, or recompute all (--all)."""
+def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, series_name: str | None, where: str | None, as_json: bool) -> None:
+    """Compute and store the figures of one KIND for RUN, recompute all (--all), or fit a
+    series across runs (--series NAME --y FIGURE --x PARAMETER --model MODEL)."""
     from runlog.config import load_config
     from runlog.derive import derive_all
 
+    if series_name is not None:
+        if run is not None or kind is not None or everything or x is None or y is None:
+            raise click.UsageError("--series NAME needs --y FIGURE and --x PARAMETER (and no RUN, --kind or --all)")
+        with _open(state) as catalogue:
+            made = catalogue.derive_series(series_name, y, x, model=model or "exponential", where=where)
+        if as_json:
+            _json(made)
+            return
+        _series_lines(made)
+        return
+    if where is not None:
+        raise click.UsageError("--where chooses the runs of a --series")
     if everything:
         if run is not None or kind is not None or settings or model is not None or any(v is not None for v in (x, y, target, image, apparatus)):
             raise click.UsageError("--all recomputes every run as the rules say: give no RUN, --kind or other choices")
@@ -547,6 +562,35 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
     _wrapped(f"run {result.run}: {result.kind}, {len(result.figures)} figures stored", indent="")
     for name, figure in result.as_dict()["figures"].items():
         click.echo("  " + _figure_line(name, figure))
+
+
+def _series_lines(made: dict[str, Any]) -> None:
+    chi = f", chi2/dof {made['chi_square']:.3g}/{made['degrees_of_freedom']}" if made["chi_square"] is not None else ""
+    click.echo(f"series {made['name']}: {made['figure']} vs {made['parameter']}, {made['model']}, {made['points']} runs{chi}")
+    for name, value in made["values"].items():
+        click.echo("  " + _figure_line(name, value))
+    for left in made["left_out"]:
+        _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
+
+
+@cli.command("series")
+@click.argument("name", required=False)
+@click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def series_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+    """The series across runs (runlog derive --series), with their fits and member runs."""
+    with _open(state) as catalogue:
+        found = catalogue.series(name, history=history)
+    if as_json:
+        _json(found)
+        return
+    for made in found:
+        _series_lines(made)
+        if name is not None:
+            for member in made["members"]:
+                error = "" if member["stderr"] is None else f" ± {member['stderr']:.2g}"
+                _wrapped(f"{member['run']} ({member['apparatus']}): x = {member['x']:g}, y = {member['y']:.5g}{error}")
 
 
 def _outcome_line(outcome) -> str:
