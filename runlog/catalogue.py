@@ -25,6 +25,7 @@ from sqlalchemy.engine import Engine
 from runlog.errors import NotFoundError, SchemaVersionError, StoreError
 from runlog.store import schema as s
 from runlog.store.engine import current_revision, make_engine, redact, resolve_url
+from runlog.times import day_start_utc
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -791,8 +792,8 @@ class Catalogue:
             with self.engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection, connection.begin():
                 result.alarms = alarm_store.record(connection, result)
         if result.points:
-            notes = self.annotations(apparatus=result.apparatus, since=dt.datetime.combine(result.points[0].date, dt.time(), dt.timezone.utc) - dt.timedelta(days=1))
-            last = dt.datetime.combine(result.points[-1].date, dt.time(), dt.timezone.utc) + dt.timedelta(days=2)
+            notes = self.annotations(apparatus=result.apparatus, since=day_start_utc(result.points[0].date, days=-1))
+            last = day_start_utc(result.points[-1].date, days=2)
             result.annotations = [
                 {"at": row.at.isoformat(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
                 for row in notes.itertuples(index=False)

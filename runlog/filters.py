@@ -56,6 +56,7 @@ from sqlalchemy.engine import Connection, Engine
 from runlog.errors import FilterError
 from runlog.store import schema as s
 from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
+from runlog.times import day_start_utc
 from runlog.units import check_unit, conversion
 
 __all__ = [
@@ -715,9 +716,9 @@ class _Compiler:
             day = dt.date.fromisoformat(str(value.value))
         except ValueError:
             raise self.error(f"'{value.value}' is not an ISO date such as '2026-03-02'", value.position) from None
-        day += dt.timedelta(days=later)
-        # The lab day starts at local midnight; in UTC that moves with daylight saving.
-        return dt.datetime.combine(day, dt.time(), self.names.zone).astimezone(dt.timezone.utc)
+        # The lab day starts at local midnight; in UTC that moves with daylight saving. At
+        # the calendar's ends (9999-12-31) the bound is the last moment there is.
+        return day_start_utc(day, self.names.zone, later)
 
     def times(self, node: Comparison, moments: list[dt.datetime]) -> CompiledFilter:
         column = _shots.c.time
