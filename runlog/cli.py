@@ -280,16 +280,55 @@ def impact(state: _State, run: str, apparatus: str | None, from_analysis: str | 
     for entry in report:
         old, new = entry["old"], entry["new"]
 
-        def side(value: dict[str, Any] | None) -> str:
-            if value is None:
-                return "-"
-            error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
-            return f"{value['value']:.5g}{error} ('{value['analysis']}')"
-
-        moved = f"{entry['sigma']:+.2f} sigma" if entry["sigma"] is not None else ""
-        click.echo(f"{entry['figure']:<20} {side(old):>30} -> {side(new):<30} {moved}")
+        click.echo(_moved_line(entry["figure"], old, new, entry["sigma"]))
         if entry["pins"]:
             _wrapped(f"pins holding the old version: {', '.join(entry['pins'])}")
+
+
+def _side(value: dict[str, Any] | None) -> str:
+    if value is None:
+        return "-"
+    error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
+    return f"{value['value']:.5g}{error} ('{value['analysis']}')"
+
+
+def _moved_line(figure: str, old: dict[str, Any] | None, new: dict[str, Any] | None, sigma: float | None) -> str:
+    moved = f"{sigma:+.2f} sigma" if sigma is not None else ""
+    return f"{figure:<20} {_side(old):>30} -> {_side(new):<30} {moved}"
+
+
+@cli.command()
+@click.argument("name")
+@click.option("--where", "where", required=True, metavar="EXPR", help="Filter expression choosing the shots to freeze.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def pin(state: _State, name: str, where: str, as_json: bool) -> None:
+    """Freeze the shots EXPR selects now, their analysis versions and figures, as NAME."""
+    with _open(state) as catalogue:
+        made = catalogue.pin(name, where)
+    if as_json:
+        _json(made)
+        return
+    click.echo(f"pinned '{made['name']}': {made['shots']} shots of {made['runs']} runs; runlog export --pin {made['name']} --out DIR writes them")
+
+
+@cli.command()
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def pins(state: _State, as_json: bool) -> None:
+    """The pinned selections, and what newer analyses would change in each."""
+    with _open(state) as catalogue:
+        listed = catalogue.pins()
+    if as_json:
+        _json(listed)
+        return
+    for entry in listed:
+        click.echo(f"{entry['name']}: {entry['shots']} shots of {entry['runs']} runs, pinned {entry['created_at'][:16].replace('T', ' ')} by {entry['author'] or '?'}")
+        _wrapped(f"filter: {entry['where']}")
+        if not entry["changes"]:
+            _wrapped("the catalogue still holds these versions and figures as current")
+        for change in entry["changes"]:
+            _wrapped(f"{change['run']}: " + _moved_line(change["figure"], change["old"], change["new"], change["sigma"]))
 
 
 @cli.command()
@@ -472,13 +511,28 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
 @click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
 @click.option("--all", "everything", is_flag=True, help="Recompute counting figures of every run and apply every rule.")
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml: the [[rules]] --all applies, and the [apparatus] constants (field_sensitivity).")
+@click.option("--series", "series_name", default=None, metavar="NAME", help="Fit a series across runs instead: figure --y of the runs against their parameter --x, with --model exponential|power_law|linear.")
+@click.option("--where", "where", default=None, metavar="EXPR", help="With --series: the runs holding shots EXPR selects (default: every run).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, as_json: bool) -> None:
-    """Compute and store the figures of one KIND for RUN, or recompute all (--all)."""
+def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, series_name: str | None, where: str | None, as_json: bool) -> None:
+    """Compute and store the figures of one KIND for RUN, recompute all (--all), or fit a
+    series across runs (--series NAME --y FIGURE --x PARAMETER --model MODEL)."""
     from runlog.config import load_config
     from runlog.derive import derive_all
 
+    if series_name is not None:
+        if run is not None or kind is not None or everything or x is None or y is None:
+            raise click.UsageError("--series NAME needs --y FIGURE and --x PARAMETER (and no RUN, --kind or --all)")
+        with _open(state) as catalogue:
+            made = catalogue.derive_series(series_name, y, x, model=model or "exponential", where=where)
+        if as_json:
+            _json(made)
+            return
+        _series_lines(made)
+        return
+    if where is not None:
+        raise click.UsageError("--where chooses the runs of a --series")
     if everything:
         if run is not None or kind is not None or settings or model is not None or any(v is not None for v in (x, y, target, image, apparatus)):
             raise click.UsageError("--all recomputes every run as the rules say: give no RUN, --kind or other choices")
@@ -510,6 +564,35 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
     _wrapped(f"run {result.run}: {result.kind}, {len(result.figures)} figures stored", indent="")
     for name, figure in result.as_dict()["figures"].items():
         click.echo("  " + _figure_line(name, figure))
+
+
+def _series_lines(made: dict[str, Any]) -> None:
+    chi = f", chi2/dof {made['chi_square']:.3g}/{made['degrees_of_freedom']}" if made["chi_square"] is not None else ""
+    click.echo(f"series {made['name']}: {made['figure']} vs {made['parameter']}, {made['model']}, {made['points']} runs{chi}")
+    for name, value in made["values"].items():
+        click.echo("  " + _figure_line(name, value))
+    for left in made["left_out"]:
+        _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
+
+
+@cli.command("series")
+@click.argument("name", required=False)
+@click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def series_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+    """The series across runs (runlog derive --series), with their fits and member runs."""
+    with _open(state) as catalogue:
+        found = catalogue.series(name, history=history)
+    if as_json:
+        _json(found)
+        return
+    for made in found:
+        _series_lines(made)
+        if name is not None:
+            for member in made["members"]:
+                error = "" if member["stderr"] is None else f" ± {member['stderr']:.2g}"
+                _wrapped(f"{member['run']} ({member['apparatus']}): x = {member['x']:g}, y = {member['y']:.5g}{error}")
 
 
 def _outcome_line(outcome) -> str:
@@ -724,21 +807,24 @@ def shots(state: _State, where: str | None, columns: str | None, limit: int | No
 @click.option("--title", default=None, help="Title of the package.")
 @click.option("--overwrite", is_flag=True, help="Replace an earlier export in --out.")
 @click.option("--spec", type=click.Path(path_type=Path, dir_okay=False, exists=True), default=None, help="Re-run a saved export (its export.toml).")
+@click.option("--pin", "pin_name", default=None, metavar="NAME", help="Export a pinned selection (runlog pin) as it was pinned.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, as_json: bool) -> None:
+def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, pin_name: str | None, as_json: bool) -> None:
     """Write the chosen shots, their runs and provenance as a Frictionless Data Package."""
-    if spec is None and (where is None or out is None):
-        raise click.UsageError("give --where EXPR and --out DIR, or --spec FILE")
+    if spec is None and ((where is None) == (pin_name is None) or out is None):
+        raise click.UsageError("give --where EXPR (or --pin NAME) and --out DIR, or --spec FILE")
     with _open(state) as catalogue:
         if spec is not None:
             result = catalogue.export_again(spec, out=out)
         else:
-            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite)
+            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite, pin=pin_name)
     if as_json:
         _json(result.as_dict())
         return
     click.echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    if result.pin is not None and result.pin_changes:
+        click.echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
     if result.same is not None:
         click.echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
 

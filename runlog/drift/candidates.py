@@ -36,6 +36,8 @@ import numpy as np
 from scipy import stats
 from sqlalchemy.engine import Connection
 
+from runlog.times import shift_day
+
 __all__ = [
     "KINDS",
     "Candidate",
@@ -63,7 +65,7 @@ class Window:
 
     @classmethod
     def around(cls, day: dt.date, days: int = 3) -> "Window":
-        return cls(day, day - dt.timedelta(days=days), day + dt.timedelta(days=days - 1))
+        return cls(day, shift_day(day, -days), shift_day(day, days - 1))
 
 
 @dataclass(frozen=True)

@@ -16,6 +16,7 @@ from sqlalchemy.engine import Connection
 
 from runlog.drift.candidates import Candidate, Window, rank, register_source, sources
 from runlog.store import schema as s
+from runlog.times import shift_day
 
 __all__ = ["what_else_changed", "run_ids"]
 
@@ -25,7 +26,7 @@ def run_ids(connection: Connection, apparatus_id: int, first: dt.date, last: dt.
 
 
 def _sides(connection: Connection, apparatus_id: int, window: Window) -> tuple[list[int], list[int]]:
-    before = run_ids(connection, apparatus_id, window.before_first, window.day - dt.timedelta(days=1))
+    before = run_ids(connection, apparatus_id, window.before_first, shift_day(window.day, -1))
     after = run_ids(connection, apparatus_id, window.day, window.after_last)
     return before, after
 
