@@ -23,6 +23,7 @@ import click
 
 from runlog import __version__
 from runlog.errors import RunlogError, StoreError
+from runlog.redaction import ScrubbingFilter, remember, scrub
 
 __all__ = ["main", "cli"]
 
@@ -55,8 +56,19 @@ def _open(state: _State, *, create: bool = True):
     return runlog.open(state.db, create=create)
 
 
+def _echo(message: Any = "", **kwargs: Any) -> None:
+    """Every line runlog prints: credentials scrubbed from it (a URL that does not parse
+    keeps its password otherwise), and control characters from the catalogue's texts (a
+    run key holding a terminal escape, written by an older runlog) shown, not obeyed."""
+    click.echo(_printable(scrub(message)), **kwargs)
+
+
+def _printable(text: str) -> str:
+    return "".join(c if c.isprintable() or c in "\n\t" else repr(c)[1:-1] for c in text)
+
+
 def _json(value: Any) -> None:
-    click.echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
+    _echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
 
 
 def _json_default(value: Any) -> Any:
@@ -104,7 +116,7 @@ def init(state: _State) -> None:
         raise StoreError(f"cannot initialise catalogue {redact(url)}: {str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__}") from None
     finally:
         engine.dispose()
-    click.echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
+    _echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
 
 
 @cli.command()
@@ -132,10 +144,10 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
     else:
         for r in results:
             if r.status == "rejected":
-                click.echo(f"rejected         {r.reason}")
+                _echo(f"rejected         {r.reason}")
             else:
                 runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
-                click.echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
+                _echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
             for outcome in r.derived:
                 _wrapped(_outcome_line(outcome))
     if any(r.status == "rejected" for r in results):
@@ -182,11 +194,11 @@ def runs(state: _State, apparatus: str | None, since: str | None, as_json: bool)
         _json([{"run": r["run"], "apparatus": r["apparatus"], "sequence": r["sequence"], "shots": int(r["shots"]), "started": r["started"].isoformat(), "finished": r["finished"].isoformat()} for r in rows])
         return
     if not rows:
-        click.echo("no runs")
+        _echo("no runs")
         return
-    click.echo(f"{'run':<22} {'apparatus':<14} {'sequence':<12} {'shots':>6}  started (UTC)")
+    _echo(f"{'run':<22} {'apparatus':<14} {'sequence':<12} {'shots':>6}  started (UTC)")
     for r in rows:
-        click.echo(f"{str(r['run'])[:22]:<22} {str(r['apparatus'])[:14]:<14} {str(r['sequence'])[:12]:<12} {int(r['shots']):>6}  {_when(r['started'])}")
+        _echo(f"{str(r['run'])[:22]:<22} {str(r['apparatus'])[:14]:<14} {str(r['sequence'])[:12]:<12} {int(r['shots']):>6}  {_when(r['started'])}")
 
 
 def _date_option(value: str | None, option: str) -> dt.datetime | None:
@@ -222,33 +234,33 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         _wrapped(f"notes: {info.notes}")
     if info.tags:
         _wrapped(f"tags: {', '.join(info.tags)}")
-    click.echo("parameters")
+    _echo("parameters")
     for name, entry in info.parameters.items():
         unit = f" {entry['unit']}" if entry["unit"] else ""
         if entry["scanned"]:
             span = f"{entry['min']:g} .. {entry['max']:g}{unit}" if "min" in entry else "(varies)"
-            click.echo(f"  {name:<24} scanned  {span}")
+            _echo(f"  {name:<24} scanned  {span}")
         else:
             value = entry["value"]
             shown = f"{value:g}" if isinstance(value, float) else str(value)
-            click.echo(f"  {name:<24} {shown}{unit}")
+            _echo(f"  {name:<24} {shown}{unit}")
     if info.measurements:
-        click.echo("measurements")
+        _echo("measurements")
         _wrapped(", ".join(info.measurements))
     if info.images:
-        click.echo("images")
+        _echo("images")
         for name, image in info.images.items():
-            click.echo(f"  {name:<24} {image['role']:<9} {'x'.join(map(str, image['shape']))} sites")
+            _echo(f"  {name:<24} {image['role']:<9} {'x'.join(map(str, image['shape']))} sites")
     if info.figures:
-        click.echo("figures")
+        _echo("figures")
         for name, figure in info.figures.items():
-            click.echo("  " + _figure_line(name, figure))
+            _echo("  " + _figure_line(name, figure))
     if info.figure_history is not None:
-        click.echo("figure records, newest first")
+        _echo("figure records, newest first")
         for record in info.figure_history:
             options = ", ".join(f"{k}={v}" for k, v in record["options"].items())
             mark = "*" if record["in_force"] else " "
-            click.echo(f" {mark}{_figure_line(record['figure'], record)}  {record['computed_at'][:19]}" + (f"  [{options}]" if options else ""))
+            _echo(f" {mark}{_figure_line(record['figure'], record)}  {record['computed_at'][:19]}" + (f"  [{options}]" if options else ""))
 
 
 @cli.command("use-analysis")
@@ -260,7 +272,7 @@ def use_analysis(state: _State, run: str, version: str, apparatus: str | None) -
     """Make analysis VERSION of RUN the current one ('' is the unnamed version)."""
     with _open(state) as catalogue:
         switched = catalogue.use_analysis(run, version, apparatus=apparatus)
-    click.echo(f"run {switched['run']}: analysis '{switched['current']}' is current (was '{switched['before']}')")
+    _echo(f"run {switched['run']}: analysis '{switched['current']}' is current (was '{switched['before']}')")
 
 
 @cli.command()
@@ -280,7 +292,7 @@ def impact(state: _State, run: str, apparatus: str | None, from_analysis: str | 
     for entry in report:
         old, new = entry["old"], entry["new"]
 
-        click.echo(_moved_line(entry["figure"], old, new, entry["sigma"]))
+        _echo(_moved_line(entry["figure"], old, new, entry["sigma"]))
         if entry["pins"]:
             _wrapped(f"pins holding the old version: {', '.join(entry['pins'])}")
 
@@ -309,7 +321,7 @@ def pin(state: _State, name: str, where: str, as_json: bool) -> None:
     if as_json:
         _json(made)
         return
-    click.echo(f"pinned '{made['name']}': {made['shots']} shots of {made['runs']} runs; runlog export --pin {made['name']} --out DIR writes them")
+    _echo(f"pinned '{made['name']}': {made['shots']} shots of {made['runs']} runs; runlog export --pin {made['name']} --out DIR writes them")
 
 
 @cli.command()
@@ -323,7 +335,7 @@ def pins(state: _State, as_json: bool) -> None:
         _json(listed)
         return
     for entry in listed:
-        click.echo(f"{entry['name']}: {entry['shots']} shots of {entry['runs']} runs, pinned {entry['created_at'][:16].replace('T', ' ')} by {entry['author'] or '?'}")
+        _echo(f"{entry['name']}: {entry['shots']} shots of {entry['runs']} runs, pinned {entry['created_at'][:16].replace('T', ' ')} by {entry['author'] or '?'}")
         _wrapped(f"filter: {entry['where']}")
         if not entry["changes"]:
             _wrapped("the catalogue still holds these versions and figures as current")
@@ -348,7 +360,7 @@ def withdraw(state: _State, file: Path | None, run: str | None, apparatus: str |
         _json(done)
         return
     versions = ", ".join(f"{r['run']} '{r['analysis']}'" for r in done["runs"])
-    click.echo(f"withdrawn ({done['id']}): {versions}")
+    _echo(f"withdrawn ({done['id']}): {versions}")
 
 
 @cli.command()
@@ -368,13 +380,13 @@ def restore(state: _State, file: Path | None, run: str | None, apparatus: str | 
         return
     for withdrawal in done:
         versions = ", ".join(f"{r['run']} '{r['analysis']}'" for r in withdrawal["runs"])
-        click.echo(f"restored ({withdrawal['id']}): {versions}")
+        _echo(f"restored ({withdrawal['id']}): {versions}")
 
 
 def _wrapped(text: str, indent: str = "  ") -> None:
     """Print ``text`` within 80 columns, continuation lines indented."""
     for line in textwrap.wrap(text, width=80, initial_indent=indent, subsequent_indent=indent + "  ", break_long_words=True) or [indent]:
-        click.echo(line)
+        _echo(line)
 
 
 def _figure_line(name: str, figure: dict[str, Any]) -> str:
@@ -400,7 +412,7 @@ def annotate(state: _State, text: str, run: str | None, apparatus: str | None, a
         raise click.UsageError("give --run RUN, or --apparatus A (with --at TIME)")
     with _open(state) as catalogue:
         number = catalogue.annotate(text, run=run, apparatus=apparatus, at=_date_option(at, "--at"))
-    click.echo(f"annotation {number} added")
+    _echo(f"annotation {number} added")
 
 
 @cli.command()
@@ -423,6 +435,7 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
     logger.setLevel(logging.INFO)
     handler = logging.FileHandler(log_file or folder / "runlog-watch.log", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    handler.addFilter(ScrubbingFilter())
     logger.addHandler(handler)
     with _open(state) as catalogue:
         logger.info("catalogue %s", catalogue.url)
@@ -435,7 +448,7 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
             return results
 
         watcher = Watcher(folder, ingest_and_derive, quarantine, logger)
-        click.echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
+        _echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
         try:
             watcher.run(interval, stop_after=stop_after)
         except KeyboardInterrupt:
@@ -471,25 +484,25 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
             url = catalogue.url
     took = time.perf_counter() - tick
     made = sum(r.shots for r in results if r.status == "ingested")
-    click.echo(f"demo catalogue: {url}")
-    click.echo(f"{len(files)} files: {made} shots ingested now, {sum(r.status == 'already-present' for r in results)} files already present ({took:.1f} s)")
-    click.echo(f"catalogue holds {counts['apparatus']} apparatus, {counts['runs']} runs, {counts['shots']} shots")
+    _echo(f"demo catalogue: {url}")
+    _echo(f"{len(files)} files: {made} shots ingested now, {sum(r.status == 'already-present' for r in results)} files already present ({took:.1f} s)")
+    _echo(f"catalogue holds {counts['apparatus']} apparatus, {counts['runs']} runs, {counts['shots']} shots")
     fitted = sum(1 for o in outcomes if not isinstance(o, Exception))
     if outcomes:
-        click.echo(f"fitted figures: {fitted} scans fitted, {len(outcomes) - fitted} refused")
-    click.echo("what the invented lab did (the truth behind the files):")
+        _echo(f"fitted figures: {fitted} scans fitted, {len(outcomes) - fitted} refused")
+    _echo("what the invented lab did (the truth behind the files):")
     for line in SCENARIO.describe(start, days):
         _wrapped(line)
-    click.echo("what runlog found (open alarms):")
+    _echo("what runlog found (open alarms):")
     for alarm in alarms:
         size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
         value = "" if alarm["value"] is None else f" at {alarm['value']:.4g}"
         _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} on {alarm['date']}{value}{size}")
-    click.echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
+    _echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
     if any(r.status == "rejected" for r in results):
         for r in results:
             if r.status == "rejected":
-                click.echo(f"rejected: {r.reason}", err=True)
+                _echo(f"rejected: {r.reason}", err=True)
         sys.exit(1)
     if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():
         # Only in a terminal, where Ctrl-C stops it; scripts and pipes get the catalogue alone.
@@ -542,7 +555,7 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
         if as_json:
             _json(summary.as_dict())
             return
-        click.echo(f"{summary.runs} runs, {summary.figures} figures stored, {len(summary.failures)} failed")
+        _echo(f"{summary.runs} runs, {summary.figures} figures stored, {len(summary.failures)} failed")
         for failure in summary.failures:
             _wrapped(_outcome_line(failure))
         return
@@ -563,14 +576,14 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
         return
     _wrapped(f"run {result.run}: {result.kind}, {len(result.figures)} figures stored", indent="")
     for name, figure in result.as_dict()["figures"].items():
-        click.echo("  " + _figure_line(name, figure))
+        _echo("  " + _figure_line(name, figure))
 
 
 def _series_lines(made: dict[str, Any]) -> None:
     chi = f", chi2/dof {made['chi_square']:.3g}/{made['degrees_of_freedom']}" if made["chi_square"] is not None else ""
-    click.echo(f"series {made['name']}: {made['figure']} vs {made['parameter']}, {made['model']}, {made['points']} runs{chi}")
+    _echo(f"series {made['name']}: {made['figure']} vs {made['parameter']}, {made['model']}, {made['points']} runs{chi}")
     for name, value in made["values"].items():
-        click.echo("  " + _figure_line(name, value))
+        _echo("  " + _figure_line(name, value))
     for left in made["left_out"]:
         _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
 
@@ -657,12 +670,12 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
     unit = f" [{result.unit}]" if result.unit else ""
     _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", series {result.series['label']} ({result.series['key']})" if result.series else (f", sequence {result.sequence}" if result.sequence else ", all runs pooled")), indent="")
     outside = set(result.out_of_limits)
-    click.echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
+    _echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
     for index, point in enumerate(result.points):
         flag = "  *" if index in outside else ""
-        click.echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
+        _echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
     if outside:
-        click.echo("  * outside the control limits")
+        _echo("  * outside the control limits")
     for excursion in result.excursions:
         _wrapped(f"out of control from {excursion['date']}: {excursion['size']:+.4g}{unit}, {excursion['z']:+.1f} standard errors ({', '.join(excursion['signals'])})")
         _print_suspects(found_suspects.get(dt.date.fromisoformat(excursion["date"])))
@@ -672,8 +685,8 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
     for setting in result.settings:
         _wrapped(f"{setting['day']}: {setting['words']}")
     if not result.changes and len(result.points) >= 3:
-        click.echo("  no change in level found")
-    click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+        _echo("  no change in level found")
+    _echo("advisory only: not a replacement for the lab's interlocks or rules")
 
 
 def _print_suspects(found: dict[str, object] | None) -> None:
@@ -701,7 +714,7 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
     with _open(state) as catalogue:
         if acknowledge is not None:
             annotation = catalogue.acknowledge(acknowledge, note, accept=accept)
-            click.echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (annotation {annotation})")
+            _echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (annotation {annotation})")
             return
         catalogue.check_drift(apparatus=apparatus)
         found = catalogue.alarms(status=None if show_all else "open", apparatus=apparatus)
@@ -709,14 +722,14 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
         _json(found)
         return
     if not found:
-        click.echo("no open alarms")
+        _echo("no open alarms")
         return
     for alarm in found:
         size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
         value = "" if alarm["value"] is None else f" to {alarm['value']:.4g}"
         where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
         _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}{where}: {alarm['reason']}{value}{size} ({alarm['method']}), {alarm['status']}", indent="")
-    click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+    _echo("advisory only: not a replacement for the lab's interlocks or rules")
 
 
 @cli.command()
@@ -733,7 +746,7 @@ def calibrations(state: _State, names: tuple[str, ...], apparatus: str | None, a
         _json([c.as_dict() for c in found])
         return
     if not found:
-        click.echo("no calibration figures stored")
+        _echo("no calibration figures stored")
         return
     for c in found:
         error = f" ± {c.stderr:.2g}" if c.stderr is not None else ""
@@ -786,17 +799,17 @@ def shots(state: _State, where: str | None, columns: str | None, limit: int | No
     with _open(state) as catalogue:
         frame = catalogue.select(where, columns=[c.strip() for c in columns.split(",")] if columns else None, limit=limit)
     if as_csv:
-        click.echo(frame.to_csv(index=False), nl=False)
+        _echo(frame.to_csv(index=False), nl=False)
     elif as_json:
-        click.echo(frame.to_json(orient="records", date_format="iso", indent=2))
+        _echo(frame.to_json(orient="records", date_format="iso", indent=2))
     elif frame.empty:
-        click.echo("no shots")
+        _echo("no shots")
     else:
         import pandas as pd
 
         with pd.option_context("display.width", 80, "display.max_columns", 8, "display.max_colwidth", 16):
-            click.echo(frame.to_string(index=False, max_rows=40))
-        click.echo(f"{len(frame)} shots")
+            _echo(frame.to_string(index=False, max_rows=40))
+        _echo(f"{len(frame)} shots")
 
 
 @cli.command()
@@ -822,11 +835,11 @@ def export(state: _State, where: str | None, out: Path | None, file_format: str,
     if as_json:
         _json(result.as_dict())
         return
-    click.echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    _echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
     if result.pin is not None and result.pin_changes:
-        click.echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
+        _echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
     if result.same is not None:
-        click.echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
+        _echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
 
 
 @cli.group()
@@ -848,7 +861,7 @@ def plot_drift_command(state: _State, quantity: str, out: Path, apparatus: str |
 
     with _open(state) as catalogue:
         result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), record_alarms=False)
-        click.echo(f"wrote {plot_drift(result, out)}")
+        _echo(f"wrote {plot_drift(result, out)}")
 
 
 @plot.command("run")
@@ -863,7 +876,7 @@ def plot_run_command(state: _State, run: str, out: Path, apparatus: str | None, 
     from runlog.plots import plot_run
 
     with _open(state) as catalogue:
-        click.echo(f"wrote {plot_run(catalogue, run, out, apparatus=apparatus, x=x, y=y)}")
+        _echo(f"wrote {plot_run(catalogue, run, out, apparatus=apparatus, x=x, y=y)}")
 
 
 @cli.group("db")
@@ -884,7 +897,7 @@ def grant_reader(state: _State, role: str, password_env: str | None) -> None:
             raise click.UsageError(f"environment variable {password_env} is not set")
     with _open(state) as catalogue:
         catalogue.grant_reader(role, password=password)
-        click.echo(f"role {role} can read {catalogue.url}")
+        _echo(f"role {role} can read {catalogue.url}")
 
 
 @db_group.command("copy")
@@ -912,31 +925,47 @@ def copy_command(state: _State, target: str, as_json: bool) -> None:
     if as_json:
         _json({"source": redact(source), "target": redact(target), "rows": rows})
         return
-    click.echo(f"copied {redact(source)} to {redact(target)}: {rows['runs']} runs, {rows['shots']} shots")
+    _echo(f"copied {redact(source)} to {redact(target)}: {rows['runs']} runs, {rows['shots']} shots")
     for table, count in rows.items():
-        click.echo(f"  {table:<20} {count:>12}")
+        _echo(f"  {table:<20} {count:>12}")
+
+
+def _remember_urls(args: list[str]) -> None:
+    # The URLs given to this process, so their passwords are scrubbed from every line
+    # printed even when the URL is too malformed for a pattern to recognise.
+    for name in ("--db", "--to"):
+        for position, arg in enumerate(args):
+            if arg == name and position + 1 < len(args):
+                remember(args[position + 1])
+            elif arg.startswith(name + "="):
+                remember(arg.split("=", 1)[1])
+    if os.environ.get("RUNLOG_DB"):
+        remember(os.environ["RUNLOG_DB"])
 
 
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning runlog's errors into one line and an exit code."""
-    debug = "--debug" in (argv if argv is not None else sys.argv[1:])
+    args = argv if argv is not None else sys.argv[1:]
+    debug = "--debug" in args
+    _remember_urls(args)
     try:
         cli.main(args=argv, prog_name="runlog", standalone_mode=False)
     except click.exceptions.Exit as done:
         sys.exit(done.exit_code)
     except click.Abort:
-        click.echo("runlog: aborted", err=True)
+        _echo("runlog: aborted", err=True)
         sys.exit(1)
     except click.ClickException as error:
+        error.message = scrub(error.message)
         error.show()
         sys.exit(error.exit_code)
     except RunlogError as error:
         if debug:
             raise
-        click.echo(f"runlog: error: {error}", err=True)
+        _echo(f"runlog: error: {error}", err=True)
         sys.exit(1)
     except Exception as error:  # anything unexpected: one line unless --debug
         if debug:
             raise
-        click.echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
+        _echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
         sys.exit(1)

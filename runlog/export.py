@@ -384,6 +384,8 @@ def _readme(title: str, where: str, shots: pa.Table, runs: pa.Table, headline: l
             "records as then, whatever the catalogue holds now.",
             "",
         ]
+        for gone in pinned["withdrawn_since"]:
+            lines += [f"- withdrawn since the pin: {gone['apparatus']}/{gone['run']} (analysis '{gone['analysis']}'); exported as pinned", ""]
         moved = pinned["changes"]
         if moved:
             lines += ["Newer analyses in the catalogue would change (value ± standard error, pinned -> now):", ""]
@@ -641,7 +643,7 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
     shots, frozen run fields and figure records instead of the filter's."""
     pinned = None
     if pin is not None:
-        from runlog.pins import changes, load_pin, pinned_selection
+        from runlog.pins import changes, load_pin, pinned_selection, withdrawn_since
 
         found = load_pin(connection, pin)
         selection = pinned_selection(connection, found)
@@ -655,6 +657,7 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
             "runlog_version": found.runlog_version,
             # What the catalogue as it stands would change (not in the data files).
             "changes": changes(connection, found),
+            "withdrawn_since": withdrawn_since(connection, found),
         }
     else:
         selection = select_on(connection, where, shot_ids=with_occupancy)

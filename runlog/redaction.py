@@ -13,17 +13,19 @@ password with a space in it).
 
 from __future__ import annotations
 
+import logging
 import re
 import threading
 
-__all__ = ["scrub", "remember", "MASK"]
+__all__ = ["scrub", "remember", "MASK", "ScrubbingFilter"]
 
 MASK = "***"
 
-# A word: what runs between blanks and quotes (a URL never holds them unencoded).
-_WORD = re.compile(r"[^\s'\"<>()\[\]{},;]+")
+# A word: what runs between blanks and quotes (a URL never holds them unencoded; commas,
+# brackets and the like may be in a password, so they do not end a word).
+_WORD = re.compile(r"[^\s'\"]+")
 # The start of a URL: a scheme with ':' and slashes, or slashes without the ':' (a typo).
-_HEAD = re.compile(r"^(?:[A-Za-z][A-Za-z0-9+.\-]*:/*|[A-Za-z][A-Za-z0-9+.\-]*//+|//+)")
+_HEAD = re.compile(r"(?:[A-Za-z][A-Za-z0-9+.\-]*:/*|[A-Za-z][A-Za-z0-9+.\-]*//+|//+)")
 _KEYWORD = re.compile(r"(?i)\b(password|passwd|pwd|pgpassword)(\s*=\s*)('[^']*'|\"[^\"]*\"|[^\s&;,'\"]+)")
 
 _known: set[str] = set()
@@ -35,13 +37,14 @@ def _secret_of(word: str) -> tuple[int, int] | None:
     at = word.rfind("@")
     if at < 0:
         return None
-    head = _HEAD.match(word)
-    start = head.end() if head else 0
+    begin = len(word) - len(word.lstrip("([{<"))
+    head = _HEAD.match(word, begin)
+    start = head.end() if head else begin
     colon = word.find(":", start, at)
-    if colon < 0:
-        return None
-    user = word[start:colon]
-    if "/" in user:  # 'path/a:b@c' is no user name
+    if colon < 0 and head is not None and "/" not in head.group():
+        # 'user:secret@host' with no scheme: what looked like one was the user name.
+        start, colon = begin, word.find(":", begin, at)
+    if colon < 0 or "/" in word[start:colon]:  # 'path/a:b@c' is no user name
         return None
     return colon + 1, at
 
@@ -51,6 +54,10 @@ def remember(url: object) -> None:
     removes it from any text later, however the text came to hold it."""
     text = url.render_as_string(hide_password=False) if hasattr(url, "render_as_string") else str(url)
     found = []
+    # The whole text is one URL here: a secret may hold blanks a word would end at.
+    whole = _secret_of(text.strip())
+    if whole is not None and whole[1] > whole[0]:
+        found.append(text.strip()[whole[0] : whole[1]])
     for match in _WORD.finditer(text):
         place = _secret_of(match.group())
         if place is not None and place[1] > place[0]:
@@ -80,3 +87,12 @@ def scrub(text: object) -> str:
         return word[: place[0]] + MASK + word[place[1] :]
 
     return _WORD.sub(hide, text)
+
+
+class ScrubbingFilter(logging.Filter):
+    """A logging filter that scrubs every record's message (put it on a logger or handler)."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        record.msg = scrub(record.getMessage())
+        record.args = None
+        return True

@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from runlog.ingest import IngestResult
+from runlog.redaction import ScrubbingFilter
 
 __all__ = ["Watcher", "STATE_FILE"]
 
@@ -55,6 +56,8 @@ class Watcher:
         if not self.folder.is_dir():
             raise NotADirectoryError(f"{self.folder}: not a folder")
         self.quarantine = Path(self.quarantine) if self.quarantine else self.folder / "quarantine"
+        if not any(isinstance(f, ScrubbingFilter) for f in self.log.filters):
+            self.log.addFilter(ScrubbingFilter())  # an error may quote the catalogue's URL
         self._done = self._load_state()
 
     @property

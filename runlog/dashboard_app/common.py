@@ -32,6 +32,7 @@ import streamlit as st
 import runlog
 from runlog.dashboard import URL_VARIABLE
 from runlog.errors import RunlogError
+from runlog.redaction import scrub
 
 __all__ = [
     "CACHE_SECONDS",
@@ -131,7 +132,7 @@ def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None, a
 def show_error(error: Exception) -> None:
     """A runlog error as one line on the page; anything else is a bug and keeps its traceback."""
     if isinstance(error, RunlogError):
-        st.error(str(error))
+        st.error(scrub(str(error)))
     else:
         raise error
 
