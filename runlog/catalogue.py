@@ -758,7 +758,7 @@ class Catalogue:
             notes = self.annotations(apparatus=result.apparatus, since=dt.datetime.combine(result.points[0].date, dt.time(), dt.timezone.utc) - dt.timedelta(days=1))
             last = dt.datetime.combine(result.points[-1].date, dt.time(), dt.timezone.utc) + dt.timedelta(days=2)
             result.annotations = [
-                {"at": row.at.isoformat(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
+                {"at": row.at.to_pydatetime(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
                 for row in notes.itertuples(index=False)
                 if row.at <= last
             ]
