@@ -25,6 +25,7 @@ from sqlalchemy.engine import Engine
 from runlog.errors import NotFoundError, SchemaVersionError, StoreError
 from runlog.store import schema as s
 from runlog.store.engine import current_revision, make_engine, redact, resolve_url
+from runlog.times import day_start_utc
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -532,6 +533,23 @@ class Catalogue:
 
     # --- analysis versions, withdrawals ---------------------------------------------
 
+    def derive_series(self, name: str, figure: str, parameter: str, *, model: str = "exponential", where: str | None = None) -> dict[str, object]:
+        """Fit ``figure`` of many runs against their constant ``parameter`` with ``model``
+        (``exponential``, ``power_law``, ``linear``: :mod:`runlog.figures.across_runs`), over
+        the current runs holding shots ``where`` selects (default: all), and store it as the
+        series ``name`` with its member runs (``runlog.run_series``). Returns the series."""
+        from runlog.run_series import derive_series
+
+        return derive_series(self.engine, name, figure, parameter, model=model, where=where)
+
+    def series(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
+        """The series in force (newest fit of each name), or every fit of ``name`` with
+        ``history``: fitted values with standard errors, χ², member runs (x, y, stderr)."""
+        from runlog.run_series import series
+
+        with self.engine.connect() as connection:
+            return series(connection, name, history=history)
+
     def analyses(self, run: str, *, apparatus: str | None = None) -> list[dict[str, object]]:
         """Every analysis version of ``run``, oldest first: name, current, withdrawn, shots,
         when it came and from which files."""
@@ -685,8 +703,27 @@ class Catalogue:
 
         return select_shots(self, where, columns=columns, limit=limit)
 
-    def export(self, where: str, out: str | Path, **options):
-        """Write the shots chosen by ``where`` as a Frictionless Data Package (docs/export.md)."""
+    def pin(self, name: str, where: str, *, author: str | None = None) -> dict[str, object]:
+        """Freeze the shots ``where`` selects now, with their analysis versions and the
+        figure records in force, under ``name`` (``runlog.pins``); ``export(None, out,
+        pin=name)`` writes them again byte for byte later. Returns the pin as :meth:`pins` lists it."""
+        from runlog.pins import make_pin
+
+        made = make_pin(self.engine, name, where, author=author or _user())
+        return next(p for p in self.pins() if p["name"] == made.name)
+
+    def pins(self) -> list[dict[str, object]]:
+        """Every pin: filter, when, by whom, shots, runs, the analysis versions it holds, and
+        ``changes``: what the catalogue as it stands would change in it (newer analysis
+        versions, figures derived again), in the form of the impact report."""
+        from runlog.pins import pins
+
+        with self.engine.connect() as connection:
+            return pins(connection)
+
+    def export(self, where: str | None, out: str | Path, **options):
+        """Write the shots chosen by ``where`` (or ``pin=NAME``: a pinned selection) as a
+        Frictionless Data Package (docs/export.md)."""
         from runlog.export import export
 
         return export(self, where, Path(out), **options)
@@ -755,8 +792,8 @@ class Catalogue:
             with self.engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection, connection.begin():
                 result.alarms = alarm_store.record(connection, result)
         if result.points:
-            notes = self.annotations(apparatus=result.apparatus, since=dt.datetime.combine(result.points[0].date, dt.time(), dt.timezone.utc) - dt.timedelta(days=1))
-            last = dt.datetime.combine(result.points[-1].date, dt.time(), dt.timezone.utc) + dt.timedelta(days=2)
+            notes = self.annotations(apparatus=result.apparatus, since=day_start_utc(result.points[0].date, days=-1))
+            last = day_start_utc(result.points[-1].date, days=2)
             result.annotations = [
                 {"at": row.at.to_pydatetime(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
                 for row in notes.itertuples(index=False)
@@ -874,7 +911,9 @@ class Catalogue:
             return acknowledge(connection, alarm_id, note, zone, author)
 
     def what_else_changed(self, quantity: str, day: dt.date | str, *, apparatus: str | None = None, window: int = 3, top: int = 10) -> list[dict[str, object]]:
-        """Parameters, measurements and figures ranked by how much they moved across ``day``."""
+        """Suspects of a change on ``day``: setting changes, then every registered candidate
+        (parameters, measurements, figures, ...) ranked by its standardised change
+        (:mod:`runlog.drift.candidates`)."""
         from runlog.drift.causes import what_else_changed
         from runlog.drift.series import _apparatus_id
 

@@ -28,6 +28,10 @@ Example::
     x = "wait"
     y = "bright_fraction"
 
+    [time_window]             # shots stamped outside it are refused (an unset clock, a
+    earliest = 2000-01-01     # corrupted page); these are the defaults, in UTC. The
+    latest = 2100-01-01       # window must lie within 1900-01-01 and 2262-01-01.
+
     [apparatus."lattice-east"]  # constants of one apparatus the figures need
     field_sensitivity = "2.0 kHz/mG"          # transition frequency per magnetic field
     zero_field_frequency = "6834.682611 MHz"  # optional: the transition at zero field
@@ -40,6 +44,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from runlog.errors import ConfigError
+from runlog.times import DEFAULT_TIME_WINDOW, TimeWindow
 
 __all__ = ["APPARATUS_KEYS", "Mapping", "check_apparatus_settings", "check_rules", "load_config"]
 
@@ -61,6 +66,20 @@ class Mapping:
     apparatus_settings: dict[str, dict[str, str]] = field(default_factory=dict)
     #: ``[occupancy] threshold``: per image name, ``"*"`` for every image.
     thresholds: dict[str, float] = field(default_factory=dict)
+    #: ``[time_window]``: shot times outside it are refused.
+    time_window: TimeWindow = DEFAULT_TIME_WINDOW
+
+
+def _time_window(table: object, source: str) -> TimeWindow:
+    if not isinstance(table, dict):
+        raise ConfigError(source, "[time_window] must be a table with earliest and latest")
+    unknown = sorted(set(table) - {"earliest", "latest"})
+    if unknown:
+        raise ConfigError(source, f"[time_window]: unknown key '{unknown[0]}' (known: earliest, latest)")
+    try:
+        return TimeWindow(table.get("earliest", DEFAULT_TIME_WINDOW.earliest), table.get("latest", DEFAULT_TIME_WINDOW.latest))
+    except ValueError as error:
+        raise ConfigError(source, f"[time_window]: {error}") from None
 
 
 def load_config(path: str | Path | None) -> Mapping:
@@ -74,7 +93,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "time_window"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -115,6 +134,7 @@ def load_config(path: str | Path | None) -> Mapping:
         source=str(path),
         apparatus_settings=settings,
         thresholds={str(k): float(v) for k, v in thresholds.items()},
+        time_window=_time_window(data.get("time_window", {}), str(path)),
     )
 
 

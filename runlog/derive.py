@@ -90,6 +90,7 @@ _SAME_CORRELATOR_OUTCOMES = ("q1", "q2", "q3")
 _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
 #: Kind-specific settings a rule or ``derive(settings=...)`` may give, by kind.
 SETTINGS = {
+    "coherence": ("oscillator", "side"),
     "rabi": ("pulse",),
     "spectroscopy": ("pulse",),
     "echo": ("stretch",),
@@ -494,7 +495,43 @@ def _coherence(source: _Source, options: _Options) -> list[Figure]:
     # The wait goes in in its own unit, so the coherence time comes out in it.
     if "contrast" in y.lower():
         return fit_envelope(wait, signal, envelope=options.envelope, wait_unit=unit)
-    return fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit)
+    figures = fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit)
+    sensitivity = options.constants.get("field_sensitivity")
+    if sensitivity is not None:
+        figures.append(_ramsey_field(source, options, figures, sensitivity))
+    return figures
+
+
+#: Names the Ramsey fringe frequency has had (the figure was renamed).
+_RAMSEY_FREQUENCY = ("ramsey_frequency", "detuning")
+
+
+def _ramsey_field(source: _Source, options: _Options, figures: list[Figure], sensitivity: str) -> Figure:
+    """The field at the atoms from a Ramsey fringe, as spectroscopy's from a resonance.
+
+    The fringe frequency δ is |f_atoms − f_oscillator| (a fringe cannot tell the sign:
+    ``side`` says whether the atoms' transition lies ``above`` the oscillator, the default,
+    or ``below``). ``oscillator`` is the oscillator's frequency (a parameter or a quantity):
+    its detuning from the zero-field transition, or its absolute frequency when the
+    apparatus gives ``zero_field_frequency``; without it the oscillator sits on the zero-field
+    transition. The transition is then at ``oscillator ± δ`` and
+    :func:`~runlog.figures.spectroscopy.field_from_resonance` turns it into the field.
+    """
+    frequency = next(f for f in figures if f.name in _RAMSEY_FREQUENCY)
+    side = str(options.settings.get("side", "above"))
+    if side not in ("above", "below"):
+        raise FitError("coherence", f"side '{side}' must be 'above' or 'below' (the atoms' transition against the oscillator)")
+    zero_field = options.constants.get("zero_field_frequency")
+    given = options.settings.get("oscillator")
+    if given is None and zero_field is not None:
+        raise FitError("coherence", "the apparatus gives zero_field_frequency: give oscillator= (the oscillator's frequency) to place the Ramsey fringe")
+    oscillator = 0.0 if given is None else _quantity_setting(source, given, frequency.unit, "oscillator")
+    transition = oscillator + (frequency.value if side == "above" else -frequency.value)
+    placed = Figure("resonance", transition, frequency.unit, stderr=frequency.stderr, method=frequency.method, method_version=frequency.method_version)
+    try:
+        return field_from_resonance(placed, sensitivity, zero_field, method="ramsey frequency/sensitivity")
+    except ValueError as error:
+        raise FitError("coherence", str(error)) from None
 
 
 def _spreading(source: _Source, options: _Options) -> list[Figure]:

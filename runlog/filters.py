@@ -43,6 +43,7 @@ from sqlalchemy import (
     MetaData,
     Table,
     and_,
+    bindparam,
     exists,
     not_,
     or_,
@@ -55,6 +56,7 @@ from sqlalchemy.engine import Connection, Engine
 from runlog.errors import FilterError
 from runlog.store import schema as s
 from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
+from runlog.times import day_start_utc
 from runlog.units import check_unit, conversion
 
 __all__ = [
@@ -503,11 +505,18 @@ class CompiledFilter:
     shots: ColumnElement[bool] | None
     #: Ids of the parameters the filter compares.
     parameters: frozenset[int] = field(default=frozenset(), compare=False)
+    #: Run version ids to select from instead of the current versions (a pinned
+    #: selection, :mod:`runlog.pins`, names the versions it was made on).
+    versions: tuple[int, ...] | None = None
 
     def run_ids(self):
         """The ids of the runs that may hold matching shots, as a subquery: current
-        analysis versions only (older versions and withdrawn runs are never selected)."""
-        query = select(_runs.c.id).where(_runs.c.is_current)
+        analysis versions only (older versions and withdrawn runs are never selected),
+        unless :attr:`versions` names the run versions."""
+        if self.versions is not None:
+            query = select(_runs.c.id).where(_runs.c.id.in_(bindparam(None, list(self.versions), expanding=True, literal_execute=True)))
+        else:
+            query = select(_runs.c.id).where(_runs.c.is_current)
         return query.where(self.runs) if self.runs is not None else query
 
     @property
@@ -707,9 +716,9 @@ class _Compiler:
             day = dt.date.fromisoformat(str(value.value))
         except ValueError:
             raise self.error(f"'{value.value}' is not an ISO date such as '2026-03-02'", value.position) from None
-        day += dt.timedelta(days=later)
-        # The lab day starts at local midnight; in UTC that moves with daylight saving.
-        return dt.datetime.combine(day, dt.time(), self.names.zone).astimezone(dt.timezone.utc)
+        # The lab day starts at local midnight; in UTC that moves with daylight saving. At
+        # the calendar's ends (9999-12-31) the bound is the last moment there is.
+        return day_start_utc(day, self.names.zone, later)
 
     def times(self, node: Comparison, moments: list[dt.datetime]) -> CompiledFilter:
         column = _shots.c.time

@@ -27,10 +27,11 @@ from sqlalchemy import insert
 from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
-from runlog.contract import FROM_COUNTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
+from runlog.contract import FROM_COUNTS, MAX_MEASUREMENTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
 from runlog.errors import ContractError
 from runlog.store.bulk import Writer, open_writer
+from runlog.store.failures import describe
 from runlog.store.schema import IngestLogEntry, measurement_column
 from runlog.units import conversion
 
@@ -55,6 +56,15 @@ class IngestResult:
     #: What the configuration's [[rules]] gave for this file's runs: ``DeriveResult`` or
     #: ``FitError`` objects (empty without rules).
     derived: tuple = ()
+    #: Why a file was refused: ``"contract"`` or ``"data"`` (the file's own fault), or a
+    #: store failure that is not (``"busy"``, ``"permission"``, ``"unavailable"``:
+    #: :mod:`runlog.store.failures`), after which the same file may be tried again.
+    cause: str | None = None
+
+    @property
+    def files_fault(self) -> bool:
+        """Whether the file itself was refused (``runlog watch`` quarantines only those)."""
+        return self.status == "rejected" and self.cause in ("contract", "data", None)
 
     def as_dict(self) -> dict[str, object]:
         return {
@@ -434,6 +444,9 @@ class _Catalogue:
         if name not in self.measurements:
             rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
             if not rows:
+                known = int(_one(self.writer, "SELECT COUNT(*) FROM measurements", {}) or 0)
+                if known >= MAX_MEASUREMENTS:
+                    raise ContractError(self.file, f"the catalogue already holds {known} measurement names, the most it can (each is a column of the store): a new one cannot be added", column=column)
                 self.writer.execute("INSERT INTO measurements (name, unit) VALUES (:name, :unit)", {"name": name, "unit": unit})
                 rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
                 real = "REAL" if self.writer.dialect == "sqlite" else "DOUBLE PRECISION"
@@ -902,14 +915,21 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
     writer.append("shot_measurements", pa.table(table))
 
 
+def _storable(text: str | None) -> str | None:
+    # A refusal quotes what the file held (and its name): control characters are escaped,
+    # so a NUL (PostgreSQL cannot store it) never reaches the log and a newline in a file
+    # name cannot forge lines of the output.
+    return None if text is None else "".join(c if c >= " " and c != "\x7f" else repr(c)[1:-1] for c in text)
+
+
 def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float, writer: Writer | None = None) -> int | None:
     """Write the ingest-log entry (inside the writer's transaction when given; its id then)."""
     row = {
-        "file": result.file,
+        "file": _storable(result.file),
         "sha256": sha,
         "size": size,
         "status": result.status,
-        "reason": result.reason,
+        "reason": _storable(result.reason),
         "runs": ",".join(result.runs) or None,
         "shots": result.shots,
         "started_at": started,
@@ -989,9 +1009,17 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         finally:
             writer.close()
     except ContractError as error:
-        result = IngestResult(name, "rejected", reason=str(error))
+        result = IngestResult(name, "rejected", reason=_storable(str(error)), cause="contract")
+    except Exception as error:  # noqa: BLE001 - any failure of one file is that file's refusal
+        failure = describe(error, doing="writing this file")
+        result = IngestResult(name, "rejected", reason=_storable(f"{name}: {failure.message}"), cause=failure.kind)
+    try:
         _log(engine, result, sha, size, started, read_s, write_s)
-        return result
+    except Exception as error:  # noqa: BLE001 - a catalogue that cannot take the refusal either
+        failure = describe(error, doing="recording the refusal")
+        if result.cause in ("contract", "data"):
+            result = replace(result, reason=f"{result.reason} (not recorded in the ingest log: {failure.message})")
+    return result
 
 
 def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None) -> list[IngestResult]:

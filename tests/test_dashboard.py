@@ -244,10 +244,10 @@ def test_drift_page_follows_its_widgets(lab):
     (fill_change,) = [option for option in change.options if option.startswith(f"fill fraction on {CHANGE_DAY}")]
     change.select_index(change.options.index(fill_change)).run()
     assert at.selectbox(key="drift-change-tweezer-west").value[:2] == ("fill_fraction", CHANGE_DAY)
-    causes = table(at, "candidate", "Hedges' g")
+    causes = table(at, "candidate", "standard errors")
     ranked = lab.what_else_changed("fill_fraction", CHANGE_DAY, apparatus="tweezer-west")
     assert list(causes["candidate"]) == [c["name"].replace("_", " ") for c in ranked]
-    np.testing.assert_allclose(causes["Hedges' g"], [c["effect_size"] for c in ranked], rtol=1e-12)
+    np.testing.assert_allclose(causes["standard errors"].astype(float), [np.nan if c["standardised_change"] is None else c["standardised_change"] for c in ranked], rtol=1e-12)
 
     # A sequence, a parameter range and a date range each narrow the same query.
     at.selectbox(key="drift-sequence-tweezer-west").set_value("loading").run()
@@ -475,5 +475,32 @@ def test_pages_work_on_an_independent_scenario(db_url, tmp_path, monkeypatch):
         open_page(at, "run_detail")
         open_page(at, "shots")
         open_page(at, "annotate")
+    finally:
+        _forget_cached(db_url)
+
+
+def test_run_detail_shows_the_analysis_versions_and_what_the_current_one_moved(db_url, tmp_path, monkeypatch):
+    from test_analyses import thresholded
+
+    from conftest import T0
+
+    pq.write_table(thresholded({"r1": 60}, 0.65), tmp_path / "v1.parquet")
+    pq.write_table(thresholded({"r1": 60}, 0.8, analysis="thr-0.8"), tmp_path / "v2.parquet")
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest([tmp_path / "v1.parquet", tmp_path / "v2.parquet"])
+        report = {e["figure"]: e for e in catalogue.impact("r1")}
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = open_page(start(), "run_detail")
+        at.selectbox(key="run-apparatus").set_value("bench-a").run()
+        at.selectbox(key="run-day-bench-a").set_value(T0.date()).run()
+        assert not at.exception, at.exception
+        versions = table(at, "analysis", "withdrawn")
+        assert list(versions["analysis"]) == ["(unnamed)", "thr-0.8"] and list(versions["current"]) == [False, True]
+        assert list(versions["files"]) == ["v1.parquet", "v2.parquet"]
+        moved = table(at, "figure", "shift [combined stderr]").set_index("figure")
+        for name in ("fill_fraction", "survival"):
+            assert moved.loc[name, "shift [combined stderr]"] == round(report[name]["sigma"], 2)
+            assert moved.loc[name, "now"].endswith("(thr-0.8)") and moved.loc[name, "before"].endswith("(unnamed)")
     finally:
         _forget_cached(db_url)

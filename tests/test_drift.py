@@ -135,7 +135,7 @@ def test_alarms_are_recorded_once_and_acknowledging_adds_an_annotation(scenario)
 def test_what_else_changed_ranks_the_parameter_that_moved_first(scenario):
     fill = scenario.drift("fill_fraction", apparatus="bench-north")
     ranking = scenario.what_else_changed("fill_fraction", fill.changes[0].date, apparatus="bench-north")
-    names = [r["name"] for r in ranking]
+    names = [f"{r['kind']} {r['name']}" for r in ranking]
     # lattice_depth and atom_number moved with the step; survival did not.
     assert set(names[:2]) == {"parameter lattice_depth", "measurement atom_number"}
 
@@ -230,7 +230,7 @@ def test_drift_command_ranks_causes_and_filters_by_parameter(scenario):
     url = scenario.engine.url.render_as_string(hide_password=False)
     result = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--apparatus", "bench-north", "--causes", "--json"])
     data = json.loads(result.output)
-    assert {c["name"] for c in data["changes"][0]["causes"][:2]} == {"parameter lattice_depth", "measurement atom_number"}
+    assert {(c["kind"], c["name"]) for c in data["changes"][0]["causes"][:2]} == {("parameter", "lattice_depth"), ("measurement", "atom_number")}
     filtered = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--apparatus", "bench-north", "--param", "lattice_depth=60:70", "--json"])
     assert len(json.loads(filtered.output)["points"]) == FILL_STEP_DAY
     bad = CliRunner().invoke(cli, ["--db", url, "drift", "fill_fraction", "--param", "depth=deep"])

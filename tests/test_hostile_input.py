@@ -1,5 +1,7 @@
 """Hostile shot tables (hypothesis): every file is ingested exactly or refused with a reason —
-never a traceback, never a partial write. On SQLite and PostgreSQL."""
+never a traceback, never a partial write. On SQLite and PostgreSQL. Among them: times
+outside the plausible window, shot indices beyond 32 bits, NUL and over-long texts, names
+with control characters."""
 
 from __future__ import annotations
 
@@ -33,14 +35,19 @@ def shot_tables(draw):
     if draw(st.integers(0, 4)):
         shots = list(range(n))  # mostly well-formed indices
     else:
-        shots = draw(st.lists(st.one_of(st.integers(-2, 8), st.none()), min_size=n, max_size=n))
+        shots = draw(st.lists(st.one_of(st.integers(-2, 8), st.sampled_from([2**31 - 1, 2**31, 2**62]), st.none()), min_size=n, max_size=n))
     columns: dict[str, pa.Array] = {
         "run": pa.array(runs, pa.string()),
         "apparatus": pa.array(["bench"] * n),
         "sequence": pa.array([draw(st.sampled_from(["loading", "ramsey"]))] * n),
         "shot": pa.array(shots, pa.int64()),
     }
-    if draw(st.integers(0, 9)):
+    when = draw(st.integers(0, 9))
+    if when == 1:
+        # Outside the time window: an unset clock, a placeholder, a corrupted page (year 20000).
+        far = draw(st.sampled_from([0, 253_402_297_199_000_000, 568_000_000_000_000_000, -62_000_000_000_000_000]))
+        columns["time"] = pa.array([far + i for i in range(n)], pa.int64()).cast(pa.timestamp("us", tz="UTC"))
+    elif when:
         columns["time"] = pa.array([T0 + dt.timedelta(seconds=i) for i in range(n)], pa.timestamp("us", tz="UTC"))
     else:
         columns["time"] = pa.array([T0.replace(tzinfo=None)] * n, pa.timestamp("us"))  # zone-less
@@ -50,7 +57,9 @@ def shot_tables(draw):
         if kind == "number":
             columns[name] = pa.array([draw(numbers) for _ in range(n)], pa.float64() if draw(st.booleans()) else None) if n else pa.array([], pa.float64())
         elif kind == "text":
-            columns[name] = pa.array([draw(st.one_of(names, st.none())) for _ in range(n)], pa.string())
+            # Also NUL and texts longer than an index entry holds (2704 bytes on PostgreSQL).
+            texts = st.one_of(names, st.none(), st.just("a\x00b"), st.just("ü" * 1500), st.just("x" * 2001))
+            columns[name] = pa.array([draw(texts) for _ in range(n)], pa.string())
         else:
             columns[name] = pa.array([draw(st.one_of(st.booleans(), st.none())) for _ in range(n)], pa.bool_())
     for _ in range(draw(st.integers(0, 2))):

@@ -8,10 +8,13 @@ lab's wall-clock time on a UTC scale (see ``common``).
 
 from __future__ import annotations
 
+import datetime as dt
+
 import altair as alt
 import pandas as pd
 
 from runlog.dashboard_app.common import PALETTE, SERIES_COLOURS, axis_title, label, unit_text
+from runlog.times import shift_day
 
 __all__ = ["drift_chart", "fit_chart", "scatter_chart", "site_map_chart"]
 
@@ -52,7 +55,7 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
     first, last = domain
     x = alt.X(
         "when:T",
-        scale=alt.Scale(type="utc", domain=[f"{first}T00:00:00Z", f"{pd.Timestamp(last) + pd.Timedelta(days=1):%Y-%m-%d}T00:00:00Z"]),
+        scale=alt.Scale(type="utc", domain=[f"{first}T00:00:00Z", f"{shift_day(dt.date.fromisoformat(str(last)[:10]), 1).isoformat()}T00:00:00Z"]),
         axis=alt.Axis(title=f"lab day ({zone})", format="%d %b", labelAngle=0, tickCount="day"),
     )
     y_scale = alt.Scale(zero=False)

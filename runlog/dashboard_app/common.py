@@ -32,6 +32,7 @@ import streamlit as st
 import runlog
 from runlog.dashboard import URL_VARIABLE
 from runlog.errors import RunlogError
+from runlog.redaction import scrub
 
 __all__ = [
     "CACHE_SECONDS",
@@ -131,7 +132,7 @@ def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None) -
 def show_error(error: Exception) -> None:
     """A runlog error as one line on the page; anything else is a bug and keeps its traceback."""
     if isinstance(error, RunlogError):
-        st.error(str(error))
+        st.error(scrub(str(error)))
     else:
         raise error
 
@@ -301,6 +302,48 @@ def run_info(url: str, run: str, apparatus: str) -> runlog.RunInfo:
 
 
 @_cached
+def versions_and_impact(url: str, run: str, apparatus: str) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The run's analysis versions (oldest first) and its impact report (what the current
+    version moved against the one before, or a figure derived again against its record before)."""
+    opened = catalogue(url)
+    versions = pd.DataFrame(
+        [
+            {
+                "analysis": v["analysis"] or "(unnamed)",
+                "current": bool(v["current"]),
+                "withdrawn": bool(v["withdrawn"]),
+                "shots": v["shots"],
+                "ingested": (v["ingested_at"] or "")[:16].replace("T", " "),
+                "files": ", ".join(str(f["file"]).rsplit("/", 1)[-1] for f in v["files"]),
+            }
+            for v in opened.analyses(run, apparatus=apparatus)
+        ],
+        columns=["analysis", "current", "withdrawn", "shots", "ingested", "files"],
+    )
+
+    def side(value) -> str:
+        if value is None:
+            return "–"
+        return f"{with_uncertainty(value['value'], value.get('stderr'), value.get('unit'))} ({value['analysis'] or 'unnamed'})"
+
+    impact = pd.DataFrame(
+        [
+            {
+                "figure": e["figure"],
+                "before": side(e["old"]),
+                "now": side(e["new"]),
+                "shift [combined stderr]": None if e["sigma"] is None else round(float(e["sigma"]), 2),
+                "pins holding the old": ", ".join(e["pins"]),
+            }
+            for e in opened.impact(run, apparatus=apparatus)
+            if e["old"] is not None and e["new"] is not None and e["old"].get("record") != e["new"].get("record")
+        ],
+        columns=["figure", "before", "now", "shift [combined stderr]", "pins holding the old"],
+    )
+    return versions, impact
+
+
+@_cached
 def shots_table(url: str, run: str, apparatus: str) -> tuple[pd.DataFrame, dict[str, str]]:
     """The run's shots and the units of their columns."""
     frame = catalogue(url).shots(run, apparatus=apparatus)
@@ -334,7 +377,7 @@ def fit_curve(url: str, run: str, apparatus: str, x: str | None, y: str | None, 
 @_cached
 def what_else_changed(url: str, quantity: str, day: dt.date, apparatus: str) -> pd.DataFrame:
     ranked = catalogue(url).what_else_changed(quantity, day, apparatus=apparatus)
-    return pd.DataFrame(ranked, columns=["name", "effect_size", "p_value", "before_mean", "after_mean", "n_before", "n_after"])
+    return pd.DataFrame(ranked, columns=["name", "kind", "words", "standardised_change", "q_value", "setting_changed", "before_mean", "after_mean", "n_before", "n_after"])
 
 
 @_cached

@@ -174,7 +174,7 @@ def fit_lineshape(
     ]
 
 
-def field_from_resonance(resonance: Figure, sensitivity: str, zero_field_frequency: str | None = None) -> Figure:
+def field_from_resonance(resonance: Figure, sensitivity: str, zero_field_frequency: str | None = None, *, method: str = "resonance/sensitivity") -> Figure:
     """The magnetic field ``(x0 - f0) / s`` from a ``resonance`` figure, in ``s``'s field unit.
 
     ``sensitivity`` is a quantity text such as ``"2.0 kHz/mG"`` (frequency per field; the
@@ -208,7 +208,7 @@ def field_from_resonance(resonance: Figure, sensitivity: str, zero_field_frequen
         error = None if resonance.stderr is None else abs(float((ureg.Quantity(resonance.stderr, resonance.unit) / slope).to(field_unit).magnitude))
     except Exception:
         raise ValueError(f"the resonance in '{resonance.unit}' divided by '{sensitivity}' is not a magnetic field") from None
-    return Figure("field", field, field_unit, stderr=error, method="resonance/sensitivity", method_version=_METHOD_VERSION)
+    return Figure("field", field, field_unit, stderr=error, method=method, method_version=_METHOD_VERSION)
 
 
 def _is_field(ureg, quantity) -> bool:

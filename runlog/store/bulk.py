@@ -139,10 +139,15 @@ class _SqliteWriter:
     def close(self) -> None:
         try:
             self.rollback()
+        except Exception:  # noqa: BLE001 - closing discards the transaction anyway; the error that
+            pass  # led here (e.g. a read-only file) is the one to report, not the rollback's
         finally:
-            self._cursor.close()
-            self._connection.close()
-            exclusive_bulk_writer(self._path, False)
+            self._open = False
+            try:
+                self._cursor.close()
+                self._connection.close()
+            finally:
+                exclusive_bulk_writer(self._path, False)
 
 
 def _copy_text(data: pa.Table) -> pa.Table:
@@ -217,6 +222,8 @@ class _PostgresWriter:
     def close(self) -> None:
         try:
             self.rollback()
+        except Exception:  # noqa: BLE001 - as for SQLite: report the error that led here
+            pass
         finally:
             self._connection.close()
 

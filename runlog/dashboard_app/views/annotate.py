@@ -10,6 +10,7 @@ import streamlit as st
 
 from runlog.dashboard_app import common
 from runlog.errors import RunlogError
+from runlog.redaction import scrub
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
@@ -27,7 +28,7 @@ def written(action) -> None:
     try:
         message = action()
     except (RunlogError, ValueError) as error:
-        st.error(str(error))
+        st.error(scrub(str(error)))
     else:
         st.session_state["annotate-done"] = message
         st.rerun()

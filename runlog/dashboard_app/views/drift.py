@@ -113,8 +113,8 @@ with causes_column:
             ranked = pd.DataFrame(
                 {
                     "candidate": [common.label(n) for n in ranked["name"]],
-                    "Hedges' g": ranked["effect_size"],
-                    "Welch p": ranked["p_value"],
+                    "standard errors": ranked["standardised_change"],
+                    "BH q": ranked["q_value"],
                     "before → after": [f"{b:.4g} → {a:.4g}" for b, a in zip(ranked["before_mean"], ranked["after_mean"])],
                     "n": [f"{b} / {a}" for b, a in zip(ranked["n_before"], ranked["n_after"])],
                 }
@@ -125,9 +125,9 @@ with causes_column:
                 key="drift-causes",
                 column_config={
                     "candidate": st.column_config.TextColumn(width="medium"),
-                    "Hedges' g": st.column_config.NumberColumn(format="%+.2f", width="small"),
-                    "Welch p": st.column_config.NumberColumn(format="%.2g", width="small"),
+                    "standard errors": st.column_config.NumberColumn(format="%+.1f", width="small"),
+                    "BH q": st.column_config.NumberColumn(format="%.2g", width="small"),
                     "n": st.column_config.TextColumn(width="small"),
                 },
             )
-        st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; ranked by |Hedges' g|. It points at likely causes, it proves none; p-values are not corrected for the number of candidates.")
+        st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; setting changes first, then ranked by how many of its own standard errors each moved; q: Benjamini-Hochberg (1995) corrected. It points at likely causes, it proves none.")

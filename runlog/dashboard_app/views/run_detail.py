@@ -113,6 +113,18 @@ if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"}
         elif curve.offset_estimated:
             st.caption("Levels and amplitudes of the curve are the least-squares values over the shots for the stored times, rates and frequencies.")
 
+versions, moved = common.versions_and_impact(url, info.run, info.apparatus)
+if len(versions) > 1 or len(moved):
+    st.markdown("**Analysis versions**")
+    st.dataframe(versions, hide_index=True, key="run-versions", column_config={"current": st.column_config.CheckboxColumn("current"), "withdrawn": st.column_config.CheckboxColumn("withdrawn")})
+    if len(moved):
+        st.markdown("**What the current analysis moved**")
+        st.dataframe(moved, hide_index=True, key="run-impact")
+        st.caption(
+            "Before: the version before the current one (or, with one version, the figure's record before). "
+            "Shift: (now − before) / √(stderr² + stderr²); the two share shots, so it is a yardstick of size, not a test."
+        )
+
 if any(image["role"] == "loading" for image in info.images.values()):
     st.markdown("**Per site**")
     maps = st.columns(2)
