@@ -75,6 +75,8 @@ class Drift:
     counting: bool
     out_of_limits: list[int] = field(default_factory=list)
     alarms: list[dict[str, object]] = field(default_factory=list)
+    # Notes near the series: ``at`` is a timezone-aware datetime here and ISO text only in
+    # :meth:`as_dict`, so that every reader gets one type whatever its fraction of a second.
     annotations: list[dict[str, object]] = field(default_factory=list)
     series: dict[str, object] | None = None  # the reference series judged (None: pooled runs)
     other_series: list[dict[str, object]] = field(default_factory=list)
@@ -104,7 +106,7 @@ class Drift:
             "excursions": self.excursions,
             "settings": self.settings,
             "other_series": self.other_series,
-            "annotations": self.annotations,
+            "annotations": [{**note, "at": note["at"].isoformat()} for note in self.annotations],
         }
 
 
