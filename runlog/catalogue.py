@@ -795,7 +795,7 @@ class Catalogue:
             notes = self.annotations(apparatus=result.apparatus, since=day_start_utc(result.points[0].date, days=-1))
             last = day_start_utc(result.points[-1].date, days=2)
             result.annotations = [
-                {"at": row.at.isoformat(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
+                {"at": row.at.to_pydatetime(), "run": None if row.run is None or row.run != row.run else row.run, "text": row.text}
                 for row in notes.itertuples(index=False)
                 if row.at <= last
             ]

@@ -231,6 +231,14 @@ def test_unknown_run_is_one_line_naming_it(db_url, files, capsys):
     assert result.exit_code == 1 and isinstance(result.exception, runlog.NotFoundError)
 
 
+def test_shots_with_a_limit_and_no_matching_run_is_an_empty_result(db_url, files, capsys):
+    assert invoke("--db", db_url, "ingest", str(files["east"])).exit_code == 0
+    code, out, err = run_main(capsys, "--db", db_url, "shots", "--where", "sequence = 'no-such'", "--limit", "20")
+    assert (code, out, err) == (0, "no shots\n", "")
+    code, out, err = run_main(capsys, "--db", db_url, "shots", "--where", "run = 'r9'", "--limit", "5", "--json")
+    assert (code, json.loads(out), err) == (0, [], "")
+
+
 # --- annotate ---------------------------------------------------------------------------
 
 

@@ -434,6 +434,24 @@ def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(l
     assert charts(at)[0]["spec"]["layer"][-1]["encoding"]["x"]["axis"]["title"] == "lab day (Europe/Berlin)"
 
 
+def test_notes_at_a_whole_second_and_with_microseconds_leave_overview_and_drift_drawn(recent):
+    # The note form's default time is a whole second; a note on a run takes the run's start,
+    # which has microseconds. Their times once reached pandas as text of two formats.
+    recent.annotate("lattice realigned", apparatus="tweezer-west", at="2026-09-10T08:00:00+00:00")
+    run = recent.runs(apparatus="tweezer-west").iloc[0]["run"]
+    recent.annotate("camera saturated", run=run, apparatus="tweezer-west", at=dt.datetime(2026, 9, 10, 9, 1, 2, 345678, tzinfo=dt.timezone.utc))
+    result = recent.drift("fill_fraction", apparatus="tweezer-west")
+    assert all(isinstance(note["at"], dt.datetime) for note in result.annotations)
+    assert {"2026-09-10T08:00:00+00:00", "2026-09-10T09:01:02.345678+00:00"} <= {n["at"] for n in result.as_dict()["annotations"]}
+    at = start()  # the overview
+    assert not at.exception
+    open_page(at, "drift")
+    at.selectbox(key="drift-apparatus").set_value("tweezer-west").run()
+    assert not at.exception, at.exception
+    notes = charts(at)[0]["layers"]["notes"]
+    assert {"lattice realigned", "camera saturated"} <= set(notes["text"])
+
+
 # --- an independent scenario: the drift tests' 14 invented days, not the demo ---------------
 
 
