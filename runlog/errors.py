@@ -32,8 +32,7 @@ __all__ = [
     "ExportError",
     "StoreError",
     "SchemaVersionError",
-    "one_line",
-]
+]  # the error classes; one_line and CONTROL_CHARACTERS are runlog's own helpers
 
 # C0 and C1 control characters and the Unicode line and paragraph separators: anything a
 # terminal or a log reader may take as the end of a line or as a command.
