@@ -29,7 +29,7 @@ from sqlalchemy.engine import Engine
 from runlog.config import Mapping
 from runlog.contract import FROM_COUNTS, MAX_MEASUREMENTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
-from runlog.errors import ContractError
+from runlog.errors import ContractError, one_line
 from runlog.store.bulk import Writer, open_writer, short_write
 from runlog.store.failures import describe
 from runlog.store.schema import IngestLogEntry, Measurement, measurement_column
@@ -1070,4 +1070,13 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
 def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None) -> list[IngestResult]:
     """Ingest every file (folders give their ``*.parquet``); one result per file, in order."""
     mapping = mapping or Mapping()
-    return [ingest_file(engine, path, mapping, progress, after_write) for path in expand_paths(paths)]
+    results = []
+    for raw in paths:
+        files = expand_paths([raw])
+        if not files:
+            # A folder without shot tables is a mistake worth saying so (a wrong day's
+            # folder, files not yet copied): a refusal of the folder, never a silent success.
+            results.append(IngestResult(str(raw), "rejected", reason=one_line(f"{raw}: no *.parquet files in this folder"), cause="contract"))
+            continue
+        results.extend(ingest_file(engine, path, mapping, progress, after_write) for path in files)
+    return results

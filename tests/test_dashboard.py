@@ -329,6 +329,16 @@ def test_run_detail_draws_the_fit_over_the_shots_and_the_site_maps(recent):
     assert len(table(at, "shot", "status")) == lab.run(key, apparatus="lattice-east").shots
 
 
+def test_a_run_page_link_to_an_unknown_run_says_so(recent):
+    at = AppTest.from_file(str(APP), default_timeout=60)
+    at.query_params["apparatus"] = "tweezer-west"
+    at.query_params["run"] = "20990101-99"
+    at.run()
+    open_page(at, "run_detail")
+    assert not at.exception
+    assert [w.value for w in at.warning][:1] == [f"No run '20990101-99' on tweezer-west: showing a run of {at.selectbox(key='run-day-tweezer-west').value:%d %b %Y} instead."]
+
+
 def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
     lab = recent
     # Outside check: scipy's curve_fit refits all five parameters of the Ramsey model; the
@@ -432,6 +442,24 @@ def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(l
     notes = charts(at)[0]["layers"]["notes"]
     assert "2026-09-10T08:15:00Z" in set(notes["when"]) and "repump fibre swapped" in set(notes["text"])
     assert charts(at)[0]["spec"]["layer"][-1]["encoding"]["x"]["axis"]["title"] == "lab day (Europe/Berlin)"
+
+
+def test_notes_at_a_whole_second_and_with_microseconds_leave_overview_and_drift_drawn(recent):
+    # The note form's default time is a whole second; a note on a run takes the run's start,
+    # which has microseconds. Their times once reached pandas as text of two formats.
+    recent.annotate("lattice realigned", apparatus="tweezer-west", at="2026-09-10T08:00:00+00:00")
+    run = recent.runs(apparatus="tweezer-west").iloc[0]["run"]
+    recent.annotate("camera saturated", run=run, apparatus="tweezer-west", at=dt.datetime(2026, 9, 10, 9, 1, 2, 345678, tzinfo=dt.timezone.utc))
+    result = recent.drift("fill_fraction", apparatus="tweezer-west")
+    assert all(isinstance(note["at"], dt.datetime) for note in result.annotations)
+    assert {"2026-09-10T08:00:00+00:00", "2026-09-10T09:01:02.345678+00:00"} <= {n["at"] for n in result.as_dict()["annotations"]}
+    at = start()  # the overview
+    assert not at.exception
+    open_page(at, "drift")
+    at.selectbox(key="drift-apparatus").set_value("tweezer-west").run()
+    assert not at.exception, at.exception
+    notes = charts(at)[0]["layers"]["notes"]
+    assert {"lattice realigned", "camera saturated"} <= set(notes["text"])
 
 
 # --- an independent scenario: the drift tests' 14 invented days, not the demo ---------------

@@ -73,6 +73,8 @@ class Drift:
     counting: bool
     out_of_limits: list[int] = field(default_factory=list)
     alarms: list[dict[str, object]] = field(default_factory=list)
+    # Notes near the series: ``at`` is a timezone-aware datetime here and ISO text only in
+    # :meth:`as_dict`, so that every reader gets one type whatever its fraction of a second.
     annotations: list[dict[str, object]] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, object]:
@@ -91,7 +93,7 @@ class Drift:
             "limits": self.limits,
             "changes": [{"date": c.date.isoformat(), "before": c.before, "after": c.after, "method": c.method} for c in self.changes],
             "alarms": self.alarms,
-            "annotations": self.annotations,
+            "annotations": [{**note, "at": note["at"].isoformat()} for note in self.annotations],
         }
 
 
