@@ -836,6 +836,9 @@ def export(state: _State, where: str | None, out: Path | None, file_format: str,
         _json(result.as_dict())
         return
     _echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    if result.other_versions_pinned:
+        named = sorted({e["pin"] for e in result.other_versions_pinned})
+        click.echo(f"current analysis versions exported; pin(s) {', '.join(named)} hold other versions of {len({(e['apparatus'], e['run']) for e in result.other_versions_pinned})} of these runs")
     if result.pin is not None and result.pin_changes:
         _echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
     if result.same is not None:
