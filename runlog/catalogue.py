@@ -964,14 +964,27 @@ class Catalogue:
         found = [v for v in versions if (v.is_current if analysis is None else v.analysis == analysis)]
         if not found:
             if not versions:
+                if apparatus is not None:
+                    elsewhere = self._apparatus_of(connection, key)
+                    if elsewhere:
+                        # The key is right and the apparatus is not: suggest apparatus, not the key typed.
+                        close = self._suggest(connection, s.Apparatus.name, apparatus)
+                        raise NotFoundError(f"run on apparatus '{apparatus}' named", key, f"it is on {_listed(elsewhere)}" + (f"; {close}" if close else ""))
                 raise NotFoundError("run", key, self._suggest(connection, s.Run.key, key))
             if analysis is not None:
                 known = ", ".join(repr(v.analysis) for v in sorted(versions, key=lambda v: v.id))
                 raise NotFoundError("analysis version", analysis, f"run '{key}' has {known}")
             raise NotFoundError("current version of run", key, f"the run is withdrawn: 'runlog restore --run {key}' brings it back")
         if len(found) > 1:
-            raise NotFoundError("single run", key, "several apparatus have a run of that name: give --apparatus")
+            names = self._apparatus_of(connection, key)
+            raise NotFoundError("single run", key, f"it is on {_listed(names)}: give the apparatus (--apparatus)")
         return found[0]
+
+    @staticmethod
+    def _apparatus_of(connection, key: str) -> list[str]:
+        """The apparatus with a current run named ``key``, in name order."""
+        query = select(s.Apparatus.name).join(s.Run, s.Run.apparatus_id == s.Apparatus.id).where(s.Run.key == key, s.Run.is_current).distinct().order_by(s.Apparatus.name)
+        return [name for (name,) in connection.execute(query)]
 
     def _apparatus_id(self, connection, name: str) -> int:
         found = connection.execute(select(s.Apparatus.id).where(s.Apparatus.name == name)).scalar()
@@ -983,9 +996,15 @@ class Catalogue:
     def _suggest(connection, column, name: str) -> str:
         import difflib
 
-        known = [v for (v,) in connection.execute(select(column).distinct().limit(5000))]
-        close = difflib.get_close_matches(name, known, n=3)
+        known = [v for (v,) in connection.execute(select(column).distinct().limit(5000)) if v != name]
+        close = difflib.get_close_matches(name, known, n=3)  # never the name that was typed
         return f"did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+
+
+def _listed(names: list[str]) -> str:
+    """``'a'``, ``'a' and 'b'``, ``'a', 'b' and 'c'``."""
+    quoted = [f"'{n}'" for n in names]
+    return quoted[0] if len(quoted) == 1 else f"{', '.join(quoted[:-1])} and {quoted[-1]}"
 
 
 def _rows_of(connection):

@@ -115,6 +115,17 @@ def test_ingest_of_a_folder_and_a_missing_file(db_url, files, tmp_path):
     ]
 
 
+def test_ingest_of_an_empty_folder_is_a_one_line_refusal(db_url, tmp_path, capsys):
+    empty = tmp_path / "2026-03-09"
+    empty.mkdir()
+    (empty / "notes.txt").write_text("no shot tables here")
+    code, out, err = run_main(capsys, "--db", db_url, "ingest", str(empty))
+    assert code == 1 and err == ""
+    assert out.splitlines() == [f"rejected         {empty}: no *.parquet files in this folder"]
+    code, out, _ = run_main(capsys, "--db", db_url, "ingest", str(empty), "--json")
+    assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "rejected", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet files in this folder"}]
+
+
 # --- runs and show ------------------------------------------------------------------------
 
 
@@ -237,6 +248,20 @@ def test_shots_with_a_limit_and_no_matching_run_is_an_empty_result(db_url, files
     assert (code, out, err) == (0, "no shots\n", "")
     code, out, err = run_main(capsys, "--db", db_url, "shots", "--where", "run = 'r9'", "--limit", "5", "--json")
     assert (code, json.loads(out), err) == (0, [], "")
+
+
+def test_a_run_key_on_two_apparatus_lists_them_and_a_wrong_apparatus_is_not_answered_with_the_key(db_url, tmp_path, capsys):
+    for apparatus in ("lattice-east", "tweezer-west"):
+        pq.write_table(shot_table({"20260302-07": 4}, apparatus=apparatus, start=DAY), tmp_path / f"{apparatus}.parquet")
+    assert invoke("--db", db_url, "ingest", str(tmp_path)).exit_code == 0
+    code, out, err = run_main(capsys, "--db", db_url, "show", "20260302-07")
+    assert (code, out) == (1, "")
+    assert err == "runlog: error: no single run '20260302-07' (it is on 'lattice-east' and 'tweezer-west': give the apparatus (--apparatus))\n"
+    code, _, err = run_main(capsys, "--db", db_url, "show", "20260302-07", "--apparatus", "lattice-est")
+    assert code == 1
+    assert err == "runlog: error: no run on apparatus 'lattice-est' named '20260302-07' (it is on 'lattice-east' and 'tweezer-west'; did you mean 'lattice-east'?)\n"
+    code, out, _ = run_main(capsys, "--db", db_url, "show", "20260302-07", "--apparatus", "tweezer-west", "--json")
+    assert code == 0 and json.loads(out)["apparatus"] == "tweezer-west"
 
 
 # --- annotate ---------------------------------------------------------------------------

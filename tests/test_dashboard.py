@@ -329,6 +329,16 @@ def test_run_detail_draws_the_fit_over_the_shots_and_the_site_maps(recent):
     assert len(table(at, "shot", "status")) == lab.run(key, apparatus="lattice-east").shots
 
 
+def test_a_run_page_link_to_an_unknown_run_says_so(recent):
+    at = AppTest.from_file(str(APP), default_timeout=60)
+    at.query_params["apparatus"] = "tweezer-west"
+    at.query_params["run"] = "20990101-99"
+    at.run()
+    open_page(at, "run_detail")
+    assert not at.exception
+    assert [w.value for w in at.warning][:1] == [f"No run '20990101-99' on tweezer-west: showing a run of {at.selectbox(key='run-day-tweezer-west').value:%d %b %Y} instead."]
+
+
 def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
     lab = recent
     # Outside check: scipy's curve_fit refits all five parameters of the Ramsey model; the
