@@ -588,15 +588,15 @@ def _series_lines(made: dict[str, Any]) -> None:
         _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
 
 
-@cli.command("series")
+@cli.command("series-fits")
 @click.argument("name", required=False)
 @click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def series_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+def series_fits_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
     """The series across runs (runlog derive --series), with their fits and member runs."""
     with _open(state) as catalogue:
-        found = catalogue.series(name, history=history)
+        found = catalogue.series_fits(name, history=history)
     if as_json:
         _json(found)
         return
