@@ -31,7 +31,7 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).parent))
 import drift as drift_benchmark  # noqa: E402  (the 10 M-shot catalogue builder)
-from ingest import timed  # noqa: E402
+from ingest import _postgres_databases, timed  # noqa: E402
 
 import runlog  # noqa: E402
 
@@ -116,6 +116,7 @@ def main() -> None:
     parser.add_argument("--drift-db", default=None, help="catalogue for part 2 (default: a fresh SQLite file)")
     parser.add_argument("--skip-drift", action="store_true")
     parser.add_argument("--skip-ingest", action="store_true")
+    parser.add_argument("--postgres", metavar="URL", help="part 1 on fresh databases of this PostgreSQL server instead of SQLite files")
     args = parser.parse_args()
     if not args.skip_ingest:
         _ingest_part(args)
@@ -128,15 +129,20 @@ def _ingest_part(args) -> None:
         folder = Path(folder)
         v1, v2 = make_versions(folder, args.shots, runs=args.runs)
         first, again = [], []
+        fresh = _postgres_databases(args.postgres) if args.postgres else None
+        urls = []
         for attempt in range(args.repeat):
-            url = f"sqlite:///{folder / f'catalogue-{attempt}.sqlite'}"
+            url = fresh(f"runlog_bench_reanalysis_{attempt}") if fresh else f"sqlite:///{folder / f'catalogue-{attempt}.sqlite'}"
+            urls.append(url)
             first.append(timed([sys.executable, "-m", "runlog", "--db", url, "ingest", "--json", str(v1)])[0])
             again.append(timed([sys.executable, "-m", "runlog", "--db", url, "ingest", "--json", str(v2)])[0])
-        with runlog.open(f"sqlite:///{folder / 'catalogue-0.sqlite'}") as catalogue:
+        with runlog.open(urls[0]) as catalogue:
             versions = [(a["analysis"], a["current"], a["shots"]) for a in catalogue.analyses("run-000")]
             assert versions == [("", False, args.shots // args.runs), ("thr-2", True, args.shots // args.runs)], versions
+        if fresh:
+            fresh(None)
         first_s, again_s = statistics.median(first), statistics.median(again)
-        print(f"file: {args.shots} shots in {args.runs} runs, 6x6 loading and survival images, SQLite, whole process")
+        print(f"file: {args.shots} shots in {args.runs} runs, 6x6 loading and survival images, {'PostgreSQL' if fresh else 'SQLite'}, whole process")
         print(f"first ingest (peer):          median {first_s:.2f} s  {[round(t, 2) for t in first]}")
         print(f"new analysis version ingest:  median {again_s:.2f} s  {[round(t, 2) for t in again]}")
         print(f"ratio new version / first ingest: {again_s / first_s:.2f}  (target <= 1.2)")
