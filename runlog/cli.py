@@ -493,9 +493,11 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
     _echo("what the invented lab did (the truth behind the files):")
     for line in SCENARIO.describe(start, days):
         _wrapped(line)
-    _echo("what runlog found (open alarms, changes in level):")
-    for alarm in (a for a in alarms if a["reason"] == "change"):
-        _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: change on {alarm['date']} to {alarm['value']:.4g} ({alarm['size']:+.3g})")
+    _echo("what runlog found (open alarms):")
+    for alarm in alarms:
+        size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
+        value = "" if alarm["value"] is None else f" at {alarm['value']:.4g}"
+        _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} on {alarm['date']}{value}{size}")
     _echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
     if any(r.status == "rejected" for r in results):
         for r in results:
@@ -625,34 +627,48 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @cli.command()
 @click.argument("quantity")
 @click.option("--apparatus", default=None, help="The apparatus (needed when several measure QUANTITY).")
-@click.option("--sequence", default=None, help="Only runs of this sequence.")
+@click.option("--sequence", default=None, help="The reference series within this sequence (with --pooled: all its runs).")
+@click.option("--series", "series_key", default=None, metavar="KEY", help="Another series than the reference one (SEQUENCE@FINGERPRINT, see --list-series).")
+@click.option("--pooled", is_flag=True, help="Every run (of --sequence) pooled, unlike runs mixed.")
+@click.option("--list-series", is_flag=True, help="List the series holding QUANTITY and stop.")
 @click.option("--since", default=None, metavar="DATE", help="First lab day (ISO).")
 @click.option("--until", default=None, metavar="DATE", help="Last lab day (ISO).")
-@click.option("--baseline-days", default=7, show_default=True, help="Days that set the control limits.")
+@click.option("--baseline-days", default=28, show_default=True, help="In-control lab days in the rolling baseline.")
 @click.option("--baseline", "baseline_range", default=None, metavar="FROM:TO", help="Lab days that set the limits instead (ISO dates).")
 @click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
-@click.option("--causes", is_flag=True, help="Rank what else changed at each change.")
+@click.option("--causes", is_flag=True, help="Notes, then suspects, at each change and each alarm day.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
-    """Daily values of a figure, control limits, changes in level and alarms."""
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
+    """Daily values of a figure for one reference series, control limits, changes in level and alarms."""
     parameters = dict(_range_option(text) for text in ranges)
     baseline = None
     if baseline_range is not None:
         first, _, last = baseline_range.partition(":")
         baseline = (_day_option(first, "--baseline"), _day_option(last, "--baseline"))
     with _open(state) as catalogue:
-        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
-        ranked = {c.date: catalogue.what_else_changed(quantity, c.date, apparatus=result.apparatus, top=5) for c in result.changes} if causes else {}
+        if list_series:
+            found = catalogue.series(quantity, apparatus=apparatus)
+            if as_json:
+                _json(found)
+            for entry in [] if as_json else found:
+                _wrapped(f"{'*' if entry['reference'] else ' '} {entry['key']}: {entry['label']}, {entry['days']} days, {entry['runs']} runs, {entry['first']} to {entry['last']}", indent="")
+            return
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, series=series_key, pooled=pooled, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
+        days = sorted({c.date for c in result.changes} | {dt.date.fromisoformat(e["date"]) for e in result.excursions}) if causes else []
+        found_suspects = {day: catalogue.suspects(quantity, day, apparatus=result.apparatus, top=5) for day in days}
     if as_json:
         data = result.as_dict()
         if causes:
-            for change in data["changes"]:
-                change["causes"] = ranked[dt.date.fromisoformat(change["date"])]
+            for entry in data["changes"] + data["excursions"]:
+                found = found_suspects[dt.date.fromisoformat(entry["date"])]
+                entry["notes"] = found["notes"]
+                entry["causes"] = found["causes"]
+                entry["verdict"] = found["verdict"]
         _json(data)
         return
     unit = f" [{result.unit}]" if result.unit else ""
-    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", sequence {result.sequence}" if result.sequence else ""), indent="")
+    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", series {result.series['label']} ({result.series['key']})" if result.series else (f", sequence {result.sequence}" if result.sequence else ", all runs pooled")), indent="")
     outside = set(result.out_of_limits)
     _echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
     for index, point in enumerate(result.points):
@@ -660,13 +676,27 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         _echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
     if outside:
         _echo("  * outside the control limits")
+    for excursion in result.excursions:
+        _wrapped(f"out of control from {excursion['date']}: {excursion['size']:+.4g}{unit}, {excursion['z']:+.1f} standard errors ({', '.join(excursion['signals'])})")
+        _print_suspects(found_suspects.get(dt.date.fromisoformat(excursion["date"])))
     for change in result.changes:
         _wrapped(f"change on {change.date.isoformat()}: {change.before:.4g} -> {change.after:.4g}{unit} ({change.method})")
-        for cause in ranked.get(change.date, []):
-            _wrapped(f"  suspect: {cause['words']}")
+        _print_suspects(found_suspects.get(change.date))
+    for setting in result.settings:
+        _wrapped(f"{setting['day']}: {setting['words']}")
     if not result.changes and len(result.points) >= 3:
         _echo("  no change in level found")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _print_suspects(found: dict[str, object] | None) -> None:
+    if found is None:
+        return
+    for note in found["notes"]:
+        _wrapped(f"  {note['kind']} {note['day']}" + (f" ({note['run']})" if note.get("run") else "") + f": {note['text']}")
+    for cause in found["causes"]:
+        _wrapped(f"  suspect: {cause['words']}")
+    _wrapped(f"  {found['verdict']}")
 
 
 @cli.command()
@@ -674,14 +704,17 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
 @click.option("--all", "show_all", is_flag=True, help="Acknowledged alarms too.")
 @click.option("--ack", "acknowledge", type=int, default=None, metavar="ID", help="Acknowledge alarm ID.")
 @click.option("--note", default="", help="With --ack: what it was (becomes an annotation).")
+@click.option("--accept", is_flag=True, help="With --ack: the new level is the reference from the alarm's day on (a new baseline).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, as_json: bool) -> None:
-    """Check every quantity for drift and list the open alarms (or acknowledge one)."""
+def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, accept: bool, as_json: bool) -> None:
+    """Check the reference series of every quantity for drift and list the open alarms (or acknowledge one)."""
+    if accept and acknowledge is None:
+        raise click.UsageError("--accept needs --ack ID")
     with _open(state) as catalogue:
         if acknowledge is not None:
-            annotation = catalogue.acknowledge(acknowledge, note)
-            _echo(f"alarm {acknowledge} acknowledged (annotation {annotation})")
+            annotation = catalogue.acknowledge(acknowledge, note, accept=accept)
+            _echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (annotation {annotation})")
             return
         catalogue.check_drift(apparatus=apparatus)
         found = catalogue.alarms(status=None if show_all else "open", apparatus=apparatus)
@@ -693,7 +726,9 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
         return
     for alarm in found:
         size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
-        _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} to {alarm['value']:.4g}{size}, {alarm['status']}", indent="")
+        value = "" if alarm["value"] is None else f" to {alarm['value']:.4g}"
+        where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+        _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}{where}: {alarm['reason']}{value}{size} ({alarm['method']}), {alarm['status']}", indent="")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")
 
 

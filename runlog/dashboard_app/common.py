@@ -122,9 +122,9 @@ def add_note(url: str, text: str, *, run: str | None = None, apparatus: str | No
     return number
 
 
-def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None) -> int:
+def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None, accept: bool = False) -> int:
     """``catalogue.acknowledge``; returns the annotation holding the note."""
-    number = catalogue(url).acknowledge(alarm, note, author=author or None)
+    number = catalogue(url).acknowledge(alarm, note, author=author or None, accept=accept)
     clear_cached_results()
     return number
 
@@ -389,7 +389,8 @@ def drift_view(
     since: dt.date | None = None,
     until: dt.date | None = None,
     parameters: tuple[tuple[str, float, float], ...] = (),
-    baseline_days: int = 7,
+    baseline_days: int = 28,
+    series: str | None = None,
 ) -> dict[str, object]:
     """The drift of one quantity as tables for a chart: daily points, limits, changes, notes.
 
@@ -403,6 +404,7 @@ def drift_view(
         until=until,
         parameters={name: (low, high) for name, low, high in parameters} or None,
         baseline_days=baseline_days,
+        series=series,
         record_alarms=False,
     )
     zone = lab_timezone(url)
@@ -431,6 +433,8 @@ def drift_view(
             "lower": per_point("lower"),
             "upper": per_point("upper"),
             "ewma": per_point("ewma"),
+            "ewma_lower": per_point("ewma_lower"),
+            "ewma_upper": per_point("ewma_upper"),
         }
     )
     changes = pd.DataFrame(
@@ -457,4 +461,8 @@ def drift_view(
         "note": str(limits.get("note", "")),
         "center": limits.get("center"),
         "baseline": limits.get("baseline"),
+        "series": result.series,
+        "other_series": result.other_series,
+        "settings": result.settings,
+        "excursions": result.excursions,
     }

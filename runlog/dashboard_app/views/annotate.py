@@ -87,8 +87,9 @@ with alarm_column:
             )
             note = st.text_area("what it was", key="acknowledge-note", help="Becomes a note on the alarm's lab day.")
             author = st.text_input("author (optional)", key="acknowledge-author")
+            accept = st.checkbox("accept the new level", key="acknowledge-accept", help="The level since the alarm's day becomes the reference: the baseline starts again from that day. Recorded as a note.")
             if st.form_submit_button("Acknowledge", type="primary", key="acknowledge-submit"):
-                written(lambda: f"alarm {alarm} acknowledged (note {common.acknowledge(url, alarm, note, author=author)})")
+                written(lambda: f"alarm {alarm} {'acknowledged, new level accepted' if accept else 'acknowledged'} (note {common.acknowledge(url, alarm, note, author=author, accept=accept)})")
 
 st.markdown("#### Latest notes")
 notes = common.annotations(url)
