@@ -970,5 +970,11 @@ def main(argv: list[str] | None = None) -> None:
     except Exception as error:  # anything unexpected: one line unless --debug
         if debug:
             raise
+        if type(error).__module__.startswith("sqlalchemy") or isinstance(error, PermissionError):
+            # A database error: its cause in one line (read-only, busy, ...), never the SQL.
+            from runlog.store.failures import describe
+
+            _echo(f"runlog: error: {describe(error, doing='using the catalogue').message}", err=True)
+            sys.exit(1)
         _echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
         sys.exit(1)
