@@ -545,8 +545,8 @@ class Catalogue:
 
         return derive_series(self.engine, name, figure, parameter, model=model, where=where)
 
-    def series(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
-        """The series in force (newest fit of each name), or every fit of ``name`` with
+    def series_fits(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
+        """The series across runs in force (newest fit of each name), or every fit of ``name`` with
         ``history``: fitted values with standard errors, χ², member runs (x, y, stderr)."""
         from runlog.run_series import series
 

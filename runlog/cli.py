@@ -606,15 +606,15 @@ def _series_lines(made: dict[str, Any]) -> None:
         _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
 
 
-@cli.command("series")
+@cli.command("series-fits")
 @click.argument("name", required=False)
 @click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def series_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+def series_fits_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
     """The series across runs (runlog derive --series), with their fits and member runs."""
     with _open(state) as catalogue:
-        found = catalogue.series(name, history=history)
+        found = catalogue.series_fits(name, history=history)
     if as_json:
         _json(found)
         return
@@ -993,5 +993,11 @@ def main(argv: list[str] | None = None) -> None:
     except Exception as error:  # anything unexpected: one line unless --debug
         if debug:
             raise
+        if type(error).__module__.startswith("sqlalchemy") or isinstance(error, PermissionError):
+            # A database error: its cause in one line (read-only, busy, ...), never the SQL.
+            from runlog.store.failures import describe
+
+            _echo(f"runlog: error: {describe(error, doing='using the catalogue').message}", err=True)
+            sys.exit(1)
         _echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
         sys.exit(1)

@@ -535,3 +535,29 @@ def test_run_detail_shows_the_analysis_versions_and_what_the_current_one_moved(d
             assert moved.loc[name, "now"].endswith("(thr-0.8)") and moved.loc[name, "before"].endswith("(unnamed)")
     finally:
         _forget_cached(db_url)
+
+
+def test_series_page_draws_the_member_runs_and_the_fitted_model(db_url, tmp_path, monkeypatch):
+    from test_series import _walk_runs
+
+    from runlog.figures.across_runs import series_model
+
+    pq.write_table(_walk_runs(np.random.default_rng(16)), tmp_path / "walk.parquet")
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest([tmp_path / "walk.parquet"])
+        made = catalogue.derive_series("fill-vs-steps", "fill_fraction", "walk_steps")
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = open_page(start(), "series")
+        (chart,) = charts(at)
+        runs = chart["layers"]["shots"]
+        np.testing.assert_allclose(runs["x"], [m["x"] for m in made["members"]])
+        np.testing.assert_allclose(runs["y"], [m["y"] for m in made["members"]], rtol=1e-12)
+        curve = chart["layers"]["fit curve"]
+        np.testing.assert_allclose(curve["y"], series_model("exponential")(curve["x"].to_numpy(), *made["params"]), rtol=1e-12)
+        members = table(at, "run", "analysis")
+        assert list(members["run"]) == [m["run"] for m in made["members"]]
+        fitted = table(at, "figure", "method").set_index("figure")
+        assert set(fitted.index) == set(made["values"])
+    finally:
+        _forget_cached(db_url)
