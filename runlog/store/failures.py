@@ -81,7 +81,7 @@ def describe(error: BaseException, *, doing: str = "writing to the catalogue") -
     state = _sqlstate(driver)
     lowered = line.lower()
     if state in _PERMISSION_STATES or any(text in lowered for text in _SQLITE_PERMISSION) or isinstance(driver, PermissionError):
-        return Failure("permission", f"permission denied {doing}: {line} (the catalogue is read-only for this user; ask for a writer role or a writable file)")
+        return Failure("permission", f"permission denied {doing}: the catalogue is read-only for this user ({line}); use a role or a file that may write")
     if state in _BUSY_STATES or any(text in lowered for text in _SQLITE_BUSY):
         return Failure("busy", f"the catalogue stayed busy {doing}: {line}")
     if (state and state.startswith(_UNAVAILABLE_CLASSES)) or any(text in lowered for text in _SQLITE_UNAVAILABLE):

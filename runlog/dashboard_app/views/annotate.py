@@ -7,10 +7,12 @@ from zoneinfo import ZoneInfo
 
 import pandas as pd
 import streamlit as st
+from sqlalchemy.exc import SQLAlchemyError
 
 from runlog.dashboard_app import common
 from runlog.errors import RunlogError
 from runlog.redaction import scrub
+from runlog.store.failures import describe
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
@@ -29,6 +31,10 @@ def written(action) -> None:
         message = action()
     except (RunlogError, ValueError) as error:
         st.error(scrub(str(error)))
+    except (SQLAlchemyError, OSError) as error:
+        # A catalogue this server cannot write (a read-only role or file): one line naming
+        # the cause, never the SQL and its parameters.
+        st.error(describe(error, doing="saving this").message)
     else:
         st.session_state["annotate-done"] = message
         st.rerun()
