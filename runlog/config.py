@@ -68,6 +68,8 @@ class Mapping:
     thresholds: dict[str, float] = field(default_factory=dict)
     #: ``[time_window]``: shot times outside it are refused.
     time_window: TimeWindow = DEFAULT_TIME_WINDOW
+    #: ``[units]``: lab-defined units, ``(name, definition)`` pairs (runlog.units).
+    units: tuple[tuple[str, str], ...] = ()
 
 
 def _time_window(table: object, source: str) -> TimeWindow:
@@ -93,7 +95,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "time_window"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "time_window", "units"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -135,7 +137,17 @@ def load_config(path: str | Path | None) -> Mapping:
         apparatus_settings=settings,
         thresholds={str(k): float(v) for k, v in thresholds.items()},
         time_window=_time_window(data.get("time_window", {}), str(path)),
+        units=_lab_units(data.get("units", {}), str(path)),
     )
+
+
+def _lab_units(table: object, source: str) -> tuple[tuple[str, str], ...]:
+    from runlog.units import UnitError, check_lab_units
+
+    try:
+        return check_lab_units(table)
+    except UnitError as error:
+        raise ConfigError(source, str(error)) from None
 
 
 #: The keys of an ``[apparatus."NAME"]`` table, each a quantity text.
@@ -144,7 +156,7 @@ APPARATUS_KEYS = ("field_sensitivity", "zero_field_frequency")
 
 def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dict[str, dict[str, str]]:
     """``[apparatus."NAME"]`` tables checked: known keys, texts that pint reads as quantities."""
-    from runlog.units import registry
+    from runlog.units import quantity
 
     if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
         raise ConfigError(source, '[apparatus."NAME"] must be tables, one per apparatus')
@@ -155,9 +167,7 @@ def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dic
             raise ConfigError(source, f"[apparatus.\"{name}\"]: unknown key '{unknown[0]}' (known: {', '.join(APPARATUS_KEYS)})")
         for key, text in table.items():
             try:
-                if not isinstance(text, str):
-                    raise TypeError
-                registry().Quantity(text)
+                quantity(text)
             except Exception:
                 raise ConfigError(source, f"[apparatus.\"{name}\"] {key} = {text!r} is not a quantity with a unit such as '2.0 kHz/mG'") from None
         checked[name] = dict(table)
