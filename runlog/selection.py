@@ -290,7 +290,10 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     parts = [shaped(exact(*bounds)) for bounds in _split(run_shots, readers)]
     types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
     arrays = None
-    if is_arrow(connection):
+    if not candidates:
+        # Nothing to read: the shot query of no runs is not even well-formed with a limit.
+        arrays = [pa.array([], type=kind) for kind in types]
+    elif is_arrow(connection):
         arrays = _read_arrow(connection, parts, types, keys=4 if with_ids else 3)
     elif dialect == "postgresql":
         if limit is None:

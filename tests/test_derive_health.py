@@ -295,7 +295,7 @@ def ramsey_run(rng, run="ramsey-field", delta=0.04, oscillator=6834.6 , **kwargs
     return table(run, "ramsey", {"wait[us]": t, "mw_frequency[MHz]": np.full(t.size, oscillator)}, {"bright_fraction": rng.binomial(ATOMS, p) / ATOMS}, **kwargs)
 
 
-def test_the_ramsey_fringe_frequency_gives_the_field_as_spectroscopy_does(catalogue, make_file):
+def test_the_ramsey_fringe_frequency_gives_the_field_as_spectroscopy_does(catalogue, make_file, tmp_path):
     rng = np.random.default_rng(16)
     catalogue.ingest(make_file("ramsey.parquet", ramsey_run(rng)))
     # Oscillator on the zero-field transition: field = 40 kHz / (2 kHz/mG) = 20 mG at the truth.
@@ -314,6 +314,14 @@ def test_the_ramsey_fringe_frequency_gives_the_field_as_spectroscopy_does(catalo
     below = {f.name: f for f in catalogue.derive("ramsey-field", "coherence", constants=constants, settings={"oscillator": "mw_frequency", "side": "below"}, store=False).figures}["field"]
     assert above.value == pytest.approx((50.0 + frequency.value * 1000) / 2.0, rel=1e-9)
     assert below.value == pytest.approx((50.0 - frequency.value * 1000) / 2.0, rel=1e-9)
+    # Through [[rules]] with the apparatus table of runlog.toml, and into the daily rollups.
+    config = tmp_path / "runlog.toml"
+    config.write_text('[[rules]]\nsequence = "ramsey"\nkind = "coherence"\n\n[apparatus."bench-a"]\nfield_sensitivity = "2.0 kHz/mG"\n')
+    outcomes = catalogue.apply_rules(config)
+    assert [o.kind for o in outcomes if isinstance(o, DeriveResult)] == ["coherence"]
+    assert stored(catalogue, "ramsey-field")["field"]["value"] == pytest.approx(field.value, rel=1e-12)
+    point = catalogue.drift("field", record_alarms=False).points[0]
+    assert point.value == pytest.approx(field.value, rel=1e-12)
     with pytest.raises(FitError, match="give oscillator="):
         catalogue.derive("ramsey-field", "coherence", constants=constants, store=False)
     with pytest.raises(FitError, match="side 'left'"):

@@ -8,6 +8,7 @@ import datetime as dt
 import json
 import math
 
+import numpy as np
 import pyarrow.parquet as pq
 import pytest
 from conftest import T0, run_main
@@ -93,6 +94,12 @@ def test_a_fresh_export_by_filter_after_v2_differs_and_says_so(pinned_before_v2,
     assert set(rerun.changed) >= {"runs.parquet", "figures.parquet"}
     runs = pq.read_table(tmp_path / "filter-then" / "runs.parquet").to_pylist()
     assert {r["analysis"] for r in runs} == {"thr-0.8"}
+    # ... and says which pins hold the versions it no longer exports.
+    held = [{"pin": "fig3", "run": r, "apparatus": "bench-a", "pinned_analysis": "", "exported_analysis": "thr-0.8"} for r in ("r1", "r2")]
+    assert list(rerun.other_versions_pinned) == held
+    assert json.loads((tmp_path / "filter-then" / "datapackage.json").read_text())["provenance"]["other_versions_pinned"] == held
+    assert "the pin(s) fig3 hold other versions of 2 of them" in (tmp_path / "filter-then" / "README.md").read_text()
+    assert not by_filter.other_versions_pinned  # before v2 the filter exported the pinned versions
     # The pin's own spec re-runs the pin and hashes the same.
     pinned = catalogue.export_again(tmp_path / "fig3-then" / "export.toml")
     assert pinned.same is True and pinned.pin == "fig3"
@@ -104,7 +111,12 @@ def test_pins_survive_withdrawal_and_switching_back(pinned_before_v2, tmp_path):
     catalogue.withdraw(run="r2", reason="broken export", author="ada")
     entries = [c for c in catalogue.pins()[0]["changes"] if c["run"] == "r2"]
     assert entries and all(c["withdrawn"] and c["new"] is None for c in entries)
-    assert catalogue.export(None, tmp_path / "after-withdrawal", pin="fig3").data == first.data
+    assert catalogue.pins()[0]["withdrawn_since"] == [{"run": "r2", "apparatus": "bench-a", "analysis": ""}]
+    again = catalogue.export(None, tmp_path / "after-withdrawal", pin="fig3")
+    assert again.data == first.data
+    manifest = json.loads((tmp_path / "after-withdrawal" / "datapackage.json").read_text())
+    assert manifest["provenance"]["pin"]["withdrawn_since"] == [{"run": "r2", "apparatus": "bench-a", "analysis": ""}]
+    assert "withdrawn since the pin: bench-a/r2" in (tmp_path / "after-withdrawal" / "README.md").read_text()
     catalogue.restore(run="r2")
     catalogue.use_analysis("r1", "")
     catalogue.use_analysis("r2", "")
@@ -139,3 +151,43 @@ def test_pin_commands(catalogue, make_file, tmp_path, capsys):
     assert "10 shots of 1 runs" in out and "newer analyses would change" in out
     code, out, err = run_main(capsys, "--db", url, "export", "--pin", "nope", "--out", str(tmp_path / "pkg2"))
     assert code != 0 and "nope" in err and "Traceback" not in err
+
+
+def _pooled_survival(paths_and_runs) -> tuple[int, int]:
+    """Survived / loaded sites over the given (file, run) pairs, by numpy on the files."""
+    kept = loaded = 0
+    for path, run in paths_and_runs:
+        rows = pq.read_table(path).to_pandas()
+        rows = rows[rows["run"] == run]
+        load = np.array([np.asarray(v, bool) for v in rows["occ.load"]])
+        survive = np.array([np.asarray(v, bool) for v in rows["occ.survive"]])
+        kept += int((load & survive).sum())
+        loaded += int(load.sum())
+    return kept, loaded
+
+
+def test_a_day_re_analysed_with_one_file_retracted_and_a_pin_from_before(catalogue, make_file, tmp_path):
+    early = make_file("early.parquet", thresholded({"a1": 50, "a2": 40}, 0.65))
+    late = make_file("late.parquet", thresholded({"a3": 30}, 0.65, seed=5, start=T0 + dt.timedelta(hours=3)))
+    catalogue.ingest([early, late])
+    catalogue.pin("chapter-2", "shot >= 0")
+    before = catalogue.export(None, tmp_path / "before", pin="chapter-2")
+    rethreshold = make_file("early-thr.parquet", thresholded({"a1": 50, "a2": 40}, 0.8, analysis="thr-0.8"))
+    catalogue.ingest(rethreshold)
+    catalogue.withdraw(file=late, reason="wrong apparatus", author="ada")
+    # Every version is held; the current ones drive figures and drift.
+    assert [(a["analysis"], a["current"]) for a in catalogue.analyses("a1")] == [("", False), ("thr-0.8", True)]
+    assert [(a["analysis"], a["withdrawn"]) for a in catalogue.analyses("a3")] == [("", True)]
+    kept, loaded = _pooled_survival([(rethreshold, "a1"), (rethreshold, "a2")])
+    [point] = catalogue.drift("survival", record_alarms=False).points
+    assert (point.successes, point.trials, point.runs) == (kept, loaded, 2)
+    assert point.value == pytest.approx(kept / loaded, rel=1e-12)
+    # The pin re-exports the old data byte for byte.
+    after = catalogue.export(None, tmp_path / "after", pin="chapter-2")
+    assert after.data == before.data and (after.shots, after.runs) == (120, 3)
+    # The impact numbers against numpy on the two files.
+    old, new = counted(early, "a2"), counted(rethreshold, "a2")
+    entry = {e["figure"]: e for e in catalogue.impact("a2")}["fill_fraction"]
+    assert (entry["old"]["value"], entry["new"]["value"]) == (pytest.approx(old["fill_fraction"][0], rel=1e-12), pytest.approx(new["fill_fraction"][0], rel=1e-12))
+    assert entry["sigma"] == pytest.approx((new["fill_fraction"][0] - old["fill_fraction"][0]) / math.hypot(old["fill_fraction"][1], new["fill_fraction"][1]), rel=1e-9)
+    assert entry["pins"] == ["chapter-2"]
