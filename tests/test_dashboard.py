@@ -150,6 +150,22 @@ def test_launcher_binds_to_localhost_and_hands_the_url_over_in_the_environment()
     assert "--server.port=9000" in command("0.0.0.0", 9000)
 
 
+def test_a_port_in_use_is_detected_and_the_next_free_one_taken():
+    import socket
+
+    from runlog.dashboard import free_port
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        chosen = free_port("127.0.0.1", port)
+        assert chosen != port and port < chosen < port + 20
+        with pytest.raises(runlog.RunlogError, match=rf"^ports {port}-{port} on 127.0.0.1 are all in use: give a free one with --port$"):
+            free_port("127.0.0.1", port, tries=1)
+    assert free_port("127.0.0.1", port) == port  # closed again: free
+
+
 # --- overview -------------------------------------------------------------------------------
 
 
@@ -420,7 +436,7 @@ def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(l
 
     at.text_area(key="note-run-text").input("   ")
     at.button(key="note-run-submit").click().run()
-    assert at.error[0].value == "an annotation needs text"
+    assert at.error[0].value == "a note needs text"
 
     alarm = next(a for a in lab.alarms() if a["reason"] == "limit")
     at.selectbox(key="acknowledge-alarm").set_value(alarm["id"])
