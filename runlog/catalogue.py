@@ -169,7 +169,7 @@ class Catalogue:
     def annotate(self, text: str, *, run: str | None = None, apparatus: str | None = None, at: dt.datetime | str | None = None, author: str | None = None) -> int:
         """Add a note tied to a run, or to an apparatus at a time; returns its id."""
         if not text.strip():
-            raise ValueError("an annotation needs text")
+            raise ValueError("a note needs text")
         now = dt.datetime.now(dt.timezone.utc)
         with self.engine.begin() as connection:
             run_id = None
@@ -179,7 +179,7 @@ class Catalogue:
                 when = _as_utc(at) or found.started
             else:
                 if apparatus is None:
-                    raise ValueError("an annotation needs a run, or an apparatus and a time")
+                    raise ValueError("a note needs a run, or an apparatus and a time")
                 apparatus_id = self._apparatus_id(connection, apparatus)
                 when = _as_utc(at) or now
             row = {"apparatus_id": apparatus_id, "run_id": run_id, "at": when, "text": text.strip(), "author": author or _user(), "created_at": now}
@@ -545,8 +545,8 @@ class Catalogue:
 
         return derive_series(self.engine, name, figure, parameter, model=model, where=where)
 
-    def series(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
-        """The series in force (newest fit of each name), or every fit of ``name`` with
+    def series_fits(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
+        """The series across runs in force (newest fit of each name), or every fit of ``name`` with
         ``history``: fitted values with standard errors, χ², member runs (x, y, stderr)."""
         from runlog.run_series import series
 

@@ -12,6 +12,7 @@ import functools
 import json
 import logging
 import os
+import shlex
 import sys
 import tempfile
 import textwrap
@@ -400,19 +401,23 @@ def _figure_line(name: str, figure: dict[str, Any]) -> str:
     return text + f"  ({figure['method']})"
 
 
-@cli.command()
+@cli.command("note")
 @click.argument("text")
 @click.option("--run", default=None, help="Tie the note to this run.")
-@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at).")
-@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now).")
+@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at), or name the run's apparatus.")
+@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now, or the run's start).")
 @_common
-def annotate(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
+def note(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
     """Add a note to a run, or to an apparatus at a time."""
     if run is None and apparatus is None:
         raise click.UsageError("give --run RUN, or --apparatus A (with --at TIME)")
     with _open(state) as catalogue:
         number = catalogue.annotate(text, run=run, apparatus=apparatus, at=_date_option(at, "--at"))
-    _echo(f"annotation {number} added")
+    _echo(f"note {number} added")
+
+
+# The command's first name, kept for scripts written before it was called 'note'.
+cli.add_command(click.Command("annotate", params=note.params, callback=note.callback, help=note.help, hidden=True))
 
 
 @cli.command()
@@ -473,12 +478,25 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
         state.db = f"sqlite:///{folder / 'demo.sqlite'}"
     start = dt.date(2026, 9, 1)
     tick = time.perf_counter()
+
+    def step(text: str) -> None:
+        # Progress on stderr, so that the summary on stdout stays what a script reads.
+        _echo(f"demo: {text} ({time.perf_counter() - tick:.0f} s)", err=True)
+
     with tempfile.TemporaryDirectory(prefix="runlog-demo-") as temporary:
+        step(f"writing {days} days of invented shot tables")
         files = write_demo_files(Path(temporary), days=days, start=start, seed=seed)
         with _open(state) as catalogue:
-            results = catalogue.ingest(files)
+            results = []
+            for number, file in enumerate(files, 1):
+                results += catalogue.ingest([file])
+                if number == 1 or number % 10 == 0 or number == len(files):
+                    step(f"ingested {number} of {len(files)} files")
             new_runs = sorted({run for r in results if r.status == "ingested" for run in r.runs})
+            if new_runs:
+                step(f"fitting the scans of the new runs")
             outcomes = catalogue.apply_rules(DEMO_RULES, runs=new_runs) if new_runs else []
+            step("checking every quantity for drift")
             alarms = catalogue.check_drift()
             counts = catalogue.counts()
             url = catalogue.url
@@ -493,16 +511,16 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
     _echo("what the invented lab did (the truth behind the files):")
     for line in SCENARIO.describe(start, days):
         _wrapped(line)
-    _echo("what runlog found (open alarms):")
+    # The same alarms, in the same words, as 'runlog alarms' lists right after.
+    _echo(f"what runlog found: {len(alarms)} open alarms (runlog alarms lists them)")
     for alarm in alarms:
-        size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
-        value = "" if alarm["value"] is None else f" at {alarm['value']:.4g}"
-        _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} on {alarm['date']}{value}{size}")
-    _echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
+        _wrapped(_alarm_line(alarm))
+    _echo("to use the demo catalogue with every other command, in this shell:")
+    _echo(f"  export RUNLOG_DB={shlex.quote(url)}")
     if any(r.status == "rejected" for r in results):
         for r in results:
             if r.status == "rejected":
-                _echo(f"rejected: {r.reason}", err=True)
+                _echo(f"refused: {r.reason}", err=True)
         sys.exit(1)
     if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():
         # Only in a terminal, where Ctrl-C stops it; scripts and pipes get the catalogue alone.
@@ -588,15 +606,15 @@ def _series_lines(made: dict[str, Any]) -> None:
         _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
 
 
-@cli.command("series")
+@cli.command("series-fits")
 @click.argument("name", required=False)
 @click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def series_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+def series_fits_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
     """The series across runs (runlog derive --series), with their fits and member runs."""
     with _open(state) as catalogue:
-        found = catalogue.series(name, history=history)
+        found = catalogue.series_fits(name, history=history)
     if as_json:
         _json(found)
         return
@@ -703,7 +721,7 @@ def _print_suspects(found: dict[str, object] | None) -> None:
 @click.option("--apparatus", default=None, help="Only this apparatus.")
 @click.option("--all", "show_all", is_flag=True, help="Acknowledged alarms too.")
 @click.option("--ack", "acknowledge", type=int, default=None, metavar="ID", help="Acknowledge alarm ID.")
-@click.option("--note", default="", help="With --ack: what it was (becomes an annotation).")
+@click.option("--note", default="", help="With --ack: what it was (becomes a note on that day).")
 @click.option("--accept", is_flag=True, help="With --ack: the new level is the reference from the alarm's day on (a new baseline).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
@@ -714,7 +732,7 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
     with _open(state) as catalogue:
         if acknowledge is not None:
             annotation = catalogue.acknowledge(acknowledge, note, accept=accept)
-            _echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (annotation {annotation})")
+            _echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (note {annotation})")
             return
         catalogue.check_drift(apparatus=apparatus)
         found = catalogue.alarms(status=None if show_all else "open", apparatus=apparatus)
@@ -725,11 +743,16 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
         _echo("no open alarms")
         return
     for alarm in found:
-        size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
-        value = "" if alarm["value"] is None else f" to {alarm['value']:.4g}"
-        where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
-        _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}{where}: {alarm['reason']}{value}{size} ({alarm['method']}), {alarm['status']}", indent="")
+        _wrapped(_alarm_line(alarm), indent="")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _alarm_line(alarm: dict[str, Any]) -> str:
+    """One alarm as ``runlog alarms`` and the demo's summary print it."""
+    size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
+    value = "" if alarm["value"] is None else f" to {alarm['value']:.4g}"
+    where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+    return f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}{where}: {alarm['reason']}{value}{size} ({alarm['method']}), {alarm['status']}"
 
 
 @cli.command()

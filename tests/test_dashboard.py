@@ -150,6 +150,22 @@ def test_launcher_binds_to_localhost_and_hands_the_url_over_in_the_environment()
     assert "--server.port=9000" in command("0.0.0.0", 9000)
 
 
+def test_a_port_in_use_is_detected_and_the_next_free_one_taken():
+    import socket
+
+    from runlog.dashboard import free_port
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        chosen = free_port("127.0.0.1", port)
+        assert chosen != port and port < chosen < port + 20
+        with pytest.raises(runlog.RunlogError, match=rf"^ports {port}-{port} on 127.0.0.1 are all in use: give a free one with --port$"):
+            free_port("127.0.0.1", port, tries=1)
+    assert free_port("127.0.0.1", port) == port  # closed again: free
+
+
 # --- overview -------------------------------------------------------------------------------
 
 
@@ -420,7 +436,7 @@ def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(l
 
     at.text_area(key="note-run-text").input("   ")
     at.button(key="note-run-submit").click().run()
-    assert at.error[0].value == "an annotation needs text"
+    assert at.error[0].value == "a note needs text"
 
     alarm = next(a for a in lab.alarms() if a["reason"] == "limit")
     at.selectbox(key="acknowledge-alarm").set_value(alarm["id"])
@@ -517,5 +533,31 @@ def test_run_detail_shows_the_analysis_versions_and_what_the_current_one_moved(d
         for name in ("fill_fraction", "survival"):
             assert moved.loc[name, "shift [combined stderr]"] == round(report[name]["sigma"], 2)
             assert moved.loc[name, "now"].endswith("(thr-0.8)") and moved.loc[name, "before"].endswith("(unnamed)")
+    finally:
+        _forget_cached(db_url)
+
+
+def test_series_page_draws_the_member_runs_and_the_fitted_model(db_url, tmp_path, monkeypatch):
+    from test_series import _walk_runs
+
+    from runlog.figures.across_runs import series_model
+
+    pq.write_table(_walk_runs(np.random.default_rng(16)), tmp_path / "walk.parquet")
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest([tmp_path / "walk.parquet"])
+        made = catalogue.derive_series("fill-vs-steps", "fill_fraction", "walk_steps")
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = open_page(start(), "series")
+        (chart,) = charts(at)
+        runs = chart["layers"]["shots"]
+        np.testing.assert_allclose(runs["x"], [m["x"] for m in made["members"]])
+        np.testing.assert_allclose(runs["y"], [m["y"] for m in made["members"]], rtol=1e-12)
+        curve = chart["layers"]["fit curve"]
+        np.testing.assert_allclose(curve["y"], series_model("exponential")(curve["x"].to_numpy(), *made["params"]), rtol=1e-12)
+        members = table(at, "run", "analysis")
+        assert list(members["run"]) == [m["run"] for m in made["members"]]
+        fitted = table(at, "figure", "method").set_index("figure")
+        assert set(fitted.index) == set(made["values"])
     finally:
         _forget_cached(db_url)

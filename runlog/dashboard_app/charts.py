@@ -147,12 +147,12 @@ def _levels(points: pd.DataFrame, changes: pd.DataFrame) -> pd.DataFrame:
     )
 
 
-def fit_chart(curve, *, height: int = 260) -> alt.LayerChart:
-    """Every shot's ``y`` against ``x`` with the stored fit drawn over them."""
+def fit_chart(curve, *, height: int = 260, points: str = "shot") -> alt.LayerChart:
+    """Every shot's (or, ``points="run"``, every run's) ``y`` against ``x`` with the stored fit drawn over them."""
     x_title, y_title = axis_title(curve.x_name, curve.x_unit), axis_title(curve.y_name, curve.y_unit)
-    shots = pd.DataFrame({"x": curve.x, "y": curve.y, "series": "shot"})
+    shots = pd.DataFrame({"x": curve.x, "y": curve.y, "series": points})
     model = pd.DataFrame({"x": curve.curve_x, "y": curve.curve_y, "series": "fit"})
-    colour = alt.Color("series:N", scale=alt.Scale(domain=["shot", "fit"], range=[PALETTE["blue"], PALETTE["vermillion"]]), legend=alt.Legend(title=None, orient="top"))
+    colour = alt.Color("series:N", scale=alt.Scale(domain=[points, "fit"], range=[PALETTE["blue"], PALETTE["vermillion"]]), legend=alt.Legend(title=None, orient="top"))
     points = (
         alt.Chart(shots, description="shots")
         .mark_circle(size=28, opacity=0.55)

@@ -302,6 +302,33 @@ def run_info(url: str, run: str, apparatus: str) -> runlog.RunInfo:
 
 
 @_cached
+def series_fits(url: str) -> list[dict]:
+    """The series across runs in force (the newest fit of each name)."""
+    return catalogue(url).series_fits()
+
+
+#: How each series model reads, for the chart's title.
+SERIES_FORMULAS = {"exponential": "y = A exp(−k x)", "power_law": "y = A x^b", "linear": "y = a + b x"}
+
+
+def series_curve(made: dict):
+    """A series as the run page's fit chart draws a fit: the member runs' values and the
+    fitted model over their parameter range (``runlog.figures.across_runs.series_model``)."""
+    from types import SimpleNamespace
+
+    from runlog.figures.across_runs import series_model
+
+    x = np.array([m["x"] for m in made["members"]], dtype=float)
+    y = np.array([m["y"] for m in made["members"]], dtype=float)
+    curve_x = np.linspace(float(x.min()), float(x.max()), 200)
+    curve_y = series_model(made["model"])(curve_x, *made["params"])
+    return SimpleNamespace(
+        x=x, y=y, curve_x=curve_x, curve_y=curve_y, x_name=made["parameter"], x_unit=made["x_unit"], y_name=made["figure"], y_unit=made["y_unit"],
+        formula=f"{made['name']}: {SERIES_FORMULAS.get(made['model'], made['model'])}",
+    )
+
+
+@_cached
 def versions_and_impact(url: str, run: str, apparatus: str) -> tuple[pd.DataFrame, pd.DataFrame]:
     """The run's analysis versions (oldest first) and its impact report (what the current
     version moved against the one before, or a figure derived again against its record before)."""
