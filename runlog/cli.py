@@ -7,6 +7,7 @@ line on stderr and a non-zero exit code; ``--debug`` shows the traceback instead
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import functools
 import json
@@ -441,8 +442,14 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
     handler = logging.FileHandler(log_file or folder / "runlog-watch.log", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     handler.addFilter(ScrubbingFilter())
+    # The same lines on the terminal: one for each file taken or refused, as it happens.
+    terminal = logging.StreamHandler(sys.stdout)
+    terminal.setFormatter(logging.Formatter("%(asctime)s %(message)s", datefmt="%H:%M:%S"))
+    terminal.addFilter(ScrubbingFilter())
     logger.addHandler(handler)
-    with _open(state) as catalogue:
+    logger.addHandler(terminal)
+    with contextlib.ExitStack() as cleanup, _open(state) as catalogue:
+        cleanup.callback(lambda: (logger.removeHandler(handler), logger.removeHandler(terminal), handler.close()))
         logger.info("catalogue %s", catalogue.url)
 
         def ingest_and_derive(paths: list[Path]) -> list:

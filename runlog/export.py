@@ -462,6 +462,13 @@ def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: P
     return "\n".join(lines) + "\n"
 
 
+def _umask() -> int:
+    """The process's umask (read by setting it and putting it back at once)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _holds_files(path: Path) -> bool:
     return path.is_symlink() or path.exists() and (not path.is_dir() or any(path.iterdir()))
 
@@ -571,6 +578,9 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
     new_parents = [folder for folder in (out.parent, *out.parent.parents) if not folder.exists()]
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    # mkdtemp makes a private folder (700); the package is shared like any folder the user
+    # makes: the modes their umask gives (group-readable under the usual 022 or 002).
+    staging.chmod(0o777 & ~_umask())
     suffix = "parquet" if format == "parquet" else "csv"
     # The shots file is written (and hashed) on a second thread while the runs and
     # figures are read: Arrow's writer and the reads both leave the interpreter lock.
