@@ -911,6 +911,13 @@ class Catalogue:
             rows = connection.execute(query).all()
         return _frame(rows, ["name", "unit", "kind", "min", "max", "runs"])
 
+    def new_alarms(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
+        """Judge drift (:meth:`check_drift`) and return only the alarms it recorded now:
+        what ``runlog watch`` reports after each ingest (an alarm is recorded once)."""
+        before = {a["id"] for a in self.alarms(status=None, apparatus=apparatus)}
+        self.check_drift(apparatus=apparatus)
+        return [a for a in self.alarms(status=None, apparatus=apparatus) if a["id"] not in before]
+
     def check_drift(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
         """Judge the reference series of every quantity of every apparatus and record
         alarms (each once); returns the open ones."""

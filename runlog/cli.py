@@ -459,7 +459,13 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
                     logger.info("%s", _outcome_line(outcome))
             return results
 
-        watcher = Watcher(folder, ingest_and_derive, quarantine, logger)
+        def judge_drift(results: list) -> None:
+            # After each ingest: judge the reference series, log each new alarm once.
+            for alarm in catalogue.new_alarms():
+                where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+                logger.warning("alarm #%s %s %s%s: %s on %s (%s)", alarm["id"], alarm["apparatus"], alarm["quantity"], where, alarm["reason"], alarm["date"], alarm["method"])
+
+        watcher = Watcher(folder, ingest_and_derive, quarantine, after_ingest=judge_drift, log=logger)
         _echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
         try:
             watcher.run(interval, stop_after=stop_after)

@@ -150,10 +150,10 @@ def unit_text(unit: str | None) -> str:
     """A stored unit as people write it (``us`` -> ``µs``); other units unchanged."""
     unit = unit or ""
     if re.fullmatch(r"u[A-Za-z]+", unit):
-        from runlog.units import registry
+        from runlog.units import parse_unit
 
         try:
-            if format(registry().Unit(unit), "~P") == "µ" + unit[1:]:
+            if format(parse_unit(unit), "~P") == "µ" + unit[1:]:
                 return "µ" + unit[1:]
         except Exception:  # pint raises several types for text it does not know
             pass
