@@ -135,17 +135,18 @@ def file_sha256(path: Path) -> tuple[str, int]:
     return digest.hexdigest(), size
 
 
-def _signature(path: Path) -> tuple[int, int, int, int] | None:
-    """What tells that a file changed: device, inode, size, modification time (``None``:
-    gone)."""
+def _signature(path: Path) -> tuple[int, ...] | None:
+    """What tells that a file changed: device, inode, size, modification time and status
+    change time (``None``: gone). A writer can put size and modification time back
+    (``os.utime``); the status change time moves with every write and cannot be set."""
     try:
         stat = path.stat()
     except FileNotFoundError:
         return None
-    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns
+    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns, stat.st_ctime_ns
 
 
-def _unchanged_since(path: Path, before: tuple[int, int, int, int] | None) -> None:
+def _unchanged_since(path: Path, before: tuple[int, ...] | None) -> None:
     """Refuse a file that was replaced, written to or deleted while it was being read:
     what was checked, hashed and written would not be one file."""
     now = _signature(path)
