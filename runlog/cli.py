@@ -7,11 +7,13 @@ line on stderr and a non-zero exit code; ``--debug`` shows the traceback instead
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import functools
 import json
 import logging
 import os
+import shlex
 import sys
 import tempfile
 import textwrap
@@ -23,6 +25,7 @@ import click
 
 from runlog import __version__
 from runlog.errors import RunlogError, StoreError
+from runlog.redaction import ScrubbingFilter, remember, scrub
 
 __all__ = ["main", "cli"]
 
@@ -55,8 +58,19 @@ def _open(state: _State, *, create: bool = True):
     return runlog.open(state.db, create=create)
 
 
+def _echo(message: Any = "", **kwargs: Any) -> None:
+    """Every line runlog prints: credentials scrubbed from it (a URL that does not parse
+    keeps its password otherwise), and control characters from the catalogue's texts (a
+    run key holding a terminal escape, written by an older runlog) shown, not obeyed."""
+    click.echo(_printable(scrub(message)), **kwargs)
+
+
+def _printable(text: str) -> str:
+    return "".join(c if c.isprintable() or c in "\n\t" else repr(c)[1:-1] for c in text)
+
+
 def _json(value: Any) -> None:
-    click.echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
+    _echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
 
 
 def _json_default(value: Any) -> Any:
@@ -104,7 +118,7 @@ def init(state: _State) -> None:
         raise StoreError(f"cannot initialise catalogue {redact(url)}: {str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__}") from None
     finally:
         engine.dispose()
-    click.echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
+    _echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
 
 
 @cli.command()
@@ -134,13 +148,13 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
     else:
         for r in results:
             if r.status == "rejected":
-                click.echo(f"rejected         {r.reason}")
+                _echo(f"rejected         {r.reason}")
             elif r.monitors:
                 names = ", ".join(r.monitors[:3]) + (f" (+{len(r.monitors) - 3} more)" if len(r.monitors) > 3 else "")
-                click.echo(f"{r.status:<16} {r.file}: {r.values} monitor values, {names}")
+                _echo(f"{r.status:<16} {r.file}: {r.values} monitor values, {names}")
             else:
                 runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
-                click.echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
+                _echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
             for outcome in r.derived:
                 _wrapped(_outcome_line(outcome))
     if any(r.status == "rejected" for r in results):
@@ -187,11 +201,11 @@ def runs(state: _State, apparatus: str | None, since: str | None, as_json: bool)
         _json([{"run": r["run"], "apparatus": r["apparatus"], "sequence": r["sequence"], "shots": int(r["shots"]), "started": r["started"].isoformat(), "finished": r["finished"].isoformat()} for r in rows])
         return
     if not rows:
-        click.echo("no runs")
+        _echo("no runs")
         return
-    click.echo(f"{'run':<22} {'apparatus':<14} {'sequence':<12} {'shots':>6}  started (UTC)")
+    _echo(f"{'run':<22} {'apparatus':<14} {'sequence':<12} {'shots':>6}  started (UTC)")
     for r in rows:
-        click.echo(f"{str(r['run'])[:22]:<22} {str(r['apparatus'])[:14]:<14} {str(r['sequence'])[:12]:<12} {int(r['shots']):>6}  {_when(r['started'])}")
+        _echo(f"{str(r['run'])[:22]:<22} {str(r['apparatus'])[:14]:<14} {str(r['sequence'])[:12]:<12} {int(r['shots']):>6}  {_when(r['started'])}")
 
 
 def _date_option(value: str | None, option: str) -> dt.datetime | None:
@@ -227,33 +241,33 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         _wrapped(f"notes: {info.notes}")
     if info.tags:
         _wrapped(f"tags: {', '.join(info.tags)}")
-    click.echo("parameters")
+    _echo("parameters")
     for name, entry in info.parameters.items():
         unit = f" {entry['unit']}" if entry["unit"] else ""
         if entry["scanned"]:
             span = f"{entry['min']:g} .. {entry['max']:g}{unit}" if "min" in entry else "(varies)"
-            click.echo(f"  {name:<24} scanned  {span}")
+            _echo(f"  {name:<24} scanned  {span}")
         else:
             value = entry["value"]
             shown = f"{value:g}" if isinstance(value, float) else str(value)
-            click.echo(f"  {name:<24} {shown}{unit}")
+            _echo(f"  {name:<24} {shown}{unit}")
     if info.measurements:
-        click.echo("measurements")
+        _echo("measurements")
         _wrapped(", ".join(info.measurements))
     if info.images:
-        click.echo("images")
+        _echo("images")
         for name, image in info.images.items():
-            click.echo(f"  {name:<24} {image['role']:<9} {'x'.join(map(str, image['shape']))} sites")
+            _echo(f"  {name:<24} {image['role']:<9} {'x'.join(map(str, image['shape']))} sites")
     if info.figures:
-        click.echo("figures")
+        _echo("figures")
         for name, figure in info.figures.items():
-            click.echo("  " + _figure_line(name, figure))
+            _echo("  " + _figure_line(name, figure))
     if info.figure_history is not None:
-        click.echo("figure records, newest first")
+        _echo("figure records, newest first")
         for record in info.figure_history:
             options = ", ".join(f"{k}={v}" for k, v in record["options"].items())
             mark = "*" if record["in_force"] else " "
-            click.echo(f" {mark}{_figure_line(record['figure'], record)}  {record['computed_at'][:19]}" + (f"  [{options}]" if options else ""))
+            _echo(f" {mark}{_figure_line(record['figure'], record)}  {record['computed_at'][:19]}" + (f"  [{options}]" if options else ""))
 
 
 @cli.command("use-analysis")
@@ -265,7 +279,7 @@ def use_analysis(state: _State, run: str, version: str, apparatus: str | None) -
     """Make analysis VERSION of RUN the current one ('' is the unnamed version)."""
     with _open(state) as catalogue:
         switched = catalogue.use_analysis(run, version, apparatus=apparatus)
-    click.echo(f"run {switched['run']}: analysis '{switched['current']}' is current (was '{switched['before']}')")
+    _echo(f"run {switched['run']}: analysis '{switched['current']}' is current (was '{switched['before']}')")
 
 
 @cli.command()
@@ -285,16 +299,55 @@ def impact(state: _State, run: str, apparatus: str | None, from_analysis: str | 
     for entry in report:
         old, new = entry["old"], entry["new"]
 
-        def side(value: dict[str, Any] | None) -> str:
-            if value is None:
-                return "-"
-            error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
-            return f"{value['value']:.5g}{error} ('{value['analysis']}')"
-
-        moved = f"{entry['sigma']:+.2f} sigma" if entry["sigma"] is not None else ""
-        click.echo(f"{entry['figure']:<20} {side(old):>30} -> {side(new):<30} {moved}")
+        _echo(_moved_line(entry["figure"], old, new, entry["sigma"]))
         if entry["pins"]:
             _wrapped(f"pins holding the old version: {', '.join(entry['pins'])}")
+
+
+def _side(value: dict[str, Any] | None) -> str:
+    if value is None:
+        return "-"
+    error = f" ± {value['stderr']:.2g}" if value.get("stderr") is not None else ""
+    return f"{value['value']:.5g}{error} ('{value['analysis']}')"
+
+
+def _moved_line(figure: str, old: dict[str, Any] | None, new: dict[str, Any] | None, sigma: float | None) -> str:
+    moved = f"{sigma:+.2f} sigma" if sigma is not None else ""
+    return f"{figure:<20} {_side(old):>30} -> {_side(new):<30} {moved}"
+
+
+@cli.command()
+@click.argument("name")
+@click.option("--where", "where", required=True, metavar="EXPR", help="Filter expression choosing the shots to freeze.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def pin(state: _State, name: str, where: str, as_json: bool) -> None:
+    """Freeze the shots EXPR selects now, their analysis versions and figures, as NAME."""
+    with _open(state) as catalogue:
+        made = catalogue.pin(name, where)
+    if as_json:
+        _json(made)
+        return
+    _echo(f"pinned '{made['name']}': {made['shots']} shots of {made['runs']} runs; runlog export --pin {made['name']} --out DIR writes them")
+
+
+@cli.command()
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def pins(state: _State, as_json: bool) -> None:
+    """The pinned selections, and what newer analyses would change in each."""
+    with _open(state) as catalogue:
+        listed = catalogue.pins()
+    if as_json:
+        _json(listed)
+        return
+    for entry in listed:
+        _echo(f"{entry['name']}: {entry['shots']} shots of {entry['runs']} runs, pinned {entry['created_at'][:16].replace('T', ' ')} by {entry['author'] or '?'}")
+        _wrapped(f"filter: {entry['where']}")
+        if not entry["changes"]:
+            _wrapped("the catalogue still holds these versions and figures as current")
+        for change in entry["changes"]:
+            _wrapped(f"{change['run']}: " + _moved_line(change["figure"], change["old"], change["new"], change["sigma"]))
 
 
 @cli.command()
@@ -314,7 +367,7 @@ def withdraw(state: _State, file: Path | None, run: str | None, apparatus: str |
         _json(done)
         return
     versions = ", ".join(f"{r['run']} '{r['analysis']}'" for r in done["runs"])
-    click.echo(f"withdrawn ({done['id']}): {versions}")
+    _echo(f"withdrawn ({done['id']}): {versions}")
 
 
 @cli.command()
@@ -334,13 +387,13 @@ def restore(state: _State, file: Path | None, run: str | None, apparatus: str | 
         return
     for withdrawal in done:
         versions = ", ".join(f"{r['run']} '{r['analysis']}'" for r in withdrawal["runs"])
-        click.echo(f"restored ({withdrawal['id']}): {versions}")
+        _echo(f"restored ({withdrawal['id']}): {versions}")
 
 
 def _wrapped(text: str, indent: str = "  ") -> None:
     """Print ``text`` within 80 columns, continuation lines indented."""
     for line in textwrap.wrap(text, width=80, initial_indent=indent, subsequent_indent=indent + "  ", break_long_words=True) or [indent]:
-        click.echo(line)
+        _echo(line)
 
 
 def _figure_line(name: str, figure: dict[str, Any]) -> str:
@@ -354,19 +407,23 @@ def _figure_line(name: str, figure: dict[str, Any]) -> str:
     return text + f"  ({figure['method']})"
 
 
-@cli.command()
+@cli.command("note")
 @click.argument("text")
 @click.option("--run", default=None, help="Tie the note to this run.")
-@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at).")
-@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now).")
+@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at), or name the run's apparatus.")
+@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now, or the run's start).")
 @_common
-def annotate(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
+def note(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
     """Add a note to a run, or to an apparatus at a time."""
     if run is None and apparatus is None:
         raise click.UsageError("give --run RUN, or --apparatus A (with --at TIME)")
     with _open(state) as catalogue:
         number = catalogue.annotate(text, run=run, apparatus=apparatus, at=_date_option(at, "--at"))
-    click.echo(f"annotation {number} added")
+    _echo(f"note {number} added")
+
+
+# The command's first name, kept for scripts written before it was called 'note'.
+cli.add_command(click.Command("annotate", params=note.params, callback=note.callback, help=note.help, hidden=True))
 
 
 @cli.command()
@@ -389,8 +446,15 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
     logger.setLevel(logging.INFO)
     handler = logging.FileHandler(log_file or folder / "runlog-watch.log", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    handler.addFilter(ScrubbingFilter())
+    # The same lines on the terminal: one for each file taken or refused, as it happens.
+    terminal = logging.StreamHandler(sys.stdout)
+    terminal.setFormatter(logging.Formatter("%(asctime)s %(message)s", datefmt="%H:%M:%S"))
+    terminal.addFilter(ScrubbingFilter())
     logger.addHandler(handler)
-    with _open(state) as catalogue:
+    logger.addHandler(terminal)
+    with contextlib.ExitStack() as cleanup, _open(state) as catalogue:
+        cleanup.callback(lambda: (logger.removeHandler(handler), logger.removeHandler(terminal), handler.close()))
         logger.info("catalogue %s", catalogue.url)
 
         def ingest_and_derive(paths: list[Path]) -> list:
@@ -400,8 +464,14 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
                     logger.info("%s", _outcome_line(outcome))
             return results
 
-        watcher = Watcher(folder, ingest_and_derive, quarantine, logger)
-        click.echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
+        def judge_drift(results: list) -> None:
+            # After each ingest: judge the reference series, log each new alarm once.
+            for alarm in catalogue.new_alarms():
+                where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+                logger.warning("alarm #%s %s %s%s: %s on %s (%s)", alarm["id"], alarm["apparatus"], alarm["quantity"], where, alarm["reason"], alarm["date"], alarm["method"])
+
+        watcher = Watcher(folder, ingest_and_derive, quarantine, after_ingest=judge_drift, log=logger)
+        _echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
         try:
             watcher.run(interval, stop_after=stop_after)
         except KeyboardInterrupt:
@@ -426,34 +496,49 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
         state.db = f"sqlite:///{folder / 'demo.sqlite'}"
     start = dt.date(2026, 9, 1)
     tick = time.perf_counter()
+
+    def step(text: str) -> None:
+        # Progress on stderr, so that the summary on stdout stays what a script reads.
+        _echo(f"demo: {text} ({time.perf_counter() - tick:.0f} s)", err=True)
+
     with tempfile.TemporaryDirectory(prefix="runlog-demo-") as temporary:
+        step(f"writing {days} days of invented shot tables")
         files = write_demo_files(Path(temporary), days=days, start=start, seed=seed)
         with _open(state) as catalogue:
-            results = catalogue.ingest(files)
+            results = []
+            for number, file in enumerate(files, 1):
+                results += catalogue.ingest([file])
+                if number == 1 or number % 10 == 0 or number == len(files):
+                    step(f"ingested {number} of {len(files)} files")
             new_runs = sorted({run for r in results if r.status == "ingested" for run in r.runs})
+            if new_runs:
+                step(f"fitting the scans of the new runs")
             outcomes = catalogue.apply_rules(DEMO_RULES, runs=new_runs) if new_runs else []
+            step("checking every quantity for drift")
             alarms = catalogue.check_drift()
             counts = catalogue.counts()
             url = catalogue.url
     took = time.perf_counter() - tick
     made = sum(r.shots for r in results if r.status == "ingested")
-    click.echo(f"demo catalogue: {url}")
-    click.echo(f"{len(files)} files: {made} shots ingested now, {sum(r.status == 'already-present' for r in results)} files already present ({took:.1f} s)")
-    click.echo(f"catalogue holds {counts['apparatus']} apparatus, {counts['runs']} runs, {counts['shots']} shots")
+    _echo(f"demo catalogue: {url}")
+    _echo(f"{len(files)} files: {made} shots ingested now, {sum(r.status == 'already-present' for r in results)} files already present ({took:.1f} s)")
+    _echo(f"catalogue holds {counts['apparatus']} apparatus, {counts['runs']} runs, {counts['shots']} shots")
     fitted = sum(1 for o in outcomes if not isinstance(o, Exception))
     if outcomes:
-        click.echo(f"fitted figures: {fitted} scans fitted, {len(outcomes) - fitted} refused")
-    click.echo("what the invented lab did (the truth behind the files):")
+        _echo(f"fitted figures: {fitted} scans fitted, {len(outcomes) - fitted} refused")
+    _echo("what the invented lab did (the truth behind the files):")
     for line in SCENARIO.describe(start, days):
         _wrapped(line)
-    click.echo("what runlog found (open alarms, changes in level):")
-    for alarm in (a for a in alarms if a["reason"] == "change"):
-        _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: change on {alarm['date']} to {alarm['value']:.4g} ({alarm['size']:+.3g})")
-    click.echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
+    # The same alarms, in the same words, as 'runlog alarms' lists right after.
+    _echo(f"what runlog found: {len(alarms)} open alarms (runlog alarms lists them)")
+    for alarm in alarms:
+        _wrapped(_alarm_line(alarm))
+    _echo("to use the demo catalogue with every other command, in this shell:")
+    _echo(f"  export RUNLOG_DB={shlex.quote(url)}")
     if any(r.status == "rejected" for r in results):
         for r in results:
             if r.status == "rejected":
-                click.echo(f"rejected: {r.reason}", err=True)
+                _echo(f"refused: {r.reason}", err=True)
         sys.exit(1)
     if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():
         # Only in a terminal, where Ctrl-C stops it; scripts and pipes get the catalogue alone.
@@ -475,13 +560,28 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
 @click.option("--apparatus", default=None, help="Needed when several apparatus have a run of that name.")
 @click.option("--all", "everything", is_flag=True, help="Recompute counting figures of every run and apply every rule.")
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml: the [[rules]] --all applies, and the [apparatus] constants (field_sensitivity).")
+@click.option("--series", "series_name", default=None, metavar="NAME", help="Fit a series across runs instead: figure --y of the runs against their parameter --x, with --model exponential|power_law|linear.")
+@click.option("--where", "where", default=None, metavar="EXPR", help="With --series: the runs holding shots EXPR selects (default: every run).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, as_json: bool) -> None:
-    """Compute and store the figures of one KIND for RUN, or recompute all (--all)."""
+def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: str | None, envelope: str, target: str | None, image: str | None, model: str | None, settings: tuple[str, ...], apparatus: str | None, everything: bool, config: Path | None, series_name: str | None, where: str | None, as_json: bool) -> None:
+    """Compute and store the figures of one KIND for RUN, recompute all (--all), or fit a
+    series across runs (--series NAME --y FIGURE --x PARAMETER --model MODEL)."""
     from runlog.config import load_config
     from runlog.derive import derive_all
 
+    if series_name is not None:
+        if run is not None or kind is not None or everything or x is None or y is None:
+            raise click.UsageError("--series NAME needs --y FIGURE and --x PARAMETER (and no RUN, --kind or --all)")
+        with _open(state) as catalogue:
+            made = catalogue.derive_series(series_name, y, x, model=model or "exponential", where=where)
+        if as_json:
+            _json(made)
+            return
+        _series_lines(made)
+        return
+    if where is not None:
+        raise click.UsageError("--where chooses the runs of a --series")
     if everything:
         if run is not None or kind is not None or settings or model is not None or any(v is not None for v in (x, y, target, image, apparatus)):
             raise click.UsageError("--all recomputes every run as the rules say: give no RUN, --kind or other choices")
@@ -491,7 +591,7 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
         if as_json:
             _json(summary.as_dict())
             return
-        click.echo(f"{summary.runs} runs, {summary.figures} figures stored, {len(summary.failures)} failed")
+        _echo(f"{summary.runs} runs, {summary.figures} figures stored, {len(summary.failures)} failed")
         for failure in summary.failures:
             _wrapped(_outcome_line(failure))
         return
@@ -512,7 +612,36 @@ def derive(state: _State, run: str | None, kind: str | None, x: str | None, y: s
         return
     _wrapped(f"run {result.run}: {result.kind}, {len(result.figures)} figures stored", indent="")
     for name, figure in result.as_dict()["figures"].items():
-        click.echo("  " + _figure_line(name, figure))
+        _echo("  " + _figure_line(name, figure))
+
+
+def _series_lines(made: dict[str, Any]) -> None:
+    chi = f", chi2/dof {made['chi_square']:.3g}/{made['degrees_of_freedom']}" if made["chi_square"] is not None else ""
+    _echo(f"series {made['name']}: {made['figure']} vs {made['parameter']}, {made['model']}, {made['points']} runs{chi}")
+    for name, value in made["values"].items():
+        _echo("  " + _figure_line(name, value))
+    for left in made["left_out"]:
+        _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
+
+
+@cli.command("series-fits")
+@click.argument("name", required=False)
+@click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def series_fits_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+    """The series across runs (runlog derive --series), with their fits and member runs."""
+    with _open(state) as catalogue:
+        found = catalogue.series_fits(name, history=history)
+    if as_json:
+        _json(found)
+        return
+    for made in found:
+        _series_lines(made)
+        if name is not None:
+            for member in made["members"]:
+                error = "" if member["stderr"] is None else f" ± {member['stderr']:.2g}"
+                _wrapped(f"{member['run']} ({member['apparatus']}): x = {member['x']:g}, y = {member['y']:.5g}{error}")
 
 
 def _outcome_line(outcome) -> str:
@@ -534,63 +663,100 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @cli.command()
 @click.argument("quantity")
 @click.option("--apparatus", default=None, help="The apparatus (needed when several measure QUANTITY).")
-@click.option("--sequence", default=None, help="Only runs of this sequence.")
+@click.option("--sequence", default=None, help="The reference series within this sequence (with --pooled: all its runs).")
+@click.option("--series", "series_key", default=None, metavar="KEY", help="Another series than the reference one (SEQUENCE@FINGERPRINT, see --list-series).")
+@click.option("--pooled", is_flag=True, help="Every run (of --sequence) pooled, unlike runs mixed.")
+@click.option("--list-series", is_flag=True, help="List the series holding QUANTITY and stop.")
 @click.option("--since", default=None, metavar="DATE", help="First lab day (ISO).")
 @click.option("--until", default=None, metavar="DATE", help="Last lab day (ISO).")
-@click.option("--baseline-days", default=7, show_default=True, help="Days that set the control limits.")
+@click.option("--baseline-days", default=28, show_default=True, help="In-control lab days in the rolling baseline.")
 @click.option("--baseline", "baseline_range", default=None, metavar="FROM:TO", help="Lab days that set the limits instead (ISO dates).")
 @click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
-@click.option("--causes", is_flag=True, help="Rank what else changed at each change.")
+@click.option("--causes", is_flag=True, help="Notes, then suspects, at each change and each alarm day.")
+@click.option("--stability", is_flag=True, help="The Allan deviation over the series' runs, and what it means.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
-    """Daily values of a figure, control limits, changes in level and alarms."""
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, stability: bool, as_json: bool) -> None:
+    """Daily values of a figure for one reference series, control limits, changes in level and alarms."""
     parameters = dict(_range_option(text) for text in ranges)
     baseline = None
     if baseline_range is not None:
         first, _, last = baseline_range.partition(":")
         baseline = (_day_option(first, "--baseline"), _day_option(last, "--baseline"))
     with _open(state) as catalogue:
-        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
-        ranked = {c.date: catalogue.what_else_changed(quantity, c.date, apparatus=result.apparatus, top=5) for c in result.changes} if causes else {}
+        if list_series:
+            found = catalogue.series(quantity, apparatus=apparatus)
+            if as_json:
+                _json(found)
+            for entry in [] if as_json else found:
+                _wrapped(f"{'*' if entry['reference'] else ' '} {entry['key']}: {entry['label']}, {entry['days']} days, {entry['runs']} runs, {entry['first']} to {entry['last']}", indent="")
+            return
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, series=series_key, pooled=pooled, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
+        days = sorted({c.date for c in result.changes} | {dt.date.fromisoformat(e["date"]) for e in result.excursions}) if causes else []
+        found_suspects = {day: catalogue.suspects(quantity, day, apparatus=result.apparatus, top=5) for day in days}
+        steadiness = catalogue.stability(quantity, apparatus=result.apparatus, series=result.series["key"]) if stability and result.series else None
     if as_json:
         data = result.as_dict()
+        if stability:
+            data["stability"] = steadiness
         if causes:
-            for change in data["changes"]:
-                change["causes"] = ranked[dt.date.fromisoformat(change["date"])]
+            for entry in data["changes"] + data["excursions"]:
+                found = found_suspects[dt.date.fromisoformat(entry["date"])]
+                entry["notes"] = found["notes"]
+                entry["causes"] = found["causes"]
+                entry["verdict"] = found["verdict"]
         _json(data)
         return
     unit = f" [{result.unit}]" if result.unit else ""
-    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", sequence {result.sequence}" if result.sequence else ""), indent="")
+    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", series {result.series['label']} ({result.series['key']})" if result.series else (f", sequence {result.sequence}" if result.sequence else ", all runs pooled")), indent="")
     outside = set(result.out_of_limits)
-    click.echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
+    _echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
     for index, point in enumerate(result.points):
         flag = "  *" if index in outside else ""
-        click.echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
+        _echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
     if outside:
-        click.echo("  * outside the control limits")
+        _echo("  * outside the control limits")
+    for excursion in result.excursions:
+        _wrapped(f"out of control from {excursion['date']}: {excursion['size']:+.4g}{unit}, {excursion['z']:+.1f} standard errors ({', '.join(excursion['signals'])})")
+        _print_suspects(found_suspects.get(dt.date.fromisoformat(excursion["date"])))
     for change in result.changes:
         _wrapped(f"change on {change.date.isoformat()}: {change.before:.4g} -> {change.after:.4g}{unit} ({change.method})")
-        for cause in ranked.get(change.date, []):
-            _wrapped(f"  moved too: {cause['name']}: {cause['before_mean']:.4g} -> {cause['after_mean']:.4g} (effect {cause['effect_size']:+.2f})")
+        _print_suspects(found_suspects.get(change.date))
+    for setting in result.settings:
+        _wrapped(f"{setting['day']}: {setting['words']}")
+    if steadiness is not None:
+        _wrapped(f"stability: {steadiness['words']}")
     if not result.changes and len(result.points) >= 3:
-        click.echo("  no change in level found")
-    click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+        _echo("  no change in level found")
+    _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _print_suspects(found: dict[str, object] | None) -> None:
+    if found is None:
+        return
+    for note in found["notes"]:
+        _wrapped(f"  {note['kind']} {note['day']}" + (f" ({note['run']})" if note.get("run") else "") + f": {note['text']}")
+    for cause in found["causes"]:
+        _wrapped(f"  suspect: {cause['words']}")
+    _wrapped(f"  {found['verdict']}")
 
 
 @cli.command()
 @click.option("--apparatus", default=None, help="Only this apparatus.")
 @click.option("--all", "show_all", is_flag=True, help="Acknowledged alarms too.")
 @click.option("--ack", "acknowledge", type=int, default=None, metavar="ID", help="Acknowledge alarm ID.")
-@click.option("--note", default="", help="With --ack: what it was (becomes an annotation).")
+@click.option("--note", default="", help="With --ack: what it was (becomes a note on that day).")
+@click.option("--accept", is_flag=True, help="With --ack: the new level is the reference from the alarm's day on (a new baseline).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, as_json: bool) -> None:
-    """Check every quantity for drift and list the open alarms (or acknowledge one)."""
+def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, accept: bool, as_json: bool) -> None:
+    """Check the reference series of every quantity for drift and list the open alarms (or acknowledge one)."""
+    if accept and acknowledge is None:
+        raise click.UsageError("--accept needs --ack ID")
     with _open(state) as catalogue:
         if acknowledge is not None:
-            annotation = catalogue.acknowledge(acknowledge, note)
-            click.echo(f"alarm {acknowledge} acknowledged (annotation {annotation})")
+            annotation = catalogue.acknowledge(acknowledge, note, accept=accept)
+            _echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (note {annotation})")
             return
         catalogue.check_drift(apparatus=apparatus)
         found = catalogue.alarms(status=None if show_all else "open", apparatus=apparatus)
@@ -598,12 +764,19 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
         _json(found)
         return
     if not found:
-        click.echo("no open alarms")
+        _echo("no open alarms")
         return
     for alarm in found:
-        size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
-        _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} to {alarm['value']:.4g}{size}, {alarm['status']}", indent="")
-    click.echo("advisory only: not a replacement for the lab's interlocks or rules")
+        _wrapped(_alarm_line(alarm), indent="")
+    _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _alarm_line(alarm: dict[str, Any]) -> str:
+    """One alarm as ``runlog alarms`` and the demo's summary print it."""
+    size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
+    value = "" if alarm["value"] is None else f" to {alarm['value']:.4g}"
+    where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+    return f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}{where}: {alarm['reason']}{value}{size} ({alarm['method']}), {alarm['status']}"
 
 
 @cli.command()
@@ -620,7 +793,7 @@ def calibrations(state: _State, names: tuple[str, ...], apparatus: str | None, a
         _json([c.as_dict() for c in found])
         return
     if not found:
-        click.echo("no calibration figures stored")
+        _echo("no calibration figures stored")
         return
     for c in found:
         error = f" ± {c.stderr:.2g}" if c.stderr is not None else ""
@@ -673,17 +846,17 @@ def shots(state: _State, where: str | None, columns: str | None, limit: int | No
     with _open(state) as catalogue:
         frame = catalogue.select(where, columns=[c.strip() for c in columns.split(",")] if columns else None, limit=limit)
     if as_csv:
-        click.echo(frame.to_csv(index=False), nl=False)
+        _echo(frame.to_csv(index=False), nl=False)
     elif as_json:
-        click.echo(frame.to_json(orient="records", date_format="iso", indent=2))
+        _echo(frame.to_json(orient="records", date_format="iso", indent=2))
     elif frame.empty:
-        click.echo("no shots")
+        _echo("no shots")
     else:
         import pandas as pd
 
         with pd.option_context("display.width", 80, "display.max_columns", 8, "display.max_colwidth", 16):
-            click.echo(frame.to_string(index=False, max_rows=40))
-        click.echo(f"{len(frame)} shots")
+            _echo(frame.to_string(index=False, max_rows=40))
+        _echo(f"{len(frame)} shots")
 
 
 @cli.command()
@@ -694,23 +867,29 @@ def shots(state: _State, where: str | None, columns: str | None, limit: int | No
 @click.option("--title", default=None, help="Title of the package.")
 @click.option("--overwrite", is_flag=True, help="Replace an earlier export in --out.")
 @click.option("--spec", type=click.Path(path_type=Path, dir_okay=False, exists=True), default=None, help="Re-run a saved export (its export.toml).")
+@click.option("--pin", "pin_name", default=None, metavar="NAME", help="Export a pinned selection (runlog pin) as it was pinned.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, as_json: bool) -> None:
+def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, pin_name: str | None, as_json: bool) -> None:
     """Write the chosen shots, their runs and provenance as a Frictionless Data Package."""
-    if spec is None and (where is None or out is None):
-        raise click.UsageError("give --where EXPR and --out DIR, or --spec FILE")
+    if spec is None and ((where is None) == (pin_name is None) or out is None):
+        raise click.UsageError("give --where EXPR (or --pin NAME) and --out DIR, or --spec FILE")
     with _open(state) as catalogue:
         if spec is not None:
             result = catalogue.export_again(spec, out=out)
         else:
-            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite)
+            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite, pin=pin_name)
     if as_json:
         _json(result.as_dict())
         return
-    click.echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    _echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    if result.other_versions_pinned:
+        named = sorted({e["pin"] for e in result.other_versions_pinned})
+        click.echo(f"current analysis versions exported; pin(s) {', '.join(named)} hold other versions of {len({(e['apparatus'], e['run']) for e in result.other_versions_pinned})} of these runs")
+    if result.pin is not None and result.pin_changes:
+        _echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
     if result.same is not None:
-        click.echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
+        _echo("data hash the same as before" if result.same else f"data changed: {', '.join(result.changed)}")
 
 
 @cli.group()
@@ -732,7 +911,7 @@ def plot_drift_command(state: _State, quantity: str, out: Path, apparatus: str |
 
     with _open(state) as catalogue:
         result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), record_alarms=False)
-        click.echo(f"wrote {plot_drift(result, out)}")
+        _echo(f"wrote {plot_drift(result, out)}")
 
 
 @plot.command("run")
@@ -747,7 +926,7 @@ def plot_run_command(state: _State, run: str, out: Path, apparatus: str | None, 
     from runlog.plots import plot_run
 
     with _open(state) as catalogue:
-        click.echo(f"wrote {plot_run(catalogue, run, out, apparatus=apparatus, x=x, y=y)}")
+        _echo(f"wrote {plot_run(catalogue, run, out, apparatus=apparatus, x=x, y=y)}")
 
 
 @cli.group("db")
@@ -768,7 +947,7 @@ def grant_reader(state: _State, role: str, password_env: str | None) -> None:
             raise click.UsageError(f"environment variable {password_env} is not set")
     with _open(state) as catalogue:
         catalogue.grant_reader(role, password=password)
-        click.echo(f"role {role} can read {catalogue.url}")
+        _echo(f"role {role} can read {catalogue.url}")
 
 
 @db_group.command("copy")
@@ -796,31 +975,53 @@ def copy_command(state: _State, target: str, as_json: bool) -> None:
     if as_json:
         _json({"source": redact(source), "target": redact(target), "rows": rows})
         return
-    click.echo(f"copied {redact(source)} to {redact(target)}: {rows['runs']} runs, {rows['shots']} shots")
+    _echo(f"copied {redact(source)} to {redact(target)}: {rows['runs']} runs, {rows['shots']} shots")
     for table, count in rows.items():
-        click.echo(f"  {table:<20} {count:>12}")
+        _echo(f"  {table:<20} {count:>12}")
+
+
+def _remember_urls(args: list[str]) -> None:
+    # The URLs given to this process, so their passwords are scrubbed from every line
+    # printed even when the URL is too malformed for a pattern to recognise.
+    for name in ("--db", "--to"):
+        for position, arg in enumerate(args):
+            if arg == name and position + 1 < len(args):
+                remember(args[position + 1])
+            elif arg.startswith(name + "="):
+                remember(arg.split("=", 1)[1])
+    if os.environ.get("RUNLOG_DB"):
+        remember(os.environ["RUNLOG_DB"])
 
 
 def main(argv: list[str] | None = None) -> None:
     """Entry point: run the CLI, turning runlog's errors into one line and an exit code."""
-    debug = "--debug" in (argv if argv is not None else sys.argv[1:])
+    args = argv if argv is not None else sys.argv[1:]
+    debug = "--debug" in args
+    _remember_urls(args)
     try:
         cli.main(args=argv, prog_name="runlog", standalone_mode=False)
     except click.exceptions.Exit as done:
         sys.exit(done.exit_code)
     except click.Abort:
-        click.echo("runlog: aborted", err=True)
+        _echo("runlog: aborted", err=True)
         sys.exit(1)
     except click.ClickException as error:
+        error.message = scrub(error.message)
         error.show()
         sys.exit(error.exit_code)
     except RunlogError as error:
         if debug:
             raise
-        click.echo(f"runlog: error: {error}", err=True)
+        _echo(f"runlog: error: {error}", err=True)
         sys.exit(1)
     except Exception as error:  # anything unexpected: one line unless --debug
         if debug:
             raise
-        click.echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
+        if type(error).__module__.startswith("sqlalchemy") or isinstance(error, PermissionError):
+            # A database error: its cause in one line (read-only, busy, ...), never the SQL.
+            from runlog.store.failures import describe
+
+            _echo(f"runlog: error: {describe(error, doing='using the catalogue').message}", err=True)
+            sys.exit(1)
+        _echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
         sys.exit(1)

@@ -31,6 +31,15 @@ Example::
     x = "wait"
     y = "bright_fraction"
 
+    [reference."lattice-east"]  # optional: the runs drift is judged on (docs/drift.md)
+    sequence = "ramsey"         # the reference sequence
+    vary = ["repetition"]       # parameters that may change within one series
+    tolerance = 0.001           # relative rounding of constant settings
+
+    [time_window]             # shots stamped outside it are refused (an unset clock, a
+    earliest = 2000-01-01     # corrupted page); these are the defaults, in UTC. The
+    latest = 2100-01-01       # window must lie within 1900-01-01 and 2262-01-01.
+
     [apparatus."lattice-east"]  # constants of one apparatus the figures need
     field_sensitivity = "2.0 kHz/mG"          # transition frequency per magnetic field
     zero_field_frequency = "6834.682611 MHz"  # optional: the transition at zero field
@@ -43,6 +52,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from runlog.errors import ConfigError
+from runlog.times import DEFAULT_TIME_WINDOW, TimeWindow
 
 __all__ = ["APPARATUS_KEYS", "Mapping", "check_apparatus_settings", "check_rules", "load_config"]
 
@@ -66,6 +76,24 @@ class Mapping:
     thresholds: dict[str, float] = field(default_factory=dict)
     #: ``[monitors] files``: glob patterns of the files that are monitor tables.
     monitor_files: tuple[str, ...] = ()
+    #: ``[reference."NAME"]`` tables: per apparatus, sequence / vary / tolerance.
+    references: dict[str, dict[str, object]] = field(default_factory=dict)
+    #: ``[time_window]``: shot times outside it are refused.
+    time_window: TimeWindow = DEFAULT_TIME_WINDOW
+    #: ``[units]``: lab-defined units, ``(name, definition)`` pairs (runlog.units).
+    units: tuple[tuple[str, str], ...] = ()
+
+
+def _time_window(table: object, source: str) -> TimeWindow:
+    if not isinstance(table, dict):
+        raise ConfigError(source, "[time_window] must be a table with earliest and latest")
+    unknown = sorted(set(table) - {"earliest", "latest"})
+    if unknown:
+        raise ConfigError(source, f"[time_window]: unknown key '{unknown[0]}' (known: earliest, latest)")
+    try:
+        return TimeWindow(table.get("earliest", DEFAULT_TIME_WINDOW.earliest), table.get("latest", DEFAULT_TIME_WINDOW.latest))
+    except ValueError as error:
+        raise ConfigError(source, f"[time_window]: {error}") from None
 
 
 def load_config(path: str | Path | None) -> Mapping:
@@ -79,7 +107,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "monitors"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "monitors"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -124,7 +152,38 @@ def load_config(path: str | Path | None) -> Mapping:
         apparatus_settings=settings,
         thresholds={str(k): float(v) for k, v in thresholds.items()},
         monitor_files=tuple(monitor_files),
+        references=check_references(data.get("reference", {}), str(path)),
+        time_window=_time_window(data.get("time_window", {}), str(path)),
+        units=_lab_units(data.get("units", {}), str(path)),
     )
+
+
+def _lab_units(table: object, source: str) -> tuple[tuple[str, str], ...]:
+    from runlog.units import UnitError, check_lab_units
+
+    try:
+        return check_lab_units(table)
+    except UnitError as error:
+        raise ConfigError(source, str(error)) from None
+
+
+def check_references(tables: object, source: str = "<reference>") -> dict[str, dict[str, object]]:
+    """``[reference."NAME"]`` tables checked: a sequence text, a list of names, a tolerance in (0, 1)."""
+    if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
+        raise ConfigError(source, '[reference."NAME"] must be tables, one per apparatus')
+    for name, table in tables.items():
+        unknown = sorted(set(table) - {"sequence", "vary", "tolerance"})
+        if unknown:
+            raise ConfigError(source, f"[reference.\"{name}\"]: unknown key '{unknown[0]}' (known: sequence, tolerance, vary)")
+        if "sequence" in table and not isinstance(table["sequence"], str):
+            raise ConfigError(source, f"[reference.\"{name}\"] sequence must be a sequence name")
+        vary = table.get("vary", [])
+        if not isinstance(vary, list) or not all(isinstance(v, str) for v in vary):
+            raise ConfigError(source, f"[reference.\"{name}\"] vary must be a list of parameter names")
+        tolerance = table.get("tolerance", 1e-3)
+        if isinstance(tolerance, bool) or not isinstance(tolerance, (int, float)) or not 0 < tolerance < 1:
+            raise ConfigError(source, f"[reference.\"{name}\"] tolerance must be a number between 0 and 1")
+    return {str(k): dict(v) for k, v in tables.items()}
 
 
 #: The keys of an ``[apparatus."NAME"]`` table, each a quantity text.
@@ -133,7 +192,7 @@ APPARATUS_KEYS = ("field_sensitivity", "zero_field_frequency")
 
 def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dict[str, dict[str, str]]:
     """``[apparatus."NAME"]`` tables checked: known keys, texts that pint reads as quantities."""
-    from runlog.units import registry
+    from runlog.units import quantity
 
     if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
         raise ConfigError(source, '[apparatus."NAME"] must be tables, one per apparatus')
@@ -144,9 +203,7 @@ def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dic
             raise ConfigError(source, f"[apparatus.\"{name}\"]: unknown key '{unknown[0]}' (known: {', '.join(APPARATUS_KEYS)})")
         for key, text in table.items():
             try:
-                if not isinstance(text, str):
-                    raise TypeError
-                registry().Quantity(text)
+                quantity(text)
             except Exception:
                 raise ConfigError(source, f"[apparatus.\"{name}\"] {key} = {text!r} is not a quantity with a unit such as '2.0 kHz/mG'") from None
         checked[name] = dict(table)

@@ -19,7 +19,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from runlog.config import Mapping
-from runlog.errors import ContractError
+from runlog.errors import CONTROL_CHARACTERS, ContractError
+from runlog.times import DEFAULT_TIME_WINDOW, TimeWindow
 from runlog.units import check_unit
 
 __all__ = [
@@ -34,6 +35,10 @@ __all__ = [
     "normalise_batch",
     "threshold_counts",
     "FROM_COUNTS",
+    "MAX_SHOT",
+    "MAX_TEXT_BYTES",
+    "MAX_MEASUREMENTS_PER_FILE",
+    "MAX_MEASUREMENTS",
 ]
 
 #: 2 added the optional ``analysis`` (a column, or the file's key-value metadata): files of
@@ -46,6 +51,25 @@ OPTIONAL = ("operator", "notes", "tags", "status", "analysis")
 
 #: Longest text the catalogue keeps for each named thing (the schema's column sizes).
 MAX_LENGTH = {"analysis": 200, "run": 200, "apparatus": 200, "sequence": 200, "operator": 200, "tags": 2000, "status": 40, "name": 200, "unit": 60}
+
+# Limits of what both backends can store, checked here so that SQLite and PostgreSQL
+# refuse the same files (a file the contract passes must never fail in the store).
+#: Largest shot index: ``shots.shot`` is a 32-bit integer on PostgreSQL.
+MAX_SHOT = 2**31 - 1
+#: Longest text parameter value in UTF-8 bytes: run and shot parameter texts are indexed,
+#: and a PostgreSQL btree entry holds at most 2704 bytes.
+MAX_TEXT_BYTES = 2000
+#: Most measurement columns in one file: one shot's row of ``shot_measurements`` (8 bytes a
+#: value) must fit in a PostgreSQL page (8160 bytes with its header and null bitmap).
+MAX_MEASUREMENTS_PER_FILE = 900
+#: Most measurement names in a catalogue: each is a column of ``shot_measurements``, and a
+#: PostgreSQL table has at most 1600 (SQLite 2000). Checked by ingest against the store.
+MAX_MEASUREMENTS = 1500
+# Control characters: never in a name (they rewrite terminal lines and logs); NUL never in
+# any text (PostgreSQL cannot store it). The same set as errors.CONTROL_CHARACTERS, in the
+# RE2 syntax of Arrow's compute functions.
+_CONTROL = r"[\x00-\x1f\x7f-\x9f\x{2028}\x{2029}]"
+_NUL = "\x00"
 
 _NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
 _IMAGE = re.compile(r"^occ\.(?P<name>[^\[\]]+)$")
@@ -94,6 +118,8 @@ class Layout:
         return list(dict.fromkeys(column.source for column in self.columns))
     #: The analysis version the file's key-value metadata names (a column overrides it).
     analysis: str | None = None
+    #: Shot times outside it are refused.
+    time_window: TimeWindow = DEFAULT_TIME_WINDOW
 
     def by_role(self, role: str) -> list[Column]:
         return [column for column in self.columns if column.role == role]
@@ -172,13 +198,19 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         source = field.name
         if source in mapping.ignore:
             continue
+        if not source.strip():
+            raise ContractError(file, "a column has an empty name", column=source)
+        if CONTROL_CHARACTERS.search(source):
+            # The message escapes it (errors.one_line); the name is refused all the same,
+            # since it would break every line that prints it.
+            raise ContractError(file, "column name holds a control character", column=source[:80])
         target = mapping.rename.get(source, source)
         if target in RESERVED or target in OPTIONAL:
             column = Column(source, "reserved" if target in RESERVED else "optional", target)
         elif (match := _NAMED.match(target)) is not None:
             name = match["name"].strip()
             try:
-                unit = check_unit(match["unit"] or "")
+                unit = check_unit(match["unit"] or "", mapping.units)
             except ValueError as error:
                 raise ContractError(file, str(error), column=source) from None
             if match["prefix"] == "p":
@@ -196,6 +228,8 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
                 "or map or ignore it in runlog.toml",
                 column=source,
             )
+        if not column.name:
+            raise ContractError(file, "empty name after the prefix", column=source)
         if len(column.name) > MAX_LENGTH["name"]:
             raise ContractError(file, f"name longer than {MAX_LENGTH['name']} characters", column=source[:80])
         if len(column.unit) > MAX_LENGTH["unit"]:
@@ -208,6 +242,9 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         seen[key] = source
         columns.append(column)
 
+    measurements = sum(1 for c in columns if c.role == "measurement")
+    if measurements > MAX_MEASUREMENTS_PER_FILE:
+        raise ContractError(file, f"{measurements} measurement columns, more than the {MAX_MEASUREMENTS_PER_FILE} one file may have (a shot's measurements are one row of the store)")
     present = {c.name for c in columns if c.role == "reserved"}
     for name in RESERVED:
         if name == "apparatus" and mapping.apparatus:
@@ -254,20 +291,24 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
     raw = (schema.metadata or {}).get(ANALYSIS_METADATA_KEY.encode())
     if raw is not None:
         analysis = raw.decode("utf-8", errors="replace").strip()
+        if CONTROL_CHARACTERS.search(analysis):
+            raise ContractError(file, "analysis name in the file's metadata holds a control character")
         if len(analysis) > MAX_LENGTH["analysis"]:
             raise ContractError(file, f"analysis name in the file's metadata is longer than {MAX_LENGTH['analysis']} characters")
-    return Layout(file, tuple(columns), loading, survival, mapping.apparatus, thresholds=dict(mapping.thresholds), analysis=analysis)
+    return Layout(file, tuple(columns), loading, survival, mapping.apparatus, thresholds=dict(mapping.thresholds), analysis=analysis, time_window=mapping.time_window)
 
 
 def _first(mask: np.ndarray) -> int:
     return int(np.flatnonzero(mask)[0])
 
 
-def _strings(file: str, array: pa.Array, column: str, first_row: int, required: bool, name_of_field: str | None = None) -> np.ndarray:
+def _strings(file: str, array: pa.Array, column: str, first_row: int, required: bool, name_of_field: str | None = None, free_text: bool = False) -> np.ndarray:
     """Text values as an object array (``None`` for missing), via the dictionary.
 
     Run, apparatus and sequence repeat over thousands of rows; checking and converting
-    the few distinct values instead of every row is what keeps this cheap.
+    the few distinct values instead of every row is what keeps this cheap. Names refuse
+    control characters; ``free_text`` (notes, text parameters) refuses only NUL, and a text
+    parameter (no ``name_of_field``) is held to :data:`MAX_TEXT_BYTES`.
     """
     if not pa.types.is_dictionary(array.type):
         if pa.types.is_integer(array.type):
@@ -289,6 +330,25 @@ def _strings(file: str, array: pa.Array, column: str, first_row: int, required: 
             rows = np.isin(codes.to_numpy(zero_copy_only=False), empty_codes)
             if rows.any():
                 raise ContractError(file, "empty value", column=column, row=first_row + _first(rows))
+    def first_row_of(bad_codes: np.ndarray) -> int | None:
+        rows = np.isin(codes.to_numpy(zero_copy_only=False), bad_codes)
+        return first_row + _first(rows) if rows.any() else None
+
+    if len(dictionary):
+        if free_text:
+            bad = pc.match_substring(dictionary, _NUL).to_numpy(zero_copy_only=False)
+            what = "text holds a NUL character"
+        else:
+            bad = pc.match_substring_regex(dictionary, _CONTROL).to_numpy(zero_copy_only=False)
+            what = "text holds a control character (such as NUL, a newline or a terminal escape)"
+        row = first_row_of(np.flatnonzero(bad))
+        if row is not None:
+            raise ContractError(file, what, column=column, row=row)
+        if name_of_field is None:
+            bad = pc.greater(pc.binary_length(dictionary), MAX_TEXT_BYTES)
+            row = first_row_of(np.flatnonzero(bad.to_numpy(zero_copy_only=False)))
+            if row is not None:
+                raise ContractError(file, f"text longer than {MAX_TEXT_BYTES} bytes", column=column, row=row)
     limit = MAX_LENGTH.get(name_of_field) if name_of_field else None
     if limit is not None and len(dictionary):
         long_codes = np.flatnonzero(pc.greater(pc.utf8_length(dictionary), limit).to_numpy(zero_copy_only=False))
@@ -331,6 +391,24 @@ def _numbers(file: str, array: pa.Array, column: str, first_row: int) -> np.ndar
     return values
 
 
+def _microseconds(file: str, times: pa.Array, column: str, first_row: int) -> np.ndarray:
+    """Integer microseconds since 1970 UTC; a time no 64-bit count of microseconds holds
+    (nanoseconds cannot overflow, seconds can) is refused with its row."""
+    unit = times.type.unit if pa.types.is_timestamp(times.type) else "us"
+    raw = times.cast(pa.int64()).to_numpy(zero_copy_only=False)
+    per = {"s": 1_000_000, "ms": 1_000}.get(unit)
+    if per is not None:
+        limit = np.iinfo(np.int64).max // per
+        bad = np.abs(raw) > limit
+        if bad.any():
+            row = _first(bad)
+            raise ContractError(file, f"time {int(raw[row])} {unit} since 1970 is outside the plausible window", column=column, row=first_row + row)
+        return raw * per
+    if unit == "ns":
+        return raw // 1_000
+    return raw
+
+
 def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Batch:
     """Check every row of ``batch`` and return it as numpy arrays."""
     file = layout.file
@@ -367,22 +445,29 @@ def normalise_batch(layout: Layout, batch: pa.RecordBatch, first_row: int) -> Ba
     negative = shot < 0
     if negative.any():
         raise ContractError(file, f"negative shot index {int(shot[negative][0])}", column=shot_source, row=first_row + _first(negative))
+    too_large = shot > MAX_SHOT
+    if too_large.any():
+        raise ContractError(file, f"shot index {int(shot[too_large][0])} is larger than {MAX_SHOT}", column=shot_source, row=first_row + _first(too_large))
 
     time_source = layout.source("time")
     time_array = reserved("time")
     if time_array.null_count:
         raise ContractError(file, "empty time", column=time_source, row=first_row + _first(time_array.is_null().to_numpy(zero_copy_only=False)))
-    time_us = pc.cast(time_array, pa.timestamp("us", tz="UTC")).cast(pa.int64()).to_numpy(zero_copy_only=False)
+    time_us = _microseconds(file, time_array, time_source, first_row)
+    outside = layout.time_window.outside(time_us)
+    if outside.any():
+        row = _first(outside)
+        raise ContractError(file, layout.time_window.why_outside(int(time_us[row])), column=time_source, row=first_row + row)
 
     def optional(name: str) -> np.ndarray | None:
         array = reserved(name)
-        return None if array is None else _strings(file, array, layout.source(name), first_row, required=False, name_of_field=name)
+        return None if array is None else _strings(file, array, layout.source(name), first_row, required=False, name_of_field=name, free_text=name == "notes")
 
     parameters: dict[str, np.ndarray] = {}
     for column in layout.by_role("parameter"):
         array = get(column.source)
         if column.kind == "text":
-            parameters[column.name] = _strings(file, array, column.source, first_row, required=False)
+            parameters[column.name] = _strings(file, array, column.source, first_row, required=False, free_text=True)
         else:
             parameters[column.name] = _numbers(file, array, column.source, first_row)
 

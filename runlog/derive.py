@@ -76,7 +76,7 @@ from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_m
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
 from runlog.figures.spreading import fit_spreading, position_spread
-from runlog.units import conversion, convert, registry
+from runlog.units import conversion, convert, parse_unit, quantity, registry
 
 if TYPE_CHECKING:
     from runlog.catalogue import Catalogue, RunInfo
@@ -90,6 +90,7 @@ _SAME_CORRELATOR_OUTCOMES = ("q1", "q2", "q3")
 _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
 #: Kind-specific settings a rule or ``derive(settings=...)`` may give, by kind.
 SETTINGS = {
+    "coherence": ("oscillator", "side"),
     "rabi": ("pulse",),
     "spectroscopy": ("pulse",),
     "echo": ("stretch",),
@@ -415,7 +416,7 @@ def _listed(names: Sequence[str]) -> str:
 
 def _root(unit: str):
     try:
-        return registry().get_root_units(unit or "dimensionless")
+        return registry().get_root_units(parse_unit(unit))
     except Exception:  # pint raises several unrelated types for a unit it does not know
         return None
 
@@ -494,7 +495,43 @@ def _coherence(source: _Source, options: _Options) -> list[Figure]:
     # The wait goes in in its own unit, so the coherence time comes out in it.
     if "contrast" in y.lower():
         return fit_envelope(wait, signal, envelope=options.envelope, wait_unit=unit)
-    return fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit)
+    figures = fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit)
+    sensitivity = options.constants.get("field_sensitivity")
+    if sensitivity is not None:
+        figures.append(_ramsey_field(source, options, figures, sensitivity))
+    return figures
+
+
+#: Names the Ramsey fringe frequency has had (the figure was renamed).
+_RAMSEY_FREQUENCY = ("ramsey_frequency", "detuning")
+
+
+def _ramsey_field(source: _Source, options: _Options, figures: list[Figure], sensitivity: str) -> Figure:
+    """The field at the atoms from a Ramsey fringe, as spectroscopy's from a resonance.
+
+    The fringe frequency δ is |f_atoms − f_oscillator| (a fringe cannot tell the sign:
+    ``side`` says whether the atoms' transition lies ``above`` the oscillator, the default,
+    or ``below``). ``oscillator`` is the oscillator's frequency (a parameter or a quantity):
+    its detuning from the zero-field transition, or its absolute frequency when the
+    apparatus gives ``zero_field_frequency``; without it the oscillator sits on the zero-field
+    transition. The transition is then at ``oscillator ± δ`` and
+    :func:`~runlog.figures.spectroscopy.field_from_resonance` turns it into the field.
+    """
+    frequency = next(f for f in figures if f.name in _RAMSEY_FREQUENCY)
+    side = str(options.settings.get("side", "above"))
+    if side not in ("above", "below"):
+        raise FitError("coherence", f"side '{side}' must be 'above' or 'below' (the atoms' transition against the oscillator)")
+    zero_field = options.constants.get("zero_field_frequency")
+    given = options.settings.get("oscillator")
+    if given is None and zero_field is not None:
+        raise FitError("coherence", "the apparatus gives zero_field_frequency: give oscillator= (the oscillator's frequency) to place the Ramsey fringe")
+    oscillator = 0.0 if given is None else _quantity_setting(source, given, frequency.unit, "oscillator")
+    transition = oscillator + (frequency.value if side == "above" else -frequency.value)
+    placed = Figure("resonance", transition, frequency.unit, stderr=frequency.stderr, method=frequency.method, method_version=frequency.method_version)
+    try:
+        return field_from_resonance(placed, sensitivity, zero_field, method="ramsey frequency/sensitivity")
+    except ValueError as error:
+        raise FitError("coherence", str(error)) from None
 
 
 def _spreading(source: _Source, options: _Options) -> list[Figure]:
@@ -667,8 +704,6 @@ def _scan(source: _Source, options: _Options, suits: Callable[[str], bool], what
 
 def _quantity_setting(source: _Source, value: object, unit: str, what: str) -> float:
     """A setting that is a parameter name (its run value) or a quantity text, in ``unit``."""
-    from runlog.units import registry
-
     parameters = source.info.parameters
     if isinstance(value, str) and value in parameters:
         entry = parameters[value]
@@ -680,7 +715,7 @@ def _quantity_setting(source: _Source, value: object, unit: str, what: str) -> f
             raise FitError(source.kind, f"{what} parameter '{value}' is in '{text_unit or 'no unit'}', not convertible to '{unit}'")
         return float(entry["value"]) * factors[0] + factors[1]
     try:
-        return float(registry().Quantity(str(value)).to(unit).magnitude)
+        return float(quantity(str(value)).to(parse_unit(unit)).magnitude)
     except Exception:
         raise FitError(source.kind, f"{what} {value!r} is neither a parameter of the run nor a quantity in a unit convertible to '{unit}'") from None
 
@@ -793,8 +828,6 @@ def _detection(source: _Source, options: _Options) -> list[Figure]:
 def _trap_setting(source: _Source, options: _Options, name: str) -> tuple[float, str]:
     """``(value, unit)`` of a trap setting: ``settings[name]``, else the run's only fixed
     parameter whose name contains ``name``."""
-    from runlog.units import registry
-
     given = options.settings.get(name)
     if given is None:
         given = _trap_setting_name(source, name)
@@ -805,10 +838,10 @@ def _trap_setting(source: _Source, options: _Options, name: str) -> tuple[float,
             raise FitError(source.kind, f"{name} parameter '{given}' must hold one number for the whole run")
         return float(entry["value"]), str(entry["unit"] or "")
     try:
-        quantity = registry().Quantity(str(given))
+        given_quantity = quantity(str(given))
     except Exception:
         raise FitError(source.kind, f"{name} {given!r} is neither a parameter of the run nor a quantity with a unit") from None
-    return float(quantity.magnitude), str(quantity.units)
+    return float(given_quantity.magnitude), str(given_quantity.units)
 
 
 def _release_recapture(source: _Source, options: _Options, trap_only: bool = False):

@@ -47,9 +47,9 @@ from runlog.errors import ExportError, ConfigError
 from runlog.selection import PARALLEL_READS, Selection, id_in, select_on
 from runlog.store import schema as s
 from runlog.store.arrow_reader import arrow_read
-from runlog.store.engine import redact
+from runlog.store.engine import redact, sqlite_path
 
-__all__ = ["FORMATS", "ExportResult", "export", "export_spec"]
+__all__ = ["FORMATS", "ExportResult", "export", "export_spec", "check_replaceable"]
 
 #: Data file formats an export can write.
 FORMATS = ("parquet", "csv")
@@ -87,6 +87,11 @@ class ExportResult:
     created: str
     previous: dict[str, str] | None = None
     changed: tuple[str, ...] = field(default=())
+    #: The pin exported (None: a filter), and what newer analyses would change in it.
+    pin: str | None = None
+    pin_changes: tuple[dict[str, object], ...] = field(default=())
+    #: For an export by filter: pins holding another analysis version of exported runs.
+    other_versions_pinned: tuple[dict[str, object], ...] = field(default=())
 
     @property
     def same(self) -> bool | None:
@@ -97,55 +102,59 @@ class ExportResult:
         if self.previous is not None:
             out["same"] = self.same
             out["changed"] = list(self.changed)
+        if self.pin is not None:
+            out["pin"] = self.pin
+            out["pin_changes"] = list(self.pin_changes)
+        elif self.other_versions_pinned:
+            out["other_versions_pinned"] = list(self.other_versions_pinned)
         return out
 
 
 # --- tables ----------------------------------------------------------------------------
 
 
-def _runs_table(connection, per_run_shots: dict[int, int], zone: ZoneInfo) -> tuple[pa.Table, list[int]]:
-    runs, apparatus, tags = s.Run.__table__, s.Apparatus.__table__, s.RunTag.__table__
+def _runs_table(connection, per_run_shots: dict[int, int], zone: ZoneInfo, frozen: dict[int, dict[str, object]] | None = None) -> tuple[pa.Table, list[int]]:
+    """One row per run version with shots in the export; a pin's ``frozen`` fields (by
+    run id) stand in for the catalogue's, so that a pin exports its runs as they were."""
+    from runlog.pins import run_fields
+
     wanted = sorted(per_run_shots)
-    rows = []
-    for chunk in _chunks(wanted):
-        rows += connection.execute(
-            select(runs.c.id, runs.c.key, apparatus.c.name, runs.c.sequence, runs.c.started, runs.c.finished, runs.c.day, runs.c.operator, runs.c.shot_count)
-            .join(apparatus, apparatus.c.id == runs.c.apparatus_id)
-            .where(id_in(runs.c.id, chunk))
-        ).all()
-    tag_lists: dict[int, list[str]] = {}
-    for chunk in _chunks(wanted):
-        for run_id, tag in connection.execute(select(tags.c.run_id, tags.c.tag).where(id_in(tags.c.run_id, chunk))):
-            tag_lists.setdefault(int(run_id), []).append(tag)
-    rows.sort(key=lambda r: (r.name, r.key))
-    order = [int(r.id) for r in rows]
+    fields = run_fields(connection, wanted)
+    for run_id, kept in (frozen or {}).items():
+        if kept is not None and run_id in fields:
+            fields[run_id] = kept
+    rows = [fields[run_id] | {"id": run_id} for run_id in wanted]
+    rows.sort(key=lambda r: (r["apparatus"], r["run"]))
+    order = [int(r["id"]) for r in rows]
     table = pa.table(
         {
-            "run": pa.array([r.key for r in rows], pa.string()),
-            "apparatus": pa.array([r.name for r in rows], pa.string()),
-            "sequence": pa.array([r.sequence for r in rows], pa.string()),
-            "started": pa.array([r.started for r in rows], pa.timestamp("us", tz="UTC")),
-            "finished": pa.array([r.finished for r in rows], pa.timestamp("us", tz="UTC")),
-            "day": pa.array([_as_date(r.day) if r.day is not None else r.started.astimezone(zone).date() for r in rows], pa.date32()),
-            "operator": pa.array([r.operator for r in rows], pa.string()),
-            "tags": pa.array([",".join(sorted(tag_lists.get(int(r.id), []))) or None for r in rows], pa.string()),
-            "shots": pa.array([int(r.shot_count) for r in rows], pa.int64()),
-            "shots_exported": pa.array([per_run_shots[int(r.id)] for r in rows], pa.int64()),
+            "run": pa.array([r["run"] for r in rows], pa.string()),
+            "apparatus": pa.array([r["apparatus"] for r in rows], pa.string()),
+            "analysis": pa.array([r["analysis"] for r in rows], pa.string()),
+            "sequence": pa.array([r["sequence"] for r in rows], pa.string()),
+            "started": pa.array([r["started"] for r in rows], pa.timestamp("us", tz="UTC")),
+            "finished": pa.array([r["finished"] for r in rows], pa.timestamp("us", tz="UTC")),
+            "day": pa.array([_as_date(r["day"]) if r["day"] is not None else r["started"].astimezone(zone).date() for r in rows], pa.date32()),
+            "operator": pa.array([r["operator"] for r in rows], pa.string()),
+            "tags": pa.array([r["tags"] for r in rows], pa.string()),
+            "shots": pa.array([int(r["shots"]) for r in rows], pa.int64()),
+            "shots_exported": pa.array([per_run_shots[int(r["id"])] for r in rows], pa.int64()),
         }
     )
     return table, order
 
 
-def _figures_table(connection, run_order: list[int], runs_table: pa.Table) -> pa.Table:
-    figures = s.FigureRow.__table__
+def _figures_table(connection, run_order: list[int], runs_table: pa.Table, records: list[int] | None = None) -> pa.Table:
+    """The figures in force of the exported run versions, or (a pin) exactly the figure
+    records ``records``, which never change."""
+    figures = s.FigureRow.__table__ if records is None else s.FigureRecord.__table__
     position = {rid: i for i, rid in enumerate(run_order)}
     names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials")
     types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64())
     rows: list[tuple] = []
-    for chunk in _chunks(run_order):
-        rows += connection.execute(
-            select(figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials).where(id_in(figures.c.run_id, chunk))
-        ).all()
+    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials)
+    for chunk in _chunks(run_order if records is None else sorted(records)):
+        rows += connection.execute(select(*columns).where(id_in(figures.c.run_id if records is None else figures.c.id, chunk))).all()
     rows.sort(key=lambda r: (position[int(r[0])], r[1]))
     columns = list(zip(*rows)) if rows else [()] * len(names)
     at = pa.array([position[int(r)] for r in columns[0]], pa.int64())
@@ -247,6 +256,7 @@ def _field_type(data_type: pa.DataType) -> str:
 _DESCRIPTIONS = {
     "run": "the run's key (unique per apparatus)",
     "apparatus": "the machine the shot ran on",
+    "analysis": "the analysis version of the run's shots ('' = the unnamed one)",
     "sequence": "the sequence's name",
     "shot": "the shot's index within its run",
     "time": "when the shot ran (UTC)",
@@ -325,19 +335,21 @@ def _resource(name: str, path: Path, format: str, schema: dict[str, object], des
     return entry
 
 
-def _source_files(connection, runs_table: pa.Table) -> list[dict[str, object]]:
-    """The ingested files that wrote shots of the exported runs, from the ingest log.
-
-    The log names runs by key only; a key used on two apparatus names the files of both.
-    """
-    keys = set(runs_table.column("run").to_pylist())
-    log = s.IngestLogEntry.__table__
+def _source_files(connection, run_order: list[int], runs_table: pa.Table) -> list[dict[str, object]]:
+    """The ingested files that wrote shots into the exported run versions (``run_files``),
+    with the runs of the export each wrote into."""
+    position = {rid: i for i, rid in enumerate(run_order)}
+    keys = runs_table.column("run").to_pylist()
+    files, log = s.RunFile.__table__, s.IngestLogEntry.__table__
     found: dict[tuple[str, str], dict[str, object]] = {}
-    for file, sha256, runs, shots in connection.execute(select(log.c.file, log.c.sha256, log.c.runs, log.c.shots).where(log.c.status == "ingested")):
-        named = [k for k in (runs or "").split(",") if k]
-        common = sorted(keys.intersection(named))
-        if common:
-            found[(file, sha256)] = {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": common}
+    for chunk in _chunks(run_order):
+        for run_id, file, sha256, shots in connection.execute(
+            select(files.c.run_id, log.c.file, log.c.sha256, log.c.shots).join(log, log.c.id == files.c.ingest_id).where(id_in(files.c.run_id, chunk))
+        ):
+            entry = found.setdefault((file, sha256), {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": []})
+            entry["runs"].append(keys[position[int(run_id)]])
+    for entry in found.values():
+        entry["runs"] = sorted(set(entry["runs"]))
     return [found[k] for k in sorted(found)]
 
 
@@ -368,8 +380,34 @@ def _headline(figures: pa.Table) -> list[dict[str, object]]:
     return out
 
 
-def _readme(title: str, where: str, shots: pa.Table, runs: pa.Table, headline: list[dict[str, object]], zone: ZoneInfo, files: list[tuple[str, str]]) -> str:
+def _readme(title: str, where: str, shots: pa.Table, runs: pa.Table, headline: list[dict[str, object]], zone: ZoneInfo, files: list[tuple[str, str]], pinned: dict[str, object] | None = None) -> str:
     lines = [f"# {title}", "", "Shots selected from a runlog catalogue with the filter", "", f"    {where}", ""]
+    if pinned is not None and pinned.get("other_versions_pinned"):
+        held = pinned["other_versions_pinned"]
+        names = sorted({e["pin"] for e in held})
+        lines += [
+            f"These runs follow their current analysis versions; the pin(s) {', '.join(names)} hold other versions of "
+            f"{len({(e['apparatus'], e['run']) for e in held})} of them (`runlog export --pin NAME` exports those as pinned).",
+            "",
+        ]
+    if pinned is not None and "name" in pinned:
+        lines += [
+            f"as pinned under '{pinned['name']}' on {pinned['created_at']}: the same shots, analysis versions and figure "
+            "records as then, whatever the catalogue holds now.",
+            "",
+        ]
+        for gone in pinned["withdrawn_since"]:
+            lines += [f"- withdrawn since the pin: {gone['apparatus']}/{gone['run']} (analysis '{gone['analysis']}'); exported as pinned", ""]
+        moved = pinned["changes"]
+        if moved:
+            lines += ["Newer analyses in the catalogue would change (value ± standard error, pinned -> now):", ""]
+            for c in moved:
+                old, new = c["old"], c["new"]
+                before = "none" if old is None else f"{old['value']:.6g} ± {old['stderr'] if old['stderr'] is not None else 'n/a'} ({old['analysis'] or 'unnamed'})"
+                after = "none" if new is None else f"{new['value']:.6g} ± {new['stderr'] if new['stderr'] is not None else 'n/a'} ({new['analysis'] or 'unnamed'})"
+                shift = f", {c['sigma']:+.2f} combined stderr" if c.get("sigma") is not None else ""
+                lines.append(f"- {c['apparatus']}/{c['run']} {c['figure']}: {before} -> {after}{shift}")
+            lines.append("")
     apparatus = sorted(set(runs.column("apparatus").to_pylist()))
     lines.append(f"- {shots.num_rows} shots in {runs.num_rows} runs on {len(apparatus)} apparatus ({', '.join(apparatus) or 'none'})")
     if shots.num_rows:
@@ -407,10 +445,11 @@ def _toml_string(value: str) -> str:
     return json.dumps(value, ensure_ascii=True)
 
 
-def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: Path, data: dict[str, str]) -> str:
+def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: Path, data: dict[str, str], pin: str | None = None) -> str:
     lines = [
         "# A runlog export: `runlog export --spec export.toml` writes it again and says",
         "# whether the data files still hash as listed under [data].",
+        *([f"pin = {_toml_string(pin)}"] if pin is not None else []),
         f"where = {_toml_string(where)}",
         f"format = {_toml_string(format)}",
         f"with_occupancy = {'true' if with_occupancy else 'false'}",
@@ -423,8 +462,76 @@ def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: P
     return "\n".join(lines) + "\n"
 
 
+def _umask() -> int:
+    """The process's umask (read by setting it and putting it back at once)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def _holds_files(path: Path) -> bool:
-    return path.exists() and (not path.is_dir() or any(path.iterdir()))
+    return path.is_symlink() or path.exists() and (not path.is_dir() or any(path.iterdir()))
+
+
+def _catalogue_files(catalogue) -> list[Path]:
+    """The SQLite catalogue file (and its WAL companions) of ``catalogue``, resolved."""
+    url = getattr(getattr(catalogue, "engine", None), "url", None)
+    path = sqlite_path(url) if url is not None else None
+    if path is None:
+        return []
+    path = path.resolve()
+    return [path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")]
+
+
+def _package_files(folder: Path) -> set[str] | None:
+    """The names a runlog export wrote in ``folder`` (from its manifest), ``None`` when
+    the folder holds no manifest written by runlog."""
+    try:
+        manifest = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        return None
+    if not isinstance(manifest, dict) or manifest.get("name") != "runlog-export":
+        return None
+    provenance = manifest.get("provenance")
+    if not isinstance(provenance, dict) or "runlog_version" not in provenance or not isinstance(manifest.get("resources"), list):
+        return None
+    names = {MANIFEST, README, SPEC}
+    for resource in manifest["resources"]:
+        path = resource.get("path") if isinstance(resource, dict) else None
+        if not isinstance(path, str) or "/" in path or "\\" in path:
+            return None
+        names.add(path)
+    return names
+
+
+def check_replaceable(out: str | Path, catalogue=None) -> None:
+    """Refuse (``ExportError``) unless ``out`` is absent, an empty folder, or a folder
+    holding one runlog export and nothing else, and holds no catalogue file.
+
+    Replacing deletes the folder, so it has to be one an export wrote: recognised by
+    its manifest, every entry a file the manifest names. A folder that is, or lies
+    above, the catalogue's own file is never replaced.
+    """
+    out = Path(out).absolute()
+    if out.is_symlink():
+        raise ExportError(str(out), "is a symbolic link: give the export folder itself")
+    if not out.exists():
+        return
+    if not out.is_dir():
+        raise ExportError(str(out), "is a file, not an export folder: nothing was replaced")
+    resolved = out.resolve()
+    for file in _catalogue_files(catalogue):
+        if file.exists() and resolved in file.parents:
+            raise ExportError(str(out), f"holds the catalogue {file.name}: an export never replaces it; choose another folder")
+    entries = sorted(out.iterdir())
+    if not entries:
+        return
+    names = _package_files(out)
+    if names is None:
+        raise ExportError(str(out), f"holds files that are not a runlog export (no runlog {MANIFEST}): nothing was replaced; choose another folder")
+    for entry in entries:
+        if entry.name not in names or entry.is_symlink() or not entry.is_file():
+            raise ExportError(str(out), f"holds '{entry.name}', which the runlog export there did not write: nothing was replaced; move it or choose another folder")
 
 
 def _catalogue_url(catalogue) -> str:
@@ -432,23 +539,37 @@ def _catalogue_url(catalogue) -> str:
     return redact(url) if isinstance(url, str) else redact(catalogue.engine.url)
 
 
-def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", with_occupancy: bool = False, title: str | None = None, overwrite: bool = False) -> ExportResult:
+def export(catalogue, where: str | None, out: str | Path, *, format: str = "parquet", with_occupancy: bool = False, title: str | None = None, overwrite: bool = False, pin: str | None = None) -> ExportResult:
     """Write the shots ``where`` selects as a Data Package in the folder ``out``.
 
     ``format`` is ``"parquet"`` or ``"csv"``; ``with_occupancy`` adds the ``occ.<image>``
     columns and the images resource. An ``out`` that exists and holds files is refused
-    (``FileExistsError``) unless ``overwrite``; it is then replaced as a whole.
+    (``FileExistsError``) unless ``overwrite``; it is then replaced as a whole, and only
+    when it holds an earlier runlog export and nothing else (:func:`check_replaceable`).
+
+    ``pin`` (instead of ``where``) exports a pinned selection (:mod:`runlog.pins`): its
+    shots under the analysis versions, figure records and run fields it froze, so the
+    data files come out byte-identical to the pin's first export; the provenance names the
+    pin and what newer analyses would change in it.
     """
     from runlog import __version__
 
     if format not in FORMATS:
         raise ValueError(f"unknown export format '{format}': use {' or '.join(FORMATS)}")
-    if not where or not where.strip():
+    if pin is not None:
+        if where:
+            raise ValueError("export a pin or a filter, not both (the pin holds its filter)")
+        from runlog.pins import load_pin
+
+        with catalogue.engine.connect() as connection:
+            where = load_pin(connection, pin).where
+    elif not where or not where.strip():
         raise ValueError("an export needs a filter; 'shot >= 0' selects every shot")
     out = Path(out).absolute()
     if _holds_files(out) and not overwrite:
         raise ExportError(str(out), "already holds files: choose another folder or allow overwriting")
-    title = title or f"runlog export: {where}"
+    check_replaceable(out, catalogue)
+    title = title or (f"runlog export of pin '{pin}': {where}" if pin is not None else f"runlog export: {where}")
     engine = catalogue.engine
     # One read transaction for everything, so shots, runs and figures agree even while
     # an ingest is writing (SQLite's read transaction is a snapshot; PostgreSQL needs
@@ -457,6 +578,9 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
     new_parents = [folder for folder in (out.parent, *out.parent.parents) if not folder.exists()]
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    # mkdtemp makes a private folder (700); the package is shared like any folder the user
+    # makes: the modes their umask gives (group-readable under the usual 022 or 002).
+    staging.chmod(0o777 & ~_umask())
     suffix = "parquet" if format == "parquet" else "csv"
     # The shots file is written (and hashed) on a second thread while the runs and
     # figures are read: Arrow's writer and the reads both leave the interpreter lock.
@@ -470,11 +594,11 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
     try:
         with arrow_read(engine, parallel=PARALLEL_READS) as fast:
             if fast is not None:
-                tables = _read(fast, where, with_occupancy, early)
+                tables = _read(fast, where, with_occupancy, early, pin)
         if fast is None:
             with engine.connect().execution_options(**options) as connection:
-                tables = _read(connection, where, with_occupancy, early)
-        selection, shots_table, runs_table, figures_table, images_table, sources, zone = tables
+                tables = _read(connection, where, with_occupancy, early, pin)
+        selection, shots_table, runs_table, figures_table, images_table, sources, zone, pinned = tables
 
         tables = [
             ("shots", shots_table, selection.units, ["run", "apparatus", "shot"], True, "one row per shot: run fields, time, parameters (p.), measurements (m.)" + (", occupancy (occ.)" if with_occupancy else "")),
@@ -507,15 +631,23 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
                 "format": format,
                 "with_occupancy": with_occupancy,
                 "counts": {"shots": shots_table.num_rows, "runs": runs_table.num_rows, "figures": figures_table.num_rows},
+                "analysis_versions": [
+                    {"run": run, "apparatus": apparatus, "analysis": analysis}
+                    for run, apparatus, analysis in zip(runs_table.column("run").to_pylist(), runs_table.column("apparatus").to_pylist(), runs_table.column("analysis").to_pylist())
+                ],
                 "source_files": sources,
             },
         }
+        if "name" in pinned:
+            manifest["provenance"]["pin"] = pinned
+        elif pinned["other_versions_pinned"]:
+            manifest["provenance"]["other_versions_pinned"] = pinned["other_versions_pinned"]
         (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
         headline = _headline(figures_table)
         files = [(f"{name}.{suffix}", description) for name, _, _, _, _, description in tables]
-        (staging / README).write_text(_readme(title, where, shots_table, runs_table, headline, zone, files), encoding="utf-8")
-        (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data), encoding="utf-8")
-        _move_into_place(staging, out, overwrite)
+        (staging / README).write_text(_readme(title, where, shots_table, runs_table, headline, zone, files, pinned), encoding="utf-8")
+        (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data, pin), encoding="utf-8")
+        _move_into_place(staging, out, overwrite, catalogue)
     except BaseException:
         background.shutdown(wait=True, cancel_futures=True)
         shutil.rmtree(staging, ignore_errors=True)
@@ -526,33 +658,63 @@ def export(catalogue, where: str, out: str | Path, *, format: str = "parquet", w
                 break
         raise
     background.shutdown(wait=True)
-    return ExportResult(out, shots_table.num_rows, runs_table.num_rows, data, created)
+    return ExportResult(
+        out, shots_table.num_rows, runs_table.num_rows, data, created, pin=pin, pin_changes=tuple(pinned.get("changes", ())), other_versions_pinned=tuple(pinned.get("other_versions_pinned", ()))
+    )
 
 
-def _read(connection, where: str, with_occupancy: bool, selected: Callable[[pa.Table], None] | None = None):
+def _read(connection, where: str | None, with_occupancy: bool, selected: Callable[[pa.Table], None] | None = None, pin: str | None = None):
     """Everything an export writes, read in the connection's one transaction;
-    ``selected`` is given the shots table as soon as it is read."""
-    selection = select_on(connection, where, shot_ids=with_occupancy)
+    ``selected`` is given the shots table as soon as it is read. With ``pin``, the pin's
+    shots, frozen run fields and figure records instead of the filter's."""
+    pinned = None
+    if pin is not None:
+        from runlog.pins import changes, load_pin, pinned_selection, withdrawn_since
+
+        found = load_pin(connection, pin)
+        selection = pinned_selection(connection, found)
+        frozen = {run.run_id: run.fields for run in found.runs}
+        records: list[int] | None = [r for run in found.runs for r in run.records]
+        pinned = {
+            "name": found.name,
+            "filter": found.where,
+            "created_at": found.created_at.isoformat(),
+            "author": found.author,
+            "runlog_version": found.runlog_version,
+            # What the catalogue as it stands would change (not in the data files).
+            "changes": changes(connection, found),
+            "withdrawn_since": withdrawn_since(connection, found),
+        }
+    else:
+        selection = select_on(connection, where, shot_ids=with_occupancy)
+        frozen, records = None, None
     if selected is not None:
         selected(selection.table)
     zone = ZoneInfo(connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC")
     unique, counts = np.unique(selection.run_ids, return_counts=True)
-    runs_table, run_order = _runs_table(connection, {int(r): int(c) for r, c in zip(unique, counts)}, zone)
-    figures_table = _figures_table(connection, run_order, runs_table)
+    runs_table, run_order = _runs_table(connection, {int(r): int(c) for r, c in zip(unique, counts)}, zone, frozen)
+    figures_table = _figures_table(connection, run_order, runs_table, records)
     shots_table = selection.table
     images_table = None
     if with_occupancy:
         occupancy_columns, images_table = _occupancy(connection, selection, run_order, runs_table)
         for name, values in occupancy_columns.items():
             shots_table = shots_table.append_column(name, values)
-    sources = _source_files(connection, runs_table)
-    return selection, shots_table, runs_table, figures_table, images_table, sources, zone
+    sources = _source_files(connection, run_order, runs_table)
+    if pinned is None:
+        from runlog.pins import other_versions_pinned
+
+        # Not in the data files: a fresh export names the pins it now differs from.
+        pinned = {"other_versions_pinned": other_versions_pinned(connection, run_order)}
+    return selection, shots_table, runs_table, figures_table, images_table, sources, zone, pinned
 
 
-def _move_into_place(staging: Path, out: Path, overwrite: bool) -> None:
-    if out.exists():
+def _move_into_place(staging: Path, out: Path, overwrite: bool, catalogue) -> None:
+    if out.exists() or out.is_symlink():
         if _holds_files(out) and not overwrite:
             raise ExportError(str(out), "already holds files: choose another folder or allow overwriting")
+        # Checked again: the folder may have changed while the package was written.
+        check_replaceable(out, catalogue)
         retired = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:8]}"
         os.replace(out, retired)
         os.replace(staging, out)
@@ -579,7 +741,7 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
     for key in ("where", "format"):
         if not isinstance(spec.get(key), str):
             raise ConfigError(str(spec_path), f"the export spec needs '{key}' (text)")
-    unknown = sorted(set(spec) - {"where", "format", "with_occupancy", "title", "out", "data"})
+    unknown = sorted(set(spec) - {"pin", "where", "format", "with_occupancy", "title", "out", "data"})
     if unknown:
         raise ConfigError(str(spec_path), f"unknown key(s) {', '.join(unknown)} in the export spec")
     previous = {str(k): str(v) for k, v in (spec.get("data") or {}).items()}
@@ -592,17 +754,17 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
         else:
             raise ConfigError(str(spec_path), "the export spec names no 'out' folder")
     out = Path(out).absolute()
-    replace = (out / MANIFEST).exists() or not _holds_files(out)
-    if not replace:
-        raise ExportError(str(out), "holds files that are not a runlog export: give another out folder")
+    check_replaceable(out, catalogue)
+    pin = spec.get("pin")
     result = export(
         catalogue,
-        spec["where"],
+        None if isinstance(pin, str) else spec["where"],
         out,
+        pin=pin if isinstance(pin, str) else None,
         format=spec["format"],
         with_occupancy=bool(spec.get("with_occupancy", False)),
         title=spec.get("title"),
         overwrite=True,
     )
     changed = tuple(sorted(name for name in set(previous) | set(result.data) if previous.get(name) != result.data.get(name)))
-    return ExportResult(result.out, result.shots, result.runs, result.data, result.created, previous, changed)
+    return ExportResult(result.out, result.shots, result.runs, result.data, result.created, previous, changed, result.pin, result.pin_changes, result.other_versions_pinned)

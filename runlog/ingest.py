@@ -23,16 +23,17 @@ import pandas as pd  # pyarrow imports it anyway on its first conversion
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
-from sqlalchemy import insert
+from sqlalchemy import func, insert, select
 from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
-from runlog.contract import FROM_COUNTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
+from runlog.contract import FROM_COUNTS, MAX_MEASUREMENTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
-from runlog.errors import ContractError
-from runlog.store.bulk import Writer, open_writer
-from runlog.store.schema import IngestLogEntry, measurement_column
-from runlog.units import conversion
+from runlog.errors import ContractError, one_line
+from runlog.store.bulk import Writer, open_writer, short_write
+from runlog.store.failures import describe
+from runlog.store.schema import IngestLogEntry, Measurement, measurement_column
+from runlog.units import LabUnits, UnitError, converter
 
 __all__ = ["IngestResult", "ingest_files", "expand_paths", "file_sha256", "BATCH_ROWS"]
 
@@ -58,6 +59,15 @@ class IngestResult:
     #: A monitor table (runlog.monitors): the monitors it brought and how many values.
     monitors: tuple[str, ...] = ()
     values: int = 0
+    #: Why a file was refused: ``"contract"`` or ``"data"`` (the file's own fault), or a
+    #: store failure that is not (``"busy"``, ``"permission"``, ``"unavailable"``:
+    #: :mod:`runlog.store.failures`), after which the same file may be tried again.
+    cause: str | None = None
+
+    @property
+    def files_fault(self) -> bool:
+        """Whether the file itself was refused (``runlog watch`` quarantines only those)."""
+        return self.status == "rejected" and self.cause in ("contract", "data", None)
 
     def as_dict(self) -> dict[str, object]:
         found: dict[str, object] = {
@@ -146,17 +156,18 @@ def hash_file(path: Path) -> tuple[tuple[int, int, int, int] | None, str, int]:
     return before, sha, size
 
 
-def _signature(path: Path) -> tuple[int, int, int, int] | None:
-    """What tells that a file changed: device, inode, size, modification time (``None``:
-    gone)."""
+def _signature(path: Path) -> tuple[int, ...] | None:
+    """What tells that a file changed: device, inode, size, modification time and status
+    change time (``None``: gone). A writer can put size and modification time back
+    (``os.utime``); the status change time moves with every write and cannot be set."""
     try:
         stat = path.stat()
     except FileNotFoundError:
         return None
-    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns
+    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns, stat.st_ctime_ns
 
 
-def _unchanged_since(path: Path, before: tuple[int, int, int, int] | None) -> None:
+def _unchanged_since(path: Path, before: tuple[int, ...] | None) -> None:
     """Refuse a file that was replaced, written to or deleted while it was being read:
     what was checked, hashed and written would not be one file."""
     now = _signature(path)
@@ -421,12 +432,32 @@ def _one(writer: Writer, sql: str, params: dict) -> object:
 class _Catalogue:
     """The ids the write needs: apparatus, parameters and measurements, created on demand."""
 
-    def __init__(self, writer: Writer, file: str):
+    def __init__(self, writer: Writer, file: str, lab: LabUnits = ()):
         self.writer = writer
         self.file = file
+        self.lab = self._lab_units(lab)
         self.apparatus: dict[str, int] = {}
         self.parameters: dict[str, tuple[int, str, str]] = {}
         self.measurements: dict[str, tuple[int, str]] = {}
+
+    def _lab_units(self, configured: LabUnits) -> LabUnits:
+        """The catalogue's lab-defined units with the configuration's new ones recorded, so
+        that filters know them; a name whose definition changed is refused."""
+        stored = {str(key)[5:]: str(value) for key, value in self.writer.rows("SELECT key, value FROM settings WHERE key LIKE 'unit:%'")}
+        for name, definition in configured:
+            if name in stored and stored[name] != definition:
+                raise ContractError(self.file, f"[units] {name} = '{definition}', but the catalogue's values in {name} were stored with {name} = '{stored[name]}'; give the new definition a new name")
+            if name not in stored:
+                self.writer.execute("INSERT INTO settings (key, value) VALUES (:key, :value)", {"key": f"unit:{name}", "value": definition})
+                stored[name] = definition
+        return tuple(sorted(stored.items()))
+
+    def converter(self, unit: str, stored_unit: str, what: str, name: str, column: str):
+        try:
+            return converter(unit, stored_unit, self.lab)
+        except UnitError as error:
+            reason = "" if error.kind == "dimension" else f": {error}"
+            raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of {what} '{name}'{reason}", column=column) from None
 
     def apparatus_id(self, name: str) -> int:
         if name not in self.apparatus:
@@ -446,29 +477,74 @@ class _Catalogue:
             pid, stored_unit, stored_kind = rows[0]
             if stored_kind != kind:
                 raise ContractError(self.file, f"parameter '{name}' is stored as {stored_kind}, this file has {kind}", column=column)
-            if kind != "text" and conversion(unit, stored_unit) is None:
-                raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of parameter '{name}'", column=column)
+            if kind != "text":
+                self.converter(unit, stored_unit, "parameter", name, column)
             self.parameters[name] = (int(pid), stored_unit, stored_kind)
         return self.parameters[name]
 
     def measurement(self, name: str, unit: str, column: str) -> tuple[int, str]:
         if name not in self.measurements:
             rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
-            if not rows:
-                self.writer.execute("INSERT INTO measurements (name, unit) VALUES (:name, :unit)", {"name": name, "unit": unit})
-                rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
-                real = "REAL" if self.writer.dialect == "sqlite" else "DOUBLE PRECISION"
-                self.writer.execute(f"ALTER TABLE shot_measurements ADD COLUMN {measurement_column(rows[0][0])} {real}")
+            if not rows:  # _add_measurements made every name of the file before
+                raise ContractError(self.file, f"measurement '{name}' is not in the catalogue (removed while this file was written?); ingest the file again", column=column)
             mid, stored_unit = rows[0]
-            if conversion(unit, stored_unit) is None:
-                raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of measurement '{name}'", column=column)
+            self.converter(unit, stored_unit, "measurement", name, column)
             self.measurements[name] = (int(mid), stored_unit)
         return self.measurements[name]
 
 
-def _to_stored(value: float, unit: str, stored_unit: str) -> float:
-    scale, offset = conversion(unit, stored_unit)  # type: ignore[misc]
-    return value * scale + offset
+#: New measurement names made per schema transaction (one ALTER TABLE with a clause each).
+_NAMES_PER_CHANGE = 50
+
+
+def _add_measurements(engine: Engine, layout: Layout) -> None:
+    """Make the file's new measurement names and their columns of ``shot_measurements``,
+    ahead of its data transaction, in short transactions of their own.
+
+    A new column needs the table to itself for a moment; inside the data transaction it
+    would keep every dashboard reader of measurements waiting until the whole file is
+    written, and a reader idle in a transaction would block the ingest without bound
+    (:func:`runlog.store.bulk.short_write` bounds the wait). A name made for a file that is
+    then refused stays, with no values: harmless, and the next file of it needs no change.
+    """
+    wanted = {column.name: (column.unit, column.source) for column in layout.by_role("measurement")}
+    if not wanted:
+        return
+    table = Measurement.__table__
+    with engine.connect() as connection:
+        known = set(connection.execute(select(table.c.name).where(table.c.name.in_(list(wanted)))).scalars())
+    missing = [name for name in wanted if name not in known]
+    real = "REAL" if engine.dialect.name == "sqlite" else "DOUBLE PRECISION"
+    for start in range(0, len(missing), _NAMES_PER_CHANGE):
+        names = missing[start : start + _NAMES_PER_CHANGE]
+
+        def make(connection, names=names) -> None:
+            present = set(connection.execute(select(table.c.name).where(table.c.name.in_(names))).scalars())
+            count = connection.execute(select(func.count()).select_from(table)).scalar_one()
+            columns = []
+            for name in names:
+                if name in present:  # another writer made it meanwhile
+                    continue
+                unit, source = wanted[name]
+                if count >= MAX_MEASUREMENTS:
+                    raise ContractError(layout.file, f"the catalogue already holds {count} measurement names, the most it can (each is a column of the store): a new one cannot be added", column=source)
+                mid = connection.execute(insert(table).values(name=name, unit=unit).returning(table.c.id)).scalar_one()
+                columns.append(measurement_column(mid))
+                count += 1
+            if not columns:
+                return
+            if engine.dialect.name == "postgresql":
+                # One statement for all: a partitioned table changes each month once.
+                connection.exec_driver_sql("ALTER TABLE shot_measurements " + ", ".join(f"ADD COLUMN {c} {real}" for c in columns))
+                return
+            for column in columns:  # SQLite adds one column per statement
+                connection.exec_driver_sql(f"ALTER TABLE shot_measurements ADD COLUMN {column} {real}")
+
+        short_write(engine, make, what=f"adding {len(names)} measurement column(s) for {layout.file}", table="shot_measurements")
+
+
+def _to_stored(value: float, unit: str, stored_unit: str, lab: LabUnits) -> float:
+    return float(converter(unit, stored_unit, lab)(float(value)))
 
 
 def _same(a: object, b: object) -> bool:
@@ -547,7 +623,7 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 if stats.present == 0:
                     continue
                 pid, stored_unit, kind = ids.parameters[name]
-                new_parameters.append(_run_parameter_row(run.run_id, pid, stats, stored_unit))
+                new_parameters.append(_run_parameter_row(run.run_id, pid, stats, stored_unit, ids.lab))
                 if not stats.constant:
                     run.per_shot.add(name)
             new_measurements.extend(
@@ -589,15 +665,15 @@ _RUN_FILE_SCHEMA = pa.schema([("run_id", pa.int64()), ("ingest_id", pa.int64()),
 _RUN_MEASUREMENT_SCHEMA = pa.schema([("run_id", pa.int64()), ("measurement_id", pa.int64()), ("shots", pa.int64())])
 
 
-def _run_parameter_row(run_id: int, pid: int, stats: _Parameter, stored_unit: str) -> dict[str, object]:
+def _run_parameter_row(run_id: int, pid: int, stats: _Parameter, stored_unit: str, lab: LabUnits) -> dict[str, object]:
     number = text_value = minimum = maximum = None
     if stats.kind == "text":
         text_value = str(stats.first) if stats.constant else None
     else:
-        minimum = _to_stored(stats.minimum, stats.unit, stored_unit)
-        maximum = _to_stored(stats.maximum, stats.unit, stored_unit)
+        minimum = _to_stored(stats.minimum, stats.unit, stored_unit, lab)
+        maximum = _to_stored(stats.maximum, stats.unit, stored_unit, lab)
         minimum, maximum = min(minimum, maximum), max(minimum, maximum)
-        number = _to_stored(float(stats.first), stats.unit, stored_unit) if stats.constant else None
+        number = _to_stored(float(stats.first), stats.unit, stored_unit, lab) if stats.constant else None
     return {"run_id": run_id, "parameter_id": pid, "scanned": not stats.constant, "number_value": number, "text_value": text_value, "minimum": minimum, "maximum": maximum}
 
 
@@ -624,13 +700,13 @@ def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: 
         new_constant = stats.constant and stats.present == run.shot_count
         new_value = None
         if stats.present and new_constant:
-            new_value = str(stats.first) if kind == "text" else _to_stored(float(stats.first), stats.unit, stored_unit)
+            new_value = str(stats.first) if kind == "text" else _to_stored(float(stats.first), stats.unit, stored_unit, ids.lab)
         if old is None:
             if stats.present == 0:
                 continue
             # Stored shots lack this parameter: it cannot be constant over the run.
             stats_copy = _Parameter(stats.kind, stats.unit, stats.present, False, stats.first, stats.minimum, stats.maximum)
-            _append_rows(writer, "run_parameters", [_run_parameter_row(run.run_id, pid, stats_copy, stored_unit)], _RUN_PARAMETER_SCHEMA)
+            _append_rows(writer, "run_parameters", [_run_parameter_row(run.run_id, pid, stats_copy, stored_unit, ids.lab)], _RUN_PARAMETER_SCHEMA)
             run.per_shot.add(name)
             continue
         scanned, number, text_value, lo, hi = old
@@ -641,8 +717,8 @@ def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: 
             if not scanned:
                 _backfill(writer, run.run_id, pid, number, text_value)
         if kind != "text" and stats.present:
-            lo_new = _to_stored(stats.minimum, stats.unit, stored_unit)
-            hi_new = _to_stored(stats.maximum, stats.unit, stored_unit)
+            lo_new = _to_stored(stats.minimum, stats.unit, stored_unit, ids.lab)
+            hi_new = _to_stored(stats.maximum, stats.unit, stored_unit, ids.lab)
             lo = min(x for x in (lo, lo_new, hi_new) if x is not None)
             hi = max(x for x in (hi, lo_new, hi_new) if x is not None)
         writer.execute(
@@ -873,8 +949,7 @@ def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_sho
             number_parts.append(pa.nulls(int(keep.sum()), pa.float64()))
         else:
             keep = needed & ~np.isnan(values)
-            scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
-            number_parts.append(pa.array(values[keep] * scale + offset, pa.float64()))
+            number_parts.append(pa.array(converter(column.unit, stored_unit, ids.lab)(values[keep].astype(float)), pa.float64()))
             text_parts.append(pa.nulls(int(keep.sum()), pa.string()))
         row_parts.append(np.flatnonzero(keep))
         id_parts.append(np.full(int(keep.sum()), pid, dtype=np.int64))
@@ -903,10 +978,7 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
     present = np.zeros(batch.length, dtype=bool)
     for column in columns:
         mid, stored_unit = ids.measurements[column.name]
-        scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
-        values = batch.measurements[column.name]
-        if (scale, offset) != (1.0, 0.0):
-            values = values * scale + offset
+        values = converter(column.unit, stored_unit, ids.lab)(batch.measurements[column.name])
         missing = np.isnan(values)
         present |= ~missing
         data[measurement_column(mid)] = values, missing
@@ -923,14 +995,21 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
     writer.append("shot_measurements", pa.table(table))
 
 
+def _storable(text: str | None) -> str | None:
+    # A refusal quotes what the file held (and its name): control characters are escaped,
+    # so a NUL (PostgreSQL cannot store it) never reaches the log and a newline in a file
+    # name cannot forge lines of the output.
+    return None if text is None else "".join(c if c >= " " and c != "\x7f" else repr(c)[1:-1] for c in text)
+
+
 def _log(engine: Engine, result: IngestResult, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float, writer: Writer | None = None) -> int | None:
     """Write the ingest-log entry (inside the writer's transaction when given; its id then)."""
     row = {
-        "file": result.file,
+        "file": _storable(result.file),
         "sha256": sha,
         "size": size,
         "status": result.status,
-        "reason": result.reason,
+        "reason": _storable(result.reason),
         "runs": ",".join(result.runs) or None,
         "shots": result.shots,
         "started_at": started,
@@ -976,11 +1055,12 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         plan.finish()
         read_s = time.perf_counter() - tick
         tick = time.perf_counter()
+        _add_measurements(engine, layout)
         writer = open_writer(engine, plan.months)
         try:
             if writer.rows("SELECT 1 FROM ingest_log WHERE sha256 = :h AND status = 'ingested'", {"h": sha}):
                 return IngestResult(name, "already-present", tuple(r.key for r in plan.runs), plan.rows)
-            ids = _Catalogue(writer, name)
+            ids = _Catalogue(writer, name, mapping.units)
             _write_runs(writer, plan, ids)
             batches = kept if kept is not None else _batches(path, parquet, layout)
             shots, first_id = _write_shots(writer, path, batches, plan, ids, progress)
@@ -1001,10 +1081,24 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             return result
         finally:
             writer.close()
-    except ContractError as error:
-        result = IngestResult(name, "rejected", reason=str(error))
+    except Exception as error:  # noqa: BLE001 - any failure of one file is that file's refusal
+        return record_refusal(engine, name, error, sha, size, started, read_s, write_s)
+
+
+def record_refusal(engine: Engine, name: str, error: Exception, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float) -> IngestResult:
+    """The refusal of one file as a result, written to the ingest log when the catalogue can take it."""
+    if isinstance(error, ContractError):
+        result = IngestResult(name, "rejected", reason=_storable(str(error)), cause="contract")
+    else:
+        failure = describe(error, doing="writing this file")
+        result = IngestResult(name, "rejected", reason=_storable(f"{name}: {failure.message}"), cause=failure.kind)
+    try:
         _log(engine, result, sha, size, started, read_s, write_s)
-        return result
+    except Exception as error:  # noqa: BLE001 - a catalogue that cannot take the refusal either
+        failure = describe(error, doing="recording the refusal")
+        if result.cause in ("contract", "data"):
+            result = replace(result, reason=f"{result.reason} (not recorded in the ingest log: {failure.message})")
+    return result
 
 
 def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None, apparatus: str | None = None) -> list[IngestResult]:
@@ -1016,8 +1110,14 @@ def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping |
     from runlog.monitors.ingest import ingest_monitor_file
 
     mapping = mapping or Mapping()
-    # Monitor tables are told apart by the contract (or runlog.toml's [monitors] files rule).
-    return [
-        ingest_monitor_file(engine, path, mapping, apparatus) if is_monitor_table(path, mapping) else ingest_file(engine, path, mapping, progress, after_write)
-        for path in expand_paths(paths)
-    ]
+    results = []
+    for raw in paths:
+        files = expand_paths([raw])
+        if not files:
+            # A folder without shot tables is a mistake worth saying so (a wrong day's
+            # folder, files not yet copied): a refusal of the folder, never a silent success.
+            results.append(IngestResult(str(raw), "rejected", reason=one_line(f"{raw}: no *.parquet files in this folder"), cause="contract"))
+            continue
+        # Monitor tables are told apart by the contract (or runlog.toml's [monitors] files rule).
+        results.extend(ingest_monitor_file(engine, path, mapping, apparatus) if is_monitor_table(path, mapping) else ingest_file(engine, path, mapping, progress, after_write) for path in files)
+    return results

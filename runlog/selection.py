@@ -17,7 +17,7 @@ from __future__ import annotations
 import os
 import uuid
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -35,7 +35,7 @@ from runlog.store.arrow_reader import arrow_read, fetch_arrow_parallel, fetch_po
 if TYPE_CHECKING:
     import pandas as pd
 
-__all__ = ["BASE_COLUMNS", "Selection", "id_in", "select_shots", "select_arrow", "select_table", "select_on"]
+__all__ = ["BASE_COLUMNS", "Selection", "id_in", "select_shots", "select_arrow", "select_table", "select_on", "select_versions"]
 
 #: The columns every selection starts with.
 BASE_COLUMNS = ("run", "apparatus", "sequence", "shot", "time")
@@ -177,6 +177,25 @@ def select_on(connection: Connection, where: str | None = None, *, columns: Sequ
     return _select(connection, compiled, where, columns, limit, shot_ids)
 
 
+def select_versions(connection: Connection, run_ids: Sequence[int], shot_ids: np.ndarray, where: str | None = None) -> Selection:
+    """Exactly the shots ``shot_ids`` of the run versions ``run_ids`` (current or not), in
+    the table :func:`select_on` gives: what a pinned selection (:mod:`runlog.pins`) names.
+
+    The run versions are read whole and cut to the shots afterwards: a pin's shots are
+    mostly whole runs, and a list of single shots would not fit in one SQL statement.
+    Columns that none of the kept shots has a value in are dropped, as a filter's are.
+    """
+    selection = _select(connection, CompiledFilter(None, None, versions=tuple(sorted(int(r) for r in run_ids))), where, None, None, True)
+    assert selection.shot_ids is not None
+    keep = np.isin(selection.shot_ids, np.asarray(shot_ids, dtype=np.int64))
+    table = selection.table.filter(pa.array(keep))
+    dropped = [i for i, name in enumerate(table.column_names) if name not in BASE_COLUMNS and table.column(i).null_count == table.num_rows]
+    for i in reversed(dropped):
+        table = table.remove_column(i)
+    units = {name: unit for name, unit in selection.units.items() if name in table.column_names}
+    return Selection(table, selection.shot_ids[keep], selection.run_ids[keep], where, units)
+
+
 def _select(connection: Connection, compiled: CompiledFilter, where: str | None, columns: Sequence[str] | None, limit: int | None, with_ids: bool) -> Selection:
     dialect = connection.dialect.name
     candidate_ids = compiled.run_ids()
@@ -271,7 +290,10 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     parts = [shaped(exact(*bounds)) for bounds in _split(run_shots, readers)]
     types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
     arrays = None
-    if is_arrow(connection):
+    if not candidates:
+        # Nothing to read: the shot query of no runs is not even well-formed with a limit.
+        arrays = [pa.array([], type=kind) for kind in types]
+    elif is_arrow(connection):
         arrays = _read_arrow(connection, parts, types, keys=4 if with_ids else 3)
     elif dialect == "postgresql":
         if limit is None:
@@ -385,7 +407,7 @@ def _exact_condition(connection: Connection, compiled: CompiledFilter, where: st
             if first is None:
                 return compiled.condition
             in_range = _runs.c.id.between(first, last)
-            return CompiledFilter(in_range if compiled.runs is None else and_(compiled.runs, in_range), compiled.shots).condition
+            return replace(compiled, runs=in_range if compiled.runs is None else and_(compiled.runs, in_range)).condition
 
         return general
     simple = compile_selection(connection, where, whole_run=compiled.parameters)

@@ -2,7 +2,10 @@
 
 A file is taken only after its size and modification time have stayed the same over one
 full polling interval (a file still being written is never read). Refused files are
-moved to a quarantine folder with a ``.reason.txt`` beside each. What has been handled
+moved to a quarantine folder with a ``.reason.txt`` beside each; a file the catalogue
+could not take for a reason of its own (busy, read-only, unreachable) stays where it is
+and is tried again at the next poll. Whatever one file does, the watcher goes on with
+the next: no file stops the lab's log. What has been handled
 is remembered in a small state file in the watched folder, so a restarted watcher neither
 re-reads old files nor misses new ones; the ingest log's content hashes make a repeated
 ingest harmless anyway.
@@ -20,10 +23,17 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from runlog.ingest import IngestResult
+from runlog.redaction import ScrubbingFilter
 
 __all__ = ["Watcher", "STATE_FILE"]
 
 STATE_FILE = ".runlog-watch.json"
+
+
+def _printable(text: str) -> str:
+    """``text`` with control characters escaped: a file name or run key holding a newline
+    or a terminal escape cannot forge or rewrite lines of the watch log."""
+    return "".join(c if c.isprintable() or c == " " else repr(c)[1:-1] for c in text)
 
 
 @dataclass
@@ -31,12 +41,15 @@ class Watcher:
     """Polls ``folder`` for ``*.parquet`` (shot or monitor) and ``*.csv`` (monitor) files and hands complete ones to ``ingest``.
 
     ``ingest`` takes a list of paths and returns one :class:`IngestResult` per path (in
-    practice ``Catalogue.ingest``).
+    practice ``Catalogue.ingest``). ``after_ingest``, if given, is called after each look
+    that ingested something new, with those results (in practice: judge drift and record
+    alarms, :meth:`Catalogue.check_drift`).
     """
 
     folder: Path
     ingest: Callable[[list[Path]], list[IngestResult]]
     quarantine: Path | None = None
+    after_ingest: Callable[[list[IngestResult]], object] | None = None
     log: logging.Logger = field(default_factory=lambda: logging.getLogger("runlog.watch"))
     _seen: dict[str, tuple[int, int]] = field(default_factory=dict)  # name -> (size, mtime_ns) last poll
     _done: dict[str, tuple[int, int]] = field(default_factory=dict)  # name -> (size, mtime_ns) handled
@@ -46,6 +59,8 @@ class Watcher:
         if not self.folder.is_dir():
             raise NotADirectoryError(f"{self.folder}: not a folder")
         self.quarantine = Path(self.quarantine) if self.quarantine else self.folder / "quarantine"
+        if not any(isinstance(f, ScrubbingFilter) for f in self.log.filters):
+            self.log.addFilter(ScrubbingFilter())  # an error may quote the catalogue's URL
         self._done = self._load_state()
 
     @property
@@ -86,25 +101,41 @@ class Watcher:
         results: list[IngestResult] = []
         for name in ready:
             path = self.folder / name
-            result = self.ingest([path])[0]
+            shown = _printable(name)
+            try:
+                result = self.ingest([path])[0]
+            except Exception as error:  # noqa: BLE001 - one file never stops the watcher
+                from runlog.store.failures import describe
+
+                self.log.warning("could not ingest %s, will try again: %s", shown, describe(error, doing="ingesting it").message)
+                continue
             try:
                 signature_now = (path.stat().st_size, path.stat().st_mtime_ns)
             except FileNotFoundError:
-                self.log.warning("%s disappeared while being read; it was %s", name, result.status)
+                self.log.warning("%s disappeared while being read; it was %s", shown, result.status)
                 continue
             if signature_now != current[name]:
                 # Changed while we read it: whatever we concluded, look again later.
-                self.log.info("%s changed while being read; will look again", name)
+                self.log.info("%s changed while being read; will look again", shown)
                 continue
             results.append(result)
-            if result.status == "rejected":
-                self._quarantine(path, result.reason or "refused")
-                self.log.warning("refused %s: %s", name, result.reason)
+            if result.status == "rejected" and result.files_fault:
+                try:
+                    self._quarantine(path, result.reason or "refused")
+                except OSError as error:
+                    self.log.warning("refused %s but could not move it to %s: %s", shown, _printable(str(self.quarantine)), error)
+                    self._done[name] = current[name]
+                self.log.warning("refused %s: %s", shown, _printable(result.reason or "refused"))
+            elif result.status == "rejected":
+                self.log.warning("could not ingest %s now, will try again: %s", shown, _printable(result.reason or ""))
             else:
                 self._done[name] = current[name]
-                self.log.info("%s %s: %s (%d shots)", result.status, name, ", ".join(result.runs), result.shots)
+                self.log.info("%s %s: %s (%d shots)", result.status, shown, _printable(", ".join(result.runs)), result.shots)
         if ready:
             self._save_state()
+        fresh = [r for r in results if r.status == "ingested"]
+        if fresh and self.after_ingest is not None:
+            self.after_ingest(fresh)
         return results
 
     def _quarantine(self, path: Path, reason: str) -> None:

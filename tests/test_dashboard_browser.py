@@ -57,6 +57,11 @@ def _runlog(*arguments: str) -> list[str]:
     return [sys.executable, "-c", "from runlog.cli import main; main()", *arguments]
 
 
+def _first_run(url: str) -> str:
+    listed = subprocess.run(_runlog("--db", url, "runs", "--apparatus", "lattice-east", "--json"), capture_output=True, text=True, timeout=60)
+    return json.loads(listed.stdout)[0]["run"]
+
+
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
     """``runlog dashboard`` on a four-day demo catalogue, stopped the way a service manager would."""
@@ -64,6 +69,11 @@ def server(tmp_path_factory):
     url = f"sqlite:///{folder / 'demo.sqlite'}"
     built = subprocess.run(_runlog("--db", url, "demo", "--days", "4", "--no-dashboard"), capture_output=True, text=True, timeout=120)
     assert built.returncode == 0, built.stderr
+    # Two ordinary notes: one at a whole second, one on a run (its start, with microseconds).
+    # Their times once reached the Overview and Drift pages as text of two formats and crashed them.
+    for note in (["--apparatus", "lattice-east", "--at", "2026-09-03T08:00", "realigned lattice beam"], ["--apparatus", "lattice-east", "--run", _first_run(url), "camera saturated"]):
+        added = subprocess.run(_runlog("--db", url, "note", *note), capture_output=True, text=True, timeout=60)
+        assert added.returncode == 0, added.stderr
     port = _free_port()
     process = subprocess.Popen(_runlog("--db", url, "dashboard", "--port", str(port)), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     address = f"http://127.0.0.1:{port}"

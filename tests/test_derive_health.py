@@ -285,3 +285,44 @@ def test_calibration_register_lists_the_latest_value_per_apparatus(catalogue, ma
     assert entry["run"] == "rabi-bench-a-1" and entry["value"] == current.value and entry["started"].startswith("2026-03-03")
     code, out, _ = run_main(capsys, "--db", db_url, "calibrations", "--apparatus", "bench-b")
     assert code == 0 and out.startswith("bench-b pi_time = ") and "run rabi-bench-b-2" in out
+
+
+def ramsey_run(rng, run="ramsey-field", delta=0.04, oscillator=6834.6 , **kwargs) -> pa.Table:
+    """Waits in us; truth fringe frequency 0.04 MHz = 40 kHz (the atoms' transition 40 kHz
+    above the oscillator), T2* 60 us (gaussian), C0 0.9; the oscillator at ``oscillator`` MHz."""
+    t = np.repeat(np.linspace(0.0, 100.0, 41), 4)
+    p = 0.5 * (1.0 + 0.9 * np.exp(-((t / 60.0) ** 2)) * np.cos(2 * np.pi * delta * t + 0.3))
+    return table(run, "ramsey", {"wait[us]": t, "mw_frequency[MHz]": np.full(t.size, oscillator)}, {"bright_fraction": rng.binomial(ATOMS, p) / ATOMS}, **kwargs)
+
+
+def test_the_ramsey_fringe_frequency_gives_the_field_as_spectroscopy_does(catalogue, make_file, tmp_path):
+    rng = np.random.default_rng(16)
+    catalogue.ingest(make_file("ramsey.parquet", ramsey_run(rng)))
+    # Oscillator on the zero-field transition: field = 40 kHz / (2 kHz/mG) = 20 mG at the truth.
+    found = {f.name: f for f in catalogue.derive("ramsey-field", "coherence", constants={"field_sensitivity": "2.0 kHz/mG"}).figures}
+    frequency = next(found[n] for n in ("ramsey_frequency", "detuning") if n in found)
+    field = found["field"]
+    assert field.unit == "mG" and field.method == "ramsey frequency/sensitivity"
+    assert field.value == pytest.approx(frequency.value * 1000 / 2.0, rel=1e-12)
+    assert field.stderr == pytest.approx(frequency.stderr * 1000 / 2.0, rel=1e-12)
+    assert abs(field.value - 20.0) < 3 * field.stderr
+    assert stored(catalogue, "ramsey-field")["field"]["value"] == field.value
+    # The oscillator as an absolute frequency, 6834.6 MHz, with the zero-field transition at
+    # 6834.55 MHz: the atoms sit at 6834.6 + 0.04 MHz, 90 kHz above it -> 45 mG; below: 5 mG.
+    constants = {"field_sensitivity": "2.0 kHz/mG", "zero_field_frequency": "6834.55 MHz"}
+    above = {f.name: f for f in catalogue.derive("ramsey-field", "coherence", constants=constants, settings={"oscillator": "mw_frequency"}, store=False).figures}["field"]
+    below = {f.name: f for f in catalogue.derive("ramsey-field", "coherence", constants=constants, settings={"oscillator": "mw_frequency", "side": "below"}, store=False).figures}["field"]
+    assert above.value == pytest.approx((50.0 + frequency.value * 1000) / 2.0, rel=1e-9)
+    assert below.value == pytest.approx((50.0 - frequency.value * 1000) / 2.0, rel=1e-9)
+    # Through [[rules]] with the apparatus table of runlog.toml, and into the daily rollups.
+    config = tmp_path / "runlog.toml"
+    config.write_text('[[rules]]\nsequence = "ramsey"\nkind = "coherence"\n\n[apparatus."bench-a"]\nfield_sensitivity = "2.0 kHz/mG"\n')
+    outcomes = catalogue.apply_rules(config)
+    assert [o.kind for o in outcomes if isinstance(o, DeriveResult)] == ["coherence"]
+    assert stored(catalogue, "ramsey-field")["field"]["value"] == pytest.approx(field.value, rel=1e-12)
+    point = catalogue.drift("field", record_alarms=False).points[0]
+    assert point.value == pytest.approx(field.value, rel=1e-12)
+    with pytest.raises(FitError, match="give oscillator="):
+        catalogue.derive("ramsey-field", "coherence", constants=constants, store=False)
+    with pytest.raises(FitError, match="side 'left'"):
+        catalogue.derive("ramsey-field", "coherence", constants=constants, settings={"oscillator": "6834.6 MHz", "side": "left"}, store=False)

@@ -8,6 +8,8 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import json
+import os
+import stat
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -66,6 +68,20 @@ def test_the_package_is_a_valid_data_package(filled, tmp_path, format):
     assert (fields["p.wait"]["type"], fields["p.wait"]["unit"]) == ("number", "us")
     assert (fields["p.depth"]["unit"], fields["time"]["type"], fields["shot"]["type"]) == ("uK", "datetime", "integer")
     assert "unit" not in fields["m.atom_number"]
+
+
+@pytest.mark.parametrize("mask", [0o022, 0o002, 0o077])
+def test_the_package_folder_and_files_follow_the_umask(filled, tmp_path, mask):
+    # A private temporary folder (700) was renamed into place: the group could not read it.
+    previous = os.umask(mask)
+    try:
+        out = tmp_path / "shared" / "package"
+        export(filled, "apparatus = 'bench-a'", out)
+    finally:
+        os.umask(previous)
+    assert stat.S_IMODE(out.stat().st_mode) == 0o777 & ~mask
+    for path in out.iterdir():
+        assert stat.S_IMODE(path.stat().st_mode) == 0o666 & ~mask, path.name
 
 
 def test_csv_hashes_are_checked_by_the_validator(filled, tmp_path):
@@ -205,16 +221,93 @@ def test_refuses_to_overwrite_and_never_leaves_half_a_package(filled, tmp_path, 
             raise OSError("disk full")
         real_write(table, path, format)
 
+    (out / "notes.txt").unlink()
+    export(filled, "shot >= 1", out)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
     monkeypatch.setattr(module, "_write", failing)
     with pytest.raises(OSError):
         export(filled, "shot >= 0", out, overwrite=True)
-    assert [p.name for p in out.iterdir()] == ["notes.txt"]  # the old folder, untouched
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before  # the old package, untouched
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".package")]
     monkeypatch.setattr(module, "_write", real_write)
     result = export(filled, "shot >= 0", out, overwrite=True)
     assert sorted(p.name for p in out.iterdir()) == ["README.md", "datapackage.json", "export.toml", "figures.parquet", "runs.parquet", "shots.parquet"]
     assert result.shots == 30
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".package")]
+
+
+def _tree(folder):
+    return {str(p.relative_to(folder)): (p.read_bytes() if p.is_file() else None) for p in sorted(folder.rglob("*"))}
+
+
+def test_overwrite_refuses_a_folder_that_is_not_an_export(filled, tmp_path):
+    thesis = tmp_path / "thesis"
+    (thesis / "figures").mkdir(parents=True)
+    (thesis / "chapter3.tex").write_text("\\chapter{Loading}")
+    (thesis / "figures" / "fill.pdf").write_bytes(b"%PDF-1.7")
+    before = _tree(thesis)
+    with pytest.raises(FileExistsError) as caught:
+        export(filled, "shot >= 0", thesis, overwrite=True)
+    assert str(caught.value) == f"{thesis}: holds files that are not a runlog export (no runlog datapackage.json): nothing was replaced; choose another folder"
+    assert _tree(thesis) == before
+    # A hand-written manifest of another tool is not a runlog export either.
+    (thesis / "datapackage.json").write_text(json.dumps({"name": "chapter-data", "resources": []}))
+    with pytest.raises(FileExistsError):
+        export(filled, "shot >= 0", thesis, overwrite=True)
+    assert (thesis / "chapter3.tex").exists() and (thesis / "figures" / "fill.pdf").exists()
+    a_file = tmp_path / "single.txt"
+    a_file.write_text("keep")
+    with pytest.raises(FileExistsError) as caught:
+        export(filled, "shot >= 0", a_file, overwrite=True)
+    assert str(caught.value) == f"{a_file}: is a file, not an export folder: nothing was replaced"
+    assert a_file.read_text() == "keep"
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
+
+
+def test_overwrite_refuses_an_export_folder_holding_other_files(filled, tmp_path):
+    out = tmp_path / "package"
+    export(filled, "shot >= 0", out)
+    (out / "analysis.ipynb").write_text("{}")
+    before = _tree(out)
+    with pytest.raises(FileExistsError) as caught:
+        export(filled, "shot >= 1", out, overwrite=True)
+    assert str(caught.value) == f"{out}: holds 'analysis.ipynb', which the runlog export there did not write: nothing was replaced; move it or choose another folder"
+    assert _tree(out) == before
+    with pytest.raises(FileExistsError):
+        export_spec(filled, out / "export.toml")
+    assert _tree(out) == before
+    (out / "analysis.ipynb").unlink()
+    assert export(filled, "shot >= 1", out, overwrite=True).shots == 27
+
+
+def test_overwrite_never_replaces_the_catalogue_folder(filled, tmp_path, db_url):
+    from runlog.store.engine import sqlite_path
+
+    path = sqlite_path(filled.engine.url)
+    if path is None:  # PostgreSQL: the catalogue is no file; the folder is still not an export
+        with pytest.raises(FileExistsError):
+            export(filled, "shot >= 0", tmp_path, overwrite=True)
+        assert (tmp_path / "day1.parquet").exists()
+        return
+    for folder in (path.parent, path.parent.parent):
+        with pytest.raises(FileExistsError) as caught:
+            export(filled, "shot >= 0", folder, overwrite=True)
+        assert str(caught.value) == f"{folder}: holds the catalogue catalogue.sqlite: an export never replaces it; choose another folder"
+        assert path.exists()
+    assert len(filled.runs()) == 3 and (tmp_path / "day1.parquet").exists()
+
+
+def test_cli_overwrite_refusal_is_one_line(filled, tmp_path, capsys):
+    from conftest import run_main
+
+    thesis = tmp_path / "thesis"
+    thesis.mkdir()
+    (thesis / "chapter3.tex").write_text("text")
+    url = filled.engine.url.render_as_string(hide_password=False)
+    code, out, err = run_main(capsys, "export", "--where", "shot >= 0", "--out", str(thesis), "--overwrite", "--db", url)
+    assert code != 0 and out == ""
+    assert err.strip().count("\n") == 0 and "not a runlog export" in err and "Traceback" not in err
+    assert (thesis / "chapter3.tex").read_text() == "text"
 
 
 def test_bad_arguments(filled, tmp_path):

@@ -391,6 +391,11 @@ def test_columns_and_limit(lab):
     assert list(zip(selected["run"], selected["shot"])) == [("w1", 0), ("w1", 1), ("w1", 2), ("w1", 3)]
     table = select_arrow(lab, "run = 'nothing'")
     assert table.num_rows == 0 and table.column_names == ["run", "apparatus", "sequence", "shot", "time"]
+    # No run matches, with a limit (a day without data, a mistyped value): an empty selection.
+    empty = select_shots(lab, "run = 'nothing'", limit=20)
+    assert len(empty) == 0 and list(empty.columns) == ["run", "apparatus", "sequence", "shot", "time"]
+    assert select_arrow(lab, "apparatus = 'west' and sequence = 'no-such'", columns=["wait"], limit=3).num_rows == 0
+    assert select_arrow(lab, "apparatus = 'east' and depth > 1000 uK", limit=3).num_rows == 0  # runs, but no shot
     assert select_arrow(lab, "run = 'e1'").schema.field("p.wait").metadata == {b"unit": b"us"}
 
 

@@ -66,6 +66,7 @@ def test_watch_command_runs_and_logs(db_url, tmp_path):
     folder = tmp_path / "export"
     folder.mkdir()
     write_table(folder / "a.parquet", shot_table({"r1": 4}))
+    write_table(folder / "b.parquet", shot_table({"r2": 3}).drop_columns(["shot"]))
     done = subprocess.run(
         [sys.executable, "-m", "runlog", "--db", db_url, "watch", str(folder), "--interval", "0.2", "--stop-after", "1.5"],
         capture_output=True, text=True, timeout=60,
@@ -73,6 +74,9 @@ def test_watch_command_runs_and_logs(db_url, tmp_path):
     assert done.returncode == 0, done.stderr
     log = (folder / "runlog-watch.log").read_text()
     assert "ingested a.parquet: r1 (4 shots)" in log
+    # The terminal gets one line for each file taken or refused, not only the log file.
+    files = [line.split(" ", 1)[1] for line in done.stdout.splitlines() if "a.parquet" in line or "b.parquet" in line]
+    assert files == ["ingested a.parquet: r1 (4 shots)", f"refused b.parquet: {folder / 'b.parquet'} (column 'shot'): required column is missing"]
 
 
 def _change_during_write(monkeypatch, change):
@@ -122,3 +126,37 @@ def test_a_file_deleted_while_being_read_is_refused_with_nothing_written(catalog
     log = catalogue.ingest_log()
     assert list(log["status"]) == ["rejected"] and "disappeared while being read" in log["reason"].iloc[0]
     assert not (folder / "quarantine").exists()
+
+
+def test_watch_judges_drift_after_each_ingest_and_records_each_alarm_once(catalogue, tmp_path):
+    # Twelve lab days of our own invention: fill fraction 0.5, then 0.3 from day 9 on.
+    import datetime as dt
+
+    import numpy as np
+    import pyarrow as pa
+
+    from conftest import T0
+
+    folder = tmp_path / "export"
+    folder.mkdir()
+    seen: list[list] = []
+    recorded: list[dict] = []
+
+    def judge(results):
+        seen.append(results)
+        recorded.extend(catalogue.new_alarms())
+
+    watcher = Watcher(folder, catalogue.ingest, after_ingest=judge)
+    rng = np.random.default_rng(12)
+    for day in range(12):
+        fill = 0.5 if day < 9 else 0.3
+        load = rng.random((40, 16)) < fill
+        table = shot_table({f"d{day}-a": 20, f"d{day}-b": 20}, start=T0 + dt.timedelta(days=day), seed=day, extra={"occ.load": pa.array(list(load), pa.list_(pa.bool_()))})
+        write_table(folder / f"day{day:02d}.parquet", table)
+    watcher.poll()
+    assert len(watcher.poll()) == 12 and len(seen) == 1
+    fill_alarms = [a for a in recorded if a["quantity"] == "fill_fraction"]
+    assert [(a["reason"], a["date"]) for a in fill_alarms] == [("limit", (T0 + dt.timedelta(days=9)).date().isoformat())]
+    assert watcher.poll() == [] and len(seen) == 1  # nothing new, nothing judged again
+    assert catalogue.new_alarms() == []  # found again, not recorded again
+    assert len([a for a in catalogue.alarms() if a["quantity"] == "fill_fraction"]) == 1

@@ -5,7 +5,7 @@ values (on PostgreSQL partitioned by month of their time, runlog.store.partition
 minute / hour / lab-day rollups kept at ingest, and which file brought which values.
 
 Revision ID: 0013
-Revises: 0010
+Revises: 0012
 Create Date: 2026-12-02
 """
 from typing import Sequence, Union
@@ -17,7 +17,7 @@ from runlog.store.partitions import partition_monitor_values
 
 
 revision: str = '0013'
-down_revision: Union[str, None] = '0010'
+down_revision: Union[str, None] = '0012'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 

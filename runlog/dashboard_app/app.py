@@ -12,6 +12,7 @@ from pathlib import Path
 import streamlit as st
 
 from runlog.dashboard_app import common
+from runlog.redaction import remember, scrub
 
 __all__ = ["PAGES", "main"]
 
@@ -23,6 +24,7 @@ PAGES = (
     ("drift.py", "Drift", ":material/timeline:"),
     ("run_detail.py", "Run detail", ":material/science:"),
     ("shots.py", "Shots explorer", ":material/scatter_plot:"),
+    ("series.py", "Series across runs", ":material/stacked_line_chart:"),
     ("annotate.py", "Notes and alarms", ":material/edit_note:"),
 )
 
@@ -32,6 +34,7 @@ def main() -> None:
     # Less empty space above each page's title than Streamlit's default.
     st.html("<style>[data-testid='stMainBlockContainer'] {padding-top: 2.5rem;}</style>")
     url = common.catalogue_url()
+    remember(url)  # its password is scrubbed from whatever a page shows, parsed or not
     pages = [st.Page(_HERE / "views" / script, title=title, icon=icon, default=index == 0) for index, (script, title, icon) in enumerate(PAGES)]
     # Navigation along the top leaves the full width to the charts.
     page = st.navigation(pages, position="top")
@@ -39,7 +42,7 @@ def main() -> None:
         catalogue = common.catalogue(url)
         zone = common.lab_timezone(url)
     except Exception as error:  # the server starts even when the catalogue cannot be opened
-        st.error(f"cannot open the catalogue: {str(error).splitlines()[0] if str(error) else type(error).__name__}")
+        st.error(scrub(f"cannot open the catalogue: {str(error).splitlines()[0] if str(error) else type(error).__name__}"))
         st.stop()
     page.run()
     st.divider()

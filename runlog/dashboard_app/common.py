@@ -32,6 +32,7 @@ import streamlit as st
 import runlog
 from runlog.dashboard import URL_VARIABLE
 from runlog.errors import RunlogError
+from runlog.redaction import scrub
 
 __all__ = [
     "CACHE_SECONDS",
@@ -121,9 +122,9 @@ def add_note(url: str, text: str, *, run: str | None = None, apparatus: str | No
     return number
 
 
-def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None) -> int:
+def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None, accept: bool = False) -> int:
     """``catalogue.acknowledge``; returns the annotation holding the note."""
-    number = catalogue(url).acknowledge(alarm, note, author=author or None)
+    number = catalogue(url).acknowledge(alarm, note, author=author or None, accept=accept)
     clear_cached_results()
     return number
 
@@ -131,7 +132,7 @@ def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None) -
 def show_error(error: Exception) -> None:
     """A runlog error as one line on the page; anything else is a bug and keeps its traceback."""
     if isinstance(error, RunlogError):
-        st.error(str(error))
+        st.error(scrub(str(error)))
     else:
         raise error
 
@@ -149,10 +150,10 @@ def unit_text(unit: str | None) -> str:
     """A stored unit as people write it (``us`` -> ``µs``); other units unchanged."""
     unit = unit or ""
     if re.fullmatch(r"u[A-Za-z]+", unit):
-        from runlog.units import registry
+        from runlog.units import parse_unit
 
         try:
-            if format(registry().Unit(unit), "~P") == "µ" + unit[1:]:
+            if format(parse_unit(unit), "~P") == "µ" + unit[1:]:
                 return "µ" + unit[1:]
         except Exception:  # pint raises several types for text it does not know
             pass
@@ -301,6 +302,75 @@ def run_info(url: str, run: str, apparatus: str) -> runlog.RunInfo:
 
 
 @_cached
+def series_fits(url: str) -> list[dict]:
+    """The series across runs in force (the newest fit of each name)."""
+    return catalogue(url).series_fits()
+
+
+#: How each series model reads, for the chart's title.
+SERIES_FORMULAS = {"exponential": "y = A exp(−k x)", "power_law": "y = A x^b", "linear": "y = a + b x"}
+
+
+def series_curve(made: dict):
+    """A series as the run page's fit chart draws a fit: the member runs' values and the
+    fitted model over their parameter range (``runlog.figures.across_runs.series_model``)."""
+    from types import SimpleNamespace
+
+    from runlog.figures.across_runs import series_model
+
+    x = np.array([m["x"] for m in made["members"]], dtype=float)
+    y = np.array([m["y"] for m in made["members"]], dtype=float)
+    curve_x = np.linspace(float(x.min()), float(x.max()), 200)
+    curve_y = series_model(made["model"])(curve_x, *made["params"])
+    return SimpleNamespace(
+        x=x, y=y, curve_x=curve_x, curve_y=curve_y, x_name=made["parameter"], x_unit=made["x_unit"], y_name=made["figure"], y_unit=made["y_unit"],
+        formula=f"{made['name']}: {SERIES_FORMULAS.get(made['model'], made['model'])}",
+    )
+
+
+@_cached
+def versions_and_impact(url: str, run: str, apparatus: str) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The run's analysis versions (oldest first) and its impact report (what the current
+    version moved against the one before, or a figure derived again against its record before)."""
+    opened = catalogue(url)
+    versions = pd.DataFrame(
+        [
+            {
+                "analysis": v["analysis"] or "(unnamed)",
+                "current": bool(v["current"]),
+                "withdrawn": bool(v["withdrawn"]),
+                "shots": v["shots"],
+                "ingested": (v["ingested_at"] or "")[:16].replace("T", " "),
+                "files": ", ".join(str(f["file"]).rsplit("/", 1)[-1] for f in v["files"]),
+            }
+            for v in opened.analyses(run, apparatus=apparatus)
+        ],
+        columns=["analysis", "current", "withdrawn", "shots", "ingested", "files"],
+    )
+
+    def side(value) -> str:
+        if value is None:
+            return "–"
+        return f"{with_uncertainty(value['value'], value.get('stderr'), value.get('unit'))} ({value['analysis'] or 'unnamed'})"
+
+    impact = pd.DataFrame(
+        [
+            {
+                "figure": e["figure"],
+                "before": side(e["old"]),
+                "now": side(e["new"]),
+                "shift [combined stderr]": None if e["sigma"] is None else round(float(e["sigma"]), 2),
+                "pins holding the old": ", ".join(e["pins"]),
+            }
+            for e in opened.impact(run, apparatus=apparatus)
+            if e["old"] is not None and e["new"] is not None and e["old"].get("record") != e["new"].get("record")
+        ],
+        columns=["figure", "before", "now", "shift [combined stderr]", "pins holding the old"],
+    )
+    return versions, impact
+
+
+@_cached
 def shots_table(url: str, run: str, apparatus: str) -> tuple[pd.DataFrame, dict[str, str]]:
     """The run's shots and the units of their columns."""
     frame = catalogue(url).shots(run, apparatus=apparatus)
@@ -334,7 +404,13 @@ def fit_curve(url: str, run: str, apparatus: str, x: str | None, y: str | None, 
 @_cached
 def what_else_changed(url: str, quantity: str, day: dt.date, apparatus: str) -> pd.DataFrame:
     ranked = catalogue(url).what_else_changed(quantity, day, apparatus=apparatus)
-    return pd.DataFrame(ranked, columns=["name", "effect_size", "p_value", "before_mean", "after_mean", "n_before", "n_after"])
+    return pd.DataFrame(ranked, columns=["name", "kind", "words", "standardised_change", "q_value", "setting_changed", "before_mean", "after_mean", "n_before", "n_after"])
+
+
+@_cached
+def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str, object]:
+    """``catalogue.stability``: the Allan deviation over a series' runs, in plain words."""
+    return catalogue(url).stability(quantity, apparatus=apparatus, series=series)
 
 
 @_cached
@@ -346,7 +422,8 @@ def drift_view(
     since: dt.date | None = None,
     until: dt.date | None = None,
     parameters: tuple[tuple[str, float, float], ...] = (),
-    baseline_days: int = 7,
+    baseline_days: int = 28,
+    series: str | None = None,
 ) -> dict[str, object]:
     """The drift of one quantity as tables for a chart: daily points, limits, changes, notes.
 
@@ -360,6 +437,7 @@ def drift_view(
         until=until,
         parameters={name: (low, high) for name, low, high in parameters} or None,
         baseline_days=baseline_days,
+        series=series,
         record_alarms=False,
     )
     zone = lab_timezone(url)
@@ -388,6 +466,8 @@ def drift_view(
             "lower": per_point("lower"),
             "upper": per_point("upper"),
             "ewma": per_point("ewma"),
+            "ewma_lower": per_point("ewma_lower"),
+            "ewma_upper": per_point("ewma_upper"),
         }
     )
     changes = pd.DataFrame(
@@ -414,4 +494,8 @@ def drift_view(
         "note": str(limits.get("note", "")),
         "center": limits.get("center"),
         "baseline": limits.get("baseline"),
+        "series": result.series,
+        "other_series": result.other_series,
+        "settings": result.settings,
+        "excursions": result.excursions,
     }

@@ -20,7 +20,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
 from runlog.errors import ContractError
-from runlog.ingest import IngestResult, _Catalogue, _log, _months, _times, _unchanged_since, hash_file
+from runlog.ingest import IngestResult, _Catalogue, _log, _months, _times, _unchanged_since, hash_file, record_refusal
 from runlog.monitors.contract import MonitorSeries, read_monitor_table
 from runlog.monitors.rollups import store_rollups, summarise
 from runlog.store.bulk import Writer, open_writer
@@ -126,7 +126,5 @@ def ingest_monitor_file(engine: Engine, path: Path, mapping: Mapping | None = No
             return result
         finally:
             writer.close()
-    except ContractError as error:
-        result = IngestResult(name, "rejected", reason=str(error))
-        _log(engine, result, sha, size, started, read_s, write_s)
-        return result
+    except Exception as error:  # noqa: BLE001 - any failure of one file is that file's refusal
+        return record_refusal(engine, name, error, sha, size, started, read_s, write_s)

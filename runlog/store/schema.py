@@ -71,6 +71,9 @@ __all__ = [
     "Withdrawal",
     "Pin",
     "PinRun",
+    "Series",
+    "SeriesValue",
+    "SeriesMember",
     "Monitor",
     "MonitorValue",
     "MonitorRollup",
@@ -424,11 +427,13 @@ class Alarm(Base):
     """A drift finding to look at: a point outside control limits or a change in level."""
 
     __tablename__ = "alarms"
-    __table_args__ = (UniqueConstraint("apparatus_id", "quantity", "sequence", "day", "reason"), Index(None, "status"))
+    __table_args__ = (UniqueConstraint("apparatus_id", "quantity", "sequence", "series_key", "day", "reason"), Index(None, "status"))
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
     quantity: Mapped[str] = mapped_column(String(100))
     sequence: Mapped[str] = mapped_column(String(200), default="")  # '' = all sequences
+    # The reference series (sequence@fingerprint of its constant parameters); '' = pooled.
+    series_key: Mapped[str] = mapped_column(String(300), default="", server_default="")
     day: Mapped[dt.date] = mapped_column(Date)
     reason: Mapped[str] = mapped_column(String(20))  # 'limit' | 'change'
     method: Mapped[str] = mapped_column(String(100))
@@ -545,7 +550,9 @@ class PinRun(Base):
 
     ``shot_ids`` are the pinned shots' ids, sorted, as zlib-compressed little-endian int64
     differences; ``figure_records`` the record ids, comma-separated; ``shot_count`` the
-    run version's shots at pin time (the exported runs table gives it).
+    run version's shots at pin time (the exported runs table gives it). ``run_fields``
+    (JSON) freezes the run's other exported fields (times, lab day, operator, tags), which
+    a later file of the same version or a new tag would otherwise change.
     """
 
     __tablename__ = "pin_runs"
@@ -556,6 +563,59 @@ class PinRun(Base):
     shots: Mapped[int] = mapped_column(Integer)
     shot_ids: Mapped[bytes] = mapped_column(LargeBinary)
     figure_records: Mapped[str] = mapped_column(Text, default="")
+    run_fields: Mapped[str | None] = mapped_column(Text)
+
+
+class Series(Base):
+    """One fit of a figure of many runs against a parameter they differ in (e.g. fringe
+    contrast vs walk steps), never changed once written; the newest of a name is in force.
+
+    ``figure`` is the runs' figure (y), ``parameter`` the run parameter (x, constant within
+    each run), ``model`` the fitted model; ``where_text`` the filter that chose the runs.
+    The fitted parameters are in ``series_values``, the member runs in ``series_members``.
+    """
+
+    __tablename__ = "series"
+    __table_args__ = (Index(None, "name"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    name: Mapped[str] = mapped_column(String(200))
+    figure: Mapped[str] = mapped_column(String(100))
+    parameter: Mapped[str] = mapped_column(String(200))
+    parameter_unit: Mapped[str] = mapped_column(String(60), default="")
+    figure_unit: Mapped[str] = mapped_column(String(60), default="")
+    model: Mapped[str] = mapped_column(String(40))
+    where_text: Mapped[str | None] = mapped_column(Text)
+    points: Mapped[int] = mapped_column(Integer)
+    chi_square: Mapped[float | None] = mapped_column(Float)
+    degrees_of_freedom: Mapped[int] = mapped_column(Integer)
+    options: Mapped[str | None] = mapped_column(Text)
+    method: Mapped[str] = mapped_column(String(100))
+    method_version: Mapped[str] = mapped_column(String(20))
+    runlog_version: Mapped[str] = mapped_column(String(40))
+    computed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime())
+
+
+class SeriesValue(Base):
+    """A fitted parameter of a series (e.g. ``decay_per_step``) with its standard error."""
+
+    __tablename__ = "series_values"
+    series_id: Mapped[int] = mapped_column(ForeignKey("series.id", ondelete="CASCADE"), primary_key=True)
+    name: Mapped[str] = mapped_column(String(100), primary_key=True)
+    value: Mapped[float] = mapped_column(Float)
+    stderr: Mapped[float | None] = mapped_column(Float)
+    unit: Mapped[str] = mapped_column(String(60), default="")
+
+
+class SeriesMember(Base):
+    """A run version in a series: its parameter value, figure value and the record used."""
+
+    __tablename__ = "series_members"
+    series_id: Mapped[int] = mapped_column(ForeignKey("series.id", ondelete="CASCADE"), primary_key=True)
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id"), primary_key=True, index=True)
+    record_id: Mapped[int | None] = mapped_column(ForeignKey("figure_records.id"))
+    x: Mapped[float] = mapped_column(Float)
+    y: Mapped[float] = mapped_column(Float)
+    stderr: Mapped[float | None] = mapped_column(Float)
 
 
 class Monitor(Base):

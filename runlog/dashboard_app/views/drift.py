@@ -45,7 +45,7 @@ since, until = (tuple(chosen_days) + (last_day,))[:2] if chosen_days else (first
 sequences = common.sequences(url, apparatus)
 sequence = row[1].selectbox("sequence", ["all sequences", *sequences], key=f"drift-sequence-{apparatus}")
 sequence = None if sequence == "all sequences" else sequence
-baseline_days = int(row[2].number_input("baseline days", min_value=2, max_value=60, value=7, key="drift-baseline", help="The first days with data that set the control limits."))
+baseline_days = int(row[2].number_input("baseline days", min_value=7, max_value=90, value=28, key="drift-baseline", help="In-control lab days in the rolling baseline that sets the limits (restarted from an accepted new level)."))
 
 known = common.parameters_table(url, apparatus)
 ranged = known[(known["kind"] == "number") & (known["max"] > known["min"])].set_index("name")
@@ -86,6 +86,10 @@ with charts_column:
         st.altair_chart(charts.drift_chart(view, (since.isoformat(), until.isoformat()), zone), width="stretch", key=f"drift-chart-{quantity}")
         baseline = view["baseline"]
         detail = f"limits: {view['method']}" + (f", baseline {baseline[0]} to {baseline[1]}" if baseline else "") if view["method"] else view["note"]
+        if view["series"]:
+            st.caption(f"series {view['series']['label']} (`{view['series']['key']}`)")
+            steady = common.stability(url, quantity, apparatus, view["series"]["key"])
+            st.caption(f"stability: {steady['words']} (Allan deviation over the series' runs)")
         st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}.")
         all_changes += [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
 
@@ -113,8 +117,8 @@ with causes_column:
             ranked = pd.DataFrame(
                 {
                     "candidate": [common.label(n) for n in ranked["name"]],
-                    "Hedges' g": ranked["effect_size"],
-                    "Welch p": ranked["p_value"],
+                    "standard errors": ranked["standardised_change"],
+                    "BH q": ranked["q_value"],
                     "before → after": [f"{b:.4g} → {a:.4g}" for b, a in zip(ranked["before_mean"], ranked["after_mean"])],
                     "n": [f"{b} / {a}" for b, a in zip(ranked["n_before"], ranked["n_after"])],
                 }
@@ -125,9 +129,9 @@ with causes_column:
                 key="drift-causes",
                 column_config={
                     "candidate": st.column_config.TextColumn(width="medium"),
-                    "Hedges' g": st.column_config.NumberColumn(format="%+.2f", width="small"),
-                    "Welch p": st.column_config.NumberColumn(format="%.2g", width="small"),
+                    "standard errors": st.column_config.NumberColumn(format="%+.1f", width="small"),
+                    "BH q": st.column_config.NumberColumn(format="%.2g", width="small"),
                     "n": st.column_config.TextColumn(width="small"),
                 },
             )
-        st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; ranked by |Hedges' g|. It points at likely causes, it proves none; p-values are not corrected for the number of candidates.")
+        st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; setting changes first, then ranked by how many of its own standard errors each moved; q: Benjamini-Hochberg (1995) corrected. It points at likely causes, it proves none.")

@@ -9,6 +9,7 @@ import pandas as pd
 import streamlit as st
 
 from runlog.dashboard_app import common
+from runlog.times import shift_day
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
@@ -25,7 +26,7 @@ for apparatus in common.apparatus_names(url):
     shown = [name for name in common.HEADLINE if name in stored]
     for column, name in zip(st.columns(max(1, len(shown))), shown):
         # The day's value is the drift page's daily point: pooled counts or weighted mean.
-        view = common.drift_view(url, name, apparatus, since=day - dt.timedelta(days=14), until=day)
+        view = common.drift_view(url, name, apparatus, since=shift_day(day, -14), until=day)
         points = view["points"]
         today = points[points["day"] == day.isoformat()]
         if today.empty:

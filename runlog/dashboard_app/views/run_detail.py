@@ -6,7 +6,7 @@ import pandas as pd
 import streamlit as st
 
 from runlog.dashboard_app import charts, common
-from runlog.errors import RunlogError
+from runlog.errors import RunlogError, one_line
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
@@ -28,6 +28,12 @@ days = common.lab_days(url, apparatus)
 day = pick[1].selectbox(
     f"lab day ({zone})", days, index=days.index(asked["day"].iloc[0]) if len(asked) else 0, format_func=lambda d: f"{d:%a %d %b %Y}", key=f"run-day-{apparatus}"
 )
+if asked_apparatus is not None and asked_apparatus not in names:
+    st.warning(f"No apparatus '{one_line(asked_apparatus)}' in this catalogue: showing {apparatus} instead.")
+elif asked_run is not None and not len(asked):
+    # A link to a run that is not there (mistyped, withdrawn, another catalogue) says so
+    # instead of quietly opening some other run.
+    st.warning(f"No run '{one_line(asked_run)}' on {apparatus}: showing a run of {day:%d %b %Y} instead.")
 runs = every_run[every_run["day"] == day].sort_values("started")
 labels = {r.run: f"{r.run} · {r.sequence} · {r.local_start[11:]} · {r.shots} shots" for r in runs.itertuples()}
 keys = list(labels)
@@ -112,6 +118,18 @@ if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"}
             st.caption("Fraction of the loading image's site observations per count; the two-component model refitted to them.")
         elif curve.offset_estimated:
             st.caption("Levels and amplitudes of the curve are the least-squares values over the shots for the stored times, rates and frequencies.")
+
+versions, moved = common.versions_and_impact(url, info.run, info.apparatus)
+if len(versions) > 1 or len(moved):
+    st.markdown("**Analysis versions**")
+    st.dataframe(versions, hide_index=True, key="run-versions", column_config={"current": st.column_config.CheckboxColumn("current"), "withdrawn": st.column_config.CheckboxColumn("withdrawn")})
+    if len(moved):
+        st.markdown("**What the current analysis moved**")
+        st.dataframe(moved, hide_index=True, key="run-impact")
+        st.caption(
+            "Before: the version before the current one (or, with one version, the figure's record before). "
+            "Shift: (now − before) / √(stderr² + stderr²); the two share shots, so it is a yardstick of size, not a test."
+        )
 
 if any(image["role"] == "loading" for image in info.images.values()):
     st.markdown("**Per site**")
