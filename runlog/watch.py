@@ -50,6 +50,7 @@ class Watcher:
     ingest: Callable[[list[Path]], list[IngestResult]]
     quarantine: Path | None = None
     after_ingest: Callable[[list[IngestResult]], object] | None = None
+    after_poll: Callable[[], object] | None = None  # e.g. send the daily digest when due
     log: logging.Logger = field(default_factory=lambda: logging.getLogger("runlog.watch"))
     _seen: dict[str, tuple[int, int]] = field(default_factory=dict)  # name -> (size, mtime_ns) last poll
     _done: dict[str, tuple[int, int]] = field(default_factory=dict)  # name -> (size, mtime_ns) handled
@@ -136,6 +137,8 @@ class Watcher:
         fresh = [r for r in results if r.status == "ingested"]
         if fresh and self.after_ingest is not None:
             self.after_ingest(fresh)
+        if self.after_poll is not None:
+            self.after_poll()
         return results
 
     def _quarantine(self, path: Path, reason: str) -> None:
