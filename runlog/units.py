@@ -5,11 +5,12 @@ pint is imported on first use only: most ingests of a known catalogue need no co
 
 from __future__ import annotations
 
+import re
 from functools import lru_cache
 
 import numpy as np
 
-__all__ = ["registry", "check_unit", "conversion", "convert"]
+__all__ = ["registry", "check_unit", "conversion", "convert", "unit_text"]
 
 
 @lru_cache(maxsize=1)
@@ -64,3 +65,21 @@ def convert(values: np.ndarray, source: str, target: str) -> np.ndarray:
     if scale == 1.0 and offset == 0.0:
         return values
     return values * scale + offset
+
+
+@lru_cache(maxsize=512)
+def unit_text(unit: str | None) -> str:
+    """A stored unit as people read it (``us`` -> ``µs``, ``uK`` -> ``µK``); others unchanged.
+
+    Stored units, filters and ``--json`` keep the ASCII ``u`` that files are written with;
+    every text for people (CLI, dashboard, figures, plots) goes through here, so that one
+    thing has one spelling.
+    """
+    unit = unit or ""
+    if re.fullmatch(r"u[A-Za-z]+", unit):
+        try:
+            if format(registry().Unit(unit), "~P") == "µ" + unit[1:]:
+                return "µ" + unit[1:]
+        except Exception:  # pint raises several types for text it does not know
+            pass
+    return unit
