@@ -466,7 +466,13 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
                     logger.info("%s", _outcome_line(outcome))
             return results
 
-        watcher = Watcher(folder, ingest_and_derive, quarantine, logger)
+        def judge_drift(results: list) -> None:
+            # After each ingest: judge the reference series, log each new alarm once.
+            for alarm in catalogue.new_alarms():
+                where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+                logger.warning("alarm #%s %s %s%s: %s on %s (%s)", alarm["id"], alarm["apparatus"], alarm["quantity"], where, alarm["reason"], alarm["date"], alarm["method"])
+
+        watcher = Watcher(folder, ingest_and_derive, quarantine, after_ingest=judge_drift, log=logger)
         _echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
         try:
             watcher.run(interval, stop_after=stop_after)
@@ -669,9 +675,10 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @click.option("--baseline", "baseline_range", default=None, metavar="FROM:TO", help="Lab days that set the limits instead (ISO dates).")
 @click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
 @click.option("--causes", is_flag=True, help="Notes, then suspects, at each change and each alarm day.")
+@click.option("--stability", is_flag=True, help="The Allan deviation over the series' runs, and what it means.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, stability: bool, as_json: bool) -> None:
     """Daily values of a figure for one reference series, control limits, changes in level and alarms."""
     parameters = dict(_range_option(text) for text in ranges)
     baseline = None
@@ -689,8 +696,11 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, series=series_key, pooled=pooled, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
         days = sorted({c.date for c in result.changes} | {dt.date.fromisoformat(e["date"]) for e in result.excursions}) if causes else []
         found_suspects = {day: catalogue.suspects(quantity, day, apparatus=result.apparatus, top=5) for day in days}
+        steadiness = catalogue.stability(quantity, apparatus=result.apparatus, series=result.series["key"]) if stability and result.series else None
     if as_json:
         data = result.as_dict()
+        if stability:
+            data["stability"] = steadiness
         if causes:
             for entry in data["changes"] + data["excursions"]:
                 found = found_suspects[dt.date.fromisoformat(entry["date"])]
@@ -716,6 +726,8 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         _print_suspects(found_suspects.get(change.date))
     for setting in result.settings:
         _wrapped(f"{setting['day']}: {setting['words']}")
+    if steadiness is not None:
+        _wrapped(f"stability: {steadiness['words']}")
     if not result.changes and len(result.points) >= 3:
         _echo("  no change in level found")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")

@@ -75,6 +75,8 @@ class Mapping:
     references: dict[str, dict[str, object]] = field(default_factory=dict)
     #: ``[time_window]``: shot times outside it are refused.
     time_window: TimeWindow = DEFAULT_TIME_WINDOW
+    #: ``[units]``: lab-defined units, ``(name, definition)`` pairs (runlog.units).
+    units: tuple[tuple[str, str], ...] = ()
 
 
 def _time_window(table: object, source: str) -> TimeWindow:
@@ -100,7 +102,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -145,7 +147,17 @@ def load_config(path: str | Path | None) -> Mapping:
         thresholds={str(k): float(v) for k, v in thresholds.items()},
         references=check_references(data.get("reference", {}), str(path)),
         time_window=_time_window(data.get("time_window", {}), str(path)),
+        units=_lab_units(data.get("units", {}), str(path)),
     )
+
+
+def _lab_units(table: object, source: str) -> tuple[tuple[str, str], ...]:
+    from runlog.units import UnitError, check_lab_units
+
+    try:
+        return check_lab_units(table)
+    except UnitError as error:
+        raise ConfigError(source, str(error)) from None
 
 
 def check_references(tables: object, source: str = "<reference>") -> dict[str, dict[str, object]]:
@@ -173,7 +185,7 @@ APPARATUS_KEYS = ("field_sensitivity", "zero_field_frequency")
 
 def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dict[str, dict[str, str]]:
     """``[apparatus."NAME"]`` tables checked: known keys, texts that pint reads as quantities."""
-    from runlog.units import registry
+    from runlog.units import quantity
 
     if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
         raise ConfigError(source, '[apparatus."NAME"] must be tables, one per apparatus')
@@ -184,9 +196,7 @@ def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dic
             raise ConfigError(source, f"[apparatus.\"{name}\"]: unknown key '{unknown[0]}' (known: {', '.join(APPARATUS_KEYS)})")
         for key, text in table.items():
             try:
-                if not isinstance(text, str):
-                    raise TypeError
-                registry().Quantity(text)
+                quantity(text)
             except Exception:
                 raise ConfigError(source, f"[apparatus.\"{name}\"] {key} = {text!r} is not a quantity with a unit such as '2.0 kHz/mG'") from None
         checked[name] = dict(table)
