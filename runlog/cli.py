@@ -901,15 +901,20 @@ def _day_option(value: str | None, option: str) -> dt.date | None:
 
 @cli.command()
 @click.option("--port", default=8501, show_default=True, help="Port of the dashboard server.")
-@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (the dashboard has no login: keep it local unless the network is trusted).")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (keep it local unless an authenticating proxy is in front: docs/scaling.md).")
+@click.option("--author-header", default=None, metavar="NAME", help="Request header in which a trusted reverse proxy passes the logged-in user (e.g. X-Forwarded-User): notes are written under that name only.")
+@click.option("--login", is_flag=True, help="Authors from Streamlit's own OIDC login (st.login; provider in .streamlit/secrets.toml).")
+@click.option("--read-only", "read_only", is_flag=True, help="No writing from the dashboard: no note or acknowledgement forms.")
 @_common
-def dashboard(state: _State, port: int, host: str) -> None:
+def dashboard(state: _State, port: int, host: str, author_header: str | None, login: bool, read_only: bool) -> None:
     """Serve the dashboard (a Streamlit app) on this catalogue until Ctrl-C."""
     from runlog.dashboard import serve
 
+    if author_header and login:
+        raise click.UsageError("choose one of --author-header and --login")
     with _open(state) as catalogue:  # fail here, in one line, when the catalogue cannot be opened
         catalogue.counts()
-    sys.exit(serve(state.db, host=host, port=port, say=click.echo))
+    sys.exit(serve(state.db, host=host, port=port, say=_echo, author_header=author_header, login=login, writes=not read_only))
 
 
 @cli.command()
