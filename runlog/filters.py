@@ -46,6 +46,7 @@ from sqlalchemy import (
     bindparam,
     exists,
     not_,
+    literal,
     or_,
     select,
     true,
@@ -541,14 +542,17 @@ def _in_runs(condition: ColumnElement[bool]) -> ColumnElement[bool]:
 
 def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
     """``column operator values``, never NULL: a missing value compares false."""
-    # Lists are spelled out as = / != terms rather than IN (...), so the statement has a
-    # fixed set of plain bound values and can be handed to the driver as it is.
+    # Lists are IN (...) of one bound value each, not expanding parameters, so the statement
+    # has a fixed set of plain bound values and can be handed to the driver as it is; not a
+    # chain of = terms either, which SQLite parses one level deeper per value and refuses
+    # past 1000 ("Expression tree is too large").
     if operator == "between":
         test = column.between(values[0], values[1])
-    elif operator == "in":
-        test = or_(*[column == v for v in values])
-    elif operator == "not in":
-        test = and_(*[column != v for v in values])
+    elif operator in ("in", "not in"):
+        # Each value bound with the column's type (times are stored as numbers on SQLite),
+        # a fraction as a float: 'shot in (0.5)' matches no shot rather than shot 0.
+        bound = [literal(v, Float() if isinstance(v, float) else column.type) for v in values]
+        test = column.in_(bound) if operator == "in" else column.not_in(bound)
     else:
         test = {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
     return and_(column.is_not(None), test)
@@ -559,7 +563,9 @@ def _range_may_hold(low, high, operator: str, values: list[float]) -> ColumnElem
     if operator == "=":
         return and_(low <= values[0], high >= values[0])
     if operator == "in":
-        return or_(*[and_(low <= v, high >= v) for v in values])
+        # Any range meeting the span of the values may hold one (a prune may keep too much;
+        # one term per value would nest too deep for SQLite with many values).
+        return and_(high >= min(values), low <= max(values))
     if operator == "between":
         return and_(high >= values[0], low <= values[1])
     if operator in ("<", "<="):

@@ -193,7 +193,7 @@ def test_models_and_scripts_give_the_same_layout(db_url, tmp_path, request):
             drop()
     assert fresh == scripted
     if db_url.startswith("postgresql"):
-        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("occupancy", "shot_measurements", "shot_parameters", "shots"))]
+        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("monitor_values", "occupancy", "shot_measurements", "shot_parameters", "shots"))]
 
 
 def test_0007_renames_figures_that_stood_for_two_things(db_url, make_file):
@@ -219,7 +219,7 @@ def test_0007_renames_figures_that_stood_for_two_things(db_url, make_file):
         with engine.begin() as connection:
             apparatus_id = connection.execute(select(s.Apparatus.id)).scalar_one()
             connection.execute(insert(s.Alarm.__table__).values(apparatus_id=apparatus_id, quantity="coherence_time", sequence="", series_key="", day=dt.date(2026, 3, 2), reason="limit", method="test", detail="", status="open", created_at=dt.datetime(2026, 3, 3, tzinfo=dt.timezone.utc)))
-        migrate.downgrade(engine, "0012")  # keeps the old names: they are not the new ones
+        migrate.downgrade(engine, "0013")  # keeps the old names: they are not the new ones
         migrate.upgrade(engine)
         names = {run: sorted(catalogue.run(run).figures) for run in ("ramsey1", "envelope1", "echo1", "fringe1")}
         assert names["ramsey1"] == ["fill_fraction", "loss", "ramsey_contrast", "ramsey_frequency", "ramsey_phase", "survival", "t2_star"]

@@ -19,7 +19,7 @@ value and unit (the fringe frequency, >= 0, per unit of wait); a new fit gives i
 programmed detuning's unit and sign.
 
 Revision ID: 0007
-Revises: 0012
+Revises: 0013
 Create Date: 2026-12-02
 """
 import re
@@ -30,7 +30,7 @@ import sqlalchemy as sa
 
 
 revision: str = '0007'
-down_revision: Union[str, None] = '0012'
+down_revision: Union[str, None] = '0013'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 

@@ -408,6 +408,12 @@ def what_else_changed(url: str, quantity: str, day: dt.date, apparatus: str) -> 
 
 
 @_cached
+def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str, object]:
+    """``catalogue.stability``: the Allan deviation over a series' runs, in plain words."""
+    return catalogue(url).stability(quantity, apparatus=apparatus, series=series)
+
+
+@_cached
 def drift_view(
     url: str,
     quantity: str,
