@@ -69,6 +69,13 @@ def _printable(text: str) -> str:
     return "".join(c if c.isprintable() or c in "\n\t" else repr(c)[1:-1] for c in text)
 
 
+def _unit_text(unit: str | None) -> str:
+    # Imported here: runlog.units brings numpy, which --version and --help do without.
+    from runlog.units import unit_text
+
+    return unit_text(unit)
+
+
 def _json(value: Any) -> None:
     _echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
 
@@ -148,7 +155,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
     else:
         for r in results:
             if r.status == "rejected":
-                _echo(f"rejected         {r.reason}")
+                _echo(f"refused          {r.reason}")
             elif r.monitors:
                 names = ", ".join(r.monitors[:3]) + (f" (+{len(r.monitors) - 3} more)" if len(r.monitors) > 3 else "")
                 _echo(f"{r.status:<16} {r.file}: {r.values} monitor values, {names}")
@@ -243,7 +250,7 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         _wrapped(f"tags: {', '.join(info.tags)}")
     _echo("parameters")
     for name, entry in info.parameters.items():
-        unit = f" {entry['unit']}" if entry["unit"] else ""
+        unit = f" {_unit_text(entry['unit'])}" if entry["unit"] else ""
         if entry["scanned"]:
             span = f"{entry['min']:g} .. {entry['max']:g}{unit}" if "min" in entry else "(varies)"
             _echo(f"  {name:<24} scanned  {span}")
@@ -397,7 +404,7 @@ def _wrapped(text: str, indent: str = "  ") -> None:
 
 
 def _figure_line(name: str, figure: dict[str, Any]) -> str:
-    unit = f" {figure['unit']}" if figure.get("unit") else ""
+    unit = f" {_unit_text(figure['unit'])}" if figure.get("unit") else ""
     text = f"{name:<24} {figure['value']:.4g}"
     if "stderr" in figure and figure["stderr"] is not None:
         text += f" ± {figure['stderr']:.2g}"
@@ -722,7 +729,7 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
                 entry["verdict"] = found["verdict"]
         _json(data)
         return
-    unit = f" [{result.unit}]" if result.unit else ""
+    unit = f" [{_unit_text(result.unit)}]" if result.unit else ""
     _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", series {result.series['label']} ({result.series['key']})" if result.series else (f", sequence {result.sequence}" if result.sequence else ", all runs pooled")), indent="")
     outside = set(result.out_of_limits)
     _echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
@@ -845,7 +852,7 @@ def calibrations(state: _State, names: tuple[str, ...], apparatus: str | None, a
         return
     for c in found:
         error = f" ± {c.stderr:.2g}" if c.stderr is not None else ""
-        unit = f" {c.unit}" if c.unit else ""
+        unit = f" {_unit_text(c.unit)}" if c.unit else ""
         _wrapped(f"{c.apparatus} {c.name} = {c.value:.6g}{error}{unit}  (run {c.run}, {c.started:%Y-%m-%d %H:%M} UTC, {c.age_days:.1f} days ago)", indent="")
 
 

@@ -33,6 +33,7 @@ import runlog
 from runlog.dashboard import URL_VARIABLE
 from runlog.errors import RunlogError
 from runlog.redaction import scrub
+from runlog.units import unit_text  # one spelling of units for every page (in __all__)
 
 __all__ = [
     "CACHE_SECONDS",
@@ -146,20 +147,6 @@ def label(name: str) -> str:
 
 
 @lru_cache(maxsize=256)
-def unit_text(unit: str | None) -> str:
-    """A stored unit as people write it (``us`` -> ``µs``); other units unchanged."""
-    unit = unit or ""
-    if re.fullmatch(r"u[A-Za-z]+", unit):
-        from runlog.units import parse_unit
-
-        try:
-            if format(parse_unit(unit), "~P") == "µ" + unit[1:]:
-                return "µ" + unit[1:]
-        except Exception:  # pint raises several types for text it does not know
-            pass
-    return unit
-
-
 def with_uncertainty(value: float | None, stderr: float | None = None, unit: str | None = None) -> str:
     """``656.9, 72.4, "us"`` -> ``657 ± 72 µs``: the error to two significant digits, the value
     to the same decimal place (common practice, no published source)."""
