@@ -106,12 +106,17 @@ def cli(ctx: click.Context, db: str | None, debug: bool) -> None:
 
 
 @cli.command()
+@click.option("--timezone", "zone", default=None, metavar="ZONE", help="The lab's time zone (IANA name, e.g. Europe/Berlin): it decides which lab day a run belongs to.")
 @_common
-def init(state: _State) -> None:
+def init(state: _State, zone: str | None) -> None:
     """Create the catalogue, or upgrade it to this runlog's schema."""
     from runlog.store.engine import make_engine, redact, resolve_url
     from runlog.store.migrate import create_or_upgrade
+    from runlog.store.rollups import check_timezone
     from runlog.store.schema import SCHEMA_REVISION
+
+    if zone is not None:
+        check_timezone(zone)  # before anything is made
 
     # Not runlog.open(): opening refuses a catalogue at an older revision, and init is
     # the one command that upgrades it.
@@ -126,6 +131,26 @@ def init(state: _State) -> None:
     finally:
         engine.dispose()
     _echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
+    if zone is not None:
+        _set_timezone(state, zone)
+
+
+def _set_timezone(state: _State, zone: str) -> None:
+    with _open(state) as catalogue:
+        groups = catalogue.set_lab_timezone(zone)
+    _echo(f"lab time zone {zone}; lab days and daily rollups rebuilt ({groups} groups)")
+
+
+@cli.command()
+@click.argument("zone", required=False)
+@_common
+def timezone(state: _State, zone: str | None) -> None:
+    """Show the lab's time zone, or change it to ZONE (lab days and rollups are rebuilt)."""
+    if zone is not None:
+        _set_timezone(state, zone)
+        return
+    with _open(state) as catalogue:
+        _echo(catalogue.lab_timezone)
 
 
 @cli.command()
@@ -876,15 +901,20 @@ def _day_option(value: str | None, option: str) -> dt.date | None:
 
 @cli.command()
 @click.option("--port", default=8501, show_default=True, help="Port of the dashboard server.")
-@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (the dashboard has no login: keep it local unless the network is trusted).")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (keep it local unless an authenticating proxy is in front: docs/scaling.md).")
+@click.option("--author-header", default=None, metavar="NAME", help="Request header in which a trusted reverse proxy passes the logged-in user (e.g. X-Forwarded-User): notes are written under that name only.")
+@click.option("--login", is_flag=True, help="Authors from Streamlit's own OIDC login (st.login; provider in .streamlit/secrets.toml).")
+@click.option("--read-only", "read_only", is_flag=True, help="No writing from the dashboard: no note or acknowledgement forms.")
 @_common
-def dashboard(state: _State, port: int, host: str) -> None:
+def dashboard(state: _State, port: int, host: str, author_header: str | None, login: bool, read_only: bool) -> None:
     """Serve the dashboard (a Streamlit app) on this catalogue until Ctrl-C."""
     from runlog.dashboard import serve
 
+    if author_header and login:
+        raise click.UsageError("choose one of --author-header and --login")
     with _open(state) as catalogue:  # fail here, in one line, when the catalogue cannot be opened
         catalogue.counts()
-    sys.exit(serve(state.db, host=host, port=port, say=click.echo))
+    sys.exit(serve(state.db, host=host, port=port, say=_echo, author_header=author_header, login=login, writes=not read_only))
 
 
 @cli.command()

@@ -274,6 +274,24 @@ def test_people_read_micro_units_as_µ_and_json_keeps_the_stored_unit(db_url, tm
     assert json.loads(out)["parameters"]["wait"]["unit"] == "us"
 
 
+def test_init_with_a_timezone_and_changing_it_rebuilds_the_lab_days(db_url, tmp_path, capsys):
+    code, out, _ = run_main(capsys, "--db", db_url, "init", "--timezone", "America/New_York")
+    assert code == 0 and out.splitlines()[-1] == "lab time zone America/New_York; lab days and daily rollups rebuilt (0 groups)"
+    # 02:00 UTC on 2 March is still 1 March in New York, and 2 March in Berlin.
+    path = tmp_path / "night.parquet"
+    pq.write_table(shot_table({"r1": 4}, start=dt.datetime(2026, 3, 2, 2, 0, tzinfo=dt.timezone.utc)), path)
+    assert invoke("--db", db_url, "ingest", str(path)).exit_code == 0
+    with runlog.open(db_url) as catalogue:
+        assert [p.date for p in catalogue.drift("fill_fraction").points] == [dt.date(2026, 3, 1)]
+    code, out, _ = run_main(capsys, "--db", db_url, "timezone", "Europe/Berlin")
+    assert code == 0 and out.startswith("lab time zone Europe/Berlin; lab days and daily rollups rebuilt (")
+    assert run_main(capsys, "--db", db_url, "timezone")[1] == "Europe/Berlin\n"
+    with runlog.open(db_url) as catalogue:
+        assert [p.date for p in catalogue.drift("fill_fraction").points] == [dt.date(2026, 3, 2)]
+    code, out, err = run_main(capsys, "--db", db_url, "timezone", "Mars/Olympus")
+    assert (code, out) == (1, "") and err == "runlog: error: lab_timezone: unknown time zone 'Mars/Olympus' (use an IANA name such as Europe/Berlin)\n"
+
+
 # --- annotate ---------------------------------------------------------------------------
 
 
