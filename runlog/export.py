@@ -132,8 +132,10 @@ def _runs_table(connection, per_run_shots: dict[int, int], zone: ZoneInfo, froze
             "finished": pa.array([r["finished"] for r in rows], pa.timestamp("us", tz="UTC")),
             "day": pa.array([_as_date(r["day"]) if r["day"] is not None else r["started"].astimezone(zone).date() for r in rows], pa.date32()),
             "operator": pa.array([r["operator"] for r in rows], pa.string()),
+            "notes": pa.array([r.get("notes") for r in rows], pa.string()),
             "tags": pa.array([r["tags"] for r in rows], pa.string()),
             "shots": pa.array([int(r["shots"]) for r in rows], pa.int64()),
+            "excluded_shots": pa.array([int(r.get("excluded_shots") or 0) for r in rows], pa.int64()),
             "shots_exported": pa.array([per_run_shots[int(r["id"])] for r in rows], pa.int64()),
         }
     )
@@ -145,10 +147,10 @@ def _figures_table(connection, run_order: list[int], runs_table: pa.Table, recor
     records ``records``, which never change."""
     figures = s.FigureRow.__table__ if records is None else s.FigureRecord.__table__
     position = {rid: i for i, rid in enumerate(run_order)}
-    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials")
-    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64())
+    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method")
+    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64(), pa.float64(), pa.float64(), pa.string())
     rows: list[tuple] = []
-    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials)
+    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials, figures.c.binomial_ci_low, figures.c.binomial_ci_high, figures.c.binomial_method)
     for chunk in _chunks(run_order if records is None else sorted(records)):
         rows += connection.execute(select(*columns).where(id_in(figures.c.run_id if records is None else figures.c.id, chunk))).all()
     rows.sort(key=lambda r: (position[int(r[0])], r[1]))
@@ -262,13 +264,18 @@ _DESCRIPTIONS = {
     "operator": "who ran it",
     "tags": "the run's labels, comma-separated",
     "shots": "shots of the run in the catalogue",
+    "notes": "the run's notes, as the shot table gave them",
+    "excluded_shots": "shots of the run left out of its figures because their status does not count (they are in the shots table)",
     "shots_exported": "shots of the run in this export",
     "figure": "the figure of merit's name",
     "kind": "the family of figures it belongs to",
     "value": "the figure's value (in 'unit')",
     "stderr": "its standard error",
-    "ci_low": "lower end of its confidence interval",
-    "ci_high": "upper end of its confidence interval",
+    "ci_low": "lower end of its confidence interval (counting figures: shot-level, from the spread between shots)",
+    "ci_high": "upper end of its confidence interval (counting figures: shot-level, from the spread between shots)",
+    "binomial_ci_low": "counting figures: lower end of the pooled binomial interval (every site an independent try; too narrow when loading varies between shots)",
+    "binomial_ci_high": "counting figures: upper end of the pooled binomial interval",
+    "binomial_method": "counting figures: the method of the pooled binomial interval",
     "unit": "the unit of value, stderr and interval",
     "method": "how it was computed",
     "method_version": "version of that method",

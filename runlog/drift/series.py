@@ -2,8 +2,10 @@
 
 Owns the drift query. Daily points come from the daily rollups (never from shots):
 
-* counting figures (fill fraction, survival, loss): the day's pooled counts, with a
-  Wilson interval; control limits from a p-chart (NIST/SEMATECH e-Handbook 6.3.3.2) whose
+* counting figures (fill fraction, survival, loss): the day's pooled counts, with the
+  shot-level interval and stderr of :mod:`runlog.figures.shot_level` over all the day's
+  shots (the Wilson interval of the pooled counts only for runs stored before the sums
+  over shots were kept); control limits from a p-chart (NIST/SEMATECH e-Handbook 6.3.3.2) whose
   binomial sigma is widened by Laney's overdispersion factor (Laney 2002, Quality
   Engineering 14:531) when days scatter more than counting noise allows;
 * fitted figures (coherence time, contrast, ...): the inverse-variance weighted mean of
@@ -31,6 +33,7 @@ from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.charts import cusum_chart, ewma_chart, p_chart
 from runlog.errors import NotFoundError
 from runlog.figures.intervals import wilson
+from runlog.figures.shot_level import ShotSums, shot_level_interval
 from runlog.store import schema as s
 
 __all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "drift_of"]
@@ -126,6 +129,10 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
             func.sum(r.shots),
             func.sum(r.successes),
             func.sum(r.trials),
+            func.sum(r.counted_shots),
+            func.sum(r.successes_squares),
+            func.sum(r.trials_squares),
+            func.sum(r.successes_trials),
             func.sum(r.value_count),
             func.sum(r.value_sum),
             func.sum(r.value_square_sum),
@@ -163,12 +170,17 @@ def _one_unit(connection: Connection, units_query, quantity: str) -> None:
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
 
 
-def _point(day, runs, shots, successes, trials, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
+def _point(day, runs, shots, successes, trials, counted, y2, x2, xy, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
     """One day's point from the pooled sums of its runs (see the module docstring)."""
     day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
     if trials:
         successes, trials = int(successes), int(trials)
         p = successes / trials
+        # SUM over runs is NULL if any run lacks the sums, so a day is shot-level only when
+        # all of its runs are.
+        honest = shot_level_interval(ShotSums(int(counted), successes, trials, float(y2), float(x2), float(xy))) if counted is not None and y2 is not None else None
+        if honest is not None:
+            return DriftPoint(day, p, honest.low, honest.high, int(runs), int(shots), honest.stderr, None, successes, trials)
         low, high = wilson(successes, trials)
         return DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials)
     spread = None
@@ -197,7 +209,7 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
     """
     f, r = s.FigureRow, s.Run
     query = (
-        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.unit)
+        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials, f.unit)
         .join(r, r.id == f.run_id)
         .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current))
         .order_by(r.day)
@@ -230,22 +242,25 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
     days: dict[object, list[float]] = {}
     unit = ""
-    for day, shots, value, stderr, successes, trials, figure_unit in rows:
+    for day, shots, value, stderr, successes, trials, counted, y2, x2, xy, figure_unit in rows:
         unit = figure_unit or unit
-        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, None, None, None])
+        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, 0.0, 0, 0.0, 0.0, None, None, None])
         sums[0] += 1
         sums[1] += shots
         if trials is not None:
             sums[2] = (sums[2] or 0) + successes
             sums[3] = (sums[3] or 0) + trials
-        sums[4] += 1
-        sums[5] += value
-        sums[6] += value * value
+            # As SQL's SUM in the rollups: one run without sums over shots makes them NULL.
+            for position, part in ((4, counted), (5, y2), (6, x2), (7, xy)):
+                sums[position] = None if part is None or sums[position] is None else sums[position] + part
+        sums[8] += 1
+        sums[9] += value
+        sums[10] += value * value
         if stderr is not None and stderr > 0:
             w = 1.0 / (stderr * stderr)
-            sums[7] = (sums[7] or 0.0) + w
-            sums[8] = (sums[8] or 0.0) + w * value
-            sums[9] = (sums[9] or 0.0) + w * value * value
+            sums[11] = (sums[11] or 0.0) + w
+            sums[12] = (sums[12] or 0.0) + w * value
+            sums[13] = (sums[13] or 0.0) + w * value * value
     points = [p for p in (_point(day, *sums) for day, sums in days.items()) if p is not None]
     return points, unit, any(p.trials is not None for p in points)
 
