@@ -1,7 +1,7 @@
 """Re-analysis speed: ingesting a new analysis version of a run against its first ingest,
 and the drift query over a catalogue that holds several versions.
 
-1. One 300 000-shot file (20 runs of 15 000 shots, one scanned and two constant
+1. One 300 000-shot file (one run by default, ``--runs`` to split it; one scanned and two constant
    parameters, two measurements, a 6x6 loading and survival image), and the same shots
    re-thresholded under the analysis version ``thr-2`` (Parquet key-value metadata).
    Peer: the first ingest of the file into a fresh catalogue; ours: the ingest of the new
@@ -31,7 +31,7 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).parent))
 import drift as drift_benchmark  # noqa: E402  (the 10 M-shot catalogue builder)
-from ingest import timed  # noqa: E402
+from ingest import _postgres_databases, timed  # noqa: E402
 
 import runlog  # noqa: E402
 
@@ -110,11 +110,13 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--shots", type=int, default=300_000)
     parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--runs", type=int, default=1, help="runs the shots are split into (1: one 300 000-shot run, the issue's case)")
     parser.add_argument("--drift-shots", type=int, default=2_000_000)
     parser.add_argument("--reanalysed-days", type=int, default=30)
     parser.add_argument("--drift-db", default=None, help="catalogue for part 2 (default: a fresh SQLite file)")
     parser.add_argument("--skip-drift", action="store_true")
     parser.add_argument("--skip-ingest", action="store_true")
+    parser.add_argument("--postgres", metavar="URL", help="part 1 on fresh databases of this PostgreSQL server instead of SQLite files")
     args = parser.parse_args()
     if not args.skip_ingest:
         _ingest_part(args)
@@ -125,17 +127,22 @@ def main() -> None:
 def _ingest_part(args) -> None:
     with tempfile.TemporaryDirectory() as folder:
         folder = Path(folder)
-        v1, v2 = make_versions(folder, args.shots)
+        v1, v2 = make_versions(folder, args.shots, runs=args.runs)
         first, again = [], []
+        fresh = _postgres_databases(args.postgres) if args.postgres else None
+        urls = []
         for attempt in range(args.repeat):
-            url = f"sqlite:///{folder / f'catalogue-{attempt}.sqlite'}"
+            url = fresh(f"runlog_bench_reanalysis_{attempt}") if fresh else f"sqlite:///{folder / f'catalogue-{attempt}.sqlite'}"
+            urls.append(url)
             first.append(timed([sys.executable, "-m", "runlog", "--db", url, "ingest", "--json", str(v1)])[0])
             again.append(timed([sys.executable, "-m", "runlog", "--db", url, "ingest", "--json", str(v2)])[0])
-        with runlog.open(f"sqlite:///{folder / 'catalogue-0.sqlite'}") as catalogue:
+        with runlog.open(urls[0]) as catalogue:
             versions = [(a["analysis"], a["current"], a["shots"]) for a in catalogue.analyses("run-000")]
-            assert versions == [("", False, args.shots // 20), ("thr-2", True, args.shots // 20)], versions
+            assert versions == [("", False, args.shots // args.runs), ("thr-2", True, args.shots // args.runs)], versions
+        if fresh:
+            fresh(None)
         first_s, again_s = statistics.median(first), statistics.median(again)
-        print(f"file: {args.shots} shots in 20 runs, 6x6 loading and survival images, SQLite, whole process")
+        print(f"file: {args.shots} shots in {args.runs} runs, 6x6 loading and survival images, {'PostgreSQL' if fresh else 'SQLite'}, whole process")
         print(f"first ingest (peer):          median {first_s:.2f} s  {[round(t, 2) for t in first]}")
         print(f"new analysis version ingest:  median {again_s:.2f} s  {[round(t, 2) for t in again]}")
         print(f"ratio new version / first ingest: {again_s / first_s:.2f}  (target <= 1.2)")

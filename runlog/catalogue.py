@@ -22,7 +22,7 @@ import numpy as np
 from sqlalchemy import and_, bindparam, func, select, text
 from sqlalchemy.engine import Engine
 
-from runlog.errors import NotFoundError, SchemaVersionError, StoreError
+from runlog.errors import ConfigError, NotFoundError, SchemaVersionError, StoreError
 from runlog.store import schema as s
 from runlog.store.engine import current_revision, make_engine, redact, resolve_url
 from runlog.times import day_start_utc
@@ -162,6 +162,9 @@ class Catalogue:
             paths = [paths]
         mapping = config if isinstance(config, Mapping) else load_config(config)
         results = ingest_files(self.engine, paths, mapping, progress)
+        for name, declared in mapping.references.items():
+            if name in self.apparatus_names():
+                self.declare_reference(name, sequence=declared.get("sequence"), vary=declared.get("vary", ()), tolerance=declared.get("tolerance"))
         if not mapping.rules:
             return results
         # The configuration's rules give the newly ingested runs their fitted figures.
@@ -170,7 +173,7 @@ class Catalogue:
     def annotate(self, text: str, *, run: str | None = None, apparatus: str | None = None, at: dt.datetime | str | None = None, author: str | None = None) -> int:
         """Add a note tied to a run, or to an apparatus at a time; returns its id."""
         if not text.strip():
-            raise ValueError("an annotation needs text")
+            raise ValueError("a note needs text")
         now = dt.datetime.now(dt.timezone.utc)
         with self.engine.begin() as connection:
             run_id = None
@@ -180,7 +183,7 @@ class Catalogue:
                 when = _as_utc(at) or found.started
             else:
                 if apparatus is None:
-                    raise ValueError("an annotation needs a run, or an apparatus and a time")
+                    raise ValueError("a note needs a run, or an apparatus and a time")
                 apparatus_id = self._apparatus_id(connection, apparatus)
                 when = _as_utc(at) or now
             row = {"apparatus_id": apparatus_id, "run_id": run_id, "at": when, "text": text.strip(), "author": author or _user(), "created_at": now}
@@ -548,8 +551,8 @@ class Catalogue:
 
         return derive_series(self.engine, name, figure, parameter, model=model, where=where)
 
-    def series(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
-        """The series in force (newest fit of each name), or every fit of ``name`` with
+    def series_fits(self, name: str | None = None, *, history: bool = False) -> list[dict[str, object]]:
+        """The series across runs in force (newest fit of each name), or every fit of ``name`` with
         ``history``: fitted values with standard errors, χ², member runs (x, y, stderr)."""
         from runlog.run_series import series
 
@@ -778,21 +781,31 @@ class Catalogue:
             writer.close()
         return groups
 
-    def drift(self, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, baseline_days: int = 7, baseline: tuple[dt.date | str, dt.date | str] | None = None, parameters: dict[str, tuple[float, float]] | None = None, record_alarms: bool = True):
+    def drift(self, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, series: str | None = None, pooled: bool = False, since: dt.date | str | None = None, until: dt.date | str | None = None, baseline_days: int | None = None, baseline: tuple[dt.date | str, dt.date | str] | None = None, parameters: dict[str, tuple[float, float]] | None = None, record_alarms: bool = True):
         """Daily points, control limits, changes and alarms of one quantity.
 
+        By default for the apparatus' reference series of ``quantity`` (within ``sequence``
+        if given); ``series`` names another by its key (``sequence@fingerprint``),
+        ``pooled`` takes every run (of ``sequence``). ``baseline_days``: in-control lab days
+        in the rolling baseline (default 28); ``baseline``: a fixed range of days instead.
         ``parameters`` restricts to runs whose parameter values (in their stored units) lie
         in the given ``(low, high)`` ranges; alarms are recorded only for unfiltered drift.
         """
+        from dataclasses import replace as replaced
+        from zoneinfo import ZoneInfo
+
         from runlog.drift import alarms as alarm_store
+        from runlog.drift.detect import THRESHOLDS
         from runlog.drift.series import drift_of
 
         since, until = _as_day(since), _as_day(until)
         if baseline is not None:
             baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
+        thresholds = THRESHOLDS if baseline_days is None else replaced(THRESHOLDS, window=int(baseline_days))
+        zone = ZoneInfo(self.lab_timezone)
         with self.engine.connect() as connection:
-            result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, since=since, until=until, baseline_days=baseline_days, baseline=baseline, parameters=parameters)
-        if record_alarms and result.points and not parameters:
+            result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, series=series, pooled=pooled, since=since, until=until, baseline=baseline, parameters=parameters, thresholds=thresholds, zone=zone)
+        if record_alarms and result.points and not parameters and baseline is None and since is None and until is None:
             # A writer from the start on SQLite: a deferred transaction that read first
             # could not become a writer once another process had recorded alarms.
             with self.engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection, connection.begin():
@@ -806,6 +819,32 @@ class Catalogue:
                 if row.at <= last
             ]
         return result
+
+    def series(self, quantity: str, *, apparatus: str | None = None) -> list[dict[str, object]]:
+        """The series of runs holding ``quantity`` on an apparatus (sequence + constant
+        settings), most days first; the reference series is marked."""
+        from runlog.drift import reference
+        from runlog.drift.series import _apparatus_id
+
+        with self.engine.connect() as connection:
+            apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
+            table = reference.run_series(connection, apparatus_id)
+            chosen = reference.reference_series(connection, apparatus_id, quantity, table=table)
+            return [
+                {**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": chosen is not None and e["key"] == chosen["key"]}
+                for e in reference.series_of(connection, apparatus_id, quantity, table)
+            ]
+
+    def declare_reference(self, apparatus: str, *, sequence: str | None = None, vary: Iterable[str] = (), tolerance: float | None = None) -> None:
+        """Declare an apparatus' reference sequence, the parameters that may vary without
+        starting a new series, and the relative rounding of constant values
+        (``[reference."NAME"]`` in runlog.toml does the same at ingest)."""
+        from runlog.drift.reference import DEFAULT_TOLERANCE, Declaration, declare
+
+        if tolerance is not None and not (0 < tolerance < 1):
+            raise ConfigError("reference", f"tolerance must lie between 0 and 1, got {tolerance}")
+        with self.engine.begin() as connection:
+            declare(connection, self._apparatus_id(connection, apparatus), Declaration(sequence, frozenset(vary), DEFAULT_TOLERANCE if tolerance is None else float(tolerance)))
 
     def compare(self, run_a: str, run_b: str, figure: str = "survival", *, apparatus: str | None = None):
         """``figure`` of run A minus run B, with Newcombe's hybrid score interval (95 %).
@@ -881,8 +920,8 @@ class Catalogue:
         return _frame(rows, ["name", "unit", "kind", "min", "max", "runs"])
 
     def check_drift(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
-        """Run the drift of every quantity of every apparatus and record alarms; returns open ones."""
-        names = []
+        """Judge the reference series of every quantity of every apparatus and record
+        alarms (each once); returns the open ones."""
         with self.engine.connect() as connection:
             query = select(s.Apparatus.name, s.DailyRollup.name).join(s.Apparatus, s.Apparatus.id == s.DailyRollup.apparatus_id).distinct()
             if apparatus is not None:
@@ -892,13 +931,7 @@ class Catalogue:
             try:
                 self.drift(quantity, apparatus=apparatus_name)
             except NotFoundError:
-                # A name two kinds share in different units: look at each sequence alone.
-                with self.engine.connect() as connection:
-                    sequences = connection.execute(
-                        select(s.DailyRollup.sequence).join(s.Apparatus, s.Apparatus.id == s.DailyRollup.apparatus_id).where(and_(s.Apparatus.name == apparatus_name, s.DailyRollup.name == quantity)).distinct()
-                    ).scalars().all()
-                for sequence in sorted(sequences):
-                    self.drift(quantity, apparatus=apparatus_name, sequence=sequence)
+                continue  # a name stored in several units within one series: not judged
         return self.alarms(apparatus=apparatus)
 
     def alarms(self, *, status: str | None = "open", apparatus: str | None = None) -> list[dict[str, object]]:
@@ -908,15 +941,17 @@ class Catalogue:
         with self.engine.connect() as connection:
             return list_alarms(connection, status=status, apparatus=apparatus)
 
-    def acknowledge(self, alarm_id: int, note: str = "", *, author: str | None = None) -> int:
-        """Acknowledge an alarm; the note becomes an annotation on its day. Returns the annotation id."""
+    def acknowledge(self, alarm_id: int, note: str = "", *, author: str | None = None, accept: bool = False) -> int:
+        """Acknowledge an alarm; the note becomes an annotation on its day. With ``accept``
+        the level since the alarm's day becomes the new reference (a new baseline from that
+        day). Returns the annotation id."""
         from zoneinfo import ZoneInfo
 
         from runlog.drift.alarms import acknowledge
 
         zone = ZoneInfo(self.lab_timezone)
         with self.engine.begin() as connection:
-            return acknowledge(connection, alarm_id, note, zone, author)
+            return acknowledge(connection, alarm_id, note, zone, author, accept=accept)
 
     def what_else_changed(self, quantity: str, day: dt.date | str, *, apparatus: str | None = None, window: int = 3, top: int = 10) -> list[dict[str, object]]:
         """Suspects of a change on ``day``: setting changes, then every registered candidate
@@ -928,6 +963,20 @@ class Catalogue:
         with self.engine.connect() as connection:
             apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
             return what_else_changed(connection, apparatus_id, _as_day(day), quantity, window=window, top=top)
+
+    def suspects(self, quantity: str, day: dt.date | str, *, apparatus: str | None = None, window: int = 3, top: int = 10) -> dict[str, object]:
+        """What may explain a change of ``quantity`` on ``day``: ``notes`` of that day and
+        the day before first, then ranked ``causes`` (:meth:`what_else_changed`), then a
+        plain ``verdict`` (saying so when nothing explains it)."""
+        from zoneinfo import ZoneInfo
+
+        from runlog.drift.causes import suspects
+        from runlog.drift.series import _apparatus_id
+
+        zone = ZoneInfo(self.lab_timezone)
+        with self.engine.connect() as connection:
+            apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
+            return suspects(connection, apparatus_id, _as_day(day), quantity, zone, window=window, top=top)
 
     # --- access ----------------------------------------------------------------------
 
@@ -972,14 +1021,27 @@ class Catalogue:
         found = [v for v in versions if (v.is_current if analysis is None else v.analysis == analysis)]
         if not found:
             if not versions:
+                if apparatus is not None:
+                    elsewhere = self._apparatus_of(connection, key)
+                    if elsewhere:
+                        # The key is right and the apparatus is not: suggest apparatus, not the key typed.
+                        close = self._suggest(connection, s.Apparatus.name, apparatus)
+                        raise NotFoundError(f"run on apparatus '{apparatus}' named", key, f"it is on {_listed(elsewhere)}" + (f"; {close}" if close else ""))
                 raise NotFoundError("run", key, self._suggest(connection, s.Run.key, key))
             if analysis is not None:
                 known = ", ".join(repr(v.analysis) for v in sorted(versions, key=lambda v: v.id))
                 raise NotFoundError("analysis version", analysis, f"run '{key}' has {known}")
             raise NotFoundError("current version of run", key, f"the run is withdrawn: 'runlog restore --run {key}' brings it back")
         if len(found) > 1:
-            raise NotFoundError("single run", key, "several apparatus have a run of that name: give --apparatus")
+            names = self._apparatus_of(connection, key)
+            raise NotFoundError("single run", key, f"it is on {_listed(names)}: give the apparatus (--apparatus)")
         return found[0]
+
+    @staticmethod
+    def _apparatus_of(connection, key: str) -> list[str]:
+        """The apparatus with a current run named ``key``, in name order."""
+        query = select(s.Apparatus.name).join(s.Run, s.Run.apparatus_id == s.Apparatus.id).where(s.Run.key == key, s.Run.is_current).distinct().order_by(s.Apparatus.name)
+        return [name for (name,) in connection.execute(query)]
 
     def _apparatus_id(self, connection, name: str) -> int:
         found = connection.execute(select(s.Apparatus.id).where(s.Apparatus.name == name)).scalar()
@@ -991,9 +1053,15 @@ class Catalogue:
     def _suggest(connection, column, name: str) -> str:
         import difflib
 
-        known = [v for (v,) in connection.execute(select(column).distinct().limit(5000))]
-        close = difflib.get_close_matches(name, known, n=3)
+        known = [v for (v,) in connection.execute(select(column).distinct().limit(5000)) if v != name]
+        close = difflib.get_close_matches(name, known, n=3)  # never the name that was typed
         return f"did you mean {', '.join(repr(c) for c in close)}?" if close else ""
+
+
+def _listed(names: list[str]) -> str:
+    """``'a'``, ``'a' and 'b'``, ``'a', 'b' and 'c'``."""
+    quoted = [f"'{n}'" for n in names]
+    return quoted[0] if len(quoted) == 1 else f"{', '.join(quoted[:-1])} and {quoted[-1]}"
 
 
 def _rows_of(connection):

@@ -7,11 +7,13 @@ line on stderr and a non-zero exit code; ``--debug`` shows the traceback instead
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import functools
 import json
 import logging
 import os
+import shlex
 import sys
 import tempfile
 import textwrap
@@ -402,19 +404,23 @@ def _figure_line(name: str, figure: dict[str, Any]) -> str:
     return text + f"  ({figure['method']})"
 
 
-@cli.command()
+@cli.command("note")
 @click.argument("text")
 @click.option("--run", default=None, help="Tie the note to this run.")
-@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at).")
-@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now).")
+@click.option("--apparatus", default=None, help="Tie the note to this apparatus (with --at), or name the run's apparatus.")
+@click.option("--at", default=None, metavar="TIME", help="When (ISO; default now, or the run's start).")
 @_common
-def annotate(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
+def note(state: _State, text: str, run: str | None, apparatus: str | None, at: str | None) -> None:
     """Add a note to a run, or to an apparatus at a time."""
     if run is None and apparatus is None:
         raise click.UsageError("give --run RUN, or --apparatus A (with --at TIME)")
     with _open(state) as catalogue:
         number = catalogue.annotate(text, run=run, apparatus=apparatus, at=_date_option(at, "--at"))
-    _echo(f"annotation {number} added")
+    _echo(f"note {number} added")
+
+
+# The command's first name, kept for scripts written before it was called 'note'.
+cli.add_command(click.Command("annotate", params=note.params, callback=note.callback, help=note.help, hidden=True))
 
 
 @cli.command()
@@ -438,8 +444,14 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
     handler = logging.FileHandler(log_file or folder / "runlog-watch.log", encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     handler.addFilter(ScrubbingFilter())
+    # The same lines on the terminal: one for each file taken or refused, as it happens.
+    terminal = logging.StreamHandler(sys.stdout)
+    terminal.setFormatter(logging.Formatter("%(asctime)s %(message)s", datefmt="%H:%M:%S"))
+    terminal.addFilter(ScrubbingFilter())
     logger.addHandler(handler)
-    with _open(state) as catalogue:
+    logger.addHandler(terminal)
+    with contextlib.ExitStack() as cleanup, _open(state) as catalogue:
+        cleanup.callback(lambda: (logger.removeHandler(handler), logger.removeHandler(terminal), handler.close()))
         logger.info("catalogue %s", catalogue.url)
 
         def ingest_and_derive(paths: list[Path]) -> list:
@@ -475,12 +487,25 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
         state.db = f"sqlite:///{folder / 'demo.sqlite'}"
     start = dt.date(2026, 9, 1)
     tick = time.perf_counter()
+
+    def step(text: str) -> None:
+        # Progress on stderr, so that the summary on stdout stays what a script reads.
+        _echo(f"demo: {text} ({time.perf_counter() - tick:.0f} s)", err=True)
+
     with tempfile.TemporaryDirectory(prefix="runlog-demo-") as temporary:
+        step(f"writing {days} days of invented shot tables")
         files = write_demo_files(Path(temporary), days=days, start=start, seed=seed)
         with _open(state) as catalogue:
-            results = catalogue.ingest(files)
+            results = []
+            for number, file in enumerate(files, 1):
+                results += catalogue.ingest([file])
+                if number == 1 or number % 10 == 0 or number == len(files):
+                    step(f"ingested {number} of {len(files)} files")
             new_runs = sorted({run for r in results if r.status == "ingested" for run in r.runs})
+            if new_runs:
+                step(f"fitting the scans of the new runs")
             outcomes = catalogue.apply_rules(DEMO_RULES, runs=new_runs) if new_runs else []
+            step("checking every quantity for drift")
             alarms = catalogue.check_drift()
             counts = catalogue.counts()
             url = catalogue.url
@@ -495,14 +520,16 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
     _echo("what the invented lab did (the truth behind the files):")
     for line in SCENARIO.describe(start, days):
         _wrapped(line)
-    _echo("what runlog found (open alarms, changes in level):")
-    for alarm in (a for a in alarms if a["reason"] == "change"):
-        _wrapped(f"{alarm['apparatus']} {alarm['quantity']}: change on {alarm['date']} to {alarm['value']:.4g} ({alarm['size']:+.3g})")
-    _echo(f"try: runlog --db '{url}' runs --apparatus lattice-east")
+    # The same alarms, in the same words, as 'runlog alarms' lists right after.
+    _echo(f"what runlog found: {len(alarms)} open alarms (runlog alarms lists them)")
+    for alarm in alarms:
+        _wrapped(_alarm_line(alarm))
+    _echo("to use the demo catalogue with every other command, in this shell:")
+    _echo(f"  export RUNLOG_DB={shlex.quote(url)}")
     if any(r.status == "rejected" for r in results):
         for r in results:
             if r.status == "rejected":
-                _echo(f"rejected: {r.reason}", err=True)
+                _echo(f"refused: {r.reason}", err=True)
         sys.exit(1)
     if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():
         # Only in a terminal, where Ctrl-C stops it; scripts and pipes get the catalogue alone.
@@ -588,15 +615,15 @@ def _series_lines(made: dict[str, Any]) -> None:
         _wrapped(f"left out {left['run']} ({left['apparatus']}): {left['why']}")
 
 
-@cli.command("series")
+@cli.command("series-fits")
 @click.argument("name", required=False)
 @click.option("--history", is_flag=True, help="Every fit of NAME, newest first.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def series_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
+def series_fits_command(state: _State, name: str | None, history: bool, as_json: bool) -> None:
     """The series across runs (runlog derive --series), with their fits and member runs."""
     with _open(state) as catalogue:
-        found = catalogue.series(name, history=history)
+        found = catalogue.series_fits(name, history=history)
     if as_json:
         _json(found)
         return
@@ -627,34 +654,48 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @cli.command()
 @click.argument("quantity")
 @click.option("--apparatus", default=None, help="The apparatus (needed when several measure QUANTITY).")
-@click.option("--sequence", default=None, help="Only runs of this sequence.")
+@click.option("--sequence", default=None, help="The reference series within this sequence (with --pooled: all its runs).")
+@click.option("--series", "series_key", default=None, metavar="KEY", help="Another series than the reference one (SEQUENCE@FINGERPRINT, see --list-series).")
+@click.option("--pooled", is_flag=True, help="Every run (of --sequence) pooled, unlike runs mixed.")
+@click.option("--list-series", is_flag=True, help="List the series holding QUANTITY and stop.")
 @click.option("--since", default=None, metavar="DATE", help="First lab day (ISO).")
 @click.option("--until", default=None, metavar="DATE", help="Last lab day (ISO).")
-@click.option("--baseline-days", default=7, show_default=True, help="Days that set the control limits.")
+@click.option("--baseline-days", default=28, show_default=True, help="In-control lab days in the rolling baseline.")
 @click.option("--baseline", "baseline_range", default=None, metavar="FROM:TO", help="Lab days that set the limits instead (ISO dates).")
 @click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
-@click.option("--causes", is_flag=True, help="Rank what else changed at each change.")
+@click.option("--causes", is_flag=True, help="Notes, then suspects, at each change and each alarm day.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
-    """Daily values of a figure, control limits, changes in level and alarms."""
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
+    """Daily values of a figure for one reference series, control limits, changes in level and alarms."""
     parameters = dict(_range_option(text) for text in ranges)
     baseline = None
     if baseline_range is not None:
         first, _, last = baseline_range.partition(":")
         baseline = (_day_option(first, "--baseline"), _day_option(last, "--baseline"))
     with _open(state) as catalogue:
-        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
-        ranked = {c.date: catalogue.what_else_changed(quantity, c.date, apparatus=result.apparatus, top=5) for c in result.changes} if causes else {}
+        if list_series:
+            found = catalogue.series(quantity, apparatus=apparatus)
+            if as_json:
+                _json(found)
+            for entry in [] if as_json else found:
+                _wrapped(f"{'*' if entry['reference'] else ' '} {entry['key']}: {entry['label']}, {entry['days']} days, {entry['runs']} runs, {entry['first']} to {entry['last']}", indent="")
+            return
+        result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, series=series_key, pooled=pooled, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
+        days = sorted({c.date for c in result.changes} | {dt.date.fromisoformat(e["date"]) for e in result.excursions}) if causes else []
+        found_suspects = {day: catalogue.suspects(quantity, day, apparatus=result.apparatus, top=5) for day in days}
     if as_json:
         data = result.as_dict()
         if causes:
-            for change in data["changes"]:
-                change["causes"] = ranked[dt.date.fromisoformat(change["date"])]
+            for entry in data["changes"] + data["excursions"]:
+                found = found_suspects[dt.date.fromisoformat(entry["date"])]
+                entry["notes"] = found["notes"]
+                entry["causes"] = found["causes"]
+                entry["verdict"] = found["verdict"]
         _json(data)
         return
     unit = f" [{result.unit}]" if result.unit else ""
-    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", sequence {result.sequence}" if result.sequence else ""), indent="")
+    _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", series {result.series['label']} ({result.series['key']})" if result.series else (f", sequence {result.sequence}" if result.sequence else ", all runs pooled")), indent="")
     outside = set(result.out_of_limits)
     _echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
     for index, point in enumerate(result.points):
@@ -662,28 +703,45 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         _echo(f"  {point.date.isoformat():<10}  {point.value:>10.4g}  [{point.ci_low:>9.4g}, {point.ci_high:>9.4g}] {point.runs:>5} {point.shots:>7}{flag}")
     if outside:
         _echo("  * outside the control limits")
+    for excursion in result.excursions:
+        _wrapped(f"out of control from {excursion['date']}: {excursion['size']:+.4g}{unit}, {excursion['z']:+.1f} standard errors ({', '.join(excursion['signals'])})")
+        _print_suspects(found_suspects.get(dt.date.fromisoformat(excursion["date"])))
     for change in result.changes:
         _wrapped(f"change on {change.date.isoformat()}: {change.before:.4g} -> {change.after:.4g}{unit} ({change.method})")
-        for cause in ranked.get(change.date, []):
-            _wrapped(f"  suspect: {cause['words']}")
+        _print_suspects(found_suspects.get(change.date))
+    for setting in result.settings:
+        _wrapped(f"{setting['day']}: {setting['words']}")
     if not result.changes and len(result.points) >= 3:
         _echo("  no change in level found")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _print_suspects(found: dict[str, object] | None) -> None:
+    if found is None:
+        return
+    for note in found["notes"]:
+        _wrapped(f"  {note['kind']} {note['day']}" + (f" ({note['run']})" if note.get("run") else "") + f": {note['text']}")
+    for cause in found["causes"]:
+        _wrapped(f"  suspect: {cause['words']}")
+    _wrapped(f"  {found['verdict']}")
 
 
 @cli.command()
 @click.option("--apparatus", default=None, help="Only this apparatus.")
 @click.option("--all", "show_all", is_flag=True, help="Acknowledged alarms too.")
 @click.option("--ack", "acknowledge", type=int, default=None, metavar="ID", help="Acknowledge alarm ID.")
-@click.option("--note", default="", help="With --ack: what it was (becomes an annotation).")
+@click.option("--note", default="", help="With --ack: what it was (becomes a note on that day).")
+@click.option("--accept", is_flag=True, help="With --ack: the new level is the reference from the alarm's day on (a new baseline).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, as_json: bool) -> None:
-    """Check every quantity for drift and list the open alarms (or acknowledge one)."""
+def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: int | None, note: str, accept: bool, as_json: bool) -> None:
+    """Check the reference series of every quantity for drift and list the open alarms (or acknowledge one)."""
+    if accept and acknowledge is None:
+        raise click.UsageError("--accept needs --ack ID")
     with _open(state) as catalogue:
         if acknowledge is not None:
-            annotation = catalogue.acknowledge(acknowledge, note)
-            _echo(f"alarm {acknowledge} acknowledged (annotation {annotation})")
+            annotation = catalogue.acknowledge(acknowledge, note, accept=accept)
+            _echo(f"alarm {acknowledge} {'acknowledged, new level accepted' if accept else 'acknowledged'} (note {annotation})")
             return
         catalogue.check_drift(apparatus=apparatus)
         found = catalogue.alarms(status=None if show_all else "open", apparatus=apparatus)
@@ -694,9 +752,16 @@ def alarms(state: _State, apparatus: str | None, show_all: bool, acknowledge: in
         _echo("no open alarms")
         return
     for alarm in found:
-        size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
-        _wrapped(f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}: {alarm['reason']} to {alarm['value']:.4g}{size}, {alarm['status']}", indent="")
+        _wrapped(_alarm_line(alarm), indent="")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+def _alarm_line(alarm: dict[str, Any]) -> str:
+    """One alarm as ``runlog alarms`` and the demo's summary print it."""
+    size = "" if alarm["size"] is None else f" ({alarm['size']:+.3g})"
+    value = "" if alarm["value"] is None else f" to {alarm['value']:.4g}"
+    where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+    return f"#{alarm['id']} {alarm['date']} {alarm['apparatus']} {alarm['quantity']}{where}: {alarm['reason']}{value}{size} ({alarm['method']}), {alarm['status']}"
 
 
 @cli.command()
@@ -803,6 +868,9 @@ def export(state: _State, where: str | None, out: Path | None, file_format: str,
         _json(result.as_dict())
         return
     _echo(f"{result.out}: {result.shots} shots of {result.runs} runs, {len(result.data)} data files")
+    if result.other_versions_pinned:
+        named = sorted({e["pin"] for e in result.other_versions_pinned})
+        click.echo(f"current analysis versions exported; pin(s) {', '.join(named)} hold other versions of {len({(e['apparatus'], e['run']) for e in result.other_versions_pinned})} of these runs")
     if result.pin is not None and result.pin_changes:
         _echo(f"pin '{result.pin}' exported as pinned; newer analyses would change {len(result.pin_changes)} figures (runlog pins)")
     if result.same is not None:
@@ -934,5 +1002,11 @@ def main(argv: list[str] | None = None) -> None:
     except Exception as error:  # anything unexpected: one line unless --debug
         if debug:
             raise
+        if type(error).__module__.startswith("sqlalchemy") or isinstance(error, PermissionError):
+            # A database error: its cause in one line (read-only, busy, ...), never the SQL.
+            from runlog.store.failures import describe
+
+            _echo(f"runlog: error: {describe(error, doing='using the catalogue').message}", err=True)
+            sys.exit(1)
         _echo(f"runlog: error: {type(error).__name__}: {str(error).splitlines()[0] if str(error) else ''} (run with --debug for details)", err=True)
         sys.exit(1)

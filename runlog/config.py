@@ -34,6 +34,11 @@ Example::
     x = "wait"
     y = "bright_fraction"
 
+    [reference."lattice-east"]  # optional: the runs drift is judged on (docs/drift.md)
+    sequence = "ramsey"         # the reference sequence
+    vary = ["repetition"]       # parameters that may change within one series
+    tolerance = 0.001           # relative rounding of constant settings
+
     [time_window]             # shots stamped outside it are refused (an unset clock, a
     earliest = 2000-01-01     # corrupted page); these are the defaults, in UTC. The
     latest = 2100-01-01       # window must lie within 1900-01-01 and 2262-01-01.
@@ -72,6 +77,8 @@ class Mapping:
     apparatus_settings: dict[str, dict[str, str]] = field(default_factory=dict)
     #: ``[occupancy] threshold``: per image name, ``"*"`` for every image.
     thresholds: dict[str, float] = field(default_factory=dict)
+    #: ``[reference."NAME"]`` tables: per apparatus, sequence / vary / tolerance.
+    references: dict[str, dict[str, object]] = field(default_factory=dict)
     #: ``[time_window]``: shot times outside it are refused.
     time_window: TimeWindow = DEFAULT_TIME_WINDOW
     #: ``[figures] counting_status``: the shot statuses that count in figures.
@@ -117,7 +124,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "time_window", "image_roles"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "image_roles"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -169,10 +176,30 @@ def load_config(path: str | Path | None) -> Mapping:
         source=str(path),
         apparatus_settings=settings,
         thresholds={str(k): float(v) for k, v in thresholds.items()},
+        references=check_references(data.get("reference", {}), str(path)),
         time_window=_time_window(data.get("time_window", {}), str(path)),
         counting_status=tuple(counting),
         image_roles={str(k): v for k, v in roles.items()},
     )
+
+
+def check_references(tables: object, source: str = "<reference>") -> dict[str, dict[str, object]]:
+    """``[reference."NAME"]`` tables checked: a sequence text, a list of names, a tolerance in (0, 1)."""
+    if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
+        raise ConfigError(source, '[reference."NAME"] must be tables, one per apparatus')
+    for name, table in tables.items():
+        unknown = sorted(set(table) - {"sequence", "vary", "tolerance"})
+        if unknown:
+            raise ConfigError(source, f"[reference.\"{name}\"]: unknown key '{unknown[0]}' (known: sequence, tolerance, vary)")
+        if "sequence" in table and not isinstance(table["sequence"], str):
+            raise ConfigError(source, f"[reference.\"{name}\"] sequence must be a sequence name")
+        vary = table.get("vary", [])
+        if not isinstance(vary, list) or not all(isinstance(v, str) for v in vary):
+            raise ConfigError(source, f"[reference.\"{name}\"] vary must be a list of parameter names")
+        tolerance = table.get("tolerance", 1e-3)
+        if isinstance(tolerance, bool) or not isinstance(tolerance, (int, float)) or not 0 < tolerance < 1:
+            raise ConfigError(source, f"[reference.\"{name}\"] tolerance must be a number between 0 and 1")
+    return {str(k): dict(v) for k, v in tables.items()}
 
 
 #: The keys of an ``[apparatus."NAME"]`` table, each a quantity text.

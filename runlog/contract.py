@@ -19,7 +19,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from runlog.config import Mapping
-from runlog.errors import ContractError
+from runlog.errors import CONTROL_CHARACTERS, ContractError
 from runlog.times import DEFAULT_TIME_WINDOW, TimeWindow
 from runlog.units import check_unit
 
@@ -66,8 +66,9 @@ MAX_MEASUREMENTS_PER_FILE = 900
 #: PostgreSQL table has at most 1600 (SQLite 2000). Checked by ingest against the store.
 MAX_MEASUREMENTS = 1500
 # Control characters: never in a name (they rewrite terminal lines and logs); NUL never in
-# any text (PostgreSQL cannot store it).
-_CONTROL = r"[\x00-\x1f\x7f]"
+# any text (PostgreSQL cannot store it). The same set as errors.CONTROL_CHARACTERS, in the
+# RE2 syntax of Arrow's compute functions.
+_CONTROL = r"[\x00-\x1f\x7f-\x9f\x{2028}\x{2029}]"
 _NUL = "\x00"
 
 _NAMED = re.compile(r"^(?P<prefix>p|m)\.(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\[\]]*)\])?$")
@@ -197,8 +198,12 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         source = field.name
         if source in mapping.ignore:
             continue
-        if re.search(_CONTROL, source):
-            raise ContractError(file, "column name holds a control character", column=source.encode("unicode_escape").decode("ascii")[:80])
+        if not source.strip():
+            raise ContractError(file, "a column has an empty name", column=source)
+        if CONTROL_CHARACTERS.search(source):
+            # The message escapes it (errors.one_line); the name is refused all the same,
+            # since it would break every line that prints it.
+            raise ContractError(file, "column name holds a control character", column=source[:80])
         target = mapping.rename.get(source, source)
         if target in RESERVED or target in OPTIONAL:
             column = Column(source, "reserved" if target in RESERVED else "optional", target)
@@ -223,6 +228,8 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
                 "or map or ignore it in runlog.toml",
                 column=source,
             )
+        if not column.name:
+            raise ContractError(file, "empty name after the prefix", column=source)
         if len(column.name) > MAX_LENGTH["name"]:
             raise ContractError(file, f"name longer than {MAX_LENGTH['name']} characters", column=source[:80])
         if len(column.unit) > MAX_LENGTH["unit"]:
@@ -284,7 +291,7 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
     raw = (schema.metadata or {}).get(ANALYSIS_METADATA_KEY.encode())
     if raw is not None:
         analysis = raw.decode("utf-8", errors="replace").strip()
-        if re.search(_CONTROL, analysis):
+        if CONTROL_CHARACTERS.search(analysis):
             raise ContractError(file, "analysis name in the file's metadata holds a control character")
         if len(analysis) > MAX_LENGTH["analysis"]:
             raise ContractError(file, f"analysis name in the file's metadata is longer than {MAX_LENGTH['analysis']} characters")

@@ -12,12 +12,16 @@ from __future__ import annotations
 
 import os
 import signal
+import socket
 import subprocess
 import sys
 from collections.abc import Callable
 from pathlib import Path
 
-__all__ = ["APP", "URL_VARIABLE", "command", "environment", "serve"]
+__all__ = ["APP", "URL_VARIABLE", "command", "environment", "free_port", "serve"]
+
+#: How many ports after the asked one are tried when it is taken.
+PORT_TRIES = 20
 
 #: The Streamlit entry script inside the installed package.
 APP = Path(__file__).resolve().parent / "dashboard_app" / "app.py"
@@ -52,10 +56,33 @@ def environment(url: str | None) -> dict[str, str]:
     return {**os.environ, URL_VARIABLE: resolve_url(url)}
 
 
+def free_port(host: str, port: int, tries: int = PORT_TRIES) -> int:
+    """``port``, or the first of the next ``tries - 1`` ports nothing listens on at ``host``.
+
+    Another dashboard (a demo still serving, a colleague's) may hold the usual port; the URL
+    we print must be the one our server answers on.
+    """
+    from runlog.errors import RunlogError
+
+    for candidate in range(port, port + tries):
+        with socket.socket(socket.AF_INET6 if ":" in host else socket.AF_INET) as probe:
+            # As the server will bind: a port in TIME_WAIT is free, one with a listener is not.
+            probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            try:
+                probe.bind((host, candidate))
+            except OSError:
+                continue
+            return candidate
+    raise RunlogError(f"ports {port}-{port + tries - 1} on {host} are all in use: give a free one with --port")
+
+
 def serve(url: str | None, *, host: str = "127.0.0.1", port: int = 8501, say: Callable[[str], None] = print) -> int:
     """Run the dashboard on ``url``'s catalogue until Ctrl-C; returns the server's exit status."""
     from runlog.store.engine import redact, resolve_url
 
+    asked, port = port, free_port(host, port)
+    if port != asked:
+        say(f"port {asked} is in use (another dashboard?); using {port}")
     shown = "localhost" if host in ("127.0.0.1", "::1") else host
     say(f"runlog dashboard: http://{shown}:{port}/  (catalogue {redact(resolve_url(url))}; Ctrl-C to stop)")
     if host not in ("127.0.0.1", "localhost", "::1"):

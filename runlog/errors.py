@@ -13,11 +13,14 @@ the built-in type a caller would naturally catch::
      └── StoreError(RunlogError, RuntimeError)    the database cannot be used as asked
           └── SchemaVersionError                  the database schema is not at our head
 
-Errors keep their context as fields and build their one-line message in ``__str__``,
-so the CLI can print ``str(error)`` and the tests can assert it exactly.
+Errors keep their context as fields and build their message in ``message()``; ``__str__``
+passes it through :func:`one_line`, so every refusal is one line whatever a file's column
+names or values hold, the CLI can print ``str(error)`` and the tests can assert it exactly.
 """
 
 from __future__ import annotations
+
+import re
 
 __all__ = [
     "RunlogError",
@@ -29,11 +32,28 @@ __all__ = [
     "ExportError",
     "StoreError",
     "SchemaVersionError",
-]
+]  # the error classes; one_line and CONTROL_CHARACTERS are runlog's own helpers
+
+# C0 and C1 control characters and the Unicode line and paragraph separators: anything a
+# terminal or a log reader may take as the end of a line or as a command.
+CONTROL_CHARACTERS = re.compile("[\x00-\x1f\x7f-\x9f\u2028\u2029]")
+
+
+def one_line(text: object) -> str:
+    """``text`` as one printable line: control characters written as escapes (``\\n``,
+    ``\\x1b``, ``\\u2028``), everything else unchanged."""
+    return CONTROL_CHARACTERS.sub(lambda found: found.group().encode("unicode_escape").decode("ascii"), str(text))
 
 
 class RunlogError(Exception):
     """Base of every error runlog raises on purpose."""
+
+    def message(self) -> str:
+        """The message from the error's fields (subclasses); may hold raw input text."""
+        return super().__str__()
+
+    def __str__(self) -> str:
+        return one_line(self.message())
 
 
 class ContractError(RunlogError, ValueError):
@@ -51,7 +71,7 @@ class ContractError(RunlogError, ValueError):
         self.column = column
         self.row = row
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         where = []
         if self.column is not None:
             where.append(f"column '{self.column}'")
@@ -69,7 +89,7 @@ class ConfigError(RunlogError, ValueError):
         self.file = str(file)
         self.reason = reason
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         return f"{self.file}: {self.reason}"
 
 
@@ -82,7 +102,7 @@ class FitError(RunlogError, ValueError):
         self.reason = reason
         self.run = run
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         where = f"run '{self.run}': " if self.run else ""
         return f"{where}{self.kind} fit failed: {self.reason}"
 
@@ -96,7 +116,7 @@ class FilterError(RunlogError, ValueError):
         self.reason = reason
         self.position = position
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         if self.position is None:
             return f"filter: {self.reason}"
         return f"filter, at position {self.position}: {self.reason}"
@@ -111,7 +131,7 @@ class NotFoundError(RunlogError, LookupError):
         self.name = name
         self.hint = hint
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         tail = f" ({self.hint})" if self.hint else ""
         return f"no {self.what} '{self.name}'{tail}"
 
@@ -124,7 +144,7 @@ class ExportError(RunlogError, FileExistsError):
         self.folder = str(folder)
         self.reason = reason
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         return f"{self.folder}: {self.reason}"
 
 
@@ -142,7 +162,7 @@ class SchemaVersionError(StoreError):
         self.expected = expected
         self.reason = reason  # set when the catalogue cannot be upgraded at all
 
-    def __str__(self) -> str:
+    def message(self) -> str:
         if self.reason:
             return f"catalogue {self.url} is at schema revision {self.found or 'none'}, {self.reason}; it was not upgraded"
         return (

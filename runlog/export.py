@@ -90,6 +90,8 @@ class ExportResult:
     #: The pin exported (None: a filter), and what newer analyses would change in it.
     pin: str | None = None
     pin_changes: tuple[dict[str, object], ...] = field(default=())
+    #: For an export by filter: pins holding another analysis version of exported runs.
+    other_versions_pinned: tuple[dict[str, object], ...] = field(default=())
 
     @property
     def same(self) -> bool | None:
@@ -103,6 +105,8 @@ class ExportResult:
         if self.pin is not None:
             out["pin"] = self.pin
             out["pin_changes"] = list(self.pin_changes)
+        elif self.other_versions_pinned:
+            out["other_versions_pinned"] = list(self.other_versions_pinned)
         return out
 
 
@@ -385,7 +389,15 @@ def _headline(figures: pa.Table) -> list[dict[str, object]]:
 
 def _readme(title: str, where: str, shots: pa.Table, runs: pa.Table, headline: list[dict[str, object]], zone: ZoneInfo, files: list[tuple[str, str]], pinned: dict[str, object] | None = None) -> str:
     lines = [f"# {title}", "", "Shots selected from a runlog catalogue with the filter", "", f"    {where}", ""]
-    if pinned is not None:
+    if pinned is not None and pinned.get("other_versions_pinned"):
+        held = pinned["other_versions_pinned"]
+        names = sorted({e["pin"] for e in held})
+        lines += [
+            f"These runs follow their current analysis versions; the pin(s) {', '.join(names)} hold other versions of "
+            f"{len({(e['apparatus'], e['run']) for e in held})} of them (`runlog export --pin NAME` exports those as pinned).",
+            "",
+        ]
+    if pinned is not None and "name" in pinned:
         lines += [
             f"as pinned under '{pinned['name']}' on {pinned['created_at']}: the same shots, analysis versions and figure "
             "records as then, whatever the catalogue holds now.",
@@ -455,6 +467,13 @@ def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: P
     ]
     lines += [f"{_toml_string(name)} = {_toml_string(digest)}" for name, digest in sorted(data.items())]
     return "\n".join(lines) + "\n"
+
+
+def _umask() -> int:
+    """The process's umask (read by setting it and putting it back at once)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _holds_files(path: Path) -> bool:
@@ -566,6 +585,9 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
     new_parents = [folder for folder in (out.parent, *out.parent.parents) if not folder.exists()]
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    # mkdtemp makes a private folder (700); the package is shared like any folder the user
+    # makes: the modes their umask gives (group-readable under the usual 022 or 002).
+    staging.chmod(0o777 & ~_umask())
     suffix = "parquet" if format == "parquet" else "csv"
     # The shots file is written (and hashed) on a second thread while the runs and
     # figures are read: Arrow's writer and the reads both leave the interpreter lock.
@@ -623,8 +645,10 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
                 "source_files": sources,
             },
         }
-        if pinned is not None:
+        if "name" in pinned:
             manifest["provenance"]["pin"] = pinned
+        elif pinned["other_versions_pinned"]:
+            manifest["provenance"]["other_versions_pinned"] = pinned["other_versions_pinned"]
         (staging / MANIFEST).write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
         headline = _headline(figures_table)
         files = [(f"{name}.{suffix}", description) for name, _, _, _, _, description in tables]
@@ -641,7 +665,9 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
                 break
         raise
     background.shutdown(wait=True)
-    return ExportResult(out, shots_table.num_rows, runs_table.num_rows, data, created, pin=pin, pin_changes=tuple(pinned["changes"]) if pinned else ())
+    return ExportResult(
+        out, shots_table.num_rows, runs_table.num_rows, data, created, pin=pin, pin_changes=tuple(pinned.get("changes", ())), other_versions_pinned=tuple(pinned.get("other_versions_pinned", ()))
+    )
 
 
 def _read(connection, where: str | None, with_occupancy: bool, selected: Callable[[pa.Table], None] | None = None, pin: str | None = None):
@@ -682,6 +708,11 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
         for name, values in occupancy_columns.items():
             shots_table = shots_table.append_column(name, values)
     sources = _source_files(connection, run_order, runs_table)
+    if pinned is None:
+        from runlog.pins import other_versions_pinned
+
+        # Not in the data files: a fresh export names the pins it now differs from.
+        pinned = {"other_versions_pinned": other_versions_pinned(connection, run_order)}
     return selection, shots_table, runs_table, figures_table, images_table, sources, zone, pinned
 
 
@@ -743,4 +774,4 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
         overwrite=True,
     )
     changed = tuple(sorted(name for name in set(previous) | set(result.data) if previous.get(name) != result.data.get(name)))
-    return ExportResult(result.out, result.shots, result.runs, result.data, result.created, previous, changed, result.pin, result.pin_changes)
+    return ExportResult(result.out, result.shots, result.runs, result.data, result.created, previous, changed, result.pin, result.pin_changes, result.other_versions_pinned)

@@ -23,17 +23,17 @@ import pandas as pd  # pyarrow imports it anyway on its first conversion
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
-from sqlalchemy import insert
+from sqlalchemy import func, insert, select
 from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
 from runlog.contract import FROM_COUNTS, MAX_MEASUREMENTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
-from runlog.errors import ContractError
+from runlog.errors import ContractError, one_line
 from runlog.figures.shot_level import ShotSums
-from runlog.store.bulk import Writer, open_writer
+from runlog.store.bulk import Writer, open_writer, short_write
 from runlog.store.failures import describe
-from runlog.store.schema import IngestLogEntry, measurement_column
+from runlog.store.schema import IngestLogEntry, Measurement, measurement_column
 from runlog.units import conversion
 
 __all__ = ["IngestResult", "ingest_files", "expand_paths", "file_sha256", "BATCH_ROWS"]
@@ -450,19 +450,63 @@ class _Catalogue:
     def measurement(self, name: str, unit: str, column: str) -> tuple[int, str]:
         if name not in self.measurements:
             rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
-            if not rows:
-                known = int(_one(self.writer, "SELECT COUNT(*) FROM measurements", {}) or 0)
-                if known >= MAX_MEASUREMENTS:
-                    raise ContractError(self.file, f"the catalogue already holds {known} measurement names, the most it can (each is a column of the store): a new one cannot be added", column=column)
-                self.writer.execute("INSERT INTO measurements (name, unit) VALUES (:name, :unit)", {"name": name, "unit": unit})
-                rows = self.writer.rows("SELECT id, unit FROM measurements WHERE name = :name", {"name": name})
-                real = "REAL" if self.writer.dialect == "sqlite" else "DOUBLE PRECISION"
-                self.writer.execute(f"ALTER TABLE shot_measurements ADD COLUMN {measurement_column(rows[0][0])} {real}")
+            if not rows:  # _add_measurements made every name of the file before
+                raise ContractError(self.file, f"measurement '{name}' is not in the catalogue (removed while this file was written?); ingest the file again", column=column)
             mid, stored_unit = rows[0]
             if conversion(unit, stored_unit) is None:
                 raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of measurement '{name}'", column=column)
             self.measurements[name] = (int(mid), stored_unit)
         return self.measurements[name]
+
+
+#: New measurement names made per schema transaction (one ALTER TABLE with a clause each).
+_NAMES_PER_CHANGE = 50
+
+
+def _add_measurements(engine: Engine, layout: Layout) -> None:
+    """Make the file's new measurement names and their columns of ``shot_measurements``,
+    ahead of its data transaction, in short transactions of their own.
+
+    A new column needs the table to itself for a moment; inside the data transaction it
+    would keep every dashboard reader of measurements waiting until the whole file is
+    written, and a reader idle in a transaction would block the ingest without bound
+    (:func:`runlog.store.bulk.short_write` bounds the wait). A name made for a file that is
+    then refused stays, with no values: harmless, and the next file of it needs no change.
+    """
+    wanted = {column.name: (column.unit, column.source) for column in layout.by_role("measurement")}
+    if not wanted:
+        return
+    table = Measurement.__table__
+    with engine.connect() as connection:
+        known = set(connection.execute(select(table.c.name).where(table.c.name.in_(list(wanted)))).scalars())
+    missing = [name for name in wanted if name not in known]
+    real = "REAL" if engine.dialect.name == "sqlite" else "DOUBLE PRECISION"
+    for start in range(0, len(missing), _NAMES_PER_CHANGE):
+        names = missing[start : start + _NAMES_PER_CHANGE]
+
+        def make(connection, names=names) -> None:
+            present = set(connection.execute(select(table.c.name).where(table.c.name.in_(names))).scalars())
+            count = connection.execute(select(func.count()).select_from(table)).scalar_one()
+            columns = []
+            for name in names:
+                if name in present:  # another writer made it meanwhile
+                    continue
+                unit, source = wanted[name]
+                if count >= MAX_MEASUREMENTS:
+                    raise ContractError(layout.file, f"the catalogue already holds {count} measurement names, the most it can (each is a column of the store): a new one cannot be added", column=source)
+                mid = connection.execute(insert(table).values(name=name, unit=unit).returning(table.c.id)).scalar_one()
+                columns.append(measurement_column(mid))
+                count += 1
+            if not columns:
+                return
+            if engine.dialect.name == "postgresql":
+                # One statement for all: a partitioned table changes each month once.
+                connection.exec_driver_sql("ALTER TABLE shot_measurements " + ", ".join(f"ADD COLUMN {c} {real}" for c in columns))
+                return
+            for column in columns:  # SQLite adds one column per statement
+                connection.exec_driver_sql(f"ALTER TABLE shot_measurements ADD COLUMN {column} {real}")
+
+        short_write(engine, make, what=f"adding {len(names)} measurement column(s) for {layout.file}", table="shot_measurements")
 
 
 def _to_stored(value: float, unit: str, stored_unit: str) -> float:
@@ -1034,6 +1078,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         plan.finish()
         read_s = time.perf_counter() - tick
         tick = time.perf_counter()
+        _add_measurements(engine, layout)
         writer = open_writer(engine, plan.months)
         try:
             if writer.rows("SELECT 1 FROM ingest_log WHERE sha256 = :h AND status = 'ingested'", {"h": sha}):
@@ -1077,4 +1122,13 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
 def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None) -> list[IngestResult]:
     """Ingest every file (folders give their ``*.parquet``); one result per file, in order."""
     mapping = mapping or Mapping()
-    return [ingest_file(engine, path, mapping, progress, after_write) for path in expand_paths(paths)]
+    results = []
+    for raw in paths:
+        files = expand_paths([raw])
+        if not files:
+            # A folder without shot tables is a mistake worth saying so (a wrong day's
+            # folder, files not yet copied): a refusal of the folder, never a silent success.
+            results.append(IngestResult(str(raw), "rejected", reason=one_line(f"{raw}: no *.parquet files in this folder"), cause="contract"))
+            continue
+        results.extend(ingest_file(engine, path, mapping, progress, after_write) for path in files)
+    return results

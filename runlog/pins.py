@@ -28,7 +28,7 @@ from runlog.errors import NotFoundError, StoreError
 from runlog.impact import sigma
 from runlog.selection import Selection, select_on, select_versions
 
-__all__ = ["PinnedRun", "Pin", "make_pin", "pins", "load_pin", "changes", "withdrawn_since", "pinned_selection", "run_fields", "thawed", "pack_ids", "unpack_ids"]
+__all__ = ["PinnedRun", "Pin", "make_pin", "pins", "load_pin", "changes", "withdrawn_since", "other_versions_pinned", "pinned_selection", "run_fields", "thawed", "pack_ids", "unpack_ids"]
 
 
 def pack_ids(ids: np.ndarray) -> bytes:
@@ -277,6 +277,24 @@ def withdrawn_since(connection, pin: Pin) -> list[dict[str, object]]:
         if row[3]:
             out.append({"run": row[0], "apparatus": row[1], "analysis": row[2]})
     return out
+
+
+def other_versions_pinned(connection, run_ids: list[int]) -> list[dict[str, object]]:
+    """For run versions about to be exported by a filter: the pins that hold another
+    analysis version of the same runs (what a fresh export differs from), by pin and run."""
+    out = []
+    for start in range(0, len(run_ids), 5000):
+        chunk = ",".join(str(int(r)) for r in run_ids[start : start + 5000])
+        out += [
+            {"pin": pin, "run": key, "apparatus": apparatus, "pinned_analysis": pinned, "exported_analysis": exported}
+            for pin, key, apparatus, pinned, exported in _rows(
+                connection,
+                "SELECT p.name, r.key, a.name, old.analysis, r.analysis FROM runs r JOIN apparatus a ON a.id = r.apparatus_id "
+                "JOIN runs old ON old.apparatus_id = r.apparatus_id AND old.key = r.key AND old.id <> r.id "
+                f"JOIN pin_runs pr ON pr.run_id = old.id JOIN pins p ON p.id = pr.pin_id WHERE r.id IN ({chunk})",
+            )
+        ]
+    return sorted(out, key=lambda e: (e["pin"], e["apparatus"], e["run"]))
 
 
 def pins(connection) -> list[dict[str, object]]:

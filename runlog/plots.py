@@ -39,6 +39,7 @@ INK = "#23395b"
 FAINT = "#9aa7b8"
 LIMIT = "#7f7f7f"
 FINDING = "#b3261e"
+EWMA = "#2f6fb3"  # the smoothed line and its band
 WIDTH, HEIGHT = 560, 300
 # Raw shots are drawn under the means only up to this many (Vega-Lite inlines the data).
 MAX_RAW_SHOTS = 5000
@@ -117,10 +118,19 @@ def drift_chart(drift: Drift, *, title: str | None = None) -> alt.LayerChart:
     ]
     lower, upper = drift.limits.get("lower"), drift.limits.get("upper")
     if isinstance(lower, list) and isinstance(upper, list) and len(lower) == len(points):
-        limits = pd.DataFrame({"day": list(points["day"]) * 2, "limit": list(lower) + list(upper), "side": ["lower"] * len(lower) + ["upper"] * len(upper)})
+        # The limits of the daily points: centre +- the day limit of each day's own sigma.
+        limits = pd.DataFrame({"day": list(points["day"]) * 2, "limit": list(lower) + list(upper), "side": ["lower"] * len(lower) + ["upper"] * len(upper)}).dropna()
         layers.append(alt.Chart(limits).mark_line(color=LIMIT, strokeDash=[4, 3], interpolate="step-after").encode(x=x, y="limit:Q", detail="side:N"))
-    if isinstance(drift.limits.get("center"), (int, float)):
-        layers.append(alt.Chart(pd.DataFrame({"center": [float(drift.limits["center"])]})).mark_rule(color=LIMIT, strokeWidth=0.8).encode(y="center:Q"))
+    centre = drift.limits.get("centre")
+    if isinstance(centre, list) and len(centre) == len(points):
+        line = pd.DataFrame({"day": points["day"], "centre": centre}).dropna()
+        layers.append(alt.Chart(line).mark_line(color=LIMIT, strokeWidth=0.8, interpolate="step-after").encode(x=x, y="centre:Q"))
+    ewma, ewma_lower, ewma_upper = (drift.limits.get(k) for k in ("ewma", "ewma_lower", "ewma_upper"))
+    if all(isinstance(v, list) and len(v) == len(points) for v in (ewma, ewma_lower, ewma_upper)):
+        # The EWMA line with its own, narrower limits: never the EWMA's limits over the days.
+        smooth = pd.DataFrame({"day": points["day"], "ewma": ewma, "ewma_low": ewma_lower, "ewma_high": ewma_upper}).dropna()
+        layers.append(alt.Chart(smooth).mark_area(color=EWMA, opacity=0.12, interpolate="step-after").encode(x=x, y="ewma_low:Q", y2="ewma_high:Q"))
+        layers.append(alt.Chart(smooth).mark_line(color=EWMA, strokeWidth=1.2).encode(x=x, y="ewma:Q"))
     if drift.changes:
         days = [p.date for p in drift.points]
         edges = [days[0], *[c.date for c in drift.changes], days[-1]]
@@ -135,10 +145,12 @@ def drift_chart(drift: Drift, *, title: str | None = None) -> alt.LayerChart:
         layers.append(alt.Chart(segments).mark_line(color=FINDING, strokeWidth=1.5).encode(x=x, y="level:Q", detail="segment:N"))
         rules = pd.DataFrame({"day": [c.date.isoformat() for c in drift.changes]})
         layers.append(alt.Chart(rules).mark_rule(color=FINDING, strokeDash=[2, 2]).encode(x=x))
-    heading = title or f"{drift.quantity} on {drift.apparatus}" + (f", sequence {drift.sequence}" if drift.sequence else "")
-    notes = [f"{len(drift.points)} lab days; bars: 95 % intervals"]
+    heading = title or f"{drift.quantity} on {drift.apparatus}"
+    notes = [f"series {drift.series['label']}" if drift.series else (f"sequence {drift.sequence}, all runs pooled" if drift.sequence else "all runs pooled")]
+    notes.append(f"{len(drift.points)} lab days; bars: 95 % intervals")
     if drift.limits.get("method"):
-        notes.append(f"dashed: control limits, {drift.limits['method']}")
+        notes.append("dashed: limits of the daily values; shaded: limits of the EWMA line (blue)")
+        notes.append(str(drift.limits["method"]))
     if drift.changes:
         notes.append("red: changes in level, " + ", ".join(f"{c.date.isoformat()} {_format(c.before)} → {_format(c.after)}" for c in drift.changes))
     return alt.layer(*layers).properties(width=WIDTH, height=HEIGHT, title=alt.TitleParams(heading, subtitle=notes, anchor="start"))

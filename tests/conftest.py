@@ -20,8 +20,17 @@ import pytest
 from sqlalchemy.engine import make_url
 
 import pgserver
+from hypothesis import settings as hypothesis_settings
 
 BACKENDS = ["sqlite", "postgresql"]
+
+# Hypothesis runs the same examples on every run and keeps no example database: a failure
+# found once is not replayed from a hidden folder, and CI is deterministic. The wider random
+# runs are tests of their own (marked slow, each with a fixed seed); RUNLOG_RANDOM=1 makes
+# every property test draw fresh random examples, for an exploratory run by hand.
+hypothesis_settings.register_profile("runlog", derandomize=True, database=None, print_blob=True)
+hypothesis_settings.register_profile("random", derandomize=False, database=None, print_blob=True)
+hypothesis_settings.load_profile("random" if os.environ.get("RUNLOG_RANDOM") == "1" else "runlog")
 
 
 @pytest.fixture(scope="session")

@@ -22,6 +22,8 @@ def _drift() -> Drift:
         quantity="fill_fraction", apparatus="bench-a", unit="", sequence=None, points=points,
         limits={"center": 0.5, "method": "ewma"}, changes=[DriftChange(points[3].date, 3, 0.5, 0.4, "cusum")],
         counting=True, out_of_limits=[3, 4, 5],
+        series={"key": "loading@0a1b2c3d", "label": "loading (lattice_depth=65 uK)"},
+        settings=[{"day": points[3].date.isoformat(), "noted": False, "words": "setting changed without a note: lattice_depth 65 -> 55"}],
     )
 
 
@@ -50,13 +52,15 @@ def test_the_same_findings_recorded_at_once_by_two_writers_give_one_alarm_each(c
     assert "error" not in outcome, outcome.get("error")
     assert [(a["date"], a["reason"]) for a in outcome["alarms"]] == [(a["date"], a["reason"]) for a in mine]
     assert [a["id"] for a in outcome["alarms"]] == [a["id"] for a in mine]
-    assert len(catalogue.alarms(status=None)) == len(mine) == 2  # the first day of the excursion and the change
+    assert len(catalogue.alarms(status=None)) == len(mine) == 2  # the first day of the excursion and the unnoted setting change
 
 
 def test_an_acknowledged_alarm_stays_acknowledged_when_found_again(catalogue, make_file):
     catalogue.ingest(make_file(runs={"r1": 4}))
     with catalogue.engine.begin() as connection:
         [limit, change] = alarms.record(connection, _drift())
+    assert (limit["reason"], change["reason"]) == ("limit", "setting")
+    assert limit["series"] == {"key": "loading@0a1b2c3d", "sequence": "loading", "fingerprint": "0a1b2c3d", "label": "loading (lattice_depth=65 uK)"}
     catalogue.acknowledge(change["id"], "lattice realigned")
     with catalogue.engine.begin() as connection:
         again = alarms.record(connection, _drift())

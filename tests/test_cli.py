@@ -115,6 +115,17 @@ def test_ingest_of_a_folder_and_a_missing_file(db_url, files, tmp_path):
     ]
 
 
+def test_ingest_of_an_empty_folder_is_a_one_line_refusal(db_url, tmp_path, capsys):
+    empty = tmp_path / "2026-03-09"
+    empty.mkdir()
+    (empty / "notes.txt").write_text("no shot tables here")
+    code, out, err = run_main(capsys, "--db", db_url, "ingest", str(empty))
+    assert code == 1 and err == ""
+    assert out.splitlines() == [f"rejected         {empty}: no *.parquet files in this folder"]
+    code, out, _ = run_main(capsys, "--db", db_url, "ingest", str(empty), "--json")
+    assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "rejected", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet files in this folder"}]
+
+
 # --- runs and show ------------------------------------------------------------------------
 
 
@@ -239,15 +250,31 @@ def test_shots_with_a_limit_and_no_matching_run_is_an_empty_result(db_url, files
     assert (code, json.loads(out), err) == (0, [], "")
 
 
+def test_a_run_key_on_two_apparatus_lists_them_and_a_wrong_apparatus_is_not_answered_with_the_key(db_url, tmp_path, capsys):
+    for apparatus in ("lattice-east", "tweezer-west"):
+        pq.write_table(shot_table({"20260302-07": 4}, apparatus=apparatus, start=DAY), tmp_path / f"{apparatus}.parquet")
+    assert invoke("--db", db_url, "ingest", str(tmp_path)).exit_code == 0
+    code, out, err = run_main(capsys, "--db", db_url, "show", "20260302-07")
+    assert (code, out) == (1, "")
+    assert err == "runlog: error: no single run '20260302-07' (it is on 'lattice-east' and 'tweezer-west': give the apparatus (--apparatus))\n"
+    code, _, err = run_main(capsys, "--db", db_url, "show", "20260302-07", "--apparatus", "lattice-est")
+    assert code == 1
+    assert err == "runlog: error: no run on apparatus 'lattice-est' named '20260302-07' (it is on 'lattice-east' and 'tweezer-west'; did you mean 'lattice-east'?)\n"
+    code, out, _ = run_main(capsys, "--db", db_url, "show", "20260302-07", "--apparatus", "tweezer-west", "--json")
+    assert code == 0 and json.loads(out)["apparatus"] == "tweezer-west"
+
+
 # --- annotate ---------------------------------------------------------------------------
 
 
-def test_annotate_a_run_and_an_apparatus_at_a_time(db_url, files):
+def test_note_on_a_run_and_on_an_apparatus_at_a_time(db_url, files):
     assert invoke("--db", db_url, "ingest", str(files["east"])).exit_code == 0
-    first = invoke("--db", db_url, "annotate", "--run", "r1", "MOT beam realigned")
+    first = invoke("--db", db_url, "note", "--run", "r1", "MOT beam realigned")
+    # 'annotate' is the command's first name, kept as a hidden alias for old scripts.
     second = invoke("--db", db_url, "annotate", "--apparatus", "lattice-east", "--at", "2026-03-03T12:30:00+00:00", "lattice laser swapped")
     assert (first.exit_code, second.exit_code) == (0, 0)
-    assert first.stdout == "annotation 1 added\n" and second.stdout == "annotation 2 added\n"
+    assert first.stdout == "note 1 added\n" and second.stdout == "note 2 added\n"
+    assert "annotate" not in invoke("--help").stdout and "note" in invoke("--help").stdout
     with runlog.open(db_url) as catalogue:
         notes = catalogue.annotations()
     rows = [(r.apparatus, None if pd.isna(r.run) else r.run, r.at, r.text) for r in notes.itertuples(index=False)]
@@ -257,8 +284,8 @@ def test_annotate_a_run_and_an_apparatus_at_a_time(db_url, files):
     ]
 
 
-def test_annotate_without_run_or_apparatus_is_a_usage_error(db_url):
-    result = invoke("--db", db_url, "annotate", "a note about nothing")
+def test_note_without_run_or_apparatus_is_a_usage_error(db_url):
+    result = invoke("--db", db_url, "note", "a note about nothing")
     assert result.exit_code == 2
     assert "Error: give --run RUN, or --apparatus A (with --at TIME)" in result.stderr
 
@@ -290,7 +317,7 @@ def test_db_before_or_after_the_command_and_from_the_environment(db_url, files, 
 def test_password_in_the_url_is_never_printed(capsys, tmp_path):
     path = tmp_path / "a.parquet"
     pq.write_table(shot_table({"r1": 3}), path)
-    for args in (["init"], ["runs"], ["runs", "--json"], ["show", "r1"], ["ingest", str(path), "--json"], ["annotate", "--run", "r1", "note"]):
+    for args in (["init"], ["runs"], ["runs", "--json"], ["show", "r1"], ["ingest", str(path), "--json"], ["note", "--run", "r1", "a note"]):
         code, out, err = run_main(capsys, "--db", SECRET_URL, *args)
         assert code == 1, args
         assert "s3cret" not in out + err, args
@@ -329,7 +356,7 @@ def test_every_command_has_help_text():
         assert " ".join(first_line.split()) in " ".join(result.stdout.split()), name
     result = invoke("--help")
     assert result.exit_code == 0
-    assert all(name in result.stdout for name in cli.commands)
+    assert all(name in result.stdout for name, command in cli.commands.items() if not command.hidden)
 
 
 # --- the installed console script ----------------------------------------------------------

@@ -36,7 +36,7 @@ from runlog.dashboard import APP, URL_VARIABLE, command, environment
 from runlog.demo import DEMO_RULES, write_demo_files
 from runlog.derive import fit_curve
 
-FIRST_DAY = "2026-09-07"
+FIRST_DAY = "2026-09-01"
 LAST_DAY = dt.date(2026, 9, 11)
 CHANGE_DAY = "2026-09-10"  # the demo scenario's planted fill-fraction drop on tweezer-west
 
@@ -66,7 +66,7 @@ def _build(db_url: str, files: list[Path], monkeypatch):
 
 @pytest.fixture
 def lab(db_url, demo_files, monkeypatch):
-    """The demo catalogue at ``db_url`` (five lab days and one refused file), fitted and
+    """The demo catalogue at ``db_url`` (eleven lab days and one refused file), fitted and
     checked for drift, handed to the app."""
     yield from _build(db_url, demo_files, monkeypatch)
 
@@ -150,6 +150,22 @@ def test_launcher_binds_to_localhost_and_hands_the_url_over_in_the_environment()
     assert "--server.port=9000" in command("0.0.0.0", 9000)
 
 
+def test_a_port_in_use_is_detected_and_the_next_free_one_taken():
+    import socket
+
+    from runlog.dashboard import free_port
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        chosen = free_port("127.0.0.1", port)
+        assert chosen != port and port < chosen < port + 20
+        with pytest.raises(runlog.RunlogError, match=rf"^ports {port}-{port} on 127.0.0.1 are all in use: give a free one with --port$"):
+            free_port("127.0.0.1", port, tries=1)
+    assert free_port("127.0.0.1", port) == port  # closed again: free
+
+
 # --- overview -------------------------------------------------------------------------------
 
 
@@ -160,9 +176,10 @@ def test_overview_shows_the_latest_lab_day_open_alarms_and_ingest(lab):
     metrics = iter(at.metric)
     for apparatus in ("lattice-east", "tweezer-west"):
         for name in ("fill_fraction", "survival", "coherence_time", "contrast"):
-            point = lab.drift(name, apparatus=apparatus, since=LAST_DAY, until=LAST_DAY, record_alarms=False).points[-1]
+            # The card shows the reference series' point of the latest lab day, if it has one.
+            today = [p for p in lab.drift(name, apparatus=apparatus, record_alarms=False).points if p.date == LAST_DAY]
             unit = " µs" if name == "coherence_time" else ""
-            assert next(metrics).value == value_text(point.value, point.stderr) + unit, (apparatus, name)
+            assert next(metrics).value == (value_text(today[0].value, today[0].stderr) + unit if today else "–"), (apparatus, name)
 
     runs = table(at, "run", "sequence", "fill fraction", index=0)  # one per apparatus: lattice-east first
     expected = lab.runs(apparatus="lattice-east", since=LAST_DAY).sort_values("started")
@@ -177,7 +194,7 @@ def test_overview_shows_the_latest_lab_day_open_alarms_and_ingest(lab):
 
     alarms = table(at, "id", "quantity", "reason")
     assert sorted(alarms["id"]) == sorted(a["id"] for a in lab.alarms())
-    assert {"tweezer-west", CHANGE_DAY, "change"} <= set(alarms.query("quantity == 'fill_fraction'").stack())
+    assert {"tweezer-west", CHANGE_DAY, "limit"} <= set(alarms.query("quantity == 'fill_fraction'").stack())
 
     last_in = lab.ingest_log(status="ingested").iloc[0]
     assert f"**last file in**: `{Path(last_in['file']).name}`" in [m.value for m in at.markdown]
@@ -218,15 +235,15 @@ def test_drift_page_follows_its_widgets(lab):
     assert [c["spec"]["title"]["text"] for c in shown] == ["fill fraction: lattice-east", "survival: lattice-east", "coherence time: lattice-east"]
     for chart in shown:  # no shot leaves the server for this page: one row per lab day at most
         for data in chart["layers"].values():
-            assert data is None or (len(data) <= 10 and "shot" not in data.columns)
+            assert data is None or (len(data) <= 2 * 11 and "shot" not in data.columns)
     expected = lab.drift("fill_fraction", apparatus="lattice-east", record_alarms=False)
     points = shown[0]["layers"]["daily values"]
     assert list(points["day"]) == [p.date.isoformat() for p in expected.points]
     np.testing.assert_allclose(points["value"], [p.value for p in expected.points], rtol=1e-12)
     np.testing.assert_allclose(points[["ci_low", "ci_high"]].to_numpy(), [[p.ci_low, p.ci_high] for p in expected.points], rtol=1e-12)
     limits = shown[0]["layers"]["control limits"]
-    np.testing.assert_allclose(limits.query("limit == 'lower'")["bound"], expected.limits["lower"], rtol=1e-12)
-    np.testing.assert_allclose(limits.query("limit == 'upper'")["bound"], expected.limits["upper"], rtol=1e-12)
+    np.testing.assert_allclose(limits.query("limit == 'lower'")["bound"], np.array(expected.limits["lower"], dtype=float), rtol=1e-12)
+    np.testing.assert_allclose(limits.query("limit == 'upper'")["bound"], np.array(expected.limits["upper"], dtype=float), rtol=1e-12)
     axis = shown[2]["spec"]["layer"][-1]["encoding"]
     assert axis["y"]["title"] == "coherence time [µs]" and axis["x"]["axis"]["title"] == "lab day (UTC)"
     assert shown[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "fill fraction (dimensionless)"
@@ -253,14 +270,14 @@ def test_drift_page_follows_its_widgets(lab):
     at.selectbox(key="drift-sequence-tweezer-west").set_value("loading").run()
     expected = lab.drift("fill_fraction", apparatus="tweezer-west", sequence="loading", record_alarms=False)
     np.testing.assert_allclose(charts(at)[0]["layers"]["daily values"]["value"], [p.value for p in expected.points], rtol=1e-12)
-    assert any(i.value.startswith("No coherence time") for i in at.info)  # Ramsey runs are another sequence
+    assert any("coherence_time" in e.value and "loading" in e.value for e in at.error)  # Ramsey runs are another sequence
     at.selectbox(key="drift-sequence-tweezer-west").set_value("all sequences")
     at.multiselect(key="drift-filter-tweezer-west").set_value(["lattice_depth"]).run()
     slider = at.slider(key="drift-range-tweezer-west-lattice_depth")
     assert slider.label == "lattice depth [µK]" and slider.value == (65.0, 75.0)
     slider.set_value((65.0, 70.0)).run()
     expected = lab.drift("fill_fraction", apparatus="tweezer-west", parameters={"lattice_depth": (65.0, 70.0)}, record_alarms=False)
-    everything = lab.drift("fill_fraction", apparatus="tweezer-west", record_alarms=False)
+    everything = lab.drift("fill_fraction", apparatus="tweezer-west", pooled=True, record_alarms=False)
     shown = charts(at)[0]["layers"]["daily values"]
     np.testing.assert_allclose(shown["value"], [p.value for p in expected.points], rtol=1e-12)
     assert sum(shown["runs"]) < sum(p.runs for p in everything.points)
@@ -269,6 +286,7 @@ def test_drift_page_follows_its_widgets(lab):
     assert list(charts(at)[0]["layers"]["daily values"]["day"]) == ["2026-09-08", "2026-09-09"]
 
     # Any stored figure can be a panel.
+    at.date_input(key="drift-days-tweezer-west").set_value((dt.date.fromisoformat(FIRST_DAY), LAST_DAY))
     at.multiselect(key="drift-quantities-tweezer-west").set_value(["contrast"]).run()
     (only,) = charts(at)
     assert only["spec"]["title"]["text"] == "contrast: tweezer-west"
@@ -327,6 +345,16 @@ def test_run_detail_draws_the_fit_over_the_shots_and_the_site_maps(recent):
         np.testing.assert_allclose(sites["value"], successes[trials > 0] / trials[trials > 0], rtol=1e-12)
         assert list(sites["row"]) == list(np.flatnonzero(trials > 0) // 10)
     assert len(table(at, "shot", "status")) == lab.run(key, apparatus="lattice-east").shots
+
+
+def test_a_run_page_link_to_an_unknown_run_says_so(recent):
+    at = AppTest.from_file(str(APP), default_timeout=60)
+    at.query_params["apparatus"] = "tweezer-west"
+    at.query_params["run"] = "20990101-99"
+    at.run()
+    open_page(at, "run_detail")
+    assert not at.exception
+    assert [w.value for w in at.warning][:1] == [f"No run '20990101-99' on tweezer-west: showing a run of {at.selectbox(key='run-day-tweezer-west').value:%d %b %Y} instead."]
 
 
 def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
@@ -408,15 +436,18 @@ def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(l
 
     at.text_area(key="note-run-text").input("   ")
     at.button(key="note-run-submit").click().run()
-    assert at.error[0].value == "an annotation needs text"
+    assert at.error[0].value == "a note needs text"
 
-    alarm = next(a for a in lab.alarms() if a["reason"] == "change")
+    alarm = next(a for a in lab.alarms() if a["reason"] == "limit")
     at.selectbox(key="acknowledge-alarm").set_value(alarm["id"])
     at.text_area(key="acknowledge-note").input("the repump fibre")
+    at.checkbox(key="acknowledge-accept").check()
     at.button(key="acknowledge-submit").click().run()
     assert alarm["id"] not in [a["id"] for a in lab.alarms()]
-    assert any(a["id"] == alarm["id"] and a["status"] == "acknowledged" for a in lab.alarms(status=None))
-    assert not any(option.startswith(f"#{alarm['id']} ") for option in at.selectbox(key="acknowledge-alarm").options)
+    assert any(a["id"] == alarm["id"] and a["status"] == "accepted" for a in lab.alarms(status=None))
+    left = [s for s in at.selectbox if s.key == "acknowledge-alarm"]
+    assert not left or not any(option.startswith(f"#{alarm['id']} ") for option in left[0].options)
+    assert lab.drift(alarm["quantity"], apparatus=alarm["apparatus"], record_alarms=False).limits["accepted"] == [alarm["date"]]
     latest = table(at, "note", "author")
     assert "repump fibre swapped" in set(latest["note"]) and latest.columns[0] == "at (Europe/Berlin)"
 
@@ -502,5 +533,31 @@ def test_run_detail_shows_the_analysis_versions_and_what_the_current_one_moved(d
         for name in ("fill_fraction", "survival"):
             assert moved.loc[name, "shift [combined stderr]"] == round(report[name]["sigma"], 2)
             assert moved.loc[name, "now"].endswith("(thr-0.8)") and moved.loc[name, "before"].endswith("(unnamed)")
+    finally:
+        _forget_cached(db_url)
+
+
+def test_series_page_draws_the_member_runs_and_the_fitted_model(db_url, tmp_path, monkeypatch):
+    from test_series import _walk_runs
+
+    from runlog.figures.across_runs import series_model
+
+    pq.write_table(_walk_runs(np.random.default_rng(16)), tmp_path / "walk.parquet")
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest([tmp_path / "walk.parquet"])
+        made = catalogue.derive_series("fill-vs-steps", "fill_fraction", "walk_steps")
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = open_page(start(), "series")
+        (chart,) = charts(at)
+        runs = chart["layers"]["shots"]
+        np.testing.assert_allclose(runs["x"], [m["x"] for m in made["members"]])
+        np.testing.assert_allclose(runs["y"], [m["y"] for m in made["members"]], rtol=1e-12)
+        curve = chart["layers"]["fit curve"]
+        np.testing.assert_allclose(curve["y"], series_model("exponential")(curve["x"].to_numpy(), *made["params"]), rtol=1e-12)
+        members = table(at, "run", "analysis")
+        assert list(members["run"]) == [m["run"] for m in made["members"]]
+        fitted = table(at, "figure", "method").set_index("figure")
+        assert set(fitted.index) == set(made["values"])
     finally:
         _forget_cached(db_url)

@@ -72,7 +72,7 @@ def server(tmp_path_factory):
     # Two ordinary notes: one at a whole second, one on a run (its start, with microseconds).
     # Their times once reached the Overview and Drift pages as text of two formats and crashed them.
     for note in (["--apparatus", "lattice-east", "--at", "2026-09-03T08:00", "realigned lattice beam"], ["--apparatus", "lattice-east", "--run", _first_run(url), "camera saturated"]):
-        added = subprocess.run(_runlog("--db", url, "annotate", *note), capture_output=True, text=True, timeout=60)
+        added = subprocess.run(_runlog("--db", url, "note", *note), capture_output=True, text=True, timeout=60)
         assert added.returncode == 0, added.stderr
     port = _free_port()
     process = subprocess.Popen(_runlog("--db", url, "dashboard", "--port", str(port)), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)

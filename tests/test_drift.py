@@ -127,16 +127,31 @@ def test_daily_points_pool_counts_exactly(scenario):
 
 
 def test_alarms_are_recorded_once_and_acknowledging_adds_an_annotation(scenario):
-    scenario.drift("fill_fraction", apparatus="bench-north")
-    scenario.drift("fill_fraction", apparatus="bench-north")  # the same findings again
+    scenario.drift("coherence_time", apparatus="bench-north")
+    scenario.drift("coherence_time", apparatus="bench-north")  # the same findings again
     alarms = scenario.alarms()
-    changes = [a for a in alarms if a["quantity"] == "fill_fraction" and a["reason"] == "change"]
-    assert len(changes) == 1
-    note = scenario.acknowledge(changes[0]["id"], "MOT beam power dropped after the fibre swap")
+    limits = [a for a in alarms if a["quantity"] == "coherence_time" and a["reason"] == "limit"]
+    assert len(limits) == 1 and abs(dt.date.fromisoformat(limits[0]["date"]) - (START + dt.timedelta(days=COHERENCE_STEP_DAY))).days <= 1
+    assert limits[0]["series"]["sequence"] == "ramsey" and limits[0]["series"]["key"].startswith("ramsey@")
+    note = scenario.acknowledge(limits[0]["id"], "repump fibre replaced this morning")
     assert note > 0
-    assert all(a["id"] != changes[0]["id"] for a in scenario.alarms())
+    assert all(a["id"] != limits[0]["id"] for a in scenario.alarms())
     texts = scenario.annotations(apparatus="bench-north")["text"].tolist()
-    assert any("MOT beam power dropped" in t for t in texts)
+    assert any("repump fibre replaced" in t for t in texts)
+
+
+def test_accepting_a_new_level_starts_a_new_baseline_recorded_as_a_note(scenario):
+    before = scenario.drift("coherence_time", apparatus="bench-north")
+    step = START + dt.timedelta(days=COHERENCE_STEP_DAY)
+    assert any(p.date > step + dt.timedelta(days=1) for p in (before.points[i] for i in before.out_of_limits))
+    (alarm,) = [a for a in scenario.alarms() if a["quantity"] == "coherence_time"]
+    scenario.acknowledge(alarm["id"], "new lattice alignment", accept=True)
+    after = scenario.drift("coherence_time", apparatus="bench-north")
+    assert after.limits["accepted"] == [alarm["date"]]
+    # From the accepted day the days only build the new baseline: nothing is out any more.
+    assert [after.points[i].date.isoformat() for i in after.out_of_limits if after.points[i].date.isoformat() >= alarm["date"]] == []
+    assert [a["status"] for a in scenario.alarms(status=None) if a["id"] == alarm["id"]] == ["accepted"]
+    assert any(t.startswith("new level accepted for coherence_time") and "new lattice alignment" in t for t in scenario.annotations(apparatus="bench-north")["text"])
 
 
 def test_what_else_changed_ranks_the_parameter_that_moved_first(scenario):
@@ -252,10 +267,12 @@ def test_a_name_stored_in_two_units_is_not_pooled(catalogue, make_file):
     from runlog import NotFoundError
 
     with pytest.raises(NotFoundError) as caught:
-        catalogue.drift("phase")
+        catalogue.drift("phase", pooled=True)
     assert str(caught.value) == "no single unit for 'phase' (it is stored in deg, rad by different sequences: give a sequence)"
+    # Each sequence is its own series: the reference one is judged alone, in its own unit.
     assert catalogue.drift("phase", sequence="ramsey").unit == "rad"
-    catalogue.check_drift()  # looks at each sequence alone instead of failing
+    assert {s["sequence"] for s in catalogue.series("phase")} == {"phase-scan", "ramsey"}
+    catalogue.check_drift()
 
 
 def test_fitted_figures_get_ewma_and_cusum_and_a_named_baseline(scenario):

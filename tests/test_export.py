@@ -8,6 +8,8 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import json
+import os
+import stat
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -66,6 +68,20 @@ def test_the_package_is_a_valid_data_package(filled, tmp_path, format):
     assert (fields["p.wait"]["type"], fields["p.wait"]["unit"]) == ("number", "us")
     assert (fields["p.depth"]["unit"], fields["time"]["type"], fields["shot"]["type"]) == ("uK", "datetime", "integer")
     assert "unit" not in fields["m.atom_number"]
+
+
+@pytest.mark.parametrize("mask", [0o022, 0o002, 0o077])
+def test_the_package_folder_and_files_follow_the_umask(filled, tmp_path, mask):
+    # A private temporary folder (700) was renamed into place: the group could not read it.
+    previous = os.umask(mask)
+    try:
+        out = tmp_path / "shared" / "package"
+        export(filled, "apparatus = 'bench-a'", out)
+    finally:
+        os.umask(previous)
+    assert stat.S_IMODE(out.stat().st_mode) == 0o777 & ~mask
+    for path in out.iterdir():
+        assert stat.S_IMODE(path.stat().st_mode) == 0o666 & ~mask, path.name
 
 
 def test_csv_hashes_are_checked_by_the_validator(filled, tmp_path):

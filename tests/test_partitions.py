@@ -207,8 +207,9 @@ def test_upgrade_from_0003_keeps_every_row_and_value(pg_url, tmp_path):
 # --- concurrency --------------------------------------------------------------------------
 
 
-def _advisory_waiters(engine) -> int:
-    return _rows(engine, "SELECT count(*) FROM pg_locks WHERE locktype = 'advisory' AND NOT granted AND database = (SELECT oid FROM pg_database WHERE datname = current_database())")[0][0]
+def _lock_waiters(engine) -> int:
+    # Sessions of this database waiting for a lock: the writers queued on the writer lock.
+    return _rows(engine, "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' AND datname = current_database()")[0][0]
 
 
 def test_two_writers_that_both_find_a_month_missing_both_succeed(pg_url, tmp_path):
@@ -219,14 +220,14 @@ def test_two_writers_that_both_find_a_month_missing_both_succeed(pg_url, tmp_pat
     files = [write_table(tmp_path / f"{n}.parquet", shot_table({"r": 50}, apparatus=f"bench-{n}", start=dt.datetime(2026, 7, 1, tzinfo=UTC), seed=n)) for n in range(2)]
     results: dict[int, list] = {}
     with engine.connect() as holder:
-        holder.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": bulk._WRITER_LOCK})
+        bulk.take_writer_lock(holder)
         threads = [threading.Thread(target=lambda n=n: results.__setitem__(n, runlog.ingest.ingest_files(engine, [files[n]]))) for n in range(2)]
         for thread in threads:
             thread.start()
         deadline = time.monotonic() + 30
-        while _advisory_waiters(engine) < 2 and time.monotonic() < deadline:
+        while _lock_waiters(engine) < 2 and time.monotonic() < deadline:
             time.sleep(0.05)
-        assert _advisory_waiters(engine) == 2
+        assert _lock_waiters(engine) == 2
         assert _rows(engine, "SELECT count(*) FROM pg_inherits")[0][0] == 0
         holder.rollback()
     for thread in threads:

@@ -94,6 +94,12 @@ def test_a_fresh_export_by_filter_after_v2_differs_and_says_so(pinned_before_v2,
     assert set(rerun.changed) >= {"runs.parquet", "figures.parquet"}
     runs = pq.read_table(tmp_path / "filter-then" / "runs.parquet").to_pylist()
     assert {r["analysis"] for r in runs} == {"thr-0.8"}
+    # ... and says which pins hold the versions it no longer exports.
+    held = [{"pin": "fig3", "run": r, "apparatus": "bench-a", "pinned_analysis": "", "exported_analysis": "thr-0.8"} for r in ("r1", "r2")]
+    assert list(rerun.other_versions_pinned) == held
+    assert json.loads((tmp_path / "filter-then" / "datapackage.json").read_text())["provenance"]["other_versions_pinned"] == held
+    assert "the pin(s) fig3 hold other versions of 2 of them" in (tmp_path / "filter-then" / "README.md").read_text()
+    assert not by_filter.other_versions_pinned  # before v2 the filter exported the pinned versions
     # The pin's own spec re-runs the pin and hashes the same.
     pinned = catalogue.export_again(tmp_path / "fig3-then" / "export.toml")
     assert pinned.same is True and pinned.pin == "fig3"

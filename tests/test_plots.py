@@ -85,7 +85,11 @@ def test_drift_chart_carries_points_intervals_limits_and_changes(stepped):
     assert [p["day"] for p in points] == [p.date.isoformat() for p in drift.points]
     assert [(p["value"], p["low"], p["high"]) for p in points] == [(p.value, p.ci_low, p.ci_high) for p in drift.points]
     limits = _with_keys(spec, "day", "limit", "side")
-    assert [row["limit"] for row in limits] == drift.limits["lower"] + drift.limits["upper"]
+    assert [row["limit"] for row in limits] == [v for v in drift.limits["lower"] + drift.limits["upper"] if v is not None]
+    smooth = _with_keys(spec, "day", "ewma", "ewma_low", "ewma_high")
+    judged = [i for i, v in enumerate(drift.limits["ewma"]) if v is not None]
+    assert [row["ewma"] for row in smooth] == [drift.limits["ewma"][i] for i in judged]
+    assert [(row["ewma_low"], row["ewma_high"]) for row in smooth] == [(drift.limits["ewma_lower"][i], drift.limits["ewma_upper"][i]) for i in judged]
     levels = _with_keys(spec, "day", "level", "segment")
     assert [row["level"] for row in levels] == [drift.changes[0].before] * 2 + [drift.changes[0].after] * 2
     rules = [rows for rows in _records(spec) if rows and set(rows[0]) == {"day"}]
@@ -95,6 +99,7 @@ def test_drift_chart_carries_points_intervals_limits_and_changes(stepped):
     assert layers[0]["encoding"]["x"]["title"] == "lab day"
     assert spec["title"]["text"] == "fill_fraction on bench-a"
     assert any("2026-03-09" in line for line in spec["title"]["subtitle"])
+    assert spec["title"]["subtitle"][0] == f"series {drift.series['label']}"
 
 
 def test_plot_drift_writes_svg_png_and_pdf(stepped, tmp_path):

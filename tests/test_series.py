@@ -137,10 +137,10 @@ def test_a_series_through_the_store_lists_its_member_runs(catalogue, make_file, 
     # Deriving again adds a record; the newest is in force, the history keeps both.
     again = catalogue.derive_series("fill-vs-steps", "fill_fraction", "walk_steps", model="linear", where="shot >= 0 and walk_steps <= 6")
     assert [m["x"] for m in again["members"]] == [0, 2, 4, 6]
-    assert [s["model"] for s in catalogue.series("fill-vs-steps", history=True)] == ["linear", "exponential"]
-    assert [s["id"] for s in catalogue.series()] == [again["id"]]
+    assert [s["model"] for s in catalogue.series_fits("fill-vs-steps", history=True)] == ["linear", "exponential"]
+    assert [s["id"] for s in catalogue.series_fits()] == [again["id"]]
     with pytest.raises(NotFoundError, match="nope"):
-        catalogue.series("nope")
+        catalogue.series_fits("nope")
     with pytest.raises(FitError, match="at least 3"):
         catalogue.derive_series("few", "fill_fraction", "walk_steps", where="walk_steps < 3")
 
@@ -148,7 +148,7 @@ def test_a_series_through_the_store_lists_its_member_runs(catalogue, make_file, 
     code, out, err = run_main(capsys, "--db", url, "derive", "--series", "cli-fit", "--y", "fill_fraction", "--x", "walk_steps", "--model", "exponential", "--json")
     assert code == 0, err
     assert json.loads(out)["values"]["per_step"]["value"] == pytest.approx(per_step["value"], rel=1e-12)
-    code, out, err = run_main(capsys, "--db", url, "series", "cli-fit")
+    code, out, err = run_main(capsys, "--db", url, "series-fits", "cli-fit")
     assert code == 0 and "per_step" in out and "walk-10" in out
     code, out, err = run_main(capsys, "--db", url, "derive", "--series", "bad", "--y", "fill_fraction", "--x", "walk_steps", "--model", "cubic")
     assert code != 0 and "cubic" in err and "Traceback" not in err

@@ -66,6 +66,7 @@ def test_watch_command_runs_and_logs(db_url, tmp_path):
     folder = tmp_path / "export"
     folder.mkdir()
     write_table(folder / "a.parquet", shot_table({"r1": 4}))
+    write_table(folder / "b.parquet", shot_table({"r2": 3}).drop_columns(["shot"]))
     done = subprocess.run(
         [sys.executable, "-m", "runlog", "--db", db_url, "watch", str(folder), "--interval", "0.2", "--stop-after", "1.5"],
         capture_output=True, text=True, timeout=60,
@@ -73,6 +74,9 @@ def test_watch_command_runs_and_logs(db_url, tmp_path):
     assert done.returncode == 0, done.stderr
     log = (folder / "runlog-watch.log").read_text()
     assert "ingested a.parquet: r1 (4 shots)" in log
+    # The terminal gets one line for each file taken or refused, not only the log file.
+    files = [line.split(" ", 1)[1] for line in done.stdout.splitlines() if "a.parquet" in line or "b.parquet" in line]
+    assert files == ["ingested a.parquet: r1 (4 shots)", f"refused b.parquet: {folder / 'b.parquet'} (column 'shot'): required column is missing"]
 
 
 def _change_during_write(monkeypatch, change):

@@ -24,6 +24,7 @@ PAGES = (
     ("drift.py", "Drift", ":material/timeline:"),
     ("run_detail.py", "Run detail", ":material/science:"),
     ("shots.py", "Shots explorer", ":material/scatter_plot:"),
+    ("series.py", "Series across runs", ":material/stacked_line_chart:"),
     ("annotate.py", "Notes and alarms", ":material/edit_note:"),
 )
 

@@ -21,9 +21,10 @@ __all__ = ["drift_chart", "fit_chart", "scatter_chart", "site_map_chart"]
 # What each kind of mark on a drift chart means, and its colour.
 _DRIFT_KEY = {
     "daily value": PALETTE["blue"],
-    "outside control limits": PALETTE["vermillion"],
-    "control limits": PALETTE["black"],
-    "EWMA (λ = 0.3)": PALETTE["sky blue"],
+    "out of control": PALETTE["vermillion"],
+    "limits of the daily values": PALETTE["black"],
+    "EWMA of standardised days": PALETTE["sky blue"],
+    "limits of the EWMA": PALETTE["sky blue"],
     "level between changes": PALETTE["orange"],
     "change in level": PALETTE["green"],
     "note": PALETTE["purple"],
@@ -51,7 +52,7 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
     notes: pd.DataFrame = view["notes"]
     title = axis_title(view["quantity"], view["unit"])
     unit = unit_text(view["unit"])
-    points["series"] = ["outside control limits" if o else "daily value" for o in points["outside"]]
+    points["series"] = ["out of control" if o else "daily value" for o in points["outside"]]
     first, last = domain
     x = alt.X(
         "when:T",
@@ -61,9 +62,8 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
     y_scale = alt.Scale(zero=False)
     has_limits = bool(points["lower"].notna().any())
     present = ["daily value"]
-    present += ["outside control limits"] if points["outside"].any() else []
-    present += ["EWMA (λ = 0.3)"] if has_limits and not view["counting"] else []
-    present += ["control limits"] if has_limits else []
+    present += ["out of control"] if points["outside"].any() else []
+    present += ["limits of the daily values", "EWMA of standardised days", "limits of the EWMA"] if has_limits else []
     present += ["level between changes", "change in level"] if len(changes) else []
     present += ["note"] if len(notes) else []
     colour = alt.Color("series:N", scale=_key(present), legend=alt.Legend(title=None, orient="top", direction="horizontal", columns=3, symbolSize=60))
@@ -78,14 +78,21 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
     layers: list[alt.Chart] = []
 
     if has_limits:
-        if not view["counting"]:
-            # A fitted figure's limits belong to the EWMA statistic, not to the daily values.
-            layers.append(
-                alt.Chart(points.assign(series="EWMA (λ = 0.3)"), description="ewma")
-                .mark_line(strokeWidth=1.5)
-                .encode(x=x, y=alt.Y("ewma:Q", title=title, scale=y_scale), color=colour, tooltip=[alt.Tooltip("day:N", title="lab day"), alt.Tooltip("ewma:Q", title="EWMA", format=".4g")])
-            )
-        bounds = points.melt(id_vars=["when", "day"], value_vars=["lower", "upper"], var_name="limit", value_name="bound").assign(series="control limits")
+        # Each statistic is drawn with its own limits: the daily values with theirs
+        # (centre +- the day limit of each day's own sigma), the EWMA line inside its
+        # narrower band; never the EWMA's limits over the daily values.
+        smooth = points.dropna(subset=["ewma"])
+        layers.append(
+            alt.Chart(smooth.assign(series="limits of the EWMA"), description="ewma limits")
+            .mark_area(opacity=0.15, interpolate="step")
+            .encode(x=x, y=alt.Y("ewma_lower:Q", title=title, scale=y_scale), y2="ewma_upper:Q", color=colour)
+        )
+        layers.append(
+            alt.Chart(smooth.assign(series="EWMA of standardised days"), description="ewma")
+            .mark_line(strokeWidth=1.5)
+            .encode(x=x, y=alt.Y("ewma:Q", title=title, scale=y_scale), color=colour, tooltip=[alt.Tooltip("day:N", title="lab day"), alt.Tooltip("ewma:Q", title="EWMA", format=".4g")])
+        )
+        bounds = points.melt(id_vars=["when", "day"], value_vars=["lower", "upper"], var_name="limit", value_name="bound").assign(series="limits of the daily values")
         layers.append(
             alt.Chart(bounds, description="control limits")
             .mark_line(strokeDash=[5, 3], strokeWidth=1, interpolate="step")
@@ -140,12 +147,12 @@ def _levels(points: pd.DataFrame, changes: pd.DataFrame) -> pd.DataFrame:
     )
 
 
-def fit_chart(curve, *, height: int = 260) -> alt.LayerChart:
-    """Every shot's ``y`` against ``x`` with the stored fit drawn over them."""
+def fit_chart(curve, *, height: int = 260, points: str = "shot") -> alt.LayerChart:
+    """Every shot's (or, ``points="run"``, every run's) ``y`` against ``x`` with the stored fit drawn over them."""
     x_title, y_title = axis_title(curve.x_name, curve.x_unit), axis_title(curve.y_name, curve.y_unit)
-    shots = pd.DataFrame({"x": curve.x, "y": curve.y, "series": "shot"})
+    shots = pd.DataFrame({"x": curve.x, "y": curve.y, "series": points})
     model = pd.DataFrame({"x": curve.curve_x, "y": curve.curve_y, "series": "fit"})
-    colour = alt.Color("series:N", scale=alt.Scale(domain=["shot", "fit"], range=[PALETTE["blue"], PALETTE["vermillion"]]), legend=alt.Legend(title=None, orient="top"))
+    colour = alt.Color("series:N", scale=alt.Scale(domain=[points, "fit"], range=[PALETTE["blue"], PALETTE["vermillion"]]), legend=alt.Legend(title=None, orient="top"))
     points = (
         alt.Chart(shots, description="shots")
         .mark_circle(size=28, opacity=0.55)

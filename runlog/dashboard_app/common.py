@@ -122,9 +122,9 @@ def add_note(url: str, text: str, *, run: str | None = None, apparatus: str | No
     return number
 
 
-def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None) -> int:
+def acknowledge(url: str, alarm: int, note: str, *, author: str | None = None, accept: bool = False) -> int:
     """``catalogue.acknowledge``; returns the annotation holding the note."""
-    number = catalogue(url).acknowledge(alarm, note, author=author or None)
+    number = catalogue(url).acknowledge(alarm, note, author=author or None, accept=accept)
     clear_cached_results()
     return number
 
@@ -302,6 +302,33 @@ def run_info(url: str, run: str, apparatus: str) -> runlog.RunInfo:
 
 
 @_cached
+def series_fits(url: str) -> list[dict]:
+    """The series across runs in force (the newest fit of each name)."""
+    return catalogue(url).series_fits()
+
+
+#: How each series model reads, for the chart's title.
+SERIES_FORMULAS = {"exponential": "y = A exp(−k x)", "power_law": "y = A x^b", "linear": "y = a + b x"}
+
+
+def series_curve(made: dict):
+    """A series as the run page's fit chart draws a fit: the member runs' values and the
+    fitted model over their parameter range (``runlog.figures.across_runs.series_model``)."""
+    from types import SimpleNamespace
+
+    from runlog.figures.across_runs import series_model
+
+    x = np.array([m["x"] for m in made["members"]], dtype=float)
+    y = np.array([m["y"] for m in made["members"]], dtype=float)
+    curve_x = np.linspace(float(x.min()), float(x.max()), 200)
+    curve_y = series_model(made["model"])(curve_x, *made["params"])
+    return SimpleNamespace(
+        x=x, y=y, curve_x=curve_x, curve_y=curve_y, x_name=made["parameter"], x_unit=made["x_unit"], y_name=made["figure"], y_unit=made["y_unit"],
+        formula=f"{made['name']}: {SERIES_FORMULAS.get(made['model'], made['model'])}",
+    )
+
+
+@_cached
 def versions_and_impact(url: str, run: str, apparatus: str) -> tuple[pd.DataFrame, pd.DataFrame]:
     """The run's analysis versions (oldest first) and its impact report (what the current
     version moved against the one before, or a figure derived again against its record before)."""
@@ -389,7 +416,8 @@ def drift_view(
     since: dt.date | None = None,
     until: dt.date | None = None,
     parameters: tuple[tuple[str, float, float], ...] = (),
-    baseline_days: int = 7,
+    baseline_days: int = 28,
+    series: str | None = None,
 ) -> dict[str, object]:
     """The drift of one quantity as tables for a chart: daily points, limits, changes, notes.
 
@@ -403,6 +431,7 @@ def drift_view(
         until=until,
         parameters={name: (low, high) for name, low, high in parameters} or None,
         baseline_days=baseline_days,
+        series=series,
         record_alarms=False,
     )
     zone = lab_timezone(url)
@@ -431,6 +460,8 @@ def drift_view(
             "lower": per_point("lower"),
             "upper": per_point("upper"),
             "ewma": per_point("ewma"),
+            "ewma_lower": per_point("ewma_lower"),
+            "ewma_upper": per_point("ewma_upper"),
         }
     )
     changes = pd.DataFrame(
@@ -457,4 +488,8 @@ def drift_view(
         "note": str(limits.get("note", "")),
         "center": limits.get("center"),
         "baseline": limits.get("baseline"),
+        "series": result.series,
+        "other_series": result.other_series,
+        "settings": result.settings,
+        "excursions": result.excursions,
     }

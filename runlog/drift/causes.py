@@ -108,3 +108,21 @@ def what_else_changed(connection: Connection, apparatus_id: int, day: dt.date, q
     for source in sources().values():
         candidates.extend(source(connection, apparatus_id, span, quantity))
     return [suspect.as_dict() for suspect in rank(candidates)[:top]]
+
+
+def suspects(connection: Connection, apparatus_id: int, day: dt.date, quantity: str, zone, *, window: int = 3, top: int = 10) -> dict[str, object]:
+    """For a change on ``day``: the notes of that day and the day before first (operator
+    notes, run notes, acknowledgements), then the ranked suspects, then a plain verdict."""
+    from runlog.drift.reference import notes_between
+
+    notes = notes_between(connection, apparatus_id, day - dt.timedelta(days=1), day, zone)
+    causes = what_else_changed(connection, apparatus_id, day, quantity, window=window, top=top)
+    settings = [c for c in causes if c["setting_changed"]]
+    moved = [c for c in causes if c["significant"] and not c["setting_changed"]]
+    if notes:
+        verdict = f"{len(notes)} note{'s' if len(notes) > 1 else ''} on {day - dt.timedelta(days=1)} or {day}: read {'them' if len(notes) > 1 else 'it'} first"
+    elif settings or moved:
+        verdict = "no note; " + "; ".join(c["words"] for c in (settings + moved)[:3])
+    else:
+        verdict = "nothing explains this change: no note, no setting changed, nothing else moved beyond its errors"
+    return {"day": day.isoformat(), "notes": notes, "causes": causes, "verdict": verdict, "method": "standardised change per candidate; Benjamini-Hochberg (1995) q < 0.05 marks a significant one"}

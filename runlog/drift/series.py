@@ -1,22 +1,24 @@
 """Drift of one quantity of one apparatus: daily points, control limits, changes, alarms.
 
-Owns the drift query. Daily points come from the daily rollups (never from shots):
+Owns the drift query. By default it reads one reference series
+(:mod:`runlog.drift.reference`: a sequence plus the fingerprint of its constant settings),
+so a headline number never mixes unlike runs; ``series`` names another, ``pooled`` reads
+every run of the apparatus (or of ``sequence``) as before. Daily points pool the stored
+figures of the series' runs per lab day (never shots):
 
 * counting figures (fill fraction, survival, loss): the day's pooled counts, with the
   shot-level interval and stderr of :mod:`runlog.figures.shot_level` over all the day's
-  shots (the Wilson interval of the pooled counts only for runs stored before the sums
-  over shots were kept); control limits from a p-chart (NIST/SEMATECH e-Handbook 6.3.3.2) whose
-  binomial sigma is widened by Laney's overdispersion factor (Laney 2002, Quality
-  Engineering 14:531) when days scatter more than counting noise allows;
+  shots (the Wilson interval and binomial standard error of the pooled counts only for
+  runs stored before the sums over shots were kept);
 * fitted figures (coherence time, contrast, ...): the inverse-variance weighted mean of
   the day's runs, its standard error scaled by the Birge ratio when the runs disagree
-  by more than their errors, and the spread between runs; limits from an EWMA chart
-  (e-Handbook 6.3.2.4, lambda 0.3, 3 sigma) on the daily means.
+  by more than their errors, and the spread between runs.
 
-Both use a baseline: the first ``baseline_days`` days with data (at most half of them)
-unless a date range is named. Changes in level come from PELT (Killick et al. 2012) on
-the daily values weighted by their inverse variances, with the documented default
-penalty of :mod:`runlog.drift.changepoints`.
+Limits and alarms come from :mod:`runlog.drift.detect`: each day standardised by its own
+precision against a rolling baseline of in-control days (or the days after the last
+accepted new level). Changes in level come from PELT (Killick et al. 2012) on the daily
+values weighted by their inverse variances, with the documented default penalty of
+:mod:`runlog.drift.changepoints`.
 """
 
 from __future__ import annotations
@@ -30,7 +32,7 @@ from sqlalchemy import and_, exists, func, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
-from runlog.drift.charts import cusum_chart, ewma_chart, p_chart
+from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
 from runlog.figures.intervals import wilson
 from runlog.figures.shot_level import ShotSums, shot_level_interval
@@ -79,10 +81,17 @@ class Drift:
     # Notes near the series: ``at`` is a timezone-aware datetime here and ISO text only in
     # :meth:`as_dict`, so that every reader gets one type whatever its fraction of a second.
     annotations: list[dict[str, object]] = field(default_factory=list)
+    series: dict[str, object] | None = None  # the reference series judged (None: pooled runs)
+    other_series: list[dict[str, object]] = field(default_factory=list)
+    settings: list[dict[str, object]] = field(default_factory=list)  # setting changes of the series
+    excursions: list[dict[str, object]] = field(default_factory=list)  # first day of each, with its signals
+    z: list[float | None] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, object]:
-        def point(p: DriftPoint) -> dict[str, object]:
-            out = {"date": p.date.isoformat(), "value": p.value, "ci_low": p.ci_low, "ci_high": p.ci_high, "runs": p.runs, "shots": p.shots}
+        def point(index: int, p: DriftPoint) -> dict[str, object]:
+            out = {"date": p.date.isoformat(), "value": p.value, "ci_low": p.ci_low, "ci_high": p.ci_high, "stderr": p.stderr, "runs": p.runs, "shots": p.shots}
+            if self.z:
+                out["z"] = self.z[index]
             if p.spread is not None:
                 out["spread"] = p.spread
             return out
@@ -92,10 +101,14 @@ class Drift:
             "apparatus": self.apparatus,
             "unit": self.unit,
             "sequence": self.sequence,
-            "points": [point(p) for p in self.points],
+            "series": self.series,
+            "points": [point(i, p) for i, p in enumerate(self.points)],
             "limits": self.limits,
             "changes": [{"date": c.date.isoformat(), "before": c.before, "after": c.after, "method": c.method} for c in self.changes],
             "alarms": self.alarms,
+            "excursions": self.excursions,
+            "settings": self.settings,
+            "other_series": self.other_series,
             "annotations": [{**note, "at": note["at"].isoformat()} for note in self.annotations],
         }
 
@@ -201,8 +214,8 @@ def _point(day, runs, shots, successes, trials, counted, y2, x2, xy, count, tota
     return DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread)
 
 
-def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]], *, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
-    """Daily points over only the runs whose parameters lie in the given ranges.
+def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """Daily points over only the given runs and the runs whose parameters lie in the given ranges.
 
     A run matches a range when its constant value lies in it, or when its whole scanned
     range does. Pools the runs' stored figures per day, exactly as the rollups do.
@@ -214,7 +227,9 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current))
         .order_by(r.day)
     )
-    for name, (low, high) in parameters.items():
+    if runs is not None:
+        query = query.where(r.id.in_(runs))
+    for name, (low, high) in (parameters or {}).items():
         parameter_id = connection.execute(select(s.Parameter.id).where(s.Parameter.name == name)).scalar()
         if parameter_id is None:
             raise NotFoundError("parameter", name)
@@ -265,70 +280,99 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
     return points, unit, any(p.trials is not None for p in points)
 
 
-def _baseline(points: list[DriftPoint], baseline_days: int, baseline: tuple[dt.date, dt.date] | None) -> np.ndarray:
-    dates = np.array([p.date for p in points])
-    if baseline is not None:
-        mask = (dates >= baseline[0]) & (dates <= baseline[1])
-    else:
-        count = max(2, min(baseline_days, len(points) // 2))
-        mask = np.zeros(len(points), dtype=bool)
-        mask[:count] = True
-    return mask
+def _accepted_days(connection: Connection, apparatus_id: int, quantity: str, series_key: str) -> list[dt.date]:
+    """Days from which a new level was accepted (an alarm acknowledged with "accept")."""
+    a = s.Alarm
+    rows = connection.execute(select(a.day).where(and_(a.apparatus_id == apparatus_id, a.quantity == quantity, a.series_key == series_key, a.status == "accepted"))).scalars()
+    return sorted({d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in rows})
 
 
-def _p_chart_limits(points: list[DriftPoint], mask: np.ndarray) -> tuple[dict[str, object], np.ndarray]:
-    chart = p_chart([p.successes for p in points], [p.trials for p in points], baseline=mask, overdispersion=True)
-    limits = {
-        "method": "p-chart (NIST/SEMATECH 6.3.3.2) with Laney overdispersion factor",
-        "center": chart.center,
-        "overdispersion": chart.overdispersion,
-        "lower": chart.lower.tolist(),
-        "upper": chart.upper.tolist(),
-    }
-    return limits, np.asarray(chart.out_of_control, dtype=bool)
-
-
-def _ewma_limits(points: list[DriftPoint], mask: np.ndarray) -> tuple[dict[str, object], np.ndarray]:
+def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None):
+    days = [p.date for p in points]
     values = np.array([p.value for p in points])
-    base = values[mask]
-    if len(base) < 2 or not np.isfinite(base).all() or np.std(base, ddof=1) == 0:
-        return {"method": "ewma (NIST/SEMATECH 6.3.2.4)", "note": "baseline too short or constant for limits"}, np.zeros(len(values), dtype=bool)
-    chart = ewma_chart(values, lam=0.3, k=3.0, baseline=mask)
-    # Tabular CUSUM beside the EWMA, with the usual k = sigma/2 and h = 5 sigma (common
-    # practice, no published source for this choice): it catches a small sustained shift
-    # sooner than the EWMA's limits do.
-    sigma = float(chart.sigma)
-    cusum = cusum_chart(values, target=float(chart.center), k=0.5 * sigma, h=5.0 * sigma)
-    limits = {
-        "method": "ewma (NIST/SEMATECH 6.3.2.4), lambda 0.3, 3 sigma; tabular cusum (6.3.2.3), k 0.5 sigma, h 5 sigma",
-        "center": float(chart.center),
-        "lower": np.broadcast_to(chart.lower, values.shape).tolist(),
-        "upper": np.broadcast_to(chart.upper, values.shape).tolist(),
-        "ewma": np.asarray(chart.statistic).tolist(),
-        "cusum_upper": np.asarray(cusum.upper_sum).tolist(),
-        "cusum_lower": np.asarray(cusum.lower_sum).tolist(),
-        "cusum_h": 5.0 * sigma,
+    errors = np.array([p.stderr for p in points])
+    fixed = None
+    if baseline is not None:
+        fixed = [baseline[0] <= d <= baseline[1] for d in days]
+    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed)
+    sigma = judgement.sigma
+    # The day limits are around the centre at +-day_limit of each day's own sigma; the
+    # EWMA of standardised values is drawn back in the figure's unit around the centre
+    # with its own (narrower) limits, so each line has the limits of its statistic.
+    spread = np.sqrt(np.nanmean(errors**2) + np.nan_to_num(judgement.scatter) ** 2)
+    def listed(array):
+        return [None if not np.isfinite(v) else float(v) for v in array]
+    limits: dict[str, object] = {
+        "method": thresholds.describe(),
+        "center": None if not np.isfinite(judgement.centre).any() else float(judgement.centre[np.isfinite(judgement.centre)][-1]),
+        "centre": listed(judgement.centre),
+        "scatter": listed(judgement.scatter),
+        "lower": listed(judgement.centre - thresholds.day_limit * sigma),
+        "upper": listed(judgement.centre + thresholds.day_limit * sigma),
+        "ewma": listed(judgement.centre + judgement.ewma * spread),
+        "ewma_lower": listed(judgement.centre - judgement.ewma_limit * spread),
+        "ewma_upper": listed(judgement.centre + judgement.ewma_limit * spread),
+        "ewma_z": listed(judgement.ewma),
+        "ewma_limit_z": judgement.ewma_limit,
+        "cusum_upper": judgement.cusum_upper.tolist(),
+        "cusum_lower": judgement.cusum_lower.tolist(),
+        "cusum_h": thresholds.cusum_h,
+        "accepted": [d.isoformat() for d in accepted],
+        "learning": [bool(v) for v in judgement.learning],
     }
-    return limits, np.asarray(chart.out_of_control, dtype=bool) | np.asarray(cusum.out_of_control, dtype=bool)
-
-
-def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None, baseline_days: int = 7, baseline: tuple[dt.date, dt.date] | None = None, parameters: dict[str, tuple[float, float]] | None = None) -> Drift:
-    """The drift of ``quantity`` on one apparatus: from the daily rollups, or, with
-    parameter ranges, from the figures of the matching runs (still never from shots)."""
-    apparatus_id, apparatus_name = _apparatus_id(connection, quantity, apparatus)
-    if parameters:
-        points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, sequence=sequence, since=since, until=until)
+    if baseline is not None:
+        limits["baseline"] = [baseline[0].isoformat(), baseline[1].isoformat()]
     else:
-        points, unit, counting = daily_points(connection, quantity, apparatus_id, sequence=sequence, since=since, until=until)
-    result = Drift(quantity, apparatus_name, unit, sequence, points, {}, [], counting)
+        start = judgement.baseline_start[-1]
+        in_control = [d for d, out in zip(days, judgement.out) if not out and start is not None and d >= start]
+        limits["baseline"] = [start.isoformat(), in_control[-1].isoformat()] if in_control else None
+    return limits, judgement
+
+
+def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = None, sequence: str | None = None, series: str | None = None, pooled: bool = False, since: dt.date | None = None, until: dt.date | None = None, baseline: tuple[dt.date, dt.date] | None = None, parameters: dict[str, tuple[float, float]] | None = None, thresholds: Thresholds = THRESHOLDS, zone=None) -> Drift:
+    """The drift of ``quantity`` on one apparatus, for its reference series by default
+    (``series``: another, by key; ``pooled``: all runs, or all of ``sequence``), from the
+    stored figures of the runs (never from shots)."""
+    from zoneinfo import ZoneInfo
+
+    from runlog.drift import reference
+
+    zone = zone or ZoneInfo("UTC")
+    apparatus_id, apparatus_name = _apparatus_id(connection, quantity, apparatus)
+    # Parameter ranges are the reader's own choice of comparable runs: they replace the series.
+    pooled = pooled or bool(parameters)
+    chosen = None
+    runs = None
+    table = None
+    others: list[dict[str, object]] = []
+    if not pooled:
+        table = reference.run_series(connection, apparatus_id)
+        found = reference.series_of(connection, apparatus_id, quantity, table)
+        if series is not None:
+            picked = [e for e in found if series == e["key"] or any(m["series"].key == series for m in e["members"])]
+            if not picked:
+                raise NotFoundError("series", series, "known: " + ", ".join(e["key"] for e in found) if found else f"apparatus '{apparatus_name}' has no series with {quantity}")
+            chosen = picked[0]
+        else:
+            chosen = reference.reference_series(connection, apparatus_id, quantity, sequence=sequence, table=table)
+            if chosen is None:
+                raise NotFoundError("series of", quantity, f"sequence '{sequence}' has no runs with it" if sequence else f"apparatus '{apparatus_name}' has none")
+        runs = chosen["runs"]
+        others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
+    points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
+    key = chosen["key"] if chosen else ""
+    result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
+    if chosen is not None and table is not None:
+        result.settings = reference.setting_changes(connection, apparatus_id, chosen, table, zone)
     if len(points) < 3:
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result
-    mask = _baseline(points, baseline_days, baseline)
-    limits, outside = _p_chart_limits(points, mask) if counting else _ewma_limits(points, mask)
-    limits["baseline"] = [points[int(np.flatnonzero(mask)[0])].date.isoformat(), points[int(np.flatnonzero(mask)[-1])].date.isoformat()] if mask.any() else None
+    accepted = _accepted_days(connection, apparatus_id, quantity, key)
+    limits, judgement = _limits(points, accepted, thresholds, baseline)
     result.limits = limits
-    result.out_of_limits = [int(i) for i in np.flatnonzero(outside)]
+    result.z = [None if not np.isfinite(v) else float(v) for v in judgement.z]
+    result.out_of_limits = [int(i) for i in np.flatnonzero(judgement.out)]
+    result.excursions = [{"date": points[i].date.isoformat(), "index": i, "signals": judgement.signals[i], "z": float(judgement.z[i]), "size": float(points[i].value - judgement.centre[i])} for i in judgement.excursions()]
     values = np.array([p.value for p in points])
     stderr = np.array([p.stderr for p in points])
     weights = 1.0 / stderr**2 if np.all(np.isfinite(stderr)) and np.all(stderr > 0) else None

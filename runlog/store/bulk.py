@@ -3,13 +3,28 @@
 SQLite: an ADBC connection (``adbc_ingest`` appends Arrow tables at ~1-2 M rows/s) that
 opens the transaction with ``BEGIN IMMEDIATE``, so concurrent writers queue on the busy
 timeout instead of failing half-way. PostgreSQL: the SQLAlchemy/psycopg connection, with
-``COPY ... FROM STDIN`` for appends and a transaction-scoped advisory lock so that shot ids
-are allocated by one writer at a time. Both speak the same tiny interface, so ingest is
-written once. Statements use ``:name`` parameters.
+``COPY ... FROM STDIN`` for appends, under the writer lock so that shot ids are allocated
+by one writer at a time. Both speak the same tiny interface, so ingest is written once.
+Statements use ``:name`` parameters.
 
-On PostgreSQL the shot-level tables are partitioned by month: the writer first makes the
-months it is told of, in a short transaction of its own under the same lock, so the data
-transaction never creates tables and the common case (the months exist) costs one query.
+The writer lock on PostgreSQL is the row of ``alembic_version``, locked ``FOR UPDATE``
+(:func:`take_writer_lock`). Locking a row needs the UPDATE privilege on its table, which
+a read-only role never has, so no reader can take or hold it — an advisory lock, which any
+role may take, let a reader stop every ingest. Every wait is bounded: the lock itself
+waits at most :data:`WRITER_WAIT_S` for another writer's file, every later lock in the
+transaction :data:`LOCK_TIMEOUT_S` (:data:`DDL_LOCK_TIMEOUT_S` in the short schema
+transactions), every statement :data:`STATEMENT_TIMEOUT_S`; a wait that runs out is a
+``busy`` refusal of that one file, never a hang. See docs/architecture.md, "Writers and
+readers on PostgreSQL".
+
+Schema changes are made ahead of the data transaction, each in a short transaction of its
+own (:func:`short_write`): on PostgreSQL the shot-level tables are partitioned by month,
+and the writer first makes the months it is told of; ingest adds new measurement columns
+the same way. Such a change waits for the ACCESS EXCLUSIVE lock, and while it waits every
+new reader of the table queues behind it, so it waits only :data:`DDL_LOCK_TIMEOUT_S` and
+is tried again a few times: a reader idle in an open transaction delays an ingest by
+seconds and then the file is refused (naming the session that holds the table), instead
+of blocking the ingest and, behind it, the dashboard.
 """
 
 from __future__ import annotations
@@ -17,7 +32,8 @@ from __future__ import annotations
 import datetime as dt
 import io
 import re
-from collections.abc import Iterable
+import time
+from collections.abc import Callable, Iterable
 from typing import Any, Protocol
 
 import numpy as np
@@ -27,14 +43,108 @@ from sqlalchemy import text
 from sqlalchemy.engine import Engine
 
 from runlog.store.engine import BUSY_TIMEOUT_MS, exclusive_bulk_writer, sqlite_path
+from runlog.store.failures import BusyError
 from runlog.store.partitions import ensure_months, missing_months
 from runlog.store.schema import to_epoch_us
 
-__all__ = ["Writer", "open_writer"]
+__all__ = [
+    "Writer",
+    "open_writer",
+    "short_write",
+    "take_writer_lock",
+    "WRITER_WAIT_S",
+    "LOCK_TIMEOUT_S",
+    "DDL_LOCK_TIMEOUT_S",
+    "STATEMENT_TIMEOUT_S",
+    "DDL_ATTEMPTS",
+]
 
 _PARAMETER = re.compile(r":([A-Za-z_][A-Za-z0-9_]*)")
-# Any constant works; it only has to be the same for every runlog writer.
-_WRITER_LOCK = 0x72756E6C6F67
+
+#: How long a writer waits for another writer's file (SQLite's busy timeout is alike).
+WRITER_WAIT_S = 600
+#: How long any other lock of the data transaction is waited for.
+LOCK_TIMEOUT_S = 30
+#: How long a schema change waits for its table (readers queue behind it meanwhile).
+DDL_LOCK_TIMEOUT_S = 3
+#: How often a schema change is tried before the file is refused; pauses 1, 2, 4 ... s.
+DDL_ATTEMPTS = 4
+#: The longest any one statement of a writer may run.
+STATEMENT_TIMEOUT_S = 900
+
+_WRITER_LOCK_SQL = "SELECT version_num FROM alembic_version FOR UPDATE"
+_LOCK_NOT_AVAILABLE = "55P03"
+
+
+def take_writer_lock(connection, lock_timeout_s: float = LOCK_TIMEOUT_S) -> None:
+    """Take the writer lock in ``connection``'s open PostgreSQL transaction, then bound
+    every later lock wait of the transaction by ``lock_timeout_s``."""
+    connection.execute(text(f"SET LOCAL statement_timeout = '{int(STATEMENT_TIMEOUT_S * 1000)}ms'"))
+    connection.execute(text(f"SET LOCAL lock_timeout = '{int(WRITER_WAIT_S * 1000)}ms'"))
+    try:
+        connection.execute(text(_WRITER_LOCK_SQL)).all()
+    except Exception as error:
+        if _lock_not_available(error):
+            raise BusyError(f"another writer held the writer lock for over {WRITER_WAIT_S} s (lock timeout); try again when it is done") from None
+        raise
+    connection.execute(text(f"SET LOCAL lock_timeout = '{int(lock_timeout_s * 1000)}ms'"))
+
+
+def _lock_not_available(error: BaseException) -> bool:
+    driver = getattr(error, "orig", None) or error
+    return getattr(driver, "sqlstate", None) == _LOCK_NOT_AVAILABLE or "lock timeout" in str(driver).lower()
+
+
+def _holders(engine: Engine, table: str) -> str:
+    """Who holds ``table`` (or its partitions) in another session, for the refusal."""
+    try:
+        with engine.connect() as connection:
+            rows = connection.execute(
+                text(
+                    "SELECT DISTINCT a.pid, a.usename, a.state, a.xact_start FROM pg_locks l "
+                    "JOIN pg_stat_activity a ON a.pid = l.pid "
+                    "WHERE l.granted AND l.pid <> pg_backend_pid() AND l.relation IN ("
+                    "  SELECT c.oid FROM pg_class c WHERE c.oid = to_regclass(:t) "
+                    "  UNION SELECT i.inhrelid FROM pg_inherits i WHERE i.inhparent = to_regclass(:t)) "
+                    "ORDER BY a.xact_start LIMIT 3"
+                ),
+                {"t": table},
+            ).all()
+    except Exception:  # noqa: BLE001 - the refusal is worth more than the detail
+        return ""
+    if not rows:
+        return ""
+    shown = [f"pid {pid} (role {user}, {state}{f' since {start:%H:%M:%S}' if start else ''})" for pid, user, state, start in rows]
+    return f"; {table} is held by session {', '.join(shown)}"
+
+
+def short_write(engine: Engine, work: Callable[[object], None], *, what: str, table: str | None = None) -> None:
+    """Run ``work(connection)`` in a short write transaction of its own, under the writer
+    lock on PostgreSQL (``BEGIN IMMEDIATE`` on SQLite), for schema changes made ahead of a
+    file's data transaction.
+
+    On PostgreSQL its locks are waited for at most :data:`DDL_LOCK_TIMEOUT_S`; a wait that
+    runs out rolls back and tries again after a pause, :data:`DDL_ATTEMPTS` times in all,
+    then raises :class:`BusyError` naming ``what`` and the sessions holding ``table``.
+    """
+    if engine.dialect.name == "sqlite":
+        with engine.connect().execution_options(sqlite_begin="IMMEDIATE") as connection, connection.begin():
+            work(connection)
+        return
+    for attempt in range(DDL_ATTEMPTS):
+        try:
+            with engine.connect() as connection, connection.begin():
+                take_writer_lock(connection, DDL_LOCK_TIMEOUT_S)
+                work(connection)
+            return
+        except Exception as error:
+            if isinstance(error, BusyError) or not _lock_not_available(error):
+                raise  # the writer lock's own wait, or not a wait at all
+            if attempt + 1 == DDL_ATTEMPTS:
+                waited = DDL_ATTEMPTS * DDL_LOCK_TIMEOUT_S + 2 ** (DDL_ATTEMPTS - 1) - 1
+                holders = _holders(engine, table) if table else ""
+                raise BusyError(f"{what} waited {waited} s for its table and gave up{holders}; close that session's open transaction, or try again") from None
+            time.sleep(2**attempt)
 
 
 class Writer(Protocol):
@@ -163,9 +273,9 @@ def _copy_text(data: pa.Table) -> pa.Table:
 def _make_months(engine: Engine, months: Iterable[dt.date]) -> None:
     """Create the missing month partitions, committed before the data transaction begins.
 
-    Waiting for the writer lock holds no other lock, and attaching a month blocks neither
-    readers nor writers (runlog.store.partitions), so a new month costs the dashboard
-    nothing; under the lock, no other writer adds a measurement column meanwhile.
+    Attaching a month blocks neither readers nor writers (runlog.store.partitions), so a new
+    month costs the dashboard nothing; under the writer lock, no other writer adds a
+    measurement column meanwhile.
     """
     months = sorted(set(months))
     if not months:
@@ -173,12 +283,14 @@ def _make_months(engine: Engine, months: Iterable[dt.date]) -> None:
     with engine.connect() as connection:
         missing = missing_months(connection, months)
         connection.rollback()
-        if not missing:
-            return
-        with connection.begin():
-            connection.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _WRITER_LOCK})
-            for month in missing:
-                ensure_months(connection, month, month)
+    if not missing:
+        return
+
+    def make(connection) -> None:
+        for month in missing:
+            ensure_months(connection, month, month)
+
+    short_write(engine, make, what=f"making the month partitions {missing[0]:%Y-%m}..{missing[-1]:%Y-%m}", table="shots")
 
 
 class _PostgresWriter:
@@ -189,7 +301,11 @@ class _PostgresWriter:
         _make_months(engine, months)
         self._connection = engine.connect()
         self._transaction = self._connection.begin()
-        self._connection.execute(text("SELECT pg_advisory_xact_lock(:key)"), {"key": _WRITER_LOCK})
+        try:
+            take_writer_lock(self._connection)
+        except BaseException:
+            self.close()
+            raise
 
     def rows(self, sql: str, params: dict[str, Any] | None = None) -> list[tuple]:
         return [tuple(row) for row in self._connection.execute(text(sql), params or {}).fetchall()]

@@ -20,9 +20,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from runlog.errors import StoreError
 from runlog.redaction import scrub
 
-__all__ = ["Failure", "describe", "first_line"]
+__all__ = ["Failure", "BusyError", "describe", "first_line"]
 
 # PostgreSQL SQLSTATE codes (https://www.postgresql.org/docs/current/errcodes-appendix.html).
 _PERMISSION_STATES = {"42501", "25006"}  # insufficient_privilege, read_only_sql_transaction
@@ -48,6 +49,12 @@ class Failure:
         return self.kind == "data"
 
 
+class BusyError(StoreError):
+    """A lock or statement waited as long as runlog lets it; the same work may succeed later."""
+
+    kind = "busy"
+
+
 def first_line(error: BaseException) -> str:
     """The first line of an error's text (its type name when it has none), scrubbed of
     credentials and cut to 300 characters."""
@@ -67,12 +74,14 @@ def _sqlstate(error: BaseException) -> str | None:
 
 def describe(error: BaseException, *, doing: str = "writing to the catalogue") -> Failure:
     """The kind and one-line message of ``error``, raised while ``doing``."""
+    if isinstance(error, BusyError):
+        return Failure("busy", f"the catalogue stayed busy {doing}: {first_line(error)}")
     driver = _driver_error(error)
     line = first_line(driver)
     state = _sqlstate(driver)
     lowered = line.lower()
     if state in _PERMISSION_STATES or any(text in lowered for text in _SQLITE_PERMISSION) or isinstance(driver, PermissionError):
-        return Failure("permission", f"permission denied {doing}: {line} (the catalogue is read-only for this user; ask for a writer role or a writable file)")
+        return Failure("permission", f"permission denied {doing}: the catalogue is read-only for this user ({line}); use a role or a file that may write")
     if state in _BUSY_STATES or any(text in lowered for text in _SQLITE_BUSY):
         return Failure("busy", f"the catalogue stayed busy {doing}: {line}")
     if (state and state.startswith(_UNAVAILABLE_CLASSES)) or any(text in lowered for text in _SQLITE_UNAVAILABLE):

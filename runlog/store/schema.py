@@ -441,11 +441,13 @@ class Alarm(Base):
     """A drift finding to look at: a point outside control limits or a change in level."""
 
     __tablename__ = "alarms"
-    __table_args__ = (UniqueConstraint("apparatus_id", "quantity", "sequence", "day", "reason"), Index(None, "status"))
+    __table_args__ = (UniqueConstraint("apparatus_id", "quantity", "sequence", "series_key", "day", "reason"), Index(None, "status"))
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
     quantity: Mapped[str] = mapped_column(String(100))
     sequence: Mapped[str] = mapped_column(String(200), default="")  # '' = all sequences
+    # The reference series (sequence@fingerprint of its constant parameters); '' = pooled.
+    series_key: Mapped[str] = mapped_column(String(300), default="", server_default="")
     day: Mapped[dt.date] = mapped_column(Date)
     reason: Mapped[str] = mapped_column(String(20))  # 'limit' | 'change'
     method: Mapped[str] = mapped_column(String(100))

@@ -7,10 +7,12 @@ from zoneinfo import ZoneInfo
 
 import pandas as pd
 import streamlit as st
+from sqlalchemy.exc import SQLAlchemyError
 
 from runlog.dashboard_app import common
 from runlog.errors import RunlogError
 from runlog.redaction import scrub
+from runlog.store.failures import describe
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
@@ -29,6 +31,10 @@ def written(action) -> None:
         message = action()
     except (RunlogError, ValueError) as error:
         st.error(scrub(str(error)))
+    except (SQLAlchemyError, OSError) as error:
+        # A catalogue this server cannot write (a read-only role or file): one line naming
+        # the cause, never the SQL and its parameters.
+        st.error(describe(error, doing="saving this").message)
     else:
         st.session_state["annotate-done"] = message
         st.rerun()
@@ -81,8 +87,9 @@ with alarm_column:
             )
             note = st.text_area("what it was", key="acknowledge-note", help="Becomes a note on the alarm's lab day.")
             author = st.text_input("author (optional)", key="acknowledge-author")
+            accept = st.checkbox("accept the new level", key="acknowledge-accept", help="The level since the alarm's day becomes the reference: the baseline starts again from that day. Recorded as a note.")
             if st.form_submit_button("Acknowledge", type="primary", key="acknowledge-submit"):
-                written(lambda: f"alarm {alarm} acknowledged (note {common.acknowledge(url, alarm, note, author=author)})")
+                written(lambda: f"alarm {alarm} {'acknowledged, new level accepted' if accept else 'acknowledged'} (note {common.acknowledge(url, alarm, note, author=author, accept=accept)})")
 
 st.markdown("#### Latest notes")
 notes = common.annotations(url)

@@ -45,7 +45,7 @@ since, until = (tuple(chosen_days) + (last_day,))[:2] if chosen_days else (first
 sequences = common.sequences(url, apparatus)
 sequence = row[1].selectbox("sequence", ["all sequences", *sequences], key=f"drift-sequence-{apparatus}")
 sequence = None if sequence == "all sequences" else sequence
-baseline_days = int(row[2].number_input("baseline days", min_value=2, max_value=60, value=7, key="drift-baseline", help="The first days with data that set the control limits."))
+baseline_days = int(row[2].number_input("baseline days", min_value=7, max_value=90, value=28, key="drift-baseline", help="In-control lab days in the rolling baseline that sets the limits (restarted from an accepted new level)."))
 
 known = common.parameters_table(url, apparatus)
 ranged = known[(known["kind"] == "number") & (known["max"] > known["min"])].set_index("name")
@@ -86,6 +86,8 @@ with charts_column:
         st.altair_chart(charts.drift_chart(view, (since.isoformat(), until.isoformat()), zone), width="stretch", key=f"drift-chart-{quantity}")
         baseline = view["baseline"]
         detail = f"limits: {view['method']}" + (f", baseline {baseline[0]} to {baseline[1]}" if baseline else "") if view["method"] else view["note"]
+        if view["series"]:
+            st.caption(f"series {view['series']['label']} (`{view['series']['key']}`)")
         st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}.")
         all_changes += [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
 

@@ -6,7 +6,7 @@ import pandas as pd
 import streamlit as st
 
 from runlog.dashboard_app import charts, common
-from runlog.errors import RunlogError
+from runlog.errors import RunlogError, one_line
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
@@ -28,6 +28,12 @@ days = common.lab_days(url, apparatus)
 day = pick[1].selectbox(
     f"lab day ({zone})", days, index=days.index(asked["day"].iloc[0]) if len(asked) else 0, format_func=lambda d: f"{d:%a %d %b %Y}", key=f"run-day-{apparatus}"
 )
+if asked_apparatus is not None and asked_apparatus not in names:
+    st.warning(f"No apparatus '{one_line(asked_apparatus)}' in this catalogue: showing {apparatus} instead.")
+elif asked_run is not None and not len(asked):
+    # A link to a run that is not there (mistyped, withdrawn, another catalogue) says so
+    # instead of quietly opening some other run.
+    st.warning(f"No run '{one_line(asked_run)}' on {apparatus}: showing a run of {day:%d %b %Y} instead.")
 runs = every_run[every_run["day"] == day].sort_values("started")
 labels = {r.run: f"{r.run} · {r.sequence} · {r.local_start[11:]} · {r.shots} shots" for r in runs.itertuples()}
 keys = list(labels)

@@ -1,0 +1,140 @@
+"""Writers and readers: a reader can neither take nor hold the writer's lock, and a reader
+idle in an open transaction delays an ingest that adds a measurement column by seconds —
+the ingest then lands or refuses that file in one line — never forever. On both backends
+(the reader role exists on PostgreSQL only)."""
+
+from __future__ import annotations
+
+import threading
+import time
+import uuid
+
+import numpy as np
+import pytest
+from sqlalchemy import create_engine, text
+from sqlalchemy.engine import make_url
+
+import runlog
+from conftest import shot_table, write_table
+from runlog.store import bulk
+
+# The advisory lock key runlog's writers took before the writer lock was a row lock.
+OLD_ADVISORY_KEY = 0x72756E6C6F67
+BOUND_S = 90
+
+
+def _ingest_in_background(catalogue, path):
+    outcome: dict[str, object] = {}
+
+    def work() -> None:
+        started = time.monotonic()
+        try:
+            outcome["results"] = catalogue.ingest(path)
+        except BaseException as error:  # noqa: BLE001 - the test reports it
+            outcome["error"] = error
+        outcome["seconds"] = time.monotonic() - started
+
+    thread = threading.Thread(target=work, daemon=True)
+    thread.start()
+    return thread, outcome
+
+
+def _reader_url(catalogue, db_url: str) -> str:
+    role = "reader_" + uuid.uuid4().hex[:8]
+    catalogue.grant_reader(role)
+    return make_url(db_url).set(username=role).render_as_string(hide_password=False)
+
+
+def test_an_idle_reader_cannot_stop_an_ingest_that_adds_a_measurement(catalogue, db_url, tmp_path, monkeypatch):
+    monkeypatch.setattr(bulk, "DDL_LOCK_TIMEOUT_S", 1)  # the design's bound, shortened for the test
+    catalogue.ingest(write_table(tmp_path / "first.parquet", shot_table({"r1": 4})))
+    postgres = catalogue.engine.dialect.name == "postgresql"
+    reader_engine = create_engine(_reader_url(catalogue, db_url)) if postgres else create_engine(db_url)
+    reader = reader_engine.connect()
+    try:
+        if postgres:
+            # What a reader could do before: hold runlog's old advisory writer lock ...
+            reader.execute(text("SELECT pg_advisory_lock(:k)"), {"k": OLD_ADVISORY_KEY})
+            reader.commit()
+        # ... and sit idle in an open transaction that has read the measurements.
+        reader.execute(text("SELECT count(*) FROM shot_measurements")).all()
+        path = write_table(tmp_path / "second.parquet", shot_table({"r2": 4}, extra={"m.new_signal": np.ones(4)}))
+        thread, outcome = _ingest_in_background(catalogue, path)
+        thread.join(BOUND_S)
+        assert not thread.is_alive(), f"ingest still waiting after {BOUND_S} s"
+        assert "error" not in outcome, outcome.get("error")
+        [result] = outcome["results"]
+        if postgres:
+            # The column needs the table to itself: refused as busy, naming who holds it.
+            assert result.status == "rejected" and result.cause == "busy" and not result.files_fault, result.reason
+            assert "adding 1 measurement column(s)" in result.reason and "pid" in result.reason and "idle in transaction" in result.reason
+            assert "\n" not in result.reason
+        else:
+            assert result.status == "ingested", result.reason  # WAL readers never block a writer
+    finally:
+        reader.rollback()
+        reader.close()
+        reader_engine.dispose()
+    # Once the reader is gone the same file lands.
+    [again] = catalogue.ingest(path)
+    assert again.status == ("ingested" if postgres else "already-present"), again.reason
+    assert catalogue.shots("r2")["m.new_signal"].tolist() == [1.0] * 4
+
+
+def test_an_ingest_is_not_held_up_by_the_old_advisory_lock(catalogue, db_url, tmp_path):
+    catalogue.ingest(write_table(tmp_path / "first.parquet", shot_table({"r1": 4})))
+    if catalogue.engine.dialect.name != "postgresql":
+        pytest.skip("advisory locks and roles are PostgreSQL's")
+    reader_engine = create_engine(_reader_url(catalogue, db_url))
+    with reader_engine.connect() as reader:
+        reader.execute(text("SELECT pg_advisory_lock(:k)"), {"k": OLD_ADVISORY_KEY})
+        reader.execute(text("SELECT 1")).all()  # and an open transaction
+        thread, outcome = _ingest_in_background(catalogue, write_table(tmp_path / "second.parquet", shot_table({"r2": 4})))
+        thread.join(BOUND_S)
+        assert not thread.is_alive() and [r.status for r in outcome["results"]] == ["ingested"]
+    reader_engine.dispose()
+
+
+def test_the_reader_role_cannot_take_the_writer_lock(catalogue, db_url):
+    if catalogue.engine.dialect.name != "postgresql":
+        pytest.skip("roles are PostgreSQL's")
+    reader_engine = create_engine(_reader_url(catalogue, db_url))
+    try:
+        with reader_engine.connect() as reader:
+            with pytest.raises(Exception) as refused:
+                bulk.take_writer_lock(reader)
+            assert "permission denied" in str(refused.value)
+    finally:
+        reader_engine.dispose()
+
+
+def test_a_second_writer_waits_for_the_first(catalogue, tmp_path, monkeypatch):
+    # Writers queue on the lock (bounded by WRITER_WAIT_S), they do not refuse each other.
+    if catalogue.engine.dialect.name != "postgresql":
+        pytest.skip("SQLite's writers queue on BEGIN IMMEDIATE (tests/test_concurrency.py)")
+    holder = catalogue.engine.connect()
+    transaction = holder.begin()
+    bulk.take_writer_lock(holder)
+    thread, outcome = _ingest_in_background(catalogue, write_table(tmp_path / "a.parquet", shot_table({"r1": 3})))
+    time.sleep(1.5)
+    assert thread.is_alive()  # waiting for the lock, not refused
+    transaction.rollback()
+    holder.close()
+    thread.join(BOUND_S)
+    assert [r.status for r in outcome["results"]] == ["ingested"]
+
+
+def test_a_writer_that_waits_too_long_is_refused_as_busy(catalogue, tmp_path, monkeypatch):
+    if catalogue.engine.dialect.name != "postgresql":
+        pytest.skip("the writer lock is PostgreSQL's")
+    monkeypatch.setattr(bulk, "WRITER_WAIT_S", 1)
+    holder = catalogue.engine.connect()
+    transaction = holder.begin()
+    bulk.take_writer_lock(holder)
+    try:
+        [result] = catalogue.ingest(write_table(tmp_path / "a.parquet", shot_table({"r1": 3})))
+    finally:
+        transaction.rollback()
+        holder.close()
+    assert result.status == "rejected" and result.cause == "busy" and "\n" not in result.reason
+    assert "lock timeout" in result.reason
