@@ -342,21 +342,36 @@ def _resource(name: str, path: Path, format: str, schema: dict[str, object], des
     return entry
 
 
-def _source_files(connection, run_order: list[int], runs_table: pa.Table) -> list[dict[str, object]]:
-    """The ingested files that wrote shots into the exported run versions (``run_files``),
-    with the runs of the export each wrote into."""
+def _source_files(connection, run_order: list[int], runs_table: pa.Table, shot_ids: np.ndarray | None = None) -> list[dict[str, object]]:
+    """The ingested files that brought the exported shots (``run_files``), with the runs of
+    the export each wrote into, per apparatus: run keys coincide across apparatus (a date
+    is the usual key), so a key alone does not say whose run it is.
+
+    With the exported ``shot_ids``, a file is named only when one of its shots is exported
+    (its shots are the id range ``first_shot_id``..``last_shot_id`` of each run version it
+    wrote into); catalogues from before that range was kept name every file of the run.
+    """
     position = {rid: i for i, rid in enumerate(run_order)}
     keys = runs_table.column("run").to_pylist()
+    apparatus = runs_table.column("apparatus").to_pylist()
+    exported = np.sort(np.asarray(shot_ids, dtype=np.int64)) if shot_ids is not None else None
     files, log = s.RunFile.__table__, s.IngestLogEntry.__table__
     found: dict[tuple[str, str], dict[str, object]] = {}
     for chunk in _chunks(run_order):
-        for run_id, file, sha256, shots in connection.execute(
-            select(files.c.run_id, log.c.file, log.c.sha256, log.c.shots).join(log, log.c.id == files.c.ingest_id).where(id_in(files.c.run_id, chunk))
+        for run_id, file, sha256, shots, first, last in connection.execute(
+            select(files.c.run_id, log.c.file, log.c.sha256, log.c.shots, files.c.first_shot_id, files.c.last_shot_id).join(log, log.c.id == files.c.ingest_id).where(id_in(files.c.run_id, chunk))
         ):
-            entry = found.setdefault((file, sha256), {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": []})
-            entry["runs"].append(keys[position[int(run_id)]])
+            if exported is not None and first is not None and last is not None:
+                low, high = np.searchsorted(exported, int(first), side="left"), np.searchsorted(exported, int(last), side="right")
+                if high <= low:
+                    continue  # the file wrote into the run, but none of its shots is exported
+            entry = found.setdefault((file, sha256), {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": [], "apparatus": {}})
+            at = position[int(run_id)]
+            entry["runs"].append(keys[at])
+            entry["apparatus"].setdefault(apparatus[at], []).append(keys[at])
     for entry in found.values():
         entry["runs"] = sorted(set(entry["runs"]))
+        entry["apparatus"] = {name: sorted(set(runs)) for name, runs in sorted(entry["apparatus"].items())}
     return [found[k] for k in sorted(found)]
 
 
@@ -693,7 +708,8 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
             "withdrawn_since": withdrawn_since(connection, found),
         }
     else:
-        selection = select_on(connection, where, shot_ids=with_occupancy)
+        # The shot ids name the files that brought exactly these shots (provenance).
+        selection = select_on(connection, where, shot_ids=True)
         frozen, records = None, None
     if selected is not None:
         selected(selection.table)
@@ -707,7 +723,7 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
         occupancy_columns, images_table = _occupancy(connection, selection, run_order, runs_table)
         for name, values in occupancy_columns.items():
             shots_table = shots_table.append_column(name, values)
-    sources = _source_files(connection, run_order, runs_table)
+    sources = _source_files(connection, run_order, runs_table, selection.shot_ids)
     if pinned is None:
         from runlog.pins import other_versions_pinned
 

@@ -195,7 +195,7 @@ def test_every_derive_adds_an_immutable_record_and_the_newest_is_in_force(catalo
     assert [h["options"] for h in survival] == [{"interval": "clopper-pearson"}, {"interval": "wilson"}]
     assert [h["in_force"] for h in survival] == [True, False]
     assert [h["binomial_method"] for h in survival] == ["clopper-pearson", "wilson"]
-    assert [h["method"] for h in survival] == ["shot-ratio-wilson", "shot-ratio-wilson"]
+    assert [h["method"] for h in survival] == ["shot-ratio", "shot-ratio"]
     assert survival[0]["runlog_version"] == runlog.__version__ and survival[0]["analysis"] == ""
     assert survival[0]["shots"] == 50 and survival[0]["kind"] == "counting"
     assert catalogue.run("r1").figures["survival"]["binomial_method"] == "clopper-pearson"

@@ -79,7 +79,7 @@ def test_fill_fraction_pooled_interval_matches_statsmodels_wilson():
     assert figure.value == 0.5
     assert (figure.binomial_ci_low, figure.binomial_ci_high) == pytest.approx((low, high), abs=1e-12)
     assert figure.binomial_method == "wilson"
-    assert figure.method == "shot-ratio-wilson"
+    assert figure.method == "shot-ratio"
     assert figure.unit == ""
 
 

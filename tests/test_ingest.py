@@ -118,7 +118,7 @@ def test_counting_figures_are_computed_at_ingest_and_pooled_over_files(catalogue
     low, high = proportion_confint(int(load.sum()), load.size, alpha=0.05, method="wilson")
     assert (figures["fill_fraction"]["binomial_ci_low"], figures["fill_fraction"]["binomial_ci_high"]) == pytest.approx((low, high), abs=1e-12)
     assert figures["fill_fraction"]["binomial_method"] == "wilson"
-    assert figures["fill_fraction"]["method"] == "shot-ratio-wilson"
+    assert figures["fill_fraction"]["method"] == "shot-ratio"
     from runlog.figures.counting import fill_fraction
 
     assert figures["fill_fraction"]["ci_low"] == pytest.approx(fill_fraction(load).ci_low, rel=1e-12)

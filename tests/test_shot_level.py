@@ -118,7 +118,7 @@ def test_ingest_stores_shot_level_and_binomial_intervals_and_pools_files(catalog
     loading, kept = np.vstack(loads), np.vstack(survives)
     expected = fill_fraction(loading)
     stored = figures["fill_fraction"]
-    assert stored["method"] == "shot-ratio-wilson" and stored["binomial_method"] == "wilson"
+    assert stored["method"] == "shot-ratio" and stored["binomial_method"] == "wilson"
     assert (stored["ci_low"], stored["ci_high"], stored["stderr"]) == pytest.approx((expected.ci_low, expected.ci_high, expected.stderr), rel=1e-12)
     assert (stored["binomial_ci_low"], stored["binomial_ci_high"]) == pytest.approx(wilson(int(loading.sum()), loading.size), rel=1e-12)
     kept_figure, lost_figure = survival(loading, kept)
@@ -167,6 +167,6 @@ def test_migration_gives_old_counting_figures_the_shot_level_interval(db_url, ma
         for name in ("fill_fraction", "survival", "loss"):
             for key in ("value", "ci_low", "ci_high", "stderr", "binomial_ci_low", "binomial_ci_high"):
                 assert after[name][key] == pytest.approx(before[name][key], rel=1e-12), (name, key)
-            assert (after[name]["method"], after[name]["binomial_method"]) == ("shot-ratio-wilson", "wilson")
+            assert (after[name]["method"], after[name]["binomial_method"]) == ("shot-ratio", "wilson")
         drift_points = catalogue.drift("fill_fraction", apparatus="bench-a").points
         assert drift_points[0].ci_low == pytest.approx(before["fill_fraction"]["ci_low"], rel=1e-12)

@@ -130,7 +130,7 @@ def _recompute(bind) -> None:
             for table, key in (("figures", "run_id = :r AND name = :n"), ("figure_records", "id = (SELECT record_id FROM figures WHERE run_id = :r AND name = :n)")):
                 bind.execute(sa.text(
                     f"UPDATE {table} SET counted_shots = :shots, successes_squares = :y2, trials_squares = :x2, successes_trials = :xy, "
-                    f"stderr = :stderr, ci_low = :low, ci_high = :high, method = 'shot-ratio-wilson', method_version = '2' "
+                    f"stderr = :stderr, ci_low = :low, ci_high = :high, method = 'shot-ratio', method_version = '2' "
                     f"WHERE kind = 'counting' AND {key}"
                 ), row)
     bind.execute(sa.text("DELETE FROM daily_rollups"))

@@ -35,6 +35,7 @@ from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
 from runlog.figures.intervals import wilson
+from runlog.drift.pooling import arithmetic_of, half_period, pool
 from runlog.figures.shot_level import ShotSums, shot_level_interval
 from runlog.store import schema as s
 
@@ -256,6 +257,7 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         units = sorted({row[-1] or "(none)" for row in rows})
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
     days: dict[object, list[float]] = {}
+    fitted: dict[object, tuple[list[float], list[float | None]]] = {}
     unit = ""
     for day, shots, value, stderr, successes, trials, counted, y2, x2, xy, figure_unit in rows:
         unit = figure_unit or unit
@@ -269,15 +271,31 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
             for position, part in ((4, counted), (5, y2), (6, x2), (7, xy)):
                 sums[position] = None if part is None or sums[position] is None else sums[position] + part
         sums[8] += 1
-        sums[9] += value
-        sums[10] += value * value
-        if stderr is not None and stderr > 0:
-            w = 1.0 / (stderr * stderr)
-            sums[11] = (sums[11] or 0.0) + w
-            sums[12] = (sums[12] or 0.0) + w * value
-            sums[13] = (sums[13] or 0.0) + w * value * value
-    points = [p for p in (_point(day, *sums) for day, sums in days.items()) if p is not None]
+        fitted.setdefault(day, ([], []))
+        fitted[day][0].append(value)
+        fitted[day][1].append(stderr)
+    points = []
+    for day, sums in days.items():
+        if sums[3]:
+            point = _point(day, *sums[:8], sums[8], 0.0, 0.0, None, None, None)
+        else:
+            # Fitted figures: linear, circular (angles) or logarithmic (times) pooling.
+            value, low, high, stderr, spread = pool(*fitted[day], unit)
+            day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
+            point = DriftPoint(day, value, low, high, int(sums[0]), int(sums[1]), stderr, spread)
+        if point is not None:
+            points.append(point)
     return points, unit, any(p.trials is not None for p in points)
+
+
+def _unwrapped(points: list[DriftPoint], half: float) -> list[DriftPoint]:
+    """Daily phases shifted by whole turns so that each lies within half a turn of the day
+    before: a phase drifting through 180 deg is charted as a drift, not as a jump of a
+    full turn (limits and changes are judged on this series)."""
+    from dataclasses import replace
+
+    values = np.unwrap(np.array([p.value for p in points]), period=2 * half)
+    return [replace(p, value=float(v), ci_low=p.ci_low + float(v) - p.value, ci_high=p.ci_high + float(v) - p.value) for p, v in zip(points, values)]
 
 
 def _accepted_days(connection: Connection, apparatus_id: int, quantity: str, series_key: str) -> list[dt.date]:
@@ -360,6 +378,8 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         runs = chosen["runs"]
         others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
     points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
+    if not counting and points and arithmetic_of(unit) == "circular":
+        points = _unwrapped(points, half_period(unit))
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
     if chosen is not None and table is not None:

@@ -14,7 +14,7 @@ is conditional on the site having been loaded.
 
 Each figure's ``ci_low``/``ci_high`` (95 %) and ``stderr`` are shot-level
 (:mod:`runlog.figures.shot_level`: a ratio estimate over shots with the variance from the
-spread between shots, Cochran 1977 section 6.3), ``method`` ``shot-ratio-wilson``: they
+spread between shots, Cochran 1977 section 6.3), ``method`` ``shot-ratio``: they
 hold when the loading varies from shot to shot, as it always does. The pooled binomial
 interval, which treats every site observation as an independent try and is far too narrow
 then, stays beside it as ``binomial_ci_low``/``binomial_ci_high`` with its method

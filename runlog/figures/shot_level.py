@@ -39,7 +39,7 @@ import numpy as np
 __all__ = ["SHOT_LEVEL_METHOD", "ShotSums", "shot_level_interval"]
 
 #: The ``method`` of a figure whose ``ci_low``/``ci_high`` come from this module.
-SHOT_LEVEL_METHOD = "shot-ratio-wilson"
+SHOT_LEVEL_METHOD = "shot-ratio"
 
 
 @dataclass(frozen=True)
