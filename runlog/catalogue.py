@@ -835,6 +835,23 @@ class Catalogue:
                 for e in reference.series_of(connection, apparatus_id, quantity, table)
             ]
 
+    def stability(self, quantity: str, *, apparatus: str | None = None, series: str | None = None) -> dict[str, object]:
+        """The Allan deviation of ``quantity`` over the runs of its reference series (or
+        ``series``) and what it means for the lab (:mod:`runlog.drift.steadiness`)."""
+        from runlog.drift import reference
+        from runlog.drift.series import _apparatus_id
+        from runlog.drift.steadiness import steadiness
+
+        with self.engine.connect() as connection:
+            apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
+            found = reference.series_of(connection, apparatus_id, quantity)
+            chosen = next((e for e in found if series in (e["key"], *[m["series"].key for m in e["members"]])), None) if series else reference.reference_series(connection, apparatus_id, quantity)
+            if chosen is None:
+                raise NotFoundError("series", series or quantity)
+            unit = connection.execute(select(s.FigureRow.unit).where(s.FigureRow.run_id.in_(chosen["runs"]), s.FigureRow.name == quantity).limit(1)).scalar() or ""
+            result = steadiness(connection, quantity, chosen["runs"], unit)
+        return {"quantity": quantity, "series": reference.describe(chosen), "unit": unit, **result}
+
     def declare_reference(self, apparatus: str, *, sequence: str | None = None, vary: Iterable[str] = (), tolerance: float | None = None) -> None:
         """Declare an apparatus' reference sequence, the parameters that may vary without
         starting a new series, and the relative rounding of constant values
@@ -918,6 +935,13 @@ class Catalogue:
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
         return _frame(rows, ["name", "unit", "kind", "min", "max", "runs"])
+
+    def new_alarms(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
+        """Judge drift (:meth:`check_drift`) and return only the alarms it recorded now:
+        what ``runlog watch`` reports after each ingest (an alarm is recorded once)."""
+        before = {a["id"] for a in self.alarms(status=None, apparatus=apparatus)}
+        self.check_drift(apparatus=apparatus)
+        return [a for a in self.alarms(status=None, apparatus=apparatus) if a["id"] not in before]
 
     def check_drift(self, *, apparatus: str | None = None) -> list[dict[str, object]]:
         """Judge the reference series of every quantity of every apparatus and record

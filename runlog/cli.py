@@ -429,9 +429,10 @@ cli.add_command(click.Command("annotate", params=note.params, callback=note.call
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml for the files.")
 @click.option("--quarantine", type=click.Path(path_type=Path, file_okay=False), default=None, help="Where refused files go (default FOLDER/quarantine).")
 @click.option("--log", "log_file", type=click.Path(path_type=Path, dir_okay=False), default=None, help="Log file (default FOLDER/runlog-watch.log).")
+@click.option("--digest-hour", type=click.IntRange(0, 23), default=None, metavar="H", help="Send yesterday's digest once a day at this lab hour (e-mail and/or webhook from the environment).")
 @click.option("--stop-after", type=float, default=None, hidden=True)
 @_common
-def watch(state: _State, folder: Path, interval: float, config: Path | None, quarantine: Path | None, log_file: Path | None, stop_after: float | None) -> None:
+def watch(state: _State, folder: Path, interval: float, config: Path | None, quarantine: Path | None, log_file: Path | None, digest_hour: int | None, stop_after: float | None) -> None:
     """Ingest new files in FOLDER as they appear, once each has stopped changing."""
     from runlog.config import load_config
     from runlog.watch import Watcher
@@ -461,7 +462,27 @@ def watch(state: _State, folder: Path, interval: float, config: Path | None, qua
                     logger.info("%s", _outcome_line(outcome))
             return results
 
-        watcher = Watcher(folder, ingest_and_derive, quarantine, logger)
+        # After each ingest: judge the reference series, log each new alarm once.
+        sent_for: set[str] = set()
+
+        def judge_drift(results: list) -> None:
+            _judge(results)
+
+        def _judge(results: list) -> None:
+            for alarm in catalogue.new_alarms():
+                where = f" [{alarm['series']['label']}]" if alarm.get("series") else ""
+                logger.warning("alarm #%s %s %s%s: %s on %s (%s)", alarm["id"], alarm["apparatus"], alarm["quantity"], where, alarm["reason"], alarm["date"], alarm["method"])
+
+        def send_digest_when_due() -> None:
+            from runlog.digest import due_day, send_due
+
+            day = due_day(catalogue.lab_timezone, digest_hour, sent_for)
+            if day is not None:
+                sent_for.add(day.isoformat())
+                for line in send_due(catalogue, day):
+                    logger.info("%s", line)
+
+        watcher = Watcher(folder, ingest_and_derive, quarantine, after_ingest=judge_drift, log=logger, after_poll=send_digest_when_due if digest_hour is not None else None)
         _echo(f"watching {folder} every {interval:g} s (Ctrl-C to stop)", err=True)
         try:
             watcher.run(interval, stop_after=stop_after)
@@ -664,9 +685,10 @@ def _outcome_json(outcome) -> dict[str, Any]:
 @click.option("--baseline", "baseline_range", default=None, metavar="FROM:TO", help="Lab days that set the limits instead (ISO dates).")
 @click.option("--param", "ranges", multiple=True, metavar="NAME=LOW:HIGH", help="Only runs with this parameter in range (stored unit); repeatable.")
 @click.option("--causes", is_flag=True, help="Notes, then suspects, at each change and each alarm day.")
+@click.option("--stability", is_flag=True, help="The Allan deviation over the series' runs, and what it means.")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, as_json: bool) -> None:
+def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | None, series_key: str | None, pooled: bool, list_series: bool, since: str | None, until: str | None, baseline_days: int, baseline_range: str | None, ranges: tuple[str, ...], causes: bool, stability: bool, as_json: bool) -> None:
     """Daily values of a figure for one reference series, control limits, changes in level and alarms."""
     parameters = dict(_range_option(text) for text in ranges)
     baseline = None
@@ -684,8 +706,11 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, series=series_key, pooled=pooled, since=_day_option(since, "--since"), until=_day_option(until, "--until"), baseline_days=baseline_days, baseline=baseline, parameters=parameters or None)
         days = sorted({c.date for c in result.changes} | {dt.date.fromisoformat(e["date"]) for e in result.excursions}) if causes else []
         found_suspects = {day: catalogue.suspects(quantity, day, apparatus=result.apparatus, top=5) for day in days}
+        steadiness = catalogue.stability(quantity, apparatus=result.apparatus, series=result.series["key"]) if stability and result.series else None
     if as_json:
         data = result.as_dict()
+        if stability:
+            data["stability"] = steadiness
         if causes:
             for entry in data["changes"] + data["excursions"]:
                 found = found_suspects[dt.date.fromisoformat(entry["date"])]
@@ -711,9 +736,44 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
         _print_suspects(found_suspects.get(change.date))
     for setting in result.settings:
         _wrapped(f"{setting['day']}: {setting['words']}")
+    if steadiness is not None:
+        _wrapped(f"stability: {steadiness['words']}")
     if not result.changes and len(result.points) >= 3:
         _echo("  no change in level found")
     _echo("advisory only: not a replacement for the lab's interlocks or rules")
+
+
+@cli.command()
+@click.option("--day", default=None, metavar="DATE", help="The lab day (ISO; default yesterday in the lab's time zone).")
+@click.option("--apparatus", default=None, help="Only this apparatus.")
+@click.option("--out", type=click.Path(path_type=Path, dir_okay=False), default=None, help="Write the self-contained HTML page here.")
+@click.option("--mail", is_flag=True, help="Send by e-mail (RUNLOG_SMTP_HOST, RUNLOG_DIGEST_TO, ... in the environment).")
+@click.option("--webhook", "webhook", is_flag=True, help="Post the text to the chat webhook in RUNLOG_DIGEST_WEBHOOK.")
+@click.option("--json", "as_json", is_flag=True)
+@_common
+def digest(state: _State, day: str | None, apparatus: str | None, out: Path | None, mail: bool, webhook: bool, as_json: bool) -> None:
+    """One lab day per apparatus against its reference: headline figures, open alarms with
+    their notes and suspects, the day's notes, ingest health; as text, HTML, e-mail or chat."""
+    from runlog.digest import build_digest, digest_html, digest_text, send_mail, send_webhook
+
+    with _open(state) as catalogue:
+        found = build_digest(catalogue, day=_day_option(day, "--day"), apparatus=apparatus)
+    if out is not None:
+        temporary = out.with_name(out.name + ".partial")
+        temporary.write_text(digest_html(found), encoding="utf-8")
+        temporary.replace(out)  # nothing half-written
+    if mail:
+        recipients = send_mail(found)
+        _echo(f"digest sent to {len(recipients)} recipient{'s' if len(recipients) != 1 else ''}", err=True)
+    if webhook:
+        status = send_webhook(found)
+        _echo(f"digest posted to the chat webhook (HTTP {status})", err=True)
+    if as_json:
+        _json(found)
+    elif out is None or mail or webhook:
+        _echo(digest_text(found), nl=False)
+    else:
+        _echo(f"wrote {out}")
 
 
 def _print_suspects(found: dict[str, object] | None) -> None:

@@ -81,6 +81,8 @@ class Mapping:
     references: dict[str, dict[str, object]] = field(default_factory=dict)
     #: ``[time_window]``: shot times outside it are refused.
     time_window: TimeWindow = DEFAULT_TIME_WINDOW
+    #: ``[units]``: lab-defined units, ``(name, definition)`` pairs (runlog.units).
+    units: tuple[tuple[str, str], ...] = ()
     #: ``[figures] counting_status``: the shot statuses that count in figures.
     counting_status: tuple[str, ...] = ("ok",)
     #: ``[image_roles]``: sequence pattern -> ``survival`` or ``rearrangement``.
@@ -124,7 +126,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "image_roles"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "image_roles"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -180,7 +182,17 @@ def load_config(path: str | Path | None) -> Mapping:
         time_window=_time_window(data.get("time_window", {}), str(path)),
         counting_status=tuple(counting),
         image_roles={str(k): v for k, v in roles.items()},
+        units=_lab_units(data.get("units", {}), str(path)),
     )
+
+
+def _lab_units(table: object, source: str) -> tuple[tuple[str, str], ...]:
+    from runlog.units import UnitError, check_lab_units
+
+    try:
+        return check_lab_units(table)
+    except UnitError as error:
+        raise ConfigError(source, str(error)) from None
 
 
 def check_references(tables: object, source: str = "<reference>") -> dict[str, dict[str, object]]:
@@ -208,7 +220,7 @@ APPARATUS_KEYS = ("field_sensitivity", "zero_field_frequency")
 
 def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dict[str, dict[str, str]]:
     """``[apparatus."NAME"]`` tables checked: known keys, texts that pint reads as quantities."""
-    from runlog.units import registry
+    from runlog.units import quantity
 
     if not isinstance(tables, dict) or not all(isinstance(t, dict) for t in tables.values()):
         raise ConfigError(source, '[apparatus."NAME"] must be tables, one per apparatus')
@@ -219,9 +231,7 @@ def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dic
             raise ConfigError(source, f"[apparatus.\"{name}\"]: unknown key '{unknown[0]}' (known: {', '.join(APPARATUS_KEYS)})")
         for key, text in table.items():
             try:
-                if not isinstance(text, str):
-                    raise TypeError
-                registry().Quantity(text)
+                quantity(text)
             except Exception:
                 raise ConfigError(source, f"[apparatus.\"{name}\"] {key} = {text!r} is not a quantity with a unit such as '2.0 kHz/mG'") from None
         checked[name] = dict(table)

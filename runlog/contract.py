@@ -210,7 +210,7 @@ def read_layout(file: str, schema: pa.Schema, mapping: Mapping) -> Layout:
         elif (match := _NAMED.match(target)) is not None:
             name = match["name"].strip()
             try:
-                unit = check_unit(match["unit"] or "")
+                unit = check_unit(match["unit"] or "", mapping.units)
             except ValueError as error:
                 raise ContractError(file, str(error), column=source) from None
             if match["prefix"] == "p":

@@ -76,7 +76,7 @@ from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_m
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
 from runlog.figures.spreading import fit_spreading, position_spread
-from runlog.units import conversion, convert, registry
+from runlog.units import conversion, convert, parse_unit, quantity, registry
 
 if TYPE_CHECKING:
     from runlog.catalogue import Catalogue, RunInfo
@@ -436,7 +436,7 @@ def _listed(names: Sequence[str]) -> str:
 
 def _root(unit: str):
     try:
-        return registry().get_root_units(unit or "dimensionless")
+        return registry().get_root_units(parse_unit(unit))
     except Exception:  # pint raises several unrelated types for a unit it does not know
         return None
 
@@ -719,8 +719,6 @@ def _scan(source: _Source, options: _Options, suits: Callable[[str], bool], what
 
 def _quantity_setting(source: _Source, value: object, unit: str, what: str) -> float:
     """A setting that is a parameter name (its run value) or a quantity text, in ``unit``."""
-    from runlog.units import registry
-
     parameters = source.info.parameters
     if isinstance(value, str) and value in parameters:
         entry = parameters[value]
@@ -732,7 +730,7 @@ def _quantity_setting(source: _Source, value: object, unit: str, what: str) -> f
             raise FitError(source.kind, f"{what} parameter '{value}' is in '{text_unit or 'no unit'}', not convertible to '{unit}'")
         return float(entry["value"]) * factors[0] + factors[1]
     try:
-        return float(registry().Quantity(str(value)).to(unit).magnitude)
+        return float(quantity(str(value)).to(parse_unit(unit)).magnitude)
     except Exception:
         raise FitError(source.kind, f"{what} {value!r} is neither a parameter of the run nor a quantity in a unit convertible to '{unit}'") from None
 
@@ -845,8 +843,6 @@ def _detection(source: _Source, options: _Options) -> list[Figure]:
 def _trap_setting(source: _Source, options: _Options, name: str) -> tuple[float, str]:
     """``(value, unit)`` of a trap setting: ``settings[name]``, else the run's only fixed
     parameter whose name contains ``name``."""
-    from runlog.units import registry
-
     given = options.settings.get(name)
     if given is None:
         given = _trap_setting_name(source, name)
@@ -857,10 +853,10 @@ def _trap_setting(source: _Source, options: _Options, name: str) -> tuple[float,
             raise FitError(source.kind, f"{name} parameter '{given}' must hold one number for the whole run")
         return float(entry["value"]), str(entry["unit"] or "")
     try:
-        quantity = registry().Quantity(str(given))
+        given_quantity = quantity(str(given))
     except Exception:
         raise FitError(source.kind, f"{name} {given!r} is neither a parameter of the run nor a quantity with a unit") from None
-    return float(quantity.magnitude), str(quantity.units)
+    return float(given_quantity.magnitude), str(given_quantity.units)
 
 
 def _release_recapture(source: _Source, options: _Options, trap_only: bool = False):

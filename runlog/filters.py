@@ -46,6 +46,7 @@ from sqlalchemy import (
     bindparam,
     exists,
     not_,
+    literal,
     or_,
     select,
     true,
@@ -57,7 +58,7 @@ from runlog.errors import FilterError
 from runlog.store import schema as s
 from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
 from runlog.times import day_start_utc
-from runlog.units import check_unit, conversion
+from runlog.units import UnitError, check_unit, converter
 
 __all__ = [
     "MAX_LENGTH",
@@ -202,7 +203,7 @@ NAME: /[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)?/
 QUOTED_NAME: /"[^"\n]{1,200}"/
 STRING: /'(?:[^']|'')*'/
 NUMBER: /[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?/
-UNIT: /[A-Za-z_][A-Za-z0-9_]*(?:\^[+-]?\d+)?(?:[\/*][A-Za-z_][A-Za-z0-9_]*(?:\^[+-]?\d+)?)*/
+UNIT: /[A-Za-z_µμΩ°][A-Za-z0-9_µμΩ]*(?:(?:\^|\*\*)[+-]?\d+)?(?:[\/*][A-Za-z_µμΩ°][A-Za-z0-9_µμΩ]*(?:(?:\^|\*\*)[+-]?\d+)?)*/
 %ignore /[ \t\r\n]+/
 """
 
@@ -246,6 +247,11 @@ def _expected(names: set[str] | frozenset[str]) -> str:
     return words[0] if len(words) == 1 else ", ".join(words[:-1]) + " or " + words[-1]
 
 
+
+def _after_number(text: str, position: int) -> bool:
+    """Whether ``text[position]`` starts a unit: a number, then optional spaces, before it."""
+    return re.search(r"(?:^|[^A-Za-z0-9_.])[0-9.]+(?:[eE][-+]?[0-9]+)?\s*$", text[:position]) is not None
+
 def _check_characters(text: str) -> None:
     """Refuse control characters anywhere and non-ASCII outside quoted text."""
     quoted: str | None = None
@@ -258,9 +264,10 @@ def _check_characters(text: str) -> None:
             continue
         if char in "'\"":
             quoted = char
-        elif ord(char) > 127:
+        elif ord(char) > 127 and not (char in "\u00b5\u03bc" and _after_number(text, position)):
             # Lookalikes (a Cyrillic 'а', a full-width '＝') must not pass for names or
-            # operators; text values in quotes may hold any letter.
+            # operators; text values in quotes may hold any letter. The micro sign is
+            # allowed where a unit starts, right after a number ('5 µs').
             hint = " (write micro as 'u', e.g. 'us')" if char in "\u00b5\u03bc" else ""
             raise FilterError(text, f"character '{char}' (U+{ord(char):04X}, {unicodedata.name(char, 'unnamed')}) is only allowed inside quotes{hint}", position)
 
@@ -441,6 +448,8 @@ class _Names:
     # PostgreSQL: the shot-level tables are partitioned by month and the children carry
     # their shot's time (runlog.store.partitions).
     partitioned: bool = False
+    #: The lab-defined units recorded at ingest (runlog.units), so filters read them too.
+    lab_units: tuple[tuple[str, str], ...] = ()
 
     @classmethod
     def load(cls, connection: Connection) -> _Names:
@@ -453,7 +462,8 @@ class _Names:
             for mid, name, unit in connection.execute(select(s.Measurement.id, s.Measurement.name, s.Measurement.unit))
         }
         zone_name = connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC"
-        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql")
+        lab_units = tuple(sorted((str(key)[5:], str(value)) for key, value in connection.execute(select(s.Setting.key, s.Setting.value).where(s.Setting.key.like("unit:%")))))
+        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql", lab_units)
 
     def all(self) -> list[str]:
         return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures]
@@ -532,14 +542,17 @@ def _in_runs(condition: ColumnElement[bool]) -> ColumnElement[bool]:
 
 def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
     """``column operator values``, never NULL: a missing value compares false."""
-    # Lists are spelled out as = / != terms rather than IN (...), so the statement has a
-    # fixed set of plain bound values and can be handed to the driver as it is.
+    # Lists are IN (...) of one bound value each, not expanding parameters, so the statement
+    # has a fixed set of plain bound values and can be handed to the driver as it is; not a
+    # chain of = terms either, which SQLite parses one level deeper per value and refuses
+    # past 1000 ("Expression tree is too large").
     if operator == "between":
         test = column.between(values[0], values[1])
-    elif operator == "in":
-        test = or_(*[column == v for v in values])
-    elif operator == "not in":
-        test = and_(*[column != v for v in values])
+    elif operator in ("in", "not in"):
+        # Each value bound with the column's type (times are stored as numbers on SQLite),
+        # a fraction as a float: 'shot in (0.5)' matches no shot rather than shot 0.
+        bound = [literal(v, Float() if isinstance(v, float) else column.type) for v in values]
+        test = column.in_(bound) if operator == "in" else column.not_in(bound)
     else:
         test = {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
     return and_(column.is_not(None), test)
@@ -550,7 +563,9 @@ def _range_may_hold(low, high, operator: str, values: list[float]) -> ColumnElem
     if operator == "=":
         return and_(low <= values[0], high >= values[0])
     if operator == "in":
-        return or_(*[and_(low <= v, high >= v) for v in values])
+        # Any range meeting the span of the values may hold one (a prune may keep too much;
+        # one term per value would nest too deep for SQLite with many values).
+        return and_(high >= min(values), low <= max(values))
     if operator == "between":
         return and_(high >= values[0], low <= values[1])
     if operator in ("<", "<="):
@@ -658,19 +673,17 @@ class _Compiler:
             if unit is None:
                 raise self.error(f"'{node.name}' has no unit: write the number alone, without '{value.unit}'", value.position)
             try:
-                check_unit(value.unit)
-            except ValueError:
-                raise self.error(f"unknown unit '{value.unit}'", value.position) from None
-            factors = conversion(value.unit, unit)
-            if factors is None:
-                raise self.error(f"'{node.name}' is stored in '{unit or 'no unit'}'; '{value.unit}' is not a unit of the same dimension", value.position)
-            scale, offset = factors
-            converted = float(value.value) * scale + offset
-            if (scale, offset) != (1.0, 0.0):
-                # 0.07 ms is 70.00000000000001 us in binary; keep what one would type in
-                # the stored unit (15 significant digits), so that it equals 70 us.
-                converted = float(f"{converted:.15g}")
-            out.append(converted)
+                check_unit(value.unit, self.names.lab_units)
+            except UnitError as error:
+                raise self.error(str(error), value.position) from None
+            try:
+                found = converter(value.unit, unit, self.names.lab_units)
+            except UnitError as error:
+                reason = f"'{value.unit}' is not a unit of the same dimension" if error.kind == "dimension" else str(error)
+                raise self.error(f"'{node.name}' is stored in '{unit or 'no unit'}'; {reason}", value.position) from None
+            # 0.07 ms is 70.00000000000001 us in binary: the conversion keeps what one would
+            # type in the stored unit (15 significant digits), so that it equals 70 us.
+            out.append(float(found(float(value.value))))
         return out
 
     def field(self, node: Comparison, name: str) -> CompiledFilter:

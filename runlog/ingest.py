@@ -34,7 +34,7 @@ from runlog.figures.shot_level import ShotSums
 from runlog.store.bulk import Writer, open_writer, short_write
 from runlog.store.failures import describe
 from runlog.store.schema import IngestLogEntry, Measurement, measurement_column
-from runlog.units import conversion
+from runlog.units import LabUnits, UnitError, converter
 
 __all__ = ["IngestResult", "ingest_files", "expand_paths", "file_sha256", "BATCH_ROWS"]
 
@@ -140,17 +140,18 @@ def file_sha256(path: Path) -> tuple[str, int]:
     return digest.hexdigest(), size
 
 
-def _signature(path: Path) -> tuple[int, int, int, int] | None:
-    """What tells that a file changed: device, inode, size, modification time (``None``:
-    gone)."""
+def _signature(path: Path) -> tuple[int, ...] | None:
+    """What tells that a file changed: device, inode, size, modification time and status
+    change time (``None``: gone). A writer can put size and modification time back
+    (``os.utime``); the status change time moves with every write and cannot be set."""
     try:
         stat = path.stat()
     except FileNotFoundError:
         return None
-    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns
+    return stat.st_dev, stat.st_ino, stat.st_size, stat.st_mtime_ns, stat.st_ctime_ns
 
 
-def _unchanged_since(path: Path, before: tuple[int, int, int, int] | None) -> None:
+def _unchanged_since(path: Path, before: tuple[int, ...] | None) -> None:
     """Refuse a file that was replaced, written to or deleted while it was being read:
     what was checked, hashed and written would not be one file."""
     now = _signature(path)
@@ -417,12 +418,32 @@ def _one(writer: Writer, sql: str, params: dict) -> object:
 class _Catalogue:
     """The ids the write needs: apparatus, parameters and measurements, created on demand."""
 
-    def __init__(self, writer: Writer, file: str):
+    def __init__(self, writer: Writer, file: str, lab: LabUnits = ()):
         self.writer = writer
         self.file = file
+        self.lab = self._lab_units(lab)
         self.apparatus: dict[str, int] = {}
         self.parameters: dict[str, tuple[int, str, str]] = {}
         self.measurements: dict[str, tuple[int, str]] = {}
+
+    def _lab_units(self, configured: LabUnits) -> LabUnits:
+        """The catalogue's lab-defined units with the configuration's new ones recorded, so
+        that filters know them; a name whose definition changed is refused."""
+        stored = {str(key)[5:]: str(value) for key, value in self.writer.rows("SELECT key, value FROM settings WHERE key LIKE 'unit:%'")}
+        for name, definition in configured:
+            if name in stored and stored[name] != definition:
+                raise ContractError(self.file, f"[units] {name} = '{definition}', but the catalogue's values in {name} were stored with {name} = '{stored[name]}'; give the new definition a new name")
+            if name not in stored:
+                self.writer.execute("INSERT INTO settings (key, value) VALUES (:key, :value)", {"key": f"unit:{name}", "value": definition})
+                stored[name] = definition
+        return tuple(sorted(stored.items()))
+
+    def converter(self, unit: str, stored_unit: str, what: str, name: str, column: str):
+        try:
+            return converter(unit, stored_unit, self.lab)
+        except UnitError as error:
+            reason = "" if error.kind == "dimension" else f": {error}"
+            raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of {what} '{name}'{reason}", column=column) from None
 
     def apparatus_id(self, name: str) -> int:
         if name not in self.apparatus:
@@ -442,8 +463,8 @@ class _Catalogue:
             pid, stored_unit, stored_kind = rows[0]
             if stored_kind != kind:
                 raise ContractError(self.file, f"parameter '{name}' is stored as {stored_kind}, this file has {kind}", column=column)
-            if kind != "text" and conversion(unit, stored_unit) is None:
-                raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of parameter '{name}'", column=column)
+            if kind != "text":
+                self.converter(unit, stored_unit, "parameter", name, column)
             self.parameters[name] = (int(pid), stored_unit, stored_kind)
         return self.parameters[name]
 
@@ -453,8 +474,7 @@ class _Catalogue:
             if not rows:  # _add_measurements made every name of the file before
                 raise ContractError(self.file, f"measurement '{name}' is not in the catalogue (removed while this file was written?); ingest the file again", column=column)
             mid, stored_unit = rows[0]
-            if conversion(unit, stored_unit) is None:
-                raise ContractError(self.file, f"unit '{unit}' cannot be converted to the stored unit '{stored_unit}' of measurement '{name}'", column=column)
+            self.converter(unit, stored_unit, "measurement", name, column)
             self.measurements[name] = (int(mid), stored_unit)
         return self.measurements[name]
 
@@ -509,9 +529,8 @@ def _add_measurements(engine: Engine, layout: Layout) -> None:
         short_write(engine, make, what=f"adding {len(names)} measurement column(s) for {layout.file}", table="shot_measurements")
 
 
-def _to_stored(value: float, unit: str, stored_unit: str) -> float:
-    scale, offset = conversion(unit, stored_unit)  # type: ignore[misc]
-    return value * scale + offset
+def _to_stored(value: float, unit: str, stored_unit: str, lab: LabUnits) -> float:
+    return float(converter(unit, stored_unit, lab)(float(value)))
 
 
 def _same(a: object, b: object) -> bool:
@@ -590,7 +609,7 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 if stats.present == 0:
                     continue
                 pid, stored_unit, kind = ids.parameters[name]
-                new_parameters.append(_run_parameter_row(run.run_id, pid, stats, stored_unit))
+                new_parameters.append(_run_parameter_row(run.run_id, pid, stats, stored_unit, ids.lab))
                 if not stats.constant:
                     run.per_shot.add(name)
             new_measurements.extend(
@@ -632,15 +651,15 @@ _RUN_FILE_SCHEMA = pa.schema([("run_id", pa.int64()), ("ingest_id", pa.int64()),
 _RUN_MEASUREMENT_SCHEMA = pa.schema([("run_id", pa.int64()), ("measurement_id", pa.int64()), ("shots", pa.int64())])
 
 
-def _run_parameter_row(run_id: int, pid: int, stats: _Parameter, stored_unit: str) -> dict[str, object]:
+def _run_parameter_row(run_id: int, pid: int, stats: _Parameter, stored_unit: str, lab: LabUnits) -> dict[str, object]:
     number = text_value = minimum = maximum = None
     if stats.kind == "text":
         text_value = str(stats.first) if stats.constant else None
     else:
-        minimum = _to_stored(stats.minimum, stats.unit, stored_unit)
-        maximum = _to_stored(stats.maximum, stats.unit, stored_unit)
+        minimum = _to_stored(stats.minimum, stats.unit, stored_unit, lab)
+        maximum = _to_stored(stats.maximum, stats.unit, stored_unit, lab)
         minimum, maximum = min(minimum, maximum), max(minimum, maximum)
-        number = _to_stored(float(stats.first), stats.unit, stored_unit) if stats.constant else None
+        number = _to_stored(float(stats.first), stats.unit, stored_unit, lab) if stats.constant else None
     return {"run_id": run_id, "parameter_id": pid, "scanned": not stats.constant, "number_value": number, "text_value": text_value, "minimum": minimum, "maximum": maximum}
 
 
@@ -667,13 +686,13 @@ def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: 
         new_constant = stats.constant and stats.present == run.shot_count
         new_value = None
         if stats.present and new_constant:
-            new_value = str(stats.first) if kind == "text" else _to_stored(float(stats.first), stats.unit, stored_unit)
+            new_value = str(stats.first) if kind == "text" else _to_stored(float(stats.first), stats.unit, stored_unit, ids.lab)
         if old is None:
             if stats.present == 0:
                 continue
             # Stored shots lack this parameter: it cannot be constant over the run.
             stats_copy = _Parameter(stats.kind, stats.unit, stats.present, False, stats.first, stats.minimum, stats.maximum)
-            _append_rows(writer, "run_parameters", [_run_parameter_row(run.run_id, pid, stats_copy, stored_unit)], _RUN_PARAMETER_SCHEMA)
+            _append_rows(writer, "run_parameters", [_run_parameter_row(run.run_id, pid, stats_copy, stored_unit, ids.lab)], _RUN_PARAMETER_SCHEMA)
             run.per_shot.add(name)
             continue
         scanned, number, text_value, lo, hi = old
@@ -684,8 +703,8 @@ def _merge_parameters(writer: Writer, run: _Run, ids: _Catalogue, stored_count: 
             if not scanned:
                 _backfill(writer, run.run_id, pid, number, text_value)
         if kind != "text" and stats.present:
-            lo_new = _to_stored(stats.minimum, stats.unit, stored_unit)
-            hi_new = _to_stored(stats.maximum, stats.unit, stored_unit)
+            lo_new = _to_stored(stats.minimum, stats.unit, stored_unit, ids.lab)
+            hi_new = _to_stored(stats.maximum, stats.unit, stored_unit, ids.lab)
             lo = min(x for x in (lo, lo_new, hi_new) if x is not None)
             hi = max(x for x in (hi, lo_new, hi_new) if x is not None)
         writer.execute(
@@ -960,8 +979,7 @@ def _append_shot_parameters(writer, batch, run_index, shot_ids, columns, per_sho
             number_parts.append(pa.nulls(int(keep.sum()), pa.float64()))
         else:
             keep = needed & ~np.isnan(values)
-            scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
-            number_parts.append(pa.array(values[keep] * scale + offset, pa.float64()))
+            number_parts.append(pa.array(converter(column.unit, stored_unit, ids.lab)(values[keep].astype(float)), pa.float64()))
             text_parts.append(pa.nulls(int(keep.sum()), pa.string()))
         row_parts.append(np.flatnonzero(keep))
         id_parts.append(np.full(int(keep.sum()), pid, dtype=np.int64))
@@ -990,10 +1008,7 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
     present = np.zeros(batch.length, dtype=bool)
     for column in columns:
         mid, stored_unit = ids.measurements[column.name]
-        scale, offset = conversion(column.unit, stored_unit)  # type: ignore[misc]
-        values = batch.measurements[column.name]
-        if (scale, offset) != (1.0, 0.0):
-            values = values * scale + offset
+        values = converter(column.unit, stored_unit, ids.lab)(batch.measurements[column.name])
         missing = np.isnan(values)
         present |= ~missing
         data[measurement_column(mid)] = values, missing
@@ -1083,7 +1098,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         try:
             if writer.rows("SELECT 1 FROM ingest_log WHERE sha256 = :h AND status = 'ingested'", {"h": sha}):
                 return IngestResult(name, "already-present", tuple(r.key for r in plan.runs), plan.rows)
-            ids = _Catalogue(writer, name)
+            ids = _Catalogue(writer, name, mapping.units)
             _write_runs(writer, plan, ids)
             batches = kept if kept is not None else _batches(path, parquet, layout)
             shots, first_id = _write_shots(writer, path, batches, plan, ids, progress)

@@ -41,12 +41,16 @@ class Watcher:
     """Polls ``folder`` for ``*.parquet`` files and hands complete ones to ``ingest``.
 
     ``ingest`` takes a list of paths and returns one :class:`IngestResult` per path (in
-    practice ``Catalogue.ingest``).
+    practice ``Catalogue.ingest``). ``after_ingest``, if given, is called after each look
+    that ingested something new, with those results (in practice: judge drift and record
+    alarms, :meth:`Catalogue.check_drift`).
     """
 
     folder: Path
     ingest: Callable[[list[Path]], list[IngestResult]]
     quarantine: Path | None = None
+    after_ingest: Callable[[list[IngestResult]], object] | None = None
+    after_poll: Callable[[], object] | None = None  # e.g. send the daily digest when due
     log: logging.Logger = field(default_factory=lambda: logging.getLogger("runlog.watch"))
     _seen: dict[str, tuple[int, int]] = field(default_factory=dict)  # name -> (size, mtime_ns) last poll
     _done: dict[str, tuple[int, int]] = field(default_factory=dict)  # name -> (size, mtime_ns) handled
@@ -130,6 +134,11 @@ class Watcher:
                 self.log.info("%s %s: %s (%d shots)", result.status, shown, _printable(", ".join(result.runs)), result.shots)
         if ready:
             self._save_state()
+        fresh = [r for r in results if r.status == "ingested"]
+        if fresh and self.after_ingest is not None:
+            self.after_ingest(fresh)
+        if self.after_poll is not None:
+            self.after_poll()
         return results
 
     def _quarantine(self, path: Path, reason: str) -> None:

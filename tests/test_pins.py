@@ -191,3 +191,19 @@ def test_a_day_re_analysed_with_one_file_retracted_and_a_pin_from_before(catalog
     assert (entry["old"]["value"], entry["new"]["value"]) == (pytest.approx(old["fill_fraction"][0], rel=1e-12), pytest.approx(new["fill_fraction"][0], rel=1e-12))
     assert entry["sigma"] == pytest.approx((new["fill_fraction"][0] - old["fill_fraction"][0]) / math.hypot(old["fill_fraction"][1], new["fill_fraction"][1]), rel=1e-9)
     assert entry["pins"] == ["chapter-2"]
+
+
+@pytest.mark.parametrize("file_format", ["parquet", "csv"])
+def test_a_pinned_export_with_occupancy_is_byte_identical_in_either_format(pinned_before_v2, tmp_path, file_format):
+    catalogue, v1, v2, _, _, _ = pinned_before_v2
+    first = catalogue.export(None, tmp_path / "then", pin="fig3", with_occupancy=True, format=file_format)
+    catalogue.ingest(v2)
+    again = catalogue.export(None, tmp_path / "now", pin="fig3", with_occupancy=True, format=file_format)
+    assert again.data == first.data and f"images.{file_format}" in again.data
+    # The occupancy is the pinned version's, not the current one's.
+    if file_format == "parquet":
+        shots = pq.read_table(tmp_path / "now" / "shots.parquet").to_pandas()
+        r1 = shots[shots["run"] == "r1"].sort_values("shot")
+        source = pq.read_table(v1).to_pandas()
+        source = source[(source["run"] == "r1") & (source["shot"] < 50)].sort_values("shot")
+        assert list(r1["occ.load"]) == [np.packbits(np.asarray(v, bool)).tobytes().hex() for v in source["occ.load"]]

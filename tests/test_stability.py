@@ -108,3 +108,28 @@ def test_cross_check_with_allantools_when_installed():
         (modified_allan_deviation(y, taus), allantools.mdev(y, rate=1.0, data_type="freq", taus=taus)),
     ):
         np.testing.assert_allclose(ours.deviation, theirs[1], rtol=1e-9)
+
+
+def test_a_series_stability_matches_allantools_and_reads_in_plain_words(catalogue, make_file):
+    # Reference: allantools.oadev (overlapping Allan deviation, rate 1, octave taus), a
+    # library used only in the tests. White run-to-run noise: the deviation keeps falling.
+    import datetime as dt
+
+    import allantools
+
+    from runlog import Figure
+
+    rng = np.random.default_rng(41)
+    values = 1000.0 + rng.normal(0.0, 20.0, 32)
+    for day in range(8):
+        start = dt.datetime(2026, 3, 2 + day, 9, tzinfo=dt.timezone.utc)
+        catalogue.ingest(make_file(runs={f"r{day}-{k}": 5 for k in range(4)}, sequence="ramsey", start=start, seed=day))
+    for index, value in enumerate(values):
+        catalogue.save_figures(f"r{index // 4}-{index % 4}", "coherence", [Figure("coherence_time", float(value), "us", stderr=20.0, method="least-squares")])
+    found = catalogue.stability("coherence_time")
+    taus, deviation, _, _ = allantools.oadev(values, rate=1.0, data_type="freq", taus=np.array(found["taus"]))
+    # allantools leaves out the longest tau (one term); the others agree.
+    np.testing.assert_allclose(found["deviation"][: len(deviation)], deviation, rtol=1e-10)
+    assert found["terms"][-1] == 1 and len(deviation) == len(found["taus"]) - 1
+    assert found["words"].startswith(f"averaging {found['best_runs']} runs (about {5 * found['best_runs']} shots) reaches")
+    assert "no drift seen" in found["words"]

@@ -126,3 +126,37 @@ def test_a_file_deleted_while_being_read_is_refused_with_nothing_written(catalog
     log = catalogue.ingest_log()
     assert list(log["status"]) == ["rejected"] and "disappeared while being read" in log["reason"].iloc[0]
     assert not (folder / "quarantine").exists()
+
+
+def test_watch_judges_drift_after_each_ingest_and_records_each_alarm_once(catalogue, tmp_path):
+    # Twelve lab days of our own invention: fill fraction 0.5, then 0.3 from day 9 on.
+    import datetime as dt
+
+    import numpy as np
+    import pyarrow as pa
+
+    from conftest import T0
+
+    folder = tmp_path / "export"
+    folder.mkdir()
+    seen: list[list] = []
+    recorded: list[dict] = []
+
+    def judge(results):
+        seen.append(results)
+        recorded.extend(catalogue.new_alarms())
+
+    watcher = Watcher(folder, catalogue.ingest, after_ingest=judge)
+    rng = np.random.default_rng(12)
+    for day in range(12):
+        fill = 0.5 if day < 9 else 0.3
+        load = rng.random((40, 16)) < fill
+        table = shot_table({f"d{day}-a": 20, f"d{day}-b": 20}, start=T0 + dt.timedelta(days=day), seed=day, extra={"occ.load": pa.array(list(load), pa.list_(pa.bool_()))})
+        write_table(folder / f"day{day:02d}.parquet", table)
+    watcher.poll()
+    assert len(watcher.poll()) == 12 and len(seen) == 1
+    fill_alarms = [a for a in recorded if a["quantity"] == "fill_fraction"]
+    assert [(a["reason"], a["date"]) for a in fill_alarms] == [("limit", (T0 + dt.timedelta(days=9)).date().isoformat())]
+    assert watcher.poll() == [] and len(seen) == 1  # nothing new, nothing judged again
+    assert catalogue.new_alarms() == []  # found again, not recorded again
+    assert len([a for a in catalogue.alarms() if a["quantity"] == "fill_fraction"]) == 1

@@ -150,10 +150,10 @@ def unit_text(unit: str | None) -> str:
     """A stored unit as people write it (``us`` -> ``µs``); other units unchanged."""
     unit = unit or ""
     if re.fullmatch(r"u[A-Za-z]+", unit):
-        from runlog.units import registry
+        from runlog.units import parse_unit
 
         try:
-            if format(registry().Unit(unit), "~P") == "µ" + unit[1:]:
+            if format(parse_unit(unit), "~P") == "µ" + unit[1:]:
                 return "µ" + unit[1:]
         except Exception:  # pint raises several types for text it does not know
             pass
@@ -405,6 +405,12 @@ def fit_curve(url: str, run: str, apparatus: str, x: str | None, y: str | None, 
 def what_else_changed(url: str, quantity: str, day: dt.date, apparatus: str) -> pd.DataFrame:
     ranked = catalogue(url).what_else_changed(quantity, day, apparatus=apparatus)
     return pd.DataFrame(ranked, columns=["name", "kind", "words", "standardised_change", "q_value", "setting_changed", "before_mean", "after_mean", "n_before", "n_after"])
+
+
+@_cached
+def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str, object]:
+    """``catalogue.stability``: the Allan deviation over a series' runs, in plain words."""
+    return catalogue(url).stability(quantity, apparatus=apparatus, series=series)
 
 
 @_cached

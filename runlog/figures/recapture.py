@@ -235,9 +235,9 @@ def fit_release_recapture(
 
 def depth_in_joules(text_or_value: float, unit: str) -> float:
     """A trap depth given as a temperature (times k_B), an energy, or a frequency (times h)."""
-    from runlog.units import registry
+    from runlog.units import parse_unit, registry
 
-    quantity = registry().Quantity(text_or_value, unit)
+    quantity = registry().Quantity(text_or_value, parse_unit(unit))
     for target, factor in (("K", _BOLTZMANN), ("J", 1.0), ("Hz", _PLANCK)):
         try:
             return float(quantity.to(target).magnitude) * factor

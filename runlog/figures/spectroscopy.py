@@ -183,36 +183,36 @@ def field_from_resonance(resonance: Figure, sensitivity: str, zero_field_frequen
     from the zero-field transition. Raises ``ValueError`` for a text that is not such a
     quantity.
     """
-    from runlog.units import registry
+    from runlog.units import parse_unit, quantity, registry
 
     ureg = registry()
-    # pint's gauss is the CGS-Gaussian unit and does not convert to tesla outside a context
-    # (1 G = 1e-4 T exactly, NIST SP 811): a field is whatever converts to either.
-    field_unit = sensitivity.rsplit("/", 1)[-1].strip() if "/" in sensitivity else ""
+    # runlog's gauss is the flux density unit, 1 G = 1e-4 T (NIST SP 811; runlog.units).
+    field_text = sensitivity.rsplit("/", 1)[-1].strip() if "/" in sensitivity else ""
     try:
-        slope = ureg.Quantity(sensitivity)
+        slope = quantity(sensitivity)
+        field_unit = parse_unit(field_text)
         if not (_is_field(ureg, field_unit) and _is_field(ureg, ureg.Quantity(1.0, "Hz") / slope)):
             raise ValueError
     except Exception:
         raise ValueError(f"field_sensitivity '{sensitivity}' is not a frequency per magnetic field such as '2.0 kHz/mG'") from None
     if slope.magnitude == 0:
         raise ValueError("field_sensitivity is zero")
-    x0 = ureg.Quantity(resonance.value, resonance.unit or "Hz")
+    x0 = ureg.Quantity(resonance.value, parse_unit(resonance.unit or "Hz"))
     if zero_field_frequency is not None:
         try:
-            x0 = x0 - ureg.Quantity(zero_field_frequency).to(x0.units)
+            x0 = x0 - quantity(zero_field_frequency).to(x0.units)
         except Exception:
             raise ValueError(f"zero_field_frequency '{zero_field_frequency}' is not a frequency") from None
     try:
         field = float((x0 / slope).to(field_unit).magnitude)
-        error = None if resonance.stderr is None else abs(float((ureg.Quantity(resonance.stderr, resonance.unit) / slope).to(field_unit).magnitude))
+        error = None if resonance.stderr is None else abs(float((ureg.Quantity(resonance.stderr, parse_unit(resonance.unit or "Hz")) / slope).to(field_unit).magnitude))
     except Exception:
         raise ValueError(f"the resonance in '{resonance.unit}' divided by '{sensitivity}' is not a magnetic field") from None
-    return Figure("field", field, field_unit, stderr=error, method=method, method_version=_METHOD_VERSION)
+    return Figure("field", field, field_text, stderr=error, method=method, method_version=_METHOD_VERSION)
 
 
 def _is_field(ureg, quantity) -> bool:
-    quantity = ureg.Quantity(1.0, quantity) if isinstance(quantity, str) else quantity
+    quantity = quantity if isinstance(quantity, ureg.Quantity) else ureg.Quantity(1.0, quantity)
     for unit in ("G", "T"):
         try:
             quantity.to(unit)

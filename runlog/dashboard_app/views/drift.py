@@ -88,6 +88,8 @@ with charts_column:
         detail = f"limits: {view['method']}" + (f", baseline {baseline[0]} to {baseline[1]}" if baseline else "") if view["method"] else view["note"]
         if view["series"]:
             st.caption(f"series {view['series']['label']} (`{view['series']['key']}`)")
+            steady = common.stability(url, quantity, apparatus, view["series"]["key"])
+            st.caption(f"stability: {steady['words']} (Allan deviation over the series' runs)")
         st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}.")
         all_changes += [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
 
