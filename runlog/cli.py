@@ -125,11 +125,13 @@ def init(state: _State) -> None:
 @click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object per file.")
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml mapping your column names onto the contract.")
+@click.option("--apparatus", default=None, help="Apparatus of monitor tables that have no apparatus column.")
 @_common
-def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path | None) -> None:
-    """Ingest shot-table files or folders of *.parquet files.
+def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path | None, apparatus: str | None) -> None:
+    """Ingest shot-table and monitor-table files, or folders of *.parquet and *.csv files.
 
-    With [[rules]] in --config, the runs a file brought in get those figures too.
+    Monitor tables (docs/monitor-table.md) are told apart by their columns. With [[rules]]
+    in --config, the runs a file brought in get those figures too.
     """
     from runlog.config import load_config
 
@@ -137,7 +139,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
     with _open(state) as catalogue:
         progress = None if as_json or not sys.stderr.isatty() else _progress_bar()
         try:
-            results = catalogue.ingest(paths, config=mapping, progress=progress and progress.update)
+            results = catalogue.ingest(paths, config=mapping, progress=progress and progress.update, apparatus=apparatus)
         finally:
             if progress:
                 progress.close()
@@ -147,6 +149,9 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
         for r in results:
             if r.status == "rejected":
                 _echo(f"rejected         {r.reason}")
+            elif r.monitors:
+                names = ", ".join(r.monitors[:3]) + (f" (+{len(r.monitors) - 3} more)" if len(r.monitors) > 3 else "")
+                _echo(f"{r.status:<16} {r.file}: {r.values} monitor values, {names}")
             else:
                 runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
                 _echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")

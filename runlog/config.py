@@ -19,6 +19,9 @@ Example::
     [defaults]
     apparatus = "lattice-east"  # when the file has no apparatus column
 
+    [monitors]                # optional: which files are monitor tables (docs/monitor-table.md)
+    files = ["slow-control/*", "*.temps.parquet"]   # globs; default: told by the columns
+
     [figures]
     interval = "wilson"       # or "clopper-pearson", for fill fraction and survival
     counting_status = ["ok"]  # shot statuses that count in figures (default: only "ok");
@@ -77,6 +80,8 @@ class Mapping:
     apparatus_settings: dict[str, dict[str, str]] = field(default_factory=dict)
     #: ``[occupancy] threshold``: per image name, ``"*"`` for every image.
     thresholds: dict[str, float] = field(default_factory=dict)
+    #: ``[monitors] files``: glob patterns of the files that are monitor tables.
+    monitor_files: tuple[str, ...] = ()
     #: ``[reference."NAME"]`` tables: per apparatus, sequence / vary / tolerance.
     references: dict[str, dict[str, object]] = field(default_factory=dict)
     #: ``[time_window]``: shot times outside it are refused.
@@ -126,7 +131,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "image_roles"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "monitors", "image_roles"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -166,6 +171,9 @@ def load_config(path: str | Path | None) -> Mapping:
             raise ConfigError(str(path), f"[image_roles] '{pattern}' must be 'survival' or 'rearrangement', not {role!r}")
     rules = check_rules(data.get("rules", []), str(path))
     settings = check_apparatus_settings(data.get("apparatus", {}), str(path))
+    monitor_files = data.get("monitors", {}).get("files", [])
+    if not isinstance(monitor_files, list) or not all(isinstance(p, str) and p for p in monitor_files):
+        raise ConfigError(str(path), "[monitors] files must be a list of glob patterns")
     return Mapping(
         rename=columns,
         ignore=frozenset(ignore),
@@ -178,6 +186,7 @@ def load_config(path: str | Path | None) -> Mapping:
         source=str(path),
         apparatus_settings=settings,
         thresholds={str(k): float(v) for k, v in thresholds.items()},
+        monitor_files=tuple(monitor_files),
         references=check_references(data.get("reference", {}), str(path)),
         time_window=_time_window(data.get("time_window", {}), str(path)),
         counting_status=tuple(counting),

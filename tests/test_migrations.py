@@ -193,4 +193,4 @@ def test_models_and_scripts_give_the_same_layout(db_url, tmp_path, request):
             drop()
     assert fresh == scripted
     if db_url.startswith("postgresql"):
-        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("occupancy", "shot_measurements", "shot_parameters", "shots"))]
+        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("monitor_values", "occupancy", "shot_measurements", "shot_parameters", "shots"))]
