@@ -155,9 +155,11 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "[occupancy] threshold must be a number, or a table of numbers per image")
     defaults = data.get("defaults", {})
     figures = data.get("figures", {})
+    from runlog.figures.intervals import INTERVAL_METHODS  # the methods docs/figures.md lists
+
     interval = figures.get("interval", "wilson")
-    if interval not in ("wilson", "clopper-pearson"):
-        raise ConfigError(str(path), f"[figures] interval must be 'wilson' or 'clopper-pearson', not {interval!r}")
+    if interval not in INTERVAL_METHODS:
+        raise ConfigError(str(path), f"[figures] interval must be one of {', '.join(repr(m) for m in INTERVAL_METHODS)}, not {interval!r}")
     counting = figures.get("counting_status", ["ok"])
     if isinstance(counting, str):
         counting = [counting]

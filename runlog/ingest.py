@@ -47,7 +47,11 @@ Progress = Callable[[str, int, int], None]  # (file, rows done, rows total)
 
 @dataclass(frozen=True)
 class IngestResult:
-    """How one file ended: ``ingested``, ``already-present`` or ``rejected`` (with a reason)."""
+    """How one file ended: ``ingested``, ``already-present`` or ``rejected`` (with a reason).
+
+    People read a refusal as "refused" (CLI lines, dashboard, docs); ``rejected`` stays the
+    machine value of ``status`` in the library and ``--json``, which scripts already test.
+    """
 
     file: str
     status: str

@@ -14,6 +14,7 @@ import datetime as dt
 import json
 import logging
 import math
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -269,6 +270,24 @@ def test_counting_keeps_the_stored_interval_unless_told(catalogue, make_file, tm
     assert catalogue.run("r1").figures["fill_fraction"]["binomial_method"] == "clopper-pearson"
     assert {f.binomial_method for f in derive(catalogue, "r1", "counting").figures} == {"clopper-pearson"}
     assert {f.binomial_method for f in derive(catalogue, "r1", "counting", interval="wilson").figures} == {"wilson"}
+
+
+def test_every_interval_docs_figures_md_offers_is_accepted_in_runlog_toml(catalogue, make_file, tmp_path):
+    from runlog.config import load_config
+    from runlog.errors import ConfigError
+    from runlog.figures.intervals import INTERVAL_METHODS
+
+    documented = Path(__file__).resolve().parent.parent.joinpath("docs", "figures.md").read_text(encoding="utf-8")
+    config = tmp_path / "runlog.toml"
+    for method in INTERVAL_METHODS:
+        assert f"`{method}`" in documented
+        config.write_text(f'[figures]\ninterval = "{method}"\n')
+        assert load_config(config).interval == method
+    catalogue.ingest(make_file(table=shot_table({"r1": 12}, seed=5)), config=config)
+    assert catalogue.run("r1").figures["fill_fraction"]["method"] == "wilson-cc"
+    config.write_text('[figures]\ninterval = "wald"\n')
+    with pytest.raises(ConfigError, match="interval must be one of 'wilson', 'clopper-pearson', 'wilson-cc', not 'wald'"):
+        load_config(config)
 
 
 # --- spreading, sorting, correlator ------------------------------------------------------
