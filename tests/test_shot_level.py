@@ -156,7 +156,7 @@ def test_migration_gives_old_counting_figures_the_shot_level_interval(db_url, ma
     with runlog.open(db_url) as catalogue:
         catalogue.ingest(path)
         before = catalogue.run("r1").figures
-        migrate.downgrade(catalogue.engine, "0013")
+        migrate.downgrade(catalogue.engine, "0007")
         with catalogue.engine.connect() as connection:
             from sqlalchemy import text
 

@@ -10,7 +10,7 @@ counts do not change: every stored shot counted before this revision, so ``runs.
 starts at 0); the figure's record is given the same columns, and the rollups are rebuilt.
 
 Revision ID: 0009
-Revises: 0013
+Revises: 0007
 Create Date: 2026-12-02
 """
 from typing import Sequence, Union
@@ -21,7 +21,7 @@ import sqlalchemy as sa
 
 
 revision: str = '0009'
-down_revision: Union[str, None] = '0013'
+down_revision: Union[str, None] = '0007'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 
