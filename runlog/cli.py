@@ -106,12 +106,17 @@ def cli(ctx: click.Context, db: str | None, debug: bool) -> None:
 
 
 @cli.command()
+@click.option("--timezone", "zone", default=None, metavar="ZONE", help="The lab's time zone (IANA name, e.g. Europe/Berlin): it decides which lab day a run belongs to.")
 @_common
-def init(state: _State) -> None:
+def init(state: _State, zone: str | None) -> None:
     """Create the catalogue, or upgrade it to this runlog's schema."""
     from runlog.store.engine import make_engine, redact, resolve_url
     from runlog.store.migrate import create_or_upgrade
+    from runlog.store.rollups import check_timezone
     from runlog.store.schema import SCHEMA_REVISION
+
+    if zone is not None:
+        check_timezone(zone)  # before anything is made
 
     # Not runlog.open(): opening refuses a catalogue at an older revision, and init is
     # the one command that upgrades it.
@@ -126,6 +131,26 @@ def init(state: _State) -> None:
     finally:
         engine.dispose()
     _echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
+    if zone is not None:
+        _set_timezone(state, zone)
+
+
+def _set_timezone(state: _State, zone: str) -> None:
+    with _open(state) as catalogue:
+        groups = catalogue.set_lab_timezone(zone)
+    _echo(f"lab time zone {zone}; lab days and daily rollups rebuilt ({groups} groups)")
+
+
+@cli.command()
+@click.argument("zone", required=False)
+@_common
+def timezone(state: _State, zone: str | None) -> None:
+    """Show the lab's time zone, or change it to ZONE (lab days and rollups are rebuilt)."""
+    if zone is not None:
+        _set_timezone(state, zone)
+        return
+    with _open(state) as catalogue:
+        _echo(catalogue.lab_timezone)
 
 
 @cli.command()
@@ -244,6 +269,8 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         listed = ", ".join(f"'{a['analysis']}'" + (" (current)" if a["current"] else " (withdrawn)" if a["withdrawn"] else "") for a in info.analyses)
         _wrapped(f"analysis '{info.analysis}'; versions: {listed}")
     _wrapped(f"{info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
+    if info.excluded_shots:
+        _wrapped(f"{info.excluded_shots} of them left out of the figures by their status (see [figures] counting_status)")
     if info.notes:
         _wrapped(f"notes: {info.notes}")
     if info.tags:

@@ -50,6 +50,7 @@ Every shot of the run counts; a shot lacking ``x`` or ``y`` (NaN) is left out of
 from __future__ import annotations
 
 import dataclasses
+import math
 import re
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -62,9 +63,9 @@ import pandas as pd
 from runlog.config import check_rules
 from runlog.errors import FitError, NotFoundError, RunlogError
 from runlog.figures.base import Figure
-from runlog.figures.coherence import ENVELOPES, fit_envelope, fit_ramsey
+from runlog.figures.coherence import ENVELOPES, fit_envelope, fit_ramsey, frequency_unit
 from runlog.figures.correlator import PAIR_LABELS, correlators, correlators_from_pairs
-from runlog.figures.counting import counts_fill, counts_survival, proportion_figure
+from runlog.figures.counting import counted_figure, shot_sums_fill, shot_sums_survival, survival_figures
 from runlog.figures.detection import COUNT_MODELS, corrected_fill, corrected_survival, detection_figures, fit_counts
 from runlog.figures.fringe import fit_fringe
 from runlog.figures.interference import coincidences, dip_model, fit_visibility, visibility_at_one_setting
@@ -76,7 +77,7 @@ from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_m
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
 from runlog.figures.spreading import fit_spreading, position_spread
-from runlog.units import conversion, convert, parse_unit, quantity, registry
+from runlog.units import UnitError, conversion, convert, converter, parse_unit, quantity, registry
 
 if TYPE_CHECKING:
     from runlog.catalogue import Catalogue, RunInfo
@@ -187,8 +188,13 @@ class _Source:
 
     @property
     def shots(self) -> pd.DataFrame:
+        """The run's shots whose status counts in figures (the catalogue's
+        ``counting_status`` setting, default ``ok``); the others are left out."""
         if self._shots is None:
-            self._shots = self.catalogue.shots(self.info.run, apparatus=self.info.apparatus)
+            shots = self.catalogue.shots(self.info.run, apparatus=self.info.apparatus)
+            self._counting = shots["status"].isin(counting_statuses(self.catalogue)).to_numpy()
+            self._shots = shots[self._counting].reset_index(drop=True)
+            self._shots.attrs = shots.attrs
         return self._shots
 
     def unit(self, column: str) -> str:
@@ -212,7 +218,22 @@ class _Source:
         # line up with the shots; a mismatch means the store is not what we think it is.
         if occupancy.shape[0] != self.info.shots:
             raise FitError(self.kind, f"image '{image}' has {occupancy.shape[0]} shots of the run's {self.info.shots}")
+        self.shots  # noqa: B018 (sets the counting mask)
+        occupancy = occupancy[self._counting]
+        if occupancy.shape[0] == 0:
+            raise FitError(self.kind, "no shot of the run has a status that counts")
         return occupancy
+
+
+def counting_statuses(catalogue: Catalogue) -> list[str]:
+    """The shot statuses that count in figures, as the catalogue's ingest recorded them."""
+    import json
+
+    from sqlalchemy import text
+
+    with catalogue.engine.connect() as connection:
+        stored = connection.execute(text("SELECT value FROM settings WHERE key = 'counting_status'")).scalar()
+    return json.loads(stored) if stored else ["ok"]
 
 
 def derive(
@@ -450,23 +471,18 @@ def _counting(source: _Source, options: _Options) -> list[Figure]:
     # The same counts and the same arithmetic as ingest, so a recomputation from the stored
     # occupancy gives the stored figures to the last bit.
     loaded = source.occupancy(loading)
-    figures = [_counted("fill_fraction", *counts_fill(loaded), interval)]
+    figures = [counted_figure("fill_fraction", shot_sums_fill(loaded), interval)]
     if survival is not None and images[survival]["sites"] == images[loading]["sites"]:
-        kept, tries = counts_survival(loaded, source.occupancy(survival))
-        if tries:
-            figures.append(_counted("survival", kept, tries, interval))
-            figures.append(_counted("loss", tries - kept, tries, interval))
+        sums = shot_sums_survival(loaded, source.occupancy(survival))
+        if sums.trials:
+            figures.extend(survival_figures(sums, interval))
     return figures
 
 
 def _stored_interval(info: RunInfo) -> str:
-    method = info.figures.get("fill_fraction", {}).get("method")
+    stored = info.figures.get("fill_fraction", {})
+    method = stored.get("binomial_method") or stored.get("method")
     return method if method in INTERVAL_METHODS else "wilson"
-
-
-def _counted(name: str, successes: int, trials: int, interval: str) -> Figure:
-    figure = proportion_figure(name, successes, trials, interval)
-    return dataclasses.replace(figure, successes=successes, trials=trials)
 
 
 def _fringe(source: _Source, options: _Options) -> list[Figure]:
@@ -495,15 +511,46 @@ def _coherence(source: _Source, options: _Options) -> list[Figure]:
     # The wait goes in in its own unit, so the coherence time comes out in it.
     if "contrast" in y.lower():
         return fit_envelope(wait, signal, envelope=options.envelope, wait_unit=unit)
-    figures = fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit)
+    figures = _programmed_detuning(source, fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit))
     sensitivity = options.constants.get("field_sensitivity")
     if sensitivity is not None:
         figures.append(_ramsey_field(source, options, figures, sensitivity))
     return figures
 
 
-#: Names the Ramsey fringe frequency has had (the figure was renamed).
+#: Names the Ramsey fringe frequency has had (renamed by migration 0007).
 _RAMSEY_FREQUENCY = ("ramsey_frequency", "detuning")
+
+
+def _programmed_detuning(source: _Source, figures: list[Figure]) -> list[Figure]:
+    """The Ramsey frequency in the unit of the run's programmed ``detuning`` parameter (one
+    value for the run), with its sign; the phase changes sign with it.
+
+    One scan cannot tell ``(delta, phi)`` from ``(-delta, -phi)``: the programmed detuning
+    says which it is. Without such a parameter the frequency stays >= 0 in cycles per unit
+    of wait. Angular units convert with the 2π (runlog.units).
+    """
+    entry = source.info.parameters.get("detuning")
+    if entry is None or entry["scanned"] or isinstance(entry.get("value"), bool) or not isinstance(entry.get("value"), (int, float)):
+        return figures
+    frequency = next(f for f in figures if f.name == "ramsey_frequency")
+    target = str(entry["unit"] or "")
+    try:
+        found = converter(frequency.unit, target)
+    except UnitError:
+        return figures
+    if found.log or found.offset:
+        return figures
+    sign = -1.0 if float(entry["value"]) < 0 else 1.0
+    out = []
+    for figure in figures:
+        if figure.name == "ramsey_frequency":
+            stderr = None if figure.stderr is None else abs(found.scale) * figure.stderr
+            figure = dataclasses.replace(figure, value=sign * float(found(figure.value)), unit=target, stderr=stderr)
+        elif figure.name == "ramsey_phase" and sign < 0:
+            figure = dataclasses.replace(figure, value=float(-figure.value) if figure.value != math.pi else math.pi)
+        out.append(figure)
+    return out
 
 
 def _ramsey_field(source: _Source, options: _Options, figures: list[Figure], sensitivity: str) -> Figure:
@@ -930,8 +977,8 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
 
 #: Figure names that mark a run's stored fit, and the curve each gives.
 _CURVE_FIGURES = {
-    "fringe": ("contrast", "phase", "offset"),
-    "coherence": ("coherence_time", "contrast_at_zero", "detuning", "phase"),
+    "fringe": ("contrast", "fringe_phase", "offset"),
+    "coherence": ("t2_star", "ramsey_contrast", "ramsey_frequency", "ramsey_phase"),
 }
 
 
@@ -973,8 +1020,8 @@ def fit_curve(
     """The stored fringe or Ramsey fit of ``run`` evaluated over its scan, with its shots.
 
     The kind follows from the stored figures: ``contrast``/``phase``/``offset`` draw the
-    fringe ``y = a (1 + C cos(x + phi))``; ``coherence_time``/``contrast_at_zero``/
-    ``detuning``/``phase`` the Ramsey fringe ``y = a (1 + C0 E(t) cos(2 pi delta t + phi))``.
+    fringe ``y = a (1 + C cos(x + phi))``; ``t2_star``/``ramsey_contrast``/
+    ``ramsey_frequency``/``ramsey_phase`` the Ramsey fringe ``y = a (1 + C0 E(t) cos(2 pi delta t + phi))``.
     ``x`` and ``y`` default as in :func:`derive`. The envelope shape of a Ramsey fit is not
     stored, so ``envelope`` names it (the rules' default is ``"gaussian"``).
 
@@ -1014,8 +1061,8 @@ def fit_curve(
         return convert(values, x_unit, unit)
 
     if kind == "fringe":
-        phase_unit = str(figures["phase"]["unit"] or "rad")
-        phi = value("phase")
+        phase_unit = str(figures["fringe_phase"]["unit"] or "rad")
+        phi = value("fringe_phase")
 
         def model(v: np.ndarray) -> np.ndarray:
             radians = convert(in_unit(v, phase_unit), phase_unit, "rad") + convert(np.asarray([phi]), phase_unit, "rad")[0]
@@ -1023,14 +1070,16 @@ def fit_curve(
 
         return FitCurve(info.run, kind, "y = a (1 + C cos(x + φ))", x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, model(grid), value("offset"), False)
 
-    wait_unit = str(figures["coherence_time"]["unit"] or x_unit)
+    wait_unit = str(figures["t2_star"]["unit"] or x_unit)
+    # The frequency is stored in the programmed detuning's unit (cyclic or angular): back to
+    # cycles per wait unit, where 2 pi delta t is in radians.
+    frequency = float(convert(np.asarray([value("ramsey_frequency")]), str(figures["ramsey_frequency"]["unit"] or ""), frequency_unit(wait_unit))[0])
     shape = ENVELOPES[envelope]
 
     def shape_only(v: np.ndarray) -> np.ndarray:
         t = in_unit(v, wait_unit)
-        # detuning is stored in cycles per wait unit (MHz for us): 2 pi delta t is in radians.
-        fringe = np.cos(2.0 * np.pi * value("detuning") * t + value("phase"))
-        return 1.0 + value("contrast_at_zero") * shape(t, value("coherence_time")) * fringe
+        fringe = np.cos(2.0 * np.pi * frequency * t + value("ramsey_phase"))
+        return 1.0 + value("ramsey_contrast") * shape(t, value("t2_star")) * fringe
 
     g = shape_only(shots_x)
     offset = float(np.dot(shots_y, g) / np.dot(g, g))

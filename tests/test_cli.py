@@ -171,10 +171,12 @@ def test_show_json_contract(db_url, files):
         "wait": {"unit": "us", "scanned": True, "min": 0.0, "max": 90.0},
     }
     assert info["measurements"] == ["atom_number"]
-    # Counting figures are computed at ingest; each carries value, unit, stderr, interval, method.
+    # Counting figures are computed at ingest; each carries value, unit, stderr, the
+    # shot-level interval and its method, and the pooled binomial interval with its method.
     assert set(info["figures"]) == {"fill_fraction", "survival", "loss"}
     for figure in info["figures"].values():
-        assert set(figure) == {"value", "unit", "stderr", "ci_low", "ci_high", "method"} and figure["method"] == "wilson"
+        assert set(figure) == {"value", "unit", "stderr", "ci_low", "ci_high", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method"}
+        assert (figure["method"], figure["binomial_method"]) == ("shot-ratio", "wilson")
 
 
 LONG_RUN = "2026-03-02-release-recapture-scan-0042"
@@ -272,6 +274,24 @@ def test_people_read_micro_units_as_µ_and_json_keeps_the_stored_unit(db_url, tm
     assert code == 0 and "scanned  0 .. 30 µs" in out and " us" not in out
     code, out, _ = run_main(capsys, "--db", db_url, "show", "r1", "--json")
     assert json.loads(out)["parameters"]["wait"]["unit"] == "us"
+
+
+def test_init_with_a_timezone_and_changing_it_rebuilds_the_lab_days(db_url, tmp_path, capsys):
+    code, out, _ = run_main(capsys, "--db", db_url, "init", "--timezone", "America/New_York")
+    assert code == 0 and out.splitlines()[-1] == "lab time zone America/New_York; lab days and daily rollups rebuilt (0 groups)"
+    # 02:00 UTC on 2 March is still 1 March in New York, and 2 March in Berlin.
+    path = tmp_path / "night.parquet"
+    pq.write_table(shot_table({"r1": 4}, start=dt.datetime(2026, 3, 2, 2, 0, tzinfo=dt.timezone.utc)), path)
+    assert invoke("--db", db_url, "ingest", str(path)).exit_code == 0
+    with runlog.open(db_url) as catalogue:
+        assert [p.date for p in catalogue.drift("fill_fraction").points] == [dt.date(2026, 3, 1)]
+    code, out, _ = run_main(capsys, "--db", db_url, "timezone", "Europe/Berlin")
+    assert code == 0 and out.startswith("lab time zone Europe/Berlin; lab days and daily rollups rebuilt (")
+    assert run_main(capsys, "--db", db_url, "timezone")[1] == "Europe/Berlin\n"
+    with runlog.open(db_url) as catalogue:
+        assert [p.date for p in catalogue.drift("fill_fraction").points] == [dt.date(2026, 3, 2)]
+    code, out, err = run_main(capsys, "--db", db_url, "timezone", "Mars/Olympus")
+    assert (code, out) == (1, "") and err == "runlog: error: lab_timezone: unknown time zone 'Mars/Olympus' (use an IANA name such as Europe/Berlin)\n"
 
 
 # --- annotate ---------------------------------------------------------------------------

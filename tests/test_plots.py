@@ -129,8 +129,8 @@ def test_run_chart_of_a_fitted_scan_draws_the_stored_fit(catalogue, make_file, t
     assert math.isclose(means[0]["mean"], first.mean()) and math.isclose(means[0]["high"] - means[0]["mean"], first.std(ddof=1) / math.sqrt(3))
     assert spec["layer"][0]["encoding"]["x"]["title"] == "wait (µs)"
     assert spec["layer"][0]["encoding"]["y"]["title"] == "bright_fraction"
-    time = catalogue.run("ramsey1").figures["coherence_time"]
-    assert f"coherence_time = {_with_error(time['value'], time['stderr'])} µs" in spec["title"]["subtitle"][0]
+    time = catalogue.run("ramsey1").figures["t2_star"]
+    assert f"t2_star = {_with_error(time['value'], time['stderr'])} µs" in " ".join(spec["title"]["subtitle"])
     svg = plot_run(catalogue, "ramsey1", tmp_path / "ramsey.svg")
     assert "wait (µs)" in svg.read_text()
 

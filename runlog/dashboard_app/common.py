@@ -93,7 +93,7 @@ PALETTE = {
 SERIES_COLOURS = [PALETTE[c] for c in ("blue", "orange", "green", "vermillion", "sky blue", "purple", "black", "yellow")]
 
 #: The figures the overview leads with and the drift page opens on.
-HEADLINE = ("fill_fraction", "survival", "coherence_time", "contrast")
+HEADLINE = ("fill_fraction", "survival", "t2_star", "contrast")
 
 
 # --- the catalogue -----------------------------------------------------------------------
