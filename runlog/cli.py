@@ -269,6 +269,8 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         listed = ", ".join(f"'{a['analysis']}'" + (" (current)" if a["current"] else " (withdrawn)" if a["withdrawn"] else "") for a in info.analyses)
         _wrapped(f"analysis '{info.analysis}'; versions: {listed}")
     _wrapped(f"{info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
+    if info.excluded_shots:
+        _wrapped(f"{info.excluded_shots} of them left out of the figures by their status (see [figures] counting_status)")
     if info.notes:
         _wrapped(f"notes: {info.notes}")
     if info.tags:
