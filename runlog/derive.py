@@ -76,7 +76,7 @@ from runlog.figures.rabi import fit_rabi, rabi_model
 from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_model
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
-from runlog.figures.spreading import fit_spreading, position_spread
+from runlog.figures.spreading import fit_spreading, start_sites, walk_spread
 from runlog.units import UnitError, conversion, convert, converter, parse_unit, quantity, registry
 
 if TYPE_CHECKING:
@@ -92,6 +92,7 @@ _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
 #: Kind-specific settings a rule or ``derive(settings=...)`` may give, by kind.
 SETTINGS = {
     "coherence": ("oscillator", "side"),
+    "spreading": ("start_site",),
     "rabi": ("pulse",),
     "spectroscopy": ("pulse",),
     "echo": ("stretch",),
@@ -592,9 +593,32 @@ def _spreading(source: _Source, options: _Options) -> list[Figure]:
         )
     occupancy = source.occupancy(image)
     steps = source.numbers(f"p.{x}")
-    values = np.unique(steps[np.isfinite(steps)])
-    spreads = [position_spread(occupancy[steps == value]) for value in values]
+    start = _walk_start(source, image, options)
+    values, spreads = [], []
+    for value in np.unique(steps[np.isfinite(steps)]):
+        chosen = steps == value
+        try:
+            spread, _ = walk_spread(occupancy[chosen], start if np.ndim(start) == 0 else start[chosen])
+        except FitError:
+            continue  # every shot of this step reached the edge or lost its atoms: no width
+        values.append(value)
+        spreads.append(spread)
     return fit_spreading(values, spreads)
+
+
+def _walk_start(source: _Source, image: str, options: _Options):
+    """Where each shot's walk started: the ``start_site`` setting (a site index), else the
+    one occupied site of each shot's loading image when the walk is imaged apart from it."""
+    given = options.settings.get("start_site")
+    sites = source.info.images[image]["sites"]
+    if given is not None:
+        if isinstance(given, bool) or not isinstance(given, (int, float)) or not 0 <= given < sites:
+            raise FitError("spreading", f"start_site must be a site index 0..{sites - 1}, got {given!r}")
+        return float(given)
+    loading = next((name for name, entry in source.info.images.items() if entry["role"] == "loading" and name != image and entry["sites"] == sites), None)
+    if loading is None:
+        raise FitError("spreading", "no start site: give the start_site setting, or a loading image of the same sites showing where each atom started")
+    return start_sites(source.occupancy(loading))
 
 
 def _sorting(source: _Source, options: _Options) -> list[Figure]:
