@@ -1014,7 +1014,7 @@ class Catalogue:
         with self.engine.connect() as connection:
             return monitor_list(connection, now=now, silent_after=silent_after)
 
-    def monitor_series(self, name: str, *, apparatus: str | None = None, since: dt.datetime | str | None = None, until: dt.datetime | str | None = None, max_points: int = 10_000) -> "pd.DataFrame":
+    def monitor_series(self, name: str, *, apparatus: str | None = None, since: dt.datetime | str | None = None, until: dt.datetime | str | None = None, max_points: int = 2_000) -> "pd.DataFrame":
         """One monitor over a span, from its rollups (at most ``max_points`` periods):
         ``start``, ``mean``, ``minimum``, ``maximum``, ``count``; for charts."""
         from runlog.monitors.overlay import monitor_series
