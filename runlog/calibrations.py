@@ -25,7 +25,7 @@ __all__ = ["CALIBRATION_FIGURES", "Calibration", "current_calibrations"]
 #: The figures the register lists by default: what a lab recalibrates against.
 CALIBRATION_FIGURES = (
     "pi_time", "rabi_frequency", "resonance", "linewidth", "field", "threshold", "fidelity",
-    "false_positive", "false_negative", "t2", "t1", "coherence_time", "lifetime", "temperature",
+    "false_positive", "false_negative", "t2", "t1", "t2_star", "envelope_time", "lifetime", "temperature",
     "visibility",
 )
 

@@ -145,8 +145,10 @@ class Catalogue:
 
     # --- writing -------------------------------------------------------------------
 
-    def ingest(self, paths: Iterable[str | Path] | str | Path, *, config: str | Path | Mapping | None = None, progress: Progress | None = None) -> list[IngestResult]:
-        """Ingest shot-table files (folders give their ``*.parquet``); one result per file.
+    def ingest(self, paths: Iterable[str | Path] | str | Path, *, config: str | Path | Mapping | None = None, progress: Progress | None = None, apparatus: str | None = None) -> list[IngestResult]:
+        """Ingest shot-table and monitor-table files (folders give their ``*.parquet`` and
+        ``*.csv``); one result per file. ``apparatus`` names the apparatus of monitor tables
+        that have no apparatus column (docs/monitor-table.md).
 
         With ``[[rules]]`` in the configuration, each ingested file's runs get those figures
         (``IngestResult.derived``).
@@ -157,7 +159,7 @@ class Catalogue:
         if isinstance(paths, (str, Path)):
             paths = [paths]
         mapping = config if isinstance(config, Mapping) else load_config(config)
-        results = ingest_files(self.engine, paths, mapping, progress)
+        results = ingest_files(self.engine, paths, mapping, progress, apparatus=apparatus)
         for name, declared in mapping.references.items():
             if name in self.apparatus_names():
                 self.declare_reference(name, sequence=declared.get("sequence"), vary=declared.get("vary", ()), tolerance=declared.get("tolerance"))

@@ -69,6 +69,13 @@ def _printable(text: str) -> str:
     return "".join(c if c.isprintable() or c in "\n\t" else repr(c)[1:-1] for c in text)
 
 
+def _unit_text(unit: str | None) -> str:
+    # Imported here: runlog.units brings numpy, which --version and --help do without.
+    from runlog.units import unit_text
+
+    return unit_text(unit)
+
+
 def _json(value: Any) -> None:
     _echo(json.dumps(value, indent=2, default=_json_default, ensure_ascii=False))
 
@@ -99,12 +106,17 @@ def cli(ctx: click.Context, db: str | None, debug: bool) -> None:
 
 
 @cli.command()
+@click.option("--timezone", "zone", default=None, metavar="ZONE", help="The lab's time zone (IANA name, e.g. Europe/Berlin): it decides which lab day a run belongs to.")
 @_common
-def init(state: _State) -> None:
+def init(state: _State, zone: str | None) -> None:
     """Create the catalogue, or upgrade it to this runlog's schema."""
     from runlog.store.engine import make_engine, redact, resolve_url
     from runlog.store.migrate import create_or_upgrade
+    from runlog.store.rollups import check_timezone
     from runlog.store.schema import SCHEMA_REVISION
+
+    if zone is not None:
+        check_timezone(zone)  # before anything is made
 
     # Not runlog.open(): opening refuses a catalogue at an older revision, and init is
     # the one command that upgrades it.
@@ -119,17 +131,39 @@ def init(state: _State) -> None:
     finally:
         engine.dispose()
     _echo(f"catalogue {redact(url)} is at schema revision {SCHEMA_REVISION}")
+    if zone is not None:
+        _set_timezone(state, zone)
+
+
+def _set_timezone(state: _State, zone: str) -> None:
+    with _open(state) as catalogue:
+        groups = catalogue.set_lab_timezone(zone)
+    _echo(f"lab time zone {zone}; lab days and daily rollups rebuilt ({groups} groups)")
+
+
+@cli.command()
+@click.argument("zone", required=False)
+@_common
+def timezone(state: _State, zone: str | None) -> None:
+    """Show the lab's time zone, or change it to ZONE (lab days and rollups are rebuilt)."""
+    if zone is not None:
+        _set_timezone(state, zone)
+        return
+    with _open(state) as catalogue:
+        _echo(catalogue.lab_timezone)
 
 
 @cli.command()
 @click.argument("paths", nargs=-1, required=True, type=click.Path(path_type=Path))
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object per file.")
 @click.option("--config", type=click.Path(path_type=Path, dir_okay=False), default=None, help="runlog.toml mapping your column names onto the contract.")
+@click.option("--apparatus", default=None, help="Apparatus of monitor tables that have no apparatus column.")
 @_common
-def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path | None) -> None:
-    """Ingest shot-table files or folders of *.parquet files.
+def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path | None, apparatus: str | None) -> None:
+    """Ingest shot-table and monitor-table files, or folders of *.parquet and *.csv files.
 
-    With [[rules]] in --config, the runs a file brought in get those figures too.
+    Monitor tables (docs/monitor-table.md) are told apart by their columns. With [[rules]]
+    in --config, the runs a file brought in get those figures too.
     """
     from runlog.config import load_config
 
@@ -137,7 +171,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
     with _open(state) as catalogue:
         progress = None if as_json or not sys.stderr.isatty() else _progress_bar()
         try:
-            results = catalogue.ingest(paths, config=mapping, progress=progress and progress.update)
+            results = catalogue.ingest(paths, config=mapping, progress=progress and progress.update, apparatus=apparatus)
         finally:
             if progress:
                 progress.close()
@@ -146,7 +180,10 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
     else:
         for r in results:
             if r.status == "rejected":
-                _echo(f"rejected         {r.reason}")
+                _echo(f"refused          {r.reason}")
+            elif r.monitors:
+                names = ", ".join(r.monitors[:3]) + (f" (+{len(r.monitors) - 3} more)" if len(r.monitors) > 3 else "")
+                _echo(f"{r.status:<16} {r.file}: {r.values} monitor values, {names}")
             else:
                 runs = ", ".join(r.runs[:3]) + (f" (+{len(r.runs) - 3} more)" if len(r.runs) > 3 else "")
                 _echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
@@ -238,7 +275,7 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         _wrapped(f"tags: {', '.join(info.tags)}")
     _echo("parameters")
     for name, entry in info.parameters.items():
-        unit = f" {entry['unit']}" if entry["unit"] else ""
+        unit = f" {_unit_text(entry['unit'])}" if entry["unit"] else ""
         if entry["scanned"]:
             span = f"{entry['min']:g} .. {entry['max']:g}{unit}" if "min" in entry else "(varies)"
             _echo(f"  {name:<24} scanned  {span}")
@@ -392,7 +429,7 @@ def _wrapped(text: str, indent: str = "  ") -> None:
 
 
 def _figure_line(name: str, figure: dict[str, Any]) -> str:
-    unit = f" {figure['unit']}" if figure.get("unit") else ""
+    unit = f" {_unit_text(figure['unit'])}" if figure.get("unit") else ""
     text = f"{name:<24} {figure['value']:.4g}"
     if "stderr" in figure and figure["stderr"] is not None:
         text += f" ± {figure['stderr']:.2g}"
@@ -717,7 +754,7 @@ def drift(state: _State, quantity: str, apparatus: str | None, sequence: str | N
                 entry["verdict"] = found["verdict"]
         _json(data)
         return
-    unit = f" [{result.unit}]" if result.unit else ""
+    unit = f" [{_unit_text(result.unit)}]" if result.unit else ""
     _wrapped(f"{result.quantity}{unit} on {result.apparatus}" + (f", series {result.series['label']} ({result.series['key']})" if result.series else (f", sequence {result.sequence}" if result.sequence else ", all runs pooled")), indent="")
     outside = set(result.out_of_limits)
     _echo(f"  {'day':<10}  {'value':>10}  {'95% interval':<23} {'runs':>5} {'shots':>7}")
@@ -840,7 +877,7 @@ def calibrations(state: _State, names: tuple[str, ...], apparatus: str | None, a
         return
     for c in found:
         error = f" ± {c.stderr:.2g}" if c.stderr is not None else ""
-        unit = f" {c.unit}" if c.unit else ""
+        unit = f" {_unit_text(c.unit)}" if c.unit else ""
         _wrapped(f"{c.apparatus} {c.name} = {c.value:.6g}{error}{unit}  (run {c.run}, {c.started:%Y-%m-%d %H:%M} UTC, {c.age_days:.1f} days ago)", indent="")
 
 
@@ -864,15 +901,20 @@ def _day_option(value: str | None, option: str) -> dt.date | None:
 
 @cli.command()
 @click.option("--port", default=8501, show_default=True, help="Port of the dashboard server.")
-@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (the dashboard has no login: keep it local unless the network is trusted).")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (keep it local unless an authenticating proxy is in front: docs/scaling.md).")
+@click.option("--author-header", default=None, metavar="NAME", help="Request header in which a trusted reverse proxy passes the logged-in user (e.g. X-Forwarded-User): notes are written under that name only.")
+@click.option("--login", is_flag=True, help="Authors from Streamlit's own OIDC login (st.login; provider in .streamlit/secrets.toml).")
+@click.option("--read-only", "read_only", is_flag=True, help="No writing from the dashboard: no note or acknowledgement forms.")
 @_common
-def dashboard(state: _State, port: int, host: str) -> None:
+def dashboard(state: _State, port: int, host: str, author_header: str | None, login: bool, read_only: bool) -> None:
     """Serve the dashboard (a Streamlit app) on this catalogue until Ctrl-C."""
     from runlog.dashboard import serve
 
+    if author_header and login:
+        raise click.UsageError("choose one of --author-header and --login")
     with _open(state) as catalogue:  # fail here, in one line, when the catalogue cannot be opened
         catalogue.counts()
-    sys.exit(serve(state.db, host=host, port=port, say=click.echo))
+    sys.exit(serve(state.db, host=host, port=port, say=_echo, author_header=author_header, login=login, writes=not read_only))
 
 
 @cli.command()

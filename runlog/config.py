@@ -19,6 +19,9 @@ Example::
     [defaults]
     apparatus = "lattice-east"  # when the file has no apparatus column
 
+    [monitors]                # optional: which files are monitor tables (docs/monitor-table.md)
+    files = ["slow-control/*", "*.temps.parquet"]   # globs; default: told by the columns
+
     [figures]
     interval = "wilson"       # or "clopper-pearson", for fill fraction and survival
 
@@ -71,6 +74,8 @@ class Mapping:
     apparatus_settings: dict[str, dict[str, str]] = field(default_factory=dict)
     #: ``[occupancy] threshold``: per image name, ``"*"`` for every image.
     thresholds: dict[str, float] = field(default_factory=dict)
+    #: ``[monitors] files``: glob patterns of the files that are monitor tables.
+    monitor_files: tuple[str, ...] = ()
     #: ``[reference."NAME"]`` tables: per apparatus, sequence / vary / tolerance.
     references: dict[str, dict[str, object]] = field(default_factory=dict)
     #: ``[time_window]``: shot times outside it are refused.
@@ -102,7 +107,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "monitors"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -126,11 +131,16 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "[occupancy] threshold must be a number, or a table of numbers per image")
     defaults = data.get("defaults", {})
     figures = data.get("figures", {})
+    from runlog.figures.intervals import INTERVAL_METHODS  # the methods docs/figures.md lists
+
     interval = figures.get("interval", "wilson")
-    if interval not in ("wilson", "clopper-pearson"):
-        raise ConfigError(str(path), f"[figures] interval must be 'wilson' or 'clopper-pearson', not {interval!r}")
+    if interval not in INTERVAL_METHODS:
+        raise ConfigError(str(path), f"[figures] interval must be one of {', '.join(repr(m) for m in INTERVAL_METHODS)}, not {interval!r}")
     rules = check_rules(data.get("rules", []), str(path))
     settings = check_apparatus_settings(data.get("apparatus", {}), str(path))
+    monitor_files = data.get("monitors", {}).get("files", [])
+    if not isinstance(monitor_files, list) or not all(isinstance(p, str) and p for p in monitor_files):
+        raise ConfigError(str(path), "[monitors] files must be a list of glob patterns")
     return Mapping(
         rename=columns,
         ignore=frozenset(ignore),
@@ -143,6 +153,7 @@ def load_config(path: str | Path | None) -> Mapping:
         source=str(path),
         apparatus_settings=settings,
         thresholds={str(k): float(v) for k, v in thresholds.items()},
+        monitor_files=tuple(monitor_files),
         references=check_references(data.get("reference", {}), str(path)),
         time_window=_time_window(data.get("time_window", {}), str(path)),
         units=_lab_units(data.get("units", {}), str(path)),

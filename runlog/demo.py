@@ -34,6 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from runlog.errors import NotFoundError
+from runlog.units import unit_text
 
 __all__ = ["DemoApparatus", "LabEvent", "Scenario", "SCENARIO", "DEMO_RULES", "write_demo_files"]
 
@@ -164,13 +165,13 @@ class Scenario:
                 f"{a.name}: {rows}x{cols} sites, fill fraction {a.fill_fraction:.2f}, "
                 f"survival {a.survival:.2f}, phase-scan contrast {a.phase_contrast:.2f} "
                 f"(offset {a.phase_offset_deg:g} deg), Ramsey contrast "
-                f"{a.ramsey_contrast:.2f}, coherence time {a.coherence_time_us:g} us, "
+                f"{a.ramsey_contrast:.2f}, coherence time {a.coherence_time_us:g} {unit_text('us')}, "
                 f"detuning {a.ramsey_detuning_khz:g} kHz"
             )
         for e in self.events:
             when = e.date(start).isoformat()
             seen = "" if e.day < days else " (after the last day: not in these files)"
-            unit = f" {e.unit}" if e.unit else ""
+            unit = f" {unit_text(e.unit)}" if e.unit else ""
             lines.append(
                 f"event: {e.apparatus} {e.quantity} {e.before:g} -> {e.after:g}{unit} "
                 f"from {when} (day {e.day}){seen}"

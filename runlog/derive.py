@@ -50,6 +50,7 @@ Every shot of the run counts; a shot lacking ``x`` or ``y`` (NaN) is left out of
 from __future__ import annotations
 
 import dataclasses
+import math
 import re
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
@@ -62,7 +63,7 @@ import pandas as pd
 from runlog.config import check_rules
 from runlog.errors import FitError, NotFoundError, RunlogError
 from runlog.figures.base import Figure
-from runlog.figures.coherence import ENVELOPES, fit_envelope, fit_ramsey
+from runlog.figures.coherence import ENVELOPES, fit_envelope, fit_ramsey, frequency_unit
 from runlog.figures.correlator import PAIR_LABELS, correlators, correlators_from_pairs
 from runlog.figures.counting import counts_fill, counts_survival, proportion_figure
 from runlog.figures.detection import COUNT_MODELS, corrected_fill, corrected_survival, detection_figures, fit_counts
@@ -76,7 +77,7 @@ from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_m
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
 from runlog.figures.spreading import fit_spreading, position_spread
-from runlog.units import conversion, convert, parse_unit, quantity, registry
+from runlog.units import UnitError, conversion, convert, converter, parse_unit, quantity, registry
 
 if TYPE_CHECKING:
     from runlog.catalogue import Catalogue, RunInfo
@@ -495,15 +496,46 @@ def _coherence(source: _Source, options: _Options) -> list[Figure]:
     # The wait goes in in its own unit, so the coherence time comes out in it.
     if "contrast" in y.lower():
         return fit_envelope(wait, signal, envelope=options.envelope, wait_unit=unit)
-    figures = fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit)
+    figures = _programmed_detuning(source, fit_ramsey(wait, signal, envelope=options.envelope, wait_unit=unit))
     sensitivity = options.constants.get("field_sensitivity")
     if sensitivity is not None:
         figures.append(_ramsey_field(source, options, figures, sensitivity))
     return figures
 
 
-#: Names the Ramsey fringe frequency has had (the figure was renamed).
+#: Names the Ramsey fringe frequency has had (renamed by migration 0007).
 _RAMSEY_FREQUENCY = ("ramsey_frequency", "detuning")
+
+
+def _programmed_detuning(source: _Source, figures: list[Figure]) -> list[Figure]:
+    """The Ramsey frequency in the unit of the run's programmed ``detuning`` parameter (one
+    value for the run), with its sign; the phase changes sign with it.
+
+    One scan cannot tell ``(delta, phi)`` from ``(-delta, -phi)``: the programmed detuning
+    says which it is. Without such a parameter the frequency stays >= 0 in cycles per unit
+    of wait. Angular units convert with the 2π (runlog.units).
+    """
+    entry = source.info.parameters.get("detuning")
+    if entry is None or entry["scanned"] or isinstance(entry.get("value"), bool) or not isinstance(entry.get("value"), (int, float)):
+        return figures
+    frequency = next(f for f in figures if f.name == "ramsey_frequency")
+    target = str(entry["unit"] or "")
+    try:
+        found = converter(frequency.unit, target)
+    except UnitError:
+        return figures
+    if found.log or found.offset:
+        return figures
+    sign = -1.0 if float(entry["value"]) < 0 else 1.0
+    out = []
+    for figure in figures:
+        if figure.name == "ramsey_frequency":
+            stderr = None if figure.stderr is None else abs(found.scale) * figure.stderr
+            figure = dataclasses.replace(figure, value=sign * float(found(figure.value)), unit=target, stderr=stderr)
+        elif figure.name == "ramsey_phase" and sign < 0:
+            figure = dataclasses.replace(figure, value=float(-figure.value) if figure.value != math.pi else math.pi)
+        out.append(figure)
+    return out
 
 
 def _ramsey_field(source: _Source, options: _Options, figures: list[Figure], sensitivity: str) -> Figure:
@@ -930,8 +962,8 @@ _DERIVERS: dict[str, Callable[[_Source, _Options], list[Figure]]] = {
 
 #: Figure names that mark a run's stored fit, and the curve each gives.
 _CURVE_FIGURES = {
-    "fringe": ("contrast", "phase", "offset"),
-    "coherence": ("coherence_time", "contrast_at_zero", "detuning", "phase"),
+    "fringe": ("contrast", "fringe_phase", "offset"),
+    "coherence": ("t2_star", "ramsey_contrast", "ramsey_frequency", "ramsey_phase"),
 }
 
 
@@ -973,8 +1005,8 @@ def fit_curve(
     """The stored fringe or Ramsey fit of ``run`` evaluated over its scan, with its shots.
 
     The kind follows from the stored figures: ``contrast``/``phase``/``offset`` draw the
-    fringe ``y = a (1 + C cos(x + phi))``; ``coherence_time``/``contrast_at_zero``/
-    ``detuning``/``phase`` the Ramsey fringe ``y = a (1 + C0 E(t) cos(2 pi delta t + phi))``.
+    fringe ``y = a (1 + C cos(x + phi))``; ``t2_star``/``ramsey_contrast``/
+    ``ramsey_frequency``/``ramsey_phase`` the Ramsey fringe ``y = a (1 + C0 E(t) cos(2 pi delta t + phi))``.
     ``x`` and ``y`` default as in :func:`derive`. The envelope shape of a Ramsey fit is not
     stored, so ``envelope`` names it (the rules' default is ``"gaussian"``).
 
@@ -1014,8 +1046,8 @@ def fit_curve(
         return convert(values, x_unit, unit)
 
     if kind == "fringe":
-        phase_unit = str(figures["phase"]["unit"] or "rad")
-        phi = value("phase")
+        phase_unit = str(figures["fringe_phase"]["unit"] or "rad")
+        phi = value("fringe_phase")
 
         def model(v: np.ndarray) -> np.ndarray:
             radians = convert(in_unit(v, phase_unit), phase_unit, "rad") + convert(np.asarray([phi]), phase_unit, "rad")[0]
@@ -1023,14 +1055,16 @@ def fit_curve(
 
         return FitCurve(info.run, kind, "y = a (1 + C cos(x + φ))", x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, model(grid), value("offset"), False)
 
-    wait_unit = str(figures["coherence_time"]["unit"] or x_unit)
+    wait_unit = str(figures["t2_star"]["unit"] or x_unit)
+    # The frequency is stored in the programmed detuning's unit (cyclic or angular): back to
+    # cycles per wait unit, where 2 pi delta t is in radians.
+    frequency = float(convert(np.asarray([value("ramsey_frequency")]), str(figures["ramsey_frequency"]["unit"] or ""), frequency_unit(wait_unit))[0])
     shape = ENVELOPES[envelope]
 
     def shape_only(v: np.ndarray) -> np.ndarray:
         t = in_unit(v, wait_unit)
-        # detuning is stored in cycles per wait unit (MHz for us): 2 pi delta t is in radians.
-        fringe = np.cos(2.0 * np.pi * value("detuning") * t + value("phase"))
-        return 1.0 + value("contrast_at_zero") * shape(t, value("coherence_time")) * fringe
+        fringe = np.cos(2.0 * np.pi * frequency * t + value("ramsey_phase"))
+        return 1.0 + value("ramsey_contrast") * shape(t, value("t2_star")) * fringe
 
     g = shape_only(shots_x)
     offset = float(np.dot(shots_y, g) / np.dot(g, g))

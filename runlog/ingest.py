@@ -46,7 +46,11 @@ Progress = Callable[[str, int, int], None]  # (file, rows done, rows total)
 
 @dataclass(frozen=True)
 class IngestResult:
-    """How one file ended: ``ingested``, ``already-present`` or ``rejected`` (with a reason)."""
+    """How one file ended: ``ingested``, ``already-present`` or ``rejected`` (with a reason).
+
+    People read a refusal as "refused" (CLI lines, dashboard, docs); ``rejected`` stays the
+    machine value of ``status`` in the library and ``--json``, which scripts already test.
+    """
 
     file: str
     status: str
@@ -56,6 +60,9 @@ class IngestResult:
     #: What the configuration's [[rules]] gave for this file's runs: ``DeriveResult`` or
     #: ``FitError`` objects (empty without rules).
     derived: tuple = ()
+    #: A monitor table (runlog.monitors): the monitors it brought and how many values.
+    monitors: tuple[str, ...] = ()
+    values: int = 0
     #: Why a file was refused: ``"contract"`` or ``"data"`` (the file's own fault), or a
     #: store failure that is not (``"busy"``, ``"permission"``, ``"unavailable"``:
     #: :mod:`runlog.store.failures`), after which the same file may be tried again.
@@ -67,7 +74,7 @@ class IngestResult:
         return self.status == "rejected" and self.cause in ("contract", "data", None)
 
     def as_dict(self) -> dict[str, object]:
-        return {
+        found: dict[str, object] = {
             "file": self.file,
             "status": self.status,
             "run": self.runs[0] if len(self.runs) == 1 else (list(self.runs) if self.runs else None),
@@ -75,6 +82,9 @@ class IngestResult:
             "shots": self.shots,
             "reason": self.reason,
         }
+        if self.monitors:
+            found |= {"monitors": list(self.monitors), "values": self.values}
+        return found
 
 
 @dataclass
@@ -135,6 +145,21 @@ def file_sha256(path: Path) -> tuple[str, int]:
     return digest.hexdigest(), size
 
 
+def hash_file(path: Path) -> tuple[tuple[int, int, int, int] | None, str, int]:
+    """(signature, SHA-256, size) of a file to ingest; an unreadable one is a :class:`ContractError`."""
+    name = str(path)
+    before = _signature(path)
+    try:
+        sha, size = file_sha256(path)
+    except FileNotFoundError:
+        raise ContractError(name, "file not found") from None
+    except IsADirectoryError:
+        raise ContractError(name, "is a folder, not a file") from None
+    except OSError as error:
+        raise ContractError(name, f"cannot read file ({_short(error)})") from None
+    return before, sha, size
+
+
 def _signature(path: Path) -> tuple[int, ...] | None:
     """What tells that a file changed: device, inode, size, modification time and status
     change time (``None``: gone). A writer can put size and modification time back
@@ -157,12 +182,12 @@ def _unchanged_since(path: Path, before: tuple[int, ...] | None) -> None:
 
 
 def expand_paths(paths: Iterable[str | Path]) -> list[Path]:
-    """Files as given, folders as their ``*.parquet`` files (sorted, not recursive)."""
+    """Files as given, folders as their ``*.parquet`` and ``*.csv`` (monitor) files (sorted, not recursive)."""
     out: list[Path] = []
     for raw in paths:
         path = Path(raw)
         if path.is_dir():
-            out.extend(sorted(p for p in path.glob("*.parquet") if p.is_file()))
+            out.extend(sorted(p for p in (*path.glob("*.parquet"), *path.glob("*.csv")) if p.is_file()))
         else:
             out.append(path)
     return out
@@ -1011,15 +1036,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
     sha, size = "", 0
     read_s = write_s = 0.0
     try:
-        before = _signature(path)
-        try:
-            sha, size = file_sha256(path)
-        except FileNotFoundError:
-            raise ContractError(name, "file not found") from None
-        except IsADirectoryError:
-            raise ContractError(name, "is a folder, not a file") from None
-        except OSError as error:
-            raise ContractError(name, f"cannot read file ({_short(error)})") from None
+        before, sha, size = hash_file(path)
         tick = time.perf_counter()
         layout = read_layout(name, _open(path).schema_arrow, mapping)
         # Text columns are read as dictionaries: a run key repeats over all its shots.
@@ -1068,9 +1085,15 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             return result
         finally:
             writer.close()
-    except ContractError as error:
-        result = IngestResult(name, "rejected", reason=_storable(str(error)), cause="contract")
     except Exception as error:  # noqa: BLE001 - any failure of one file is that file's refusal
+        return record_refusal(engine, name, error, sha, size, started, read_s, write_s)
+
+
+def record_refusal(engine: Engine, name: str, error: Exception, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float) -> IngestResult:
+    """The refusal of one file as a result, written to the ingest log when the catalogue can take it."""
+    if isinstance(error, ContractError):
+        result = IngestResult(name, "rejected", reason=_storable(str(error)), cause="contract")
+    else:
         failure = describe(error, doing="writing this file")
         result = IngestResult(name, "rejected", reason=_storable(f"{name}: {failure.message}"), cause=failure.kind)
     try:
@@ -1082,8 +1105,14 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
     return result
 
 
-def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None) -> list[IngestResult]:
-    """Ingest every file (folders give their ``*.parquet``); one result per file, in order."""
+def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping | None = None, progress: Progress | None = None, after_write: Callable | None = None, apparatus: str | None = None) -> list[IngestResult]:
+    """Ingest every file (folders give their ``*.parquet`` and ``*.csv``); one result per file, in order.
+
+    ``apparatus`` is that of monitor tables without an apparatus column (before the
+    ``[defaults]`` of the mapping)."""
+    from runlog.monitors.contract import is_monitor_table
+    from runlog.monitors.ingest import ingest_monitor_file
+
     mapping = mapping or Mapping()
     results = []
     for raw in paths:
@@ -1093,5 +1122,6 @@ def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping |
             # folder, files not yet copied): a refusal of the folder, never a silent success.
             results.append(IngestResult(str(raw), "rejected", reason=one_line(f"{raw}: no *.parquet files in this folder"), cause="contract"))
             continue
-        results.extend(ingest_file(engine, path, mapping, progress, after_write) for path in files)
+        # Monitor tables are told apart by the contract (or runlog.toml's [monitors] files rule).
+        results.extend(ingest_monitor_file(engine, path, mapping, apparatus) if is_monitor_table(path, mapping) else ingest_file(engine, path, mapping, progress, after_write) for path in files)
     return results

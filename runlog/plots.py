@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from runlog.errors import FitError, NotFoundError
+from runlog.units import unit_text
 
 if TYPE_CHECKING:
     import altair as alt
@@ -46,6 +47,7 @@ MAX_RAW_SHOTS = 5000
 
 
 def _axis_title(name: str, unit: str) -> str:
+    unit = unit_text(unit)
     return f"{name} ({unit})" if unit else name
 
 
@@ -68,7 +70,7 @@ def _with_error(value: float, error: float) -> str:
 
 
 def _figure_text(name: str, figure: dict[str, object]) -> str:
-    value, unit = float(figure["value"]), str(figure.get("unit") or "")
+    value, unit = float(figure["value"]), unit_text(str(figure.get("unit") or ""))
     text = f"{name} = {_format(value)}"
     if figure.get("stderr") is not None:
         text = f"{name} = {_with_error(value, float(figure['stderr']))}"

@@ -47,6 +47,7 @@ __all__ = [
     "parse_unit",
     "quantity",
     "registry",
+    "unit_text",
 ]
 
 #: Longest unit text accepted (a unit a lab writes is a few names long).
@@ -358,3 +359,21 @@ def conversion(source: str, target: str, lab: LabUnits = ()) -> tuple[float, flo
 def convert(values: np.ndarray, source: str, target: str, lab: LabUnits = ()) -> np.ndarray:
     """``values`` in ``source`` expressed in ``target``; raises :class:`UnitError`."""
     return converter(source, target, lab)(values)
+
+
+@lru_cache(maxsize=512)
+def unit_text(unit: str | None) -> str:
+    """A stored unit as people read it (``us`` -> ``µs``, ``uK`` -> ``µK``); others unchanged.
+
+    Stored units, filters and ``--json`` keep the ASCII ``u`` that files are written with;
+    every text for people (CLI, dashboard, figures, plots) goes through here, so that one
+    thing has one spelling.
+    """
+    unit = unit or ""
+    if re.fullmatch(r"u[A-Za-z]+", unit):
+        try:
+            if format(parse_unit(unit), "~P") == "µ" + unit[1:]:
+                return "µ" + unit[1:]
+        except Exception:  # pint raises several types for text it does not know
+            pass
+    return unit

@@ -38,7 +38,7 @@ def _printable(text: str) -> str:
 
 @dataclass
 class Watcher:
-    """Polls ``folder`` for ``*.parquet`` files and hands complete ones to ``ingest``.
+    """Polls ``folder`` for ``*.parquet`` (shot or monitor) and ``*.csv`` (monitor) files and hands complete ones to ``ingest``.
 
     ``ingest`` takes a list of paths and returns one :class:`IngestResult` per path (in
     practice ``Catalogue.ingest``). ``after_ingest``, if given, is called after each look
@@ -86,7 +86,7 @@ class Watcher:
     def poll(self) -> list[IngestResult]:
         """One look at the folder: ingest every file that has stopped changing."""
         current: dict[str, tuple[int, int]] = {}
-        for path in sorted(self.folder.glob("*.parquet")):
+        for path in sorted((*self.folder.glob("*.parquet"), *self.folder.glob("*.csv"))):
             try:
                 stat = path.stat()
             except FileNotFoundError:  # deleted between listing and looking

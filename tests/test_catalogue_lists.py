@@ -47,8 +47,8 @@ def _fill(catalogue, make_file) -> None:
     results = catalogue.ingest(files)
     assert [r.status for r in results] == ["ingested"] * len(SCENARIO)
     # One name in two units, by two sequences: fringe phase in degrees, Ramsey phase in radians.
-    catalogue.save_figures("a1", "fringe", [Figure("phase", 30.0, "deg", stderr=1.0, method="least-squares")])
-    catalogue.save_figures("a3", "coherence", [Figure("phase", 0.5, "rad", stderr=0.1, method="least-squares"), Figure("coherence_time", 650.0, "us", stderr=40.0, method="least-squares")])
+    catalogue.save_figures("a1", "fringe", [Figure("fringe_phase", 30.0, "deg", stderr=1.0, method="least-squares")])
+    catalogue.save_figures("a3", "coherence", [Figure("ramsey_phase", 0.5, "rad", stderr=0.1, method="least-squares"), Figure("t2_star", 650.0, "us", stderr=40.0, method="least-squares")])
 
 
 def _old_lab_days(catalogue, apparatus: str | None) -> list[dt.date]:
@@ -96,7 +96,7 @@ def test_lab_days_follow_the_lab_time_zone_as_the_run_starts_do(catalogue, make_
 def test_figure_names_and_units_equal_those_of_every_figure_row(catalogue, make_file):
     _fill(catalogue, make_file)
     every_figure = catalogue.figures()
-    assert catalogue.figure_names() == sorted(every_figure["name"].unique()) == ["coherence_time", "fill_fraction", "loss", "phase", "survival"]
+    assert catalogue.figure_names() == sorted(every_figure["name"].unique()) == ["fill_fraction", "fringe_phase", "loss", "ramsey_phase", "survival", "t2_star"]
     assert catalogue.figure_names(apparatus="bench-a") == sorted(catalogue.figures(apparatus="bench-a")["name"].unique())
     assert catalogue.figure_names(apparatus="bench-b") == sorted(catalogue.figures(apparatus="bench-b")["name"].unique()) == ["fill_fraction", "loss", "survival"]
 
@@ -104,8 +104,8 @@ def test_figure_names_and_units_equal_those_of_every_figure_row(catalogue, make_
         pd.testing.assert_frame_equal(catalogue.figure_units(apparatus=apparatus), _old_figure_units(catalogue, apparatus))
     units = catalogue.figure_units(apparatus="bench-a")
     assert list(units.columns) == ["name", "unit", "sequence"]
-    assert units.query("name == 'phase'")[["unit", "sequence"]].values.tolist() == [["deg", "loading"], ["rad", "Ramsey"]]
-    assert units.query("name == 'coherence_time'")[["unit", "sequence"]].values.tolist() == [["us", "Ramsey"]]
+    assert units.query("name == 'fringe_phase'")[["unit", "sequence"]].values.tolist() == [["deg", "loading"]]
+    assert units.query("name == 't2_star'")[["unit", "sequence"]].values.tolist() == [["us", "Ramsey"]]
     assert units.query("name == 'fill_fraction'")[["unit", "sequence"]].values.tolist() == [["", "Ramsey"], ["", "loading"]]
 
 

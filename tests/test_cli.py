@@ -121,7 +121,7 @@ def test_ingest_of_an_empty_folder_is_a_one_line_refusal(db_url, tmp_path, capsy
     (empty / "notes.txt").write_text("no shot tables here")
     code, out, err = run_main(capsys, "--db", db_url, "ingest", str(empty))
     assert code == 1 and err == ""
-    assert out.splitlines() == [f"rejected         {empty}: no *.parquet files in this folder"]
+    assert out.splitlines() == [f"refused          {empty}: no *.parquet files in this folder"]
     code, out, _ = run_main(capsys, "--db", db_url, "ingest", str(empty), "--json")
     assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "rejected", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet files in this folder"}]
 
@@ -211,7 +211,7 @@ def test_human_output_of_runs_and_show_fits_80_columns(db_url, tmp_path):
         "2026-03-02-release-rec tweezer-array- release-reca      6  2026-03-02 09:00",
     ]
     show = invoke("--db", db_url, "show", "2026-03-02-scan-0042-b").stdout.splitlines()
-    assert "  tweezer_depth_second_stage scanned  612.5 .. 700.125 uK" in show
+    assert "  tweezer_depth_second_stage scanned  612.5 .. 700.125 µK" in show
 
 
 def test_show_of_a_run_with_long_names_fits_80_columns(db_url, tmp_path):
@@ -262,6 +262,34 @@ def test_a_run_key_on_two_apparatus_lists_them_and_a_wrong_apparatus_is_not_answ
     assert err == "runlog: error: no run on apparatus 'lattice-est' named '20260302-07' (it is on 'lattice-east' and 'tweezer-west'; did you mean 'lattice-east'?)\n"
     code, out, _ = run_main(capsys, "--db", db_url, "show", "20260302-07", "--apparatus", "tweezer-west", "--json")
     assert code == 0 and json.loads(out)["apparatus"] == "tweezer-west"
+
+
+def test_people_read_micro_units_as_µ_and_json_keeps_the_stored_unit(db_url, tmp_path, capsys):
+    path = tmp_path / "wait.parquet"
+    pq.write_table(shot_table({"r1": 4}, extra={"p.wait[us]": [0.0, 10.0, 20.0, 30.0]}), path)
+    assert invoke("--db", db_url, "ingest", str(path)).exit_code == 0
+    code, out, _ = run_main(capsys, "--db", db_url, "show", "r1")
+    assert code == 0 and "scanned  0 .. 30 µs" in out and " us" not in out
+    code, out, _ = run_main(capsys, "--db", db_url, "show", "r1", "--json")
+    assert json.loads(out)["parameters"]["wait"]["unit"] == "us"
+
+
+def test_init_with_a_timezone_and_changing_it_rebuilds_the_lab_days(db_url, tmp_path, capsys):
+    code, out, _ = run_main(capsys, "--db", db_url, "init", "--timezone", "America/New_York")
+    assert code == 0 and out.splitlines()[-1] == "lab time zone America/New_York; lab days and daily rollups rebuilt (0 groups)"
+    # 02:00 UTC on 2 March is still 1 March in New York, and 2 March in Berlin.
+    path = tmp_path / "night.parquet"
+    pq.write_table(shot_table({"r1": 4}, start=dt.datetime(2026, 3, 2, 2, 0, tzinfo=dt.timezone.utc)), path)
+    assert invoke("--db", db_url, "ingest", str(path)).exit_code == 0
+    with runlog.open(db_url) as catalogue:
+        assert [p.date for p in catalogue.drift("fill_fraction").points] == [dt.date(2026, 3, 1)]
+    code, out, _ = run_main(capsys, "--db", db_url, "timezone", "Europe/Berlin")
+    assert code == 0 and out.startswith("lab time zone Europe/Berlin; lab days and daily rollups rebuilt (")
+    assert run_main(capsys, "--db", db_url, "timezone")[1] == "Europe/Berlin\n"
+    with runlog.open(db_url) as catalogue:
+        assert [p.date for p in catalogue.drift("fill_fraction").points] == [dt.date(2026, 3, 2)]
+    code, out, err = run_main(capsys, "--db", db_url, "timezone", "Mars/Olympus")
+    assert (code, out) == (1, "") and err == "runlog: error: lab_timezone: unknown time zone 'Mars/Olympus' (use an IANA name such as Europe/Berlin)\n"
 
 
 # --- annotate ---------------------------------------------------------------------------
@@ -371,7 +399,7 @@ def test_console_script_exit_codes_and_error_lines(files, tmp_path):
     done = shell("ingest", "--db", db, str(files["bad"]), str(files["west"]))
     assert done.returncode == 1
     assert done.stdout.splitlines() == [
-        f"rejected         {files['bad']} (column 'shot'): required column is missing",
+        f"refused          {files['bad']} (column 'shot'): required column is missing",
         f"ingested         {files['west']}: 6 shots, run r2",
     ]
 

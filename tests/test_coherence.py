@@ -20,7 +20,7 @@ from runlog.figures.coherence import fit_envelope, fit_ramsey, frequency_unit
 
 ATOMS = 100  # atoms per shot: a shot's signal is k / 100, k binomial
 WAITS_US = np.linspace(0.0, 3000.0, 31)
-TRUTH = {"coherence_time": 1000.0, "contrast_at_zero": 0.9, "detuning": 0.002, "phase": 0.3}  # us, -, MHz, rad
+TRUTH = {"t2_star": 1000.0, "ramsey_contrast": 0.9, "ramsey_frequency": 0.002, "ramsey_phase": 0.3}  # us, -, MHz, rad
 
 
 def envelope_of(kind, t, lifetime):
@@ -42,14 +42,14 @@ def by_name(figures):
 def test_typical_scan_recovers_the_truth(kind):
     t, y = simulate(np.random.default_rng(11), kind=kind)
     figures = by_name(fit_ramsey(t, y, envelope=kind, wait_unit="us"))
-    assert list(figures) == ["coherence_time", "contrast_at_zero", "detuning", "phase"]
+    assert list(figures) == ["t2_star", "ramsey_contrast", "ramsey_frequency", "ramsey_phase"]
     for name, truth in TRUTH.items():
         f = figures[name]
         assert abs(f.value - truth) <= max(3 * f.stderr, 0.15 * abs(truth)), (name, f.value, f.stderr)
         assert f.method == "least-squares" and f.method_version == "1"
-    assert figures["coherence_time"].unit == "us"
-    assert figures["detuning"].unit == "MHz"
-    assert figures["phase"].unit == "rad"
+    assert figures["t2_star"].unit == "us"
+    assert figures["ramsey_frequency"].unit == "MHz"
+    assert figures["ramsey_phase"].unit == "rad"
 
 
 def test_hyperfine_qubit_coherence_time_is_of_order_a_millisecond():
@@ -57,7 +57,7 @@ def test_hyperfine_qubit_coherence_time_is_of_order_a_millisecond():
     # coherence times of trapped neutral atoms are of order a millisecond. A simulated scan
     # with T = 1 ms, waits given in microseconds, must come back in the millisecond range.
     t, y = simulate(np.random.default_rng(12), waits=np.linspace(0.0, 2500.0, 26), detuning=0.003)
-    f = by_name(fit_ramsey(t, y, wait_unit="us"))["coherence_time"]
+    f = by_name(fit_ramsey(t, y, wait_unit="us"))["t2_star"]
     value_ms = pint.UnitRegistry().Quantity(f.value, f.unit).to("ms").magnitude
     assert 0.5 <= value_ms <= 2.0
 
@@ -66,23 +66,23 @@ def test_negative_detuning_is_reported_positive():
     # cos(-2 pi d t + phi) = cos(2 pi d t - phi): the scan cannot tell the sign.
     t, y = simulate(np.random.default_rng(13), detuning=-0.002, phi=0.3)
     figures = by_name(fit_ramsey(t, y))
-    assert figures["detuning"].value > 0
-    assert abs(figures["detuning"].value - 0.002) <= 3 * figures["detuning"].stderr
-    assert abs(math.remainder(figures["phase"].value + 0.3, 2 * math.pi)) <= 3 * figures["phase"].stderr
+    assert figures["ramsey_frequency"].value > 0
+    assert abs(figures["ramsey_frequency"].value - 0.002) <= 3 * figures["ramsey_frequency"].stderr
+    assert abs(math.remainder(figures["ramsey_phase"].value + 0.3, 2 * math.pi)) <= 3 * figures["ramsey_phase"].stderr
 
 
 def test_slow_fringe_less_than_one_cycle():
     # Detuning below one cycle per scan: the near-zero starting detuning handles it.
     t, y = simulate(np.random.default_rng(14), detuning=0.00025, lifetime=1500.0, sweeps=6)
     figures = by_name(fit_ramsey(t, y))
-    assert abs(figures["coherence_time"].value - 1500.0) <= max(
-        3 * figures["coherence_time"].stderr, 0.15 * 1500.0
+    assert abs(figures["t2_star"].value - 1500.0) <= max(
+        3 * figures["t2_star"].stderr, 0.15 * 1500.0
     )
 
 
 def test_coverage_of_one_standard_error():
     # 200 simulated scans: |estimate - truth| <= 1 stderr should hold in ~68 % of them.
-    hits = {"coherence_time": 0, "contrast_at_zero": 0}
+    hits = {"t2_star": 0, "ramsey_contrast": 0}
     seeds = range(200)
     for seed in seeds:
         t, y = simulate(np.random.default_rng(2000 + seed), sweeps=2)
@@ -105,8 +105,8 @@ def test_standard_error_agrees_with_the_plain_reference():
         figures = by_name(fit_ramsey(t, y))
         ref, cov = curve_fit(model, t, y, p0=(0.5, 0.9, 1000.0, 0.002, 0.3), absolute_sigma=False)
         ref_err = np.sqrt(np.diag(cov))
-        assert figures["coherence_time"].value == pytest.approx(abs(ref[2]), rel=1e-4)
-        for name, index in (("contrast_at_zero", 1), ("coherence_time", 2), ("detuning", 3), ("phase", 4)):
+        assert figures["t2_star"].value == pytest.approx(abs(ref[2]), rel=1e-4)
+        for name, index in (("ramsey_contrast", 1), ("t2_star", 2), ("ramsey_frequency", 3), ("ramsey_phase", 4)):
             ratio = figures[name].stderr / ref_err[index]
             assert 0.3 <= ratio <= 3.0, (name, ratio)
 
@@ -132,8 +132,8 @@ def test_envelope_recovers_the_truth(kind):
     waits = np.linspace(0.0, 3000.0, 16)
     contrast = 0.9 * envelope_of(kind, waits, 1000.0) + rng.normal(0.0, 0.02, waits.size)
     figures = by_name(fit_envelope(waits, contrast, envelope=kind, wait_unit="us"))
-    assert list(figures) == ["coherence_time", "contrast_at_zero"]
-    for name, truth in (("coherence_time", 1000.0), ("contrast_at_zero", 0.9)):
+    assert list(figures) == ["envelope_time", "envelope_contrast"]
+    for name, truth in (("envelope_time", 1000.0), ("envelope_contrast", 0.9)):
         f = figures[name]
         assert abs(f.value - truth) <= max(3 * f.stderr, 0.15 * truth), (name, f.value, f.stderr)
 
@@ -144,10 +144,10 @@ def test_envelope_coverage_of_one_standard_error():
     for seed in seeds:
         rng = np.random.default_rng(3000 + seed)
         contrast = 0.9 * np.exp(-((waits / 1000.0) ** 2)) + rng.normal(0.0, 0.03, waits.size)
-        f = by_name(fit_envelope(waits, contrast))["coherence_time"]
+        f = by_name(fit_envelope(waits, contrast))["envelope_time"]
         hits += abs(f.value - 1000.0) <= f.stderr
     fraction = hits / len(seeds)
-    print(f"\nenvelope coverage of 1 stderr over {len(seeds)} seeds: coherence_time {fraction}")
+    print(f"\nenvelope coverage of 1 stderr over {len(seeds)} seeds: envelope_time {fraction}")
     assert 0.58 <= fraction <= 0.78
 
 

@@ -175,10 +175,10 @@ def test_overview_shows_the_latest_lab_day_open_alarms_and_ingest(lab):
     assert [m.label for m in at.metric][:8] == headline * 2
     metrics = iter(at.metric)
     for apparatus in ("lattice-east", "tweezer-west"):
-        for name in ("fill_fraction", "survival", "coherence_time", "contrast"):
+        for name in ("fill_fraction", "survival", "t2_star", "contrast"):
             # The card shows the reference series' point of the latest lab day, if it has one.
             today = [p for p in lab.drift(name, apparatus=apparatus, record_alarms=False).points if p.date == LAST_DAY]
-            unit = " µs" if name == "coherence_time" else ""
+            unit = " µs" if name == "t2_star" else ""
             assert next(metrics).value == (value_text(today[0].value, today[0].stderr) + unit if today else "–"), (apparatus, name)
 
     runs = table(at, "run", "sequence", "fill fraction", index=0)  # one per apparatus: lattice-east first
@@ -230,7 +230,7 @@ def test_drift_page_follows_its_widgets(lab):
     offered = at.multiselect(key="drift-quantities-lattice-east").options
     assert [option.split(" [")[0] for option in offered] == [name.replace("_", " ") for name in sorted(lab.figures(apparatus="lattice-east")["name"].unique())]
     assert "coherence time [µs]" in offered and "fill fraction" in offered
-    assert at.multiselect(key="drift-quantities-lattice-east").value == ["fill_fraction", "survival", "coherence_time"]
+    assert at.multiselect(key="drift-quantities-lattice-east").value == ["fill_fraction", "survival", "t2_star"]
     shown = charts(at)
     assert [c["spec"]["title"]["text"] for c in shown] == ["fill fraction: lattice-east", "survival: lattice-east", "coherence time: lattice-east"]
     for chart in shown:  # no shot leaves the server for this page: one row per lab day at most
@@ -274,7 +274,7 @@ def test_drift_page_follows_its_widgets(lab):
     at.selectbox(key="drift-sequence-tweezer-west").set_value("loading").run()
     expected = lab.drift("fill_fraction", apparatus="tweezer-west", sequence="loading", record_alarms=False)
     np.testing.assert_allclose(charts(at)[0]["layers"]["daily values"]["value"], [p.value for p in expected.points], rtol=1e-12)
-    assert any("coherence_time" in e.value and "loading" in e.value for e in at.error)  # Ramsey runs are another sequence
+    assert any("t2_star" in e.value and "loading" in e.value for e in at.error)  # Ramsey runs are another sequence
     at.selectbox(key="drift-sequence-tweezer-west").set_value("all sequences")
     at.multiselect(key="drift-filter-tweezer-west").set_value(["lattice_depth"]).run()
     slider = at.slider(key="drift-range-tweezer-west-lattice_depth")
@@ -296,7 +296,7 @@ def test_drift_page_follows_its_widgets(lab):
     assert only["spec"]["title"]["text"] == "contrast: tweezer-west"
     # A name stored in two units (fringe phase in deg, Ramsey phase in rad) is flagged.
     assert "phase [deg, rad]" in at.multiselect(key="drift-quantities-tweezer-west").options
-    at.multiselect(key="drift-quantities-tweezer-west").set_value(["phase"]).run()
+    at.multiselect(key="drift-quantities-tweezer-west").set_value(["fringe_phase"]).run()
     assert at.warning[0].value.startswith("phase is stored in several units: deg (phase-scan); rad (ramsey).")
     at.selectbox(key="drift-sequence-tweezer-west").set_value("ramsey").run()
     assert not at.warning and charts(at)[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "phase [rad]"
@@ -334,7 +334,7 @@ def test_run_detail_draws_the_fit_over_the_shots_and_the_site_maps(recent):
     np.testing.assert_array_equal(np.sort(data["x"]), np.sort(shots["p.phase"]))
     # The model from the stored figures, computed here on its own: y = a (1 + C cos(x + phi)).
     curve = fit["layers"]["fit curve"]
-    a, c, phi = (info.figures[n]["value"] for n in ("offset", "contrast", "phase"))
+    a, c, phi = (info.figures[n]["value"] for n in ("offset", "contrast", "fringe_phase"))
     np.testing.assert_allclose(curve["y"], a * (1 + c * np.cos(np.radians(curve["x"] + phi))), rtol=1e-12)
     assert fit["spec"]["layer"][0]["encoding"]["x"]["title"] == "phase [deg]"
 
@@ -373,7 +373,7 @@ def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
     def ramsey(t, a, c0, lifetime, delta, phi):
         return a * (1 + c0 * np.exp(-((t / lifetime) ** 2)) * np.cos(2 * np.pi * delta * t + phi))
 
-    start_values = [curve.offset] + [figures[n]["value"] for n in ("contrast_at_zero", "coherence_time", "detuning", "phase")]
+    start_values = [curve.offset] + [figures[n]["value"] for n in ("ramsey_contrast", "t2_star", "ramsey_frequency", "ramsey_phase")]
     refit, _ = curve_fit(ramsey, curve.x, curve.y, p0=start_values)
     assert curve.offset == pytest.approx(refit[0], rel=1e-6)
     np.testing.assert_allclose(refit[1:], start_values[1:], rtol=1e-4)

@@ -410,8 +410,8 @@ def _failing_writer(monkeypatch, table: str, error: type[BaseException]) -> None
     in the transaction by then)."""
     real = copy_module.open_writer
 
-    def open_writer(engine, months=()):
-        writer = real(engine, months)
+    def open_writer(engine, months=(), *tables):
+        writer = real(engine, months, *tables)
         append = writer.append
 
         def failing_append(name, data):

@@ -186,7 +186,7 @@ def test_days_and_start_are_honoured(tmp_path: Path) -> None:
 def test_describe_names_both_events() -> None:
     lines = SCENARIO.describe(START, DAYS)
     assert "event: tweezer-west fill_fraction 0.5 -> 0.4 from 2026-09-10 (day 9)" in lines
-    assert "event: lattice-east coherence_time_us 1000 -> 600 us from 2026-09-15 (day 14)" in lines
+    assert "event: lattice-east coherence_time_us 1000 -> 600 µs from 2026-09-15 (day 14)" in lines
     assert any("not in these files" in line for line in SCENARIO.describe(START, 5))
 
 

@@ -14,6 +14,7 @@ import datetime as dt
 import json
 import logging
 import math
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -28,7 +29,7 @@ import runlog
 from runlog.cli import cli
 from runlog.config import check_rules, load_config
 from runlog.demo import SCENARIO, write_demo_files
-from runlog.derive import KINDS, DeriveResult, apply_rules, derive, derive_all
+from runlog.derive import KINDS, DeriveResult, apply_rules, derive, derive_all, fit_curve
 from runlog.errors import ConfigError, FitError, NotFoundError
 from runlog.figures.fringe import fit_fringe
 from runlog.store import schema as s
@@ -104,11 +105,11 @@ def test_fringe_of_a_phase_scan_in_degrees(catalogue, make_file, db_url):
     catalogue.ingest(make_file(table=table))
     result = derive(catalogue, "fringe1", "fringe", y="bright_fraction")
     figures = by_name(result)
-    assert list(figures) == ["contrast", "phase", "offset"]
-    assert figures["phase"].unit == "deg"
-    assert near(figures["contrast"], 0.7) and near(figures["phase"], 30.0) and near(figures["offset"], 0.5)
+    assert list(figures) == ["contrast", "fringe_phase", "offset"]
+    assert figures["fringe_phase"].unit == "deg"
+    assert near(figures["contrast"], 0.7) and near(figures["fringe_phase"], 30.0) and near(figures["offset"], 0.5)
     print(f"\nfringe: contrast {figures['contrast'].value:.4f} ± {figures['contrast'].stderr:.4f} (truth 0.7), "
-          f"phase {figures['phase'].value:.2f} ± {figures['phase'].stderr:.2f} deg (truth 30)")
+          f"phase {figures['fringe_phase'].value:.2f} ± {figures['fringe_phase'].stderr:.2f} deg (truth 30)")
 
     # Reference: scipy.optimize.curve_fit (absolute_sigma=False) on the same shots. Ours is
     # the HC3 sandwich estimate, so the errors agree within a factor 3, not exactly.
@@ -120,11 +121,11 @@ def test_fringe_of_a_phase_scan_in_degrees(catalogue, make_file, db_url):
     reference, covariance = curve_fit(model, x, y, p0=(0.5, 0.7, 30.0))
     reference_errors = np.sqrt(np.diag(covariance))
     assert figures["contrast"].value == pytest.approx(reference[1], rel=1e-5)
-    for name, index in (("offset", 0), ("contrast", 1), ("phase", 2)):
+    for name, index in (("offset", 0), ("contrast", 1), ("fringe_phase", 2)):
         assert 0.3 <= figures[name].stderr / reference_errors[index] <= 3.0, name
 
     shown = json.loads(invoke("--db", db_url, "show", "fringe1", "--json").stdout)["figures"]
-    assert set(shown) == {"contrast", "phase", "offset"}
+    assert set(shown) == {"contrast", "fringe_phase", "offset"}
     assert shown["contrast"] == figures["contrast"].as_dict()
     assert {f["method"] for f in shown.values()} == {"least-squares"}
     assert {row.method_version for row in stored_rows(catalogue, "fringe1").values()} == {"1"}
@@ -148,9 +149,9 @@ def test_fringe_in_turns_is_fitted_in_radians(catalogue, make_file):
     table = table.drop_columns(["p.phase[deg]"]).append_column("p.phase[turn]", pa.array(turns))
     catalogue.ingest(make_file(table=table))
     figures = by_name(derive(catalogue, "fringe1", "fringe", y="bright_fraction", store=False))
-    assert figures["phase"].unit == "rad"
+    assert figures["fringe_phase"].unit == "rad"
     reference = {f.name: f for f in fit_fringe(turns * 360.0, table.column("m.bright_fraction").to_numpy(), phase_unit="deg")}
-    assert figures["phase"].value == pytest.approx(math.radians(reference["phase"].value), rel=1e-6)
+    assert figures["fringe_phase"].value == pytest.approx(math.radians(reference["fringe_phase"].value), rel=1e-6)
     assert figures["contrast"].value == pytest.approx(reference["contrast"].value, rel=1e-9)
 
 
@@ -181,12 +182,30 @@ def test_coherence_time_comes_out_in_the_wait_unit(catalogue, make_file, unit, t
     # Truth is our simulation's: T = 1000 us = 1 ms, detuning 2 kHz.
     catalogue.ingest(make_file(table=ramsey_scan(np.random.default_rng(21), unit=unit)))
     figures = by_name(derive(catalogue, "ramsey1", "coherence"))
-    time = figures["coherence_time"]
+    time = figures["t2_star"]
     assert time.unit == unit and near(time, truth)
-    assert figures["detuning"].unit == detuning_unit and near(figures["detuning"], detuning)
-    assert near(figures["contrast_at_zero"], 0.9)
+    assert figures["ramsey_frequency"].unit == detuning_unit and near(figures["ramsey_frequency"], detuning)
+    assert near(figures["ramsey_contrast"], 0.9)
     print(f"\ncoherence time {time.value:.4g} ± {time.stderr:.2g} {unit} (truth {truth:g} {unit})")
-    assert catalogue.run("ramsey1").figures["coherence_time"]["unit"] == unit
+    assert catalogue.run("ramsey1").figures["t2_star"]["unit"] == unit
+
+
+@pytest.mark.parametrize(("programmed", "unit", "expected"), [(-2.0, "kHz", -2.0), (2.0, "kHz", 2.0), (-2 * math.pi * 2.0, "rad/ms", -2 * math.pi * 2.0)])
+def test_ramsey_frequency_takes_the_programmed_detunings_unit_and_sign(catalogue, make_file, programmed, unit, expected):
+    # The simulation's fringe is 2 kHz (cos(2 pi 0.002 MHz t + 0.3)); a detuning programmed
+    # at -2 kHz gives the same fringe as (+2 kHz, +0.3 rad) read as (-2 kHz, -0.3 rad).
+    # rad/ms is the angular unit: 2 kHz = 4 pi rad/ms (omega = 2 pi f).
+    table = ramsey_scan(np.random.default_rng(21))
+    table = table.append_column(f"p.detuning[{unit}]", pa.array(np.full(table.num_rows, programmed)))
+    catalogue.ingest(make_file(table=table))
+    figures = by_name(derive(catalogue, "ramsey1", "coherence"))
+    frequency, phase = figures["ramsey_frequency"], figures["ramsey_phase"]
+    assert frequency.unit == unit
+    assert abs(frequency.value - expected) <= 3 * frequency.stderr
+    assert abs(math.remainder(phase.value - math.copysign(0.3, programmed), 2 * math.pi)) <= 3 * phase.stderr
+    assert catalogue.run("ramsey1").figures["ramsey_frequency"]["unit"] == unit
+    curve = fit_curve(catalogue, "ramsey1")  # the curve converts the stored unit back
+    assert np.sqrt(np.mean((curve.y - np.interp(curve.x, curve.curve_x, curve.curve_y)) ** 2)) < 0.05
 
 
 def test_coherence_from_contrast_per_wait(catalogue, make_file):
@@ -196,8 +215,8 @@ def test_coherence_from_contrast_per_wait(catalogue, make_file):
     contrast = 0.9 * np.exp(-((wait / 1000.0) ** 2)) + rng.normal(0.0, 0.02, wait.size)
     catalogue.ingest(make_file(table=scan_table("envelope1", "ramsey-contrast", {"wait[us]": wait}, {"contrast": contrast})))
     figures = by_name(derive(catalogue, "envelope1", "coherence", envelope="gaussian"))
-    assert list(figures) == ["coherence_time", "contrast_at_zero"]
-    assert near(figures["coherence_time"], 1000.0) and figures["coherence_time"].unit == "us"
+    assert list(figures) == ["envelope_time", "envelope_contrast"]
+    assert near(figures["envelope_time"], 1000.0) and figures["envelope_time"].unit == "us"
 
 
 def test_an_unknown_parameter_names_what_the_run_has(catalogue, make_file):
@@ -231,15 +250,15 @@ def test_demo_scans_against_the_generators_truth(catalogue, tmp_path):
         if row.sequence == "phase-scan":
             figures = by_name(catalogue.derive(row.run, "fringe", apparatus=row.apparatus, y="bright_fraction"))
             assert near(figures["contrast"], truth.phase_contrast), (row.run, figures["contrast"])
-            assert abs(figures["phase"].value - truth.phase_offset_deg) <= 3 * figures["phase"].stderr, (row.run, figures["phase"])
+            assert abs(figures["fringe_phase"].value - truth.phase_offset_deg) <= 3 * figures["fringe_phase"].stderr, (row.run, figures["fringe_phase"])
             assert near(figures["offset"], 0.5)
             checked["fringe"] += 1
         else:
             figures = by_name(catalogue.derive(row.run, "coherence", apparatus=row.apparatus, y="bright_fraction"))
-            assert figures["coherence_time"].unit == "us"
-            assert near(figures["coherence_time"], truth.coherence_time_us), (row.run, figures["coherence_time"])
-            assert near(figures["contrast_at_zero"], truth.ramsey_contrast), (row.run, figures["contrast_at_zero"])
-            assert near(figures["detuning"], truth.ramsey_detuning_khz * 1e-3), (row.run, figures["detuning"])
+            assert figures["t2_star"].unit == "us"
+            assert near(figures["t2_star"], truth.coherence_time_us), (row.run, figures["t2_star"])
+            assert near(figures["ramsey_contrast"], truth.ramsey_contrast), (row.run, figures["ramsey_contrast"])
+            assert figures["ramsey_frequency"].unit == "kHz" and near(figures["ramsey_frequency"], truth.ramsey_detuning_khz), (row.run, figures["ramsey_frequency"])
             checked["coherence"] += 1
     assert checked["fringe"] >= 3 and checked["coherence"] >= 3, checked
 
@@ -269,6 +288,24 @@ def test_counting_keeps_the_stored_interval_unless_told(catalogue, make_file, tm
     assert catalogue.run("r1").figures["fill_fraction"]["method"] == "clopper-pearson"
     assert {f.method for f in derive(catalogue, "r1", "counting").figures} == {"clopper-pearson"}
     assert {f.method for f in derive(catalogue, "r1", "counting", interval="wilson").figures} == {"wilson"}
+
+
+def test_every_interval_docs_figures_md_offers_is_accepted_in_runlog_toml(catalogue, make_file, tmp_path):
+    from runlog.config import load_config
+    from runlog.errors import ConfigError
+    from runlog.figures.intervals import INTERVAL_METHODS
+
+    documented = Path(__file__).resolve().parent.parent.joinpath("docs", "figures.md").read_text(encoding="utf-8")
+    config = tmp_path / "runlog.toml"
+    for method in INTERVAL_METHODS:
+        assert f"`{method}`" in documented
+        config.write_text(f'[figures]\ninterval = "{method}"\n')
+        assert load_config(config).interval == method
+    catalogue.ingest(make_file(table=shot_table({"r1": 12}, seed=5)), config=config)
+    assert catalogue.run("r1").figures["fill_fraction"]["method"] == "wilson-cc"
+    config.write_text('[figures]\ninterval = "wald"\n')
+    with pytest.raises(ConfigError, match="interval must be one of 'wilson', 'clopper-pearson', 'wilson-cc', not 'wald'"):
+        load_config(config)
 
 
 # --- spreading, sorting, correlator ------------------------------------------------------
@@ -378,7 +415,7 @@ def test_rules_apply_to_matching_runs(catalogue, make_file, tmp_path):
     failed = [o for o in outcomes if isinstance(o, FitError)]
     assert done == {("fringe1", "fringe"), ("ramsey1", "coherence")}
     assert [(f.run, f.kind) for f in failed] == [("flat", "fringe")]
-    assert "coherence_time" in catalogue.run("ramsey1").figures
+    assert "t2_star" in catalogue.run("ramsey1").figures
     assert "contrast" not in catalogue.run("flat").figures
     assert set(catalogue.run("load1").figures) == {"fill_fraction", "survival", "loss"}
     # Only the named runs; a rule for another apparatus matches nothing.
@@ -394,8 +431,8 @@ def test_ingest_with_rules_derives_and_says_so(db_url, make_file, tmp_path):
     assert result.exit_code == 0, result.output
     objects = json.loads(result.stdout)
     assert objects[0]["derived"] == []  # a loading run: no rule matches
-    assert objects[1]["derived"][0]["kind"] == "fringe" and set(objects[1]["derived"][0]["figures"]) == {"contrast", "phase", "offset"}
-    assert objects[2]["derived"][0]["figures"]["coherence_time"]["unit"] == "us"
+    assert objects[1]["derived"][0]["kind"] == "fringe" and set(objects[1]["derived"][0]["figures"]) == {"contrast", "fringe_phase", "offset"}
+    assert objects[2]["derived"][0]["figures"]["t2_star"]["unit"] == "us"
     assert objects[3]["derived"] == [{"run": "flat", "kind": "fringe", "error": FLAT_REASON}]
     # Without rules the ingest objects keep their plain shape.
     plain = json.loads(invoke("--db", db_url, "ingest", "--json", str(make_file(table=shot_table({"load2": 4})))).stdout)
@@ -453,7 +490,7 @@ def test_derive_command_prints_figures_within_80_columns(catalogue, make_file, d
     assert max(map(len, lines)) <= 80
     as_json = json.loads(invoke("--db", db_url, "derive", "fringe1", "--kind", "fringe", "--y", "bright_fraction", "--json").stdout)
     assert as_json["run"] == "fringe1" and as_json["kind"] == "fringe"
-    assert set(as_json["figures"]["phase"]) == {"value", "unit", "stderr", "method"}
+    assert set(as_json["figures"]["fringe_phase"]) == {"value", "unit", "stderr", "method"}
     help_text = invoke("derive", "--help").stdout
     assert all(kind in help_text for kind in KINDS)
     assert invoke("--db", db_url, "derive", "fringe1").exit_code == 2  # no --kind: usage error

@@ -215,7 +215,7 @@ def test_fit_curve_of_each_health_kind_goes_through_the_shots(health):
     assert rabi.x_name == "pulse" and rabi.x_unit == "us" and rabi.y_name == "population"
     echo = fit_curve(catalogue, "echo1")
     e = stored(catalogue, "echo1")
-    np.testing.assert_allclose(echo.curve_y, echo_model(echo.curve_x, 0.0, e["contrast_at_zero"]["value"], e["t2"]["value"], e["stretch"]["value"]), rtol=1e-5)
+    np.testing.assert_allclose(echo.curve_y, echo_model(echo.curve_x, 0.0, e["echo_contrast"]["value"], e["t2"]["value"], e["stretch"]["value"]), rtol=1e-5)
     # The loss-corrected T1 curve is drawn over all shots, reference shots included (the
     # stored figures do not name the reference parameter), so it is checked for its kind only.
     assert fit_curve(catalogue, "t1run").kind == "t1"

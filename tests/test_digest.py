@@ -35,13 +35,13 @@ def test_the_digest_says_where_each_figure_stands_and_names_the_open_alarm(scena
     found = build_digest(scenario, day=DAY)
     (bench,) = found["apparatus"]
     states = {f["quantity"]: f["state"] for f in bench["figures"]}
-    assert states["coherence_time"] == "changed" and states["survival"] == "in limits"
-    coherence = next(f for f in bench["figures"] if f["quantity"] == "coherence_time")
+    assert states["t2_star"] == "changed" and states["survival"] == "in limits"
+    coherence = next(f for f in bench["figures"] if f["quantity"] == "t2_star")
     assert coherence["size"] < 0 and coherence["z"] < -3 and coherence["series"]["sequence"] == "ramsey"
-    assert any(a["quantity"] == "coherence_time" and a["notes"][0]["text"] == "repump fibre replaced this morning" for a in bench["alarms"])
+    assert any(a["quantity"] == "t2_star" and a["notes"][0]["text"] == "repump fibre replaced this morning" for a in bench["alarms"])
     assert bench["notes"][0]["text"] == "repump fibre replaced this morning" and bench["sent_data"]
     text = digest_text(found)
-    assert "coherence_time" in text and "changed" in text and "repump fibre replaced" in text
+    assert "t2_star" in text and "changed" in text and "repump fibre replaced" in text
     later = build_digest(scenario, day=START + dt.timedelta(days=20))
     assert "WARNING: no data on" in digest_text(later)  # an apparatus that sent nothing
 
@@ -85,7 +85,7 @@ def test_the_digest_arrives_by_mail_with_its_html_part(scenario):  # noqa: F811
     assert message["Subject"] == f"runlog digest {DAY.isoformat()}" and message["To"] == "lab@example.org"
     parts = {part.get_content_type(): part.get_payload(decode=True).decode() for part in message.walk() if not part.is_multipart()}
     assert set(parts) == {"text/plain", "text/html"}
-    assert "<svg" in parts["text/html"] and "coherence_time" in parts["text/plain"]
+    assert "<svg" in parts["text/html"] and "t2_star" in parts["text/plain"]
 
 
 def test_no_credential_in_any_output_when_sending_fails(scenario, monkeypatch, capsys):  # noqa: F811

@@ -86,7 +86,7 @@ def scenario(catalogue, tmp_path):
         true_t = 1000.0 if day < COHERENCE_STEP_DAY else 650.0
         for k in range(2):
             value = true_t + truth.normal(0, 25.0)
-            catalogue.save_figures(f"{date:%Y%m%d}-ramsey-{k}", "coherence", [Figure("coherence_time", value, "us", stderr=25.0, method="least-squares")])
+            catalogue.save_figures(f"{date:%Y%m%d}-ramsey-{k}", "coherence", [Figure("t2_star", value, "us", stderr=25.0, method="least-squares")])
     return catalogue
 
 
@@ -97,7 +97,7 @@ def test_steps_are_found_on_their_day_and_a_stable_quantity_has_none(scenario):
     assert abs((fill.changes[0].date - (START + dt.timedelta(days=FILL_STEP_DAY))).days) <= 1
     assert fill.changes[0].before == pytest.approx(0.50, abs=0.01) and fill.changes[0].after == pytest.approx(0.42, abs=0.01)
 
-    coherence = scenario.drift("coherence_time", apparatus="bench-north")
+    coherence = scenario.drift("t2_star", apparatus="bench-north")
     assert coherence.unit == "us" and len(coherence.points) == DAYS
     assert len(coherence.changes) in (1, 2)
     assert abs((coherence.changes[0].date - (START + dt.timedelta(days=COHERENCE_STEP_DAY))).days) <= 1
@@ -120,10 +120,10 @@ def test_daily_points_pool_counts_exactly(scenario):
 
 
 def test_alarms_are_recorded_once_and_acknowledging_adds_an_annotation(scenario):
-    scenario.drift("coherence_time", apparatus="bench-north")
-    scenario.drift("coherence_time", apparatus="bench-north")  # the same findings again
+    scenario.drift("t2_star", apparatus="bench-north")
+    scenario.drift("t2_star", apparatus="bench-north")  # the same findings again
     alarms = scenario.alarms()
-    limits = [a for a in alarms if a["quantity"] == "coherence_time" and a["reason"] == "limit"]
+    limits = [a for a in alarms if a["quantity"] == "t2_star" and a["reason"] == "limit"]
     assert len(limits) == 1 and abs(dt.date.fromisoformat(limits[0]["date"]) - (START + dt.timedelta(days=COHERENCE_STEP_DAY))).days <= 1
     assert limits[0]["series"]["sequence"] == "ramsey" and limits[0]["series"]["key"].startswith("ramsey@")
     note = scenario.acknowledge(limits[0]["id"], "repump fibre replaced this morning")
@@ -134,17 +134,17 @@ def test_alarms_are_recorded_once_and_acknowledging_adds_an_annotation(scenario)
 
 
 def test_accepting_a_new_level_starts_a_new_baseline_recorded_as_a_note(scenario):
-    before = scenario.drift("coherence_time", apparatus="bench-north")
+    before = scenario.drift("t2_star", apparatus="bench-north")
     step = START + dt.timedelta(days=COHERENCE_STEP_DAY)
     assert any(p.date > step + dt.timedelta(days=1) for p in (before.points[i] for i in before.out_of_limits))
-    (alarm,) = [a for a in scenario.alarms() if a["quantity"] == "coherence_time"]
+    (alarm,) = [a for a in scenario.alarms() if a["quantity"] == "t2_star"]
     scenario.acknowledge(alarm["id"], "new lattice alignment", accept=True)
-    after = scenario.drift("coherence_time", apparatus="bench-north")
+    after = scenario.drift("t2_star", apparatus="bench-north")
     assert after.limits["accepted"] == [alarm["date"]]
     # From the accepted day the days only build the new baseline: nothing is out any more.
     assert [after.points[i].date.isoformat() for i in after.out_of_limits if after.points[i].date.isoformat() >= alarm["date"]] == []
     assert [a["status"] for a in scenario.alarms(status=None) if a["id"] == alarm["id"]] == ["accepted"]
-    assert any(t.startswith("new level accepted for coherence_time") and "new lattice alignment" in t for t in scenario.annotations(apparatus="bench-north")["text"])
+    assert any(t.startswith("new level accepted for t2_star") and "new lattice alignment" in t for t in scenario.annotations(apparatus="bench-north")["text"])
 
 
 def test_what_else_changed_ranks_the_parameter_that_moved_first(scenario):
@@ -220,7 +220,7 @@ def test_parameter_ranges_filter_the_runs_behind_each_day(scenario):
     table = scenario.parameters()
     depth = table.set_index("name").loc["lattice_depth"]
     assert (depth["unit"], depth["min"], depth["max"]) == ("uK", 55.0, 65.0)
-    figures = scenario.figures(names=["coherence_time"])
+    figures = scenario.figures(names=["t2_star"])
     assert len(figures) == 2 * DAYS and set(figures["unit"]) == {"us"}
 
 
@@ -269,12 +269,12 @@ def test_a_name_stored_in_two_units_is_not_pooled(catalogue, make_file):
 
 
 def test_fitted_figures_get_ewma_and_cusum_and_a_named_baseline(scenario):
-    coherence = scenario.drift("coherence_time", apparatus="bench-north", baseline=(START, START + dt.timedelta(days=4)))
+    coherence = scenario.drift("t2_star", apparatus="bench-north", baseline=(START, START + dt.timedelta(days=4)))
     assert coherence.limits["baseline"] == [START.isoformat(), (START + dt.timedelta(days=4)).isoformat()]
     assert len(coherence.limits["cusum_lower"]) == DAYS
     # The 350 us drop drives the lower CUSUM past h from the step day on.
     first = next(i for i, v in enumerate(coherence.limits["cusum_lower"]) if v > coherence.limits["cusum_h"])
     assert abs(first - COHERENCE_STEP_DAY) <= 1
     assert COHERENCE_STEP_DAY in coherence.out_of_limits or COHERENCE_STEP_DAY + 1 in coherence.out_of_limits
-    result = CliRunner().invoke(cli, ["--db", scenario.engine.url.render_as_string(hide_password=False), "drift", "coherence_time", "--baseline", f"{START}:{START + dt.timedelta(days=4)}", "--json"])
+    result = CliRunner().invoke(cli, ["--db", scenario.engine.url.render_as_string(hide_password=False), "drift", "t2_star", "--baseline", f"{START}:{START + dt.timedelta(days=4)}", "--json"])
     assert result.exit_code == 0, result.output

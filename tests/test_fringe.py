@@ -37,12 +37,12 @@ def by_name(figures):
 def test_typical_scan_recovers_the_truth():
     x, y = simulate(np.random.default_rng(1))
     figures = by_name(fit_fringe(x, y))
-    assert [f for f in figures] == ["contrast", "phase", "offset"]
-    for name, truth in (("contrast", 0.8), ("phase", 0.4), ("offset", 0.5)):
+    assert [f for f in figures] == ["contrast", "fringe_phase", "offset"]
+    for name, truth in (("contrast", 0.8), ("fringe_phase", 0.4), ("offset", 0.5)):
         f = figures[name]
         assert abs(f.value - truth) <= max(3 * f.stderr, 0.15 * abs(truth)), name
         assert f.method == "least-squares" and f.method_version == "1"
-    assert figures["phase"].unit == "rad" and figures["contrast"].unit == ""
+    assert figures["fringe_phase"].unit == "rad" and figures["contrast"].unit == ""
 
 
 def test_degrees_in_degrees_out():
@@ -50,21 +50,21 @@ def test_degrees_in_degrees_out():
     x, y = simulate(rng, phi=math.radians(-170.0))
     in_rad = by_name(fit_fringe(x, y))
     in_deg = by_name(fit_fringe(np.degrees(x), y, phase_unit="deg", y_unit="count"))
-    assert in_deg["phase"].unit == "deg" and in_deg["offset"].unit == "count"
-    assert in_deg["phase"].value == pytest.approx(math.degrees(in_rad["phase"].value), rel=1e-9)
-    assert in_deg["phase"].stderr == pytest.approx(math.degrees(in_rad["phase"].stderr), rel=1e-6)
+    assert in_deg["fringe_phase"].unit == "deg" and in_deg["offset"].unit == "count"
+    assert in_deg["fringe_phase"].value == pytest.approx(math.degrees(in_rad["fringe_phase"].value), rel=1e-9)
+    assert in_deg["fringe_phase"].stderr == pytest.approx(math.degrees(in_rad["fringe_phase"].stderr), rel=1e-6)
     assert in_deg["contrast"].value == pytest.approx(in_rad["contrast"].value, rel=1e-9)
     # -170 deg stays -170 deg: wrapped to (-180, 180], not reported as 190.
-    assert -180.0 < in_deg["phase"].value <= 180.0
-    assert abs(in_deg["phase"].value + 170.0) <= 3 * in_deg["phase"].stderr
+    assert -180.0 < in_deg["fringe_phase"].value <= 180.0
+    assert abs(in_deg["fringe_phase"].value + 170.0) <= 3 * in_deg["fringe_phase"].stderr
     # Units are pint-parsable.
     units = pint.UnitRegistry()
-    assert units.Quantity(1.0, in_deg["phase"].unit).to("rad").magnitude == pytest.approx(math.pi / 180)
+    assert units.Quantity(1.0, in_deg["fringe_phase"].unit).to("rad").magnitude == pytest.approx(math.pi / 180)
 
 
 def test_phase_near_half_turn_is_wrapped():
     x, y = simulate(np.random.default_rng(3), phi=math.pi - 0.01)
-    f = by_name(fit_fringe(x, y))["phase"]
+    f = by_name(fit_fringe(x, y))["fringe_phase"]
     assert -math.pi < f.value <= math.pi
     # distance on the circle to the truth
     assert abs(math.remainder(f.value - (math.pi - 0.01), 2 * math.pi)) <= 3 * f.stderr
@@ -76,18 +76,18 @@ def test_negative_contrast_is_reported_positive_with_shifted_phase():
     figures = by_name(fit_fringe(x, y))
     assert figures["contrast"].value > 0
     assert abs(figures["contrast"].value - 0.6) <= 3 * figures["contrast"].stderr
-    assert abs(math.remainder(figures["phase"].value - (0.3 + math.pi), 2 * math.pi)) <= 3 * figures["phase"].stderr
+    assert abs(math.remainder(figures["fringe_phase"].value - (0.3 + math.pi), 2 * math.pi)) <= 3 * figures["fringe_phase"].stderr
 
 
 def test_coverage_of_one_standard_error():
     # 200 simulated scans: |estimate - truth| <= 1 stderr should hold in ~68 % of them.
-    hits = {"contrast": 0, "phase": 0}
+    hits = {"contrast": 0, "fringe_phase": 0}
     seeds = range(200)
     for seed in seeds:
         x, y = simulate(np.random.default_rng(1000 + seed))
         figures = by_name(fit_fringe(x, y))
         hits["contrast"] += abs(figures["contrast"].value - 0.8) <= figures["contrast"].stderr
-        hits["phase"] += abs(figures["phase"].value - 0.4) <= figures["phase"].stderr
+        hits["fringe_phase"] += abs(figures["fringe_phase"].value - 0.4) <= figures["fringe_phase"].stderr
     fractions = {name: count / len(seeds) for name, count in hits.items()}
     print(f"\nfringe coverage of 1 stderr over {len(seeds)} seeds: {fractions}")
     for name, fraction in fractions.items():
@@ -107,7 +107,7 @@ def test_standard_error_agrees_with_the_plain_reference():
         assert figures["contrast"].value == pytest.approx(ref[1], rel=1e-5)
         # Ours is the sandwich estimator, the reference the residual-variance one: they
         # differ by the heteroscedasticity of binomial noise, not by more than a factor 3.
-        for name, index in (("offset", 0), ("contrast", 1), ("phase", 2)):
+        for name, index in (("offset", 0), ("contrast", 1), ("fringe_phase", 2)):
             ratio = figures[name].stderr / ref_err[index]
             assert 0.3 <= ratio <= 3.0, (name, ratio)
 

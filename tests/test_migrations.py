@@ -193,4 +193,47 @@ def test_models_and_scripts_give_the_same_layout(db_url, tmp_path, request):
             drop()
     assert fresh == scripted
     if db_url.startswith("postgresql"):
-        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("occupancy", "shot_measurements", "shot_parameters", "shots"))]
+        assert fresh["partitioned"] == [(table, "RANGE (\"time\")") for table in sorted(("monitor_values", "occupancy", "shot_measurements", "shot_parameters", "shots"))]
+
+
+def test_0007_renames_figures_that_stood_for_two_things(db_url, make_file):
+    """Figures stored under the old shared names get the name of their own physics, in the
+    figures in force, their records, the daily rollups, alarms and pin filters."""
+    import datetime as dt
+
+    from sqlalchemy import insert
+
+    from runlog import Figure
+    from runlog.store import schema as s
+
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest(make_file(runs={"ramsey1": 3, "envelope1": 3, "echo1": 3, "fringe1": 3}))
+        common = {"stderr": 0.1, "method": "least-squares"}
+        # The names an older runlog stored.
+        catalogue.save_figures("ramsey1", "coherence", [Figure("coherence_time", 900.0, "us", **common), Figure("contrast_at_zero", 0.9, "", **common), Figure("detuning", 0.002, "MHz", **common), Figure("phase", 0.3, "rad", **common)])
+        catalogue.save_figures("envelope1", "coherence", [Figure("coherence_time", 800.0, "us", **common), Figure("contrast_at_zero", 0.8, "", **common)])
+        catalogue.save_figures("echo1", "echo", [Figure("t2", 5.0, "ms", **common), Figure("stretch", 1.5, "", **common), Figure("contrast_at_zero", 0.7, "", **common)])
+        catalogue.save_figures("fringe1", "fringe", [Figure("contrast", 0.6, "", **common), Figure("phase", 30.0, "deg", **common), Figure("offset", 0.5, "", **common)])
+        catalogue.pin("old-filter", "coherence_time > 100 or contrast_at_zero > 0.5")
+        engine = catalogue.engine
+        with engine.begin() as connection:
+            apparatus_id = connection.execute(select(s.Apparatus.id)).scalar_one()
+            connection.execute(insert(s.Alarm.__table__).values(apparatus_id=apparatus_id, quantity="coherence_time", sequence="", series_key="", day=dt.date(2026, 3, 2), reason="limit", method="test", detail="", status="open", created_at=dt.datetime(2026, 3, 3, tzinfo=dt.timezone.utc)))
+        migrate.downgrade(engine, "0013")  # keeps the old names: they are not the new ones
+        migrate.upgrade(engine)
+        names = {run: sorted(catalogue.run(run).figures) for run in ("ramsey1", "envelope1", "echo1", "fringe1")}
+        assert names["ramsey1"] == ["fill_fraction", "loss", "ramsey_contrast", "ramsey_frequency", "ramsey_phase", "survival", "t2_star"]
+        assert names["envelope1"] == ["envelope_contrast", "envelope_time", "fill_fraction", "loss", "survival"]
+        assert names["echo1"] == ["echo_contrast", "fill_fraction", "loss", "stretch", "survival", "t2"]
+        assert names["fringe1"] == ["contrast", "fill_fraction", "fringe_phase", "loss", "offset", "survival"]
+        assert catalogue.run("ramsey1").figures["t2_star"]["value"] == 900.0  # nothing lost
+        with engine.connect() as connection:
+            records = set(connection.execute(select(s.FigureRecord.name)).scalars())
+            rollups = set(connection.execute(select(s.DailyRollup.name)).scalars())
+            quantities = set(connection.execute(select(s.Alarm.quantity)).scalars())
+            where = connection.execute(select(s.Pin.where_text)).scalar_one()
+        old = {"coherence_time", "contrast_at_zero", "detuning", "phase"}
+        assert not records & old and {"t2_star", "envelope_time", "echo_contrast", "fringe_phase", "ramsey_frequency"} <= records
+        assert not rollups & old and {"t2_star", "envelope_time", "ramsey_phase", "fringe_phase"} <= rollups
+        assert quantities == {"t2_star"}
+        assert where == "t2_star > 100 or ramsey_contrast > 0.5"

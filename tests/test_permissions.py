@@ -53,7 +53,7 @@ def test_ingest_into_a_read_only_sqlite_file_names_the_cause(read_only_sqlite):
     done = _as_other_user(["--db", url, "ingest", str(new)])
     lines = (done.stdout + done.stderr).strip().splitlines()
     assert len(lines) == 1, lines
-    assert lines[0].startswith(f"rejected         {new}: permission denied") and READ_ONLY in lines[0]
+    assert lines[0].startswith(f"refused          {new}: permission denied") and READ_ONLY in lines[0]
     assert "parameter count mismatch" not in lines[0] and "Traceback" not in done.stderr
     assert (folder / "catalogue.sqlite").read_bytes() == before
 
@@ -81,7 +81,7 @@ def test_the_read_only_role_gets_one_line_in_the_cli(pg_url, capsys, tmp_path):
     assert code == 1 and err.count("\n") == 1 and READ_ONLY in err and "permission denied for table" in err
     assert "INSERT" not in err and "Traceback" not in err
     code, out, err = run_main(capsys, "--db", reader, "ingest", str(write_table(tmp_path / "b.parquet", shot_table({"r2": 3}, seed=3))))
-    assert out.count("\n") == 1 and out.startswith("rejected") and READ_ONLY in out
+    assert out.count("\n") == 1 and out.startswith("refused") and READ_ONLY in out
 
 
 def test_the_dashboard_note_form_names_the_cause(pg_url, monkeypatch):

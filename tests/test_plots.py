@@ -127,12 +127,12 @@ def test_run_chart_of_a_fitted_scan_draws_the_stored_fit(catalogue, make_file, t
     shots = catalogue.shots("ramsey1")
     first = shots[shots["p.wait"] == 0.0]["m.bright_fraction"]
     assert math.isclose(means[0]["mean"], first.mean()) and math.isclose(means[0]["high"] - means[0]["mean"], first.std(ddof=1) / math.sqrt(3))
-    assert spec["layer"][0]["encoding"]["x"]["title"] == "wait (us)"
+    assert spec["layer"][0]["encoding"]["x"]["title"] == "wait (µs)"
     assert spec["layer"][0]["encoding"]["y"]["title"] == "bright_fraction"
-    time = catalogue.run("ramsey1").figures["coherence_time"]
-    assert f"coherence_time = {_with_error(time['value'], time['stderr'])} us" in spec["title"]["subtitle"][0]
+    time = catalogue.run("ramsey1").figures["t2_star"]
+    assert f"t2_star = {_with_error(time['value'], time['stderr'])} µs" in " ".join(spec["title"]["subtitle"])
     svg = plot_run(catalogue, "ramsey1", tmp_path / "ramsey.svg")
-    assert "wait (us)" in svg.read_text()
+    assert "wait (µs)" in svg.read_text()
 
 
 def test_run_chart_of_a_loading_run_is_the_site_fill_map(stepped, tmp_path):
@@ -152,7 +152,7 @@ def test_run_chart_of_a_plain_scan_without_a_fit(catalogue, make_file):
     shots = catalogue.shots("scan")
     assert [row["x"] for row in means] == list(shots["p.wait"])
     assert [row["mean"] for row in means] == list(shots["m.atom_number"])
-    assert spec["layer"][0]["encoding"]["x"]["title"] == "wait (us)"
+    assert spec["layer"][0]["encoding"]["x"]["title"] == "wait (µs)"
 
 
 def test_unknown_suffix_is_refused(stepped, tmp_path):

@@ -73,12 +73,12 @@ def mixed(catalogue, tmp_path):
     for day in range(DAYS):
         date = START + dt.timedelta(days=day)
         for depth, true_t in DEPTHS.items():
-            catalogue.save_figures(f"{date:%Y%m%d}-ramsey-{depth:.0f}", "coherence", [Figure("coherence_time", true_t + truth.normal(0, 20.0), "us", stderr=20.0, method="least-squares")])
+            catalogue.save_figures(f"{date:%Y%m%d}-ramsey-{depth:.0f}", "coherence", [Figure("t2_star", true_t + truth.normal(0, 20.0), "us", stderr=20.0, method="least-squares")])
     return catalogue
 
 
 def test_a_mixed_day_gives_separate_series_and_no_alarm_from_the_mixing(mixed):
-    coherence = mixed.series("coherence_time", apparatus="bench-mixed")
+    coherence = mixed.series("t2_star", apparatus="bench-mixed")
     assert sorted(s["constants"]["lattice_depth"] for s in coherence) == ["20 uK", "40 uK", "60 uK"]
     assert all(s["days"] == DAYS and s["runs"] == DAYS for s in coherence)
     fill = mixed.series("fill_fraction", apparatus="bench-mixed")
@@ -96,9 +96,9 @@ def test_a_mixed_day_gives_separate_series_and_no_alarm_from_the_mixing(mixed):
 
     # Pooled, the three depths make one daily T2* with a scatter far beyond its errors;
     # per series each day sits within its own errors of its depth's value.
-    pooled = mixed.drift("coherence_time", apparatus="bench-mixed", pooled=True, record_alarms=False)
+    pooled = mixed.drift("t2_star", apparatus="bench-mixed", pooled=True, record_alarms=False)
     assert all(p.spread > 150 for p in pooled.points)
-    reference = mixed.drift("coherence_time", apparatus="bench-mixed")
+    reference = mixed.drift("t2_star", apparatus="bench-mixed")
     depth = float(reference.series["constants"]["lattice_depth"].split()[0])
     assert all(abs(p.value - DEPTHS[depth]) < 4 * 20.0 for p in reference.points)
     assert reference.series["label"].startswith("ramsey (lattice_depth=")

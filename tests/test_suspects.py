@@ -16,7 +16,7 @@ def test_notes_come_before_causes_and_a_run_note_is_shown(scenario):  # noqa: F8
     step = START + dt.timedelta(days=COHERENCE_STEP_DAY)
     scenario.annotate("repump fibre replaced this morning", apparatus="bench-north", at=f"{step.isoformat()}T08:00:00+00:00")
     url = scenario.engine.url.render_as_string(hide_password=False)
-    result = CliRunner().invoke(cli, ["--db", url, "drift", "coherence_time", "--apparatus", "bench-north", "--causes", "--json"])
+    result = CliRunner().invoke(cli, ["--db", url, "drift", "t2_star", "--apparatus", "bench-north", "--causes", "--json"])
     assert result.exit_code == 0, result.output
     data = json.loads(result.output)
     (excursion,) = [e for e in data["excursions"] if abs((dt.date.fromisoformat(e["date"]) - step).days) <= 1]

@@ -22,6 +22,7 @@ import datetime as dt
 import math
 import os
 import re
+from dataclasses import dataclass
 from functools import lru_cache
 from zoneinfo import ZoneInfo
 
@@ -33,6 +34,7 @@ import runlog
 from runlog.dashboard import URL_VARIABLE
 from runlog.errors import RunlogError
 from runlog.redaction import scrub
+from runlog.units import unit_text  # one spelling of units for every page (in __all__)
 
 __all__ = [
     "CACHE_SECONDS",
@@ -91,7 +93,7 @@ PALETTE = {
 SERIES_COLOURS = [PALETTE[c] for c in ("blue", "orange", "green", "vermillion", "sky blue", "purple", "black", "yellow")]
 
 #: The figures the overview leads with and the drift page opens on.
-HEADLINE = ("fill_fraction", "survival", "coherence_time", "contrast")
+HEADLINE = ("fill_fraction", "survival", "t2_star", "contrast")
 
 
 # --- the catalogue -----------------------------------------------------------------------
@@ -108,6 +110,47 @@ def catalogue_url() -> str:
 def catalogue(url: str) -> runlog.Catalogue:
     """The open catalogue of ``url``, shared by every session of this server."""
     return runlog.open(url, create=False)
+
+
+@dataclass(frozen=True)
+class Writer:
+    """Who may write from this session. ``allowed`` is off on a read-only server or while no
+    authenticated user is known (``why`` says which); ``fixed``: the server names the author
+    (``author``, from ``source``), else the forms ask for a name."""
+
+    allowed: bool
+    fixed: bool
+    author: str | None = None
+    source: str = ""
+    why: str | None = None
+
+
+def request_headers():
+    """The headers of this session's request (as the proxy in front passed them on)."""
+    return st.context.headers
+
+
+def writer() -> Writer:
+    """Who writes notes and acknowledgements from this session, from the server's settings
+    (:mod:`runlog.dashboard`): a trusted proxy's header, Streamlit's login, or anyone."""
+    from runlog.dashboard import AUTHOR_HEADER_VARIABLE, LOGIN_VARIABLE, WRITES_VARIABLE
+
+    if os.environ.get(WRITES_VARIABLE, "").lower() == "off":
+        return Writer(False, False, why="writing from the dashboard is switched off on this server; add notes with 'runlog note'")
+    header = os.environ.get(AUTHOR_HEADER_VARIABLE)
+    if header:
+        # Only the proxy may set it: the server must be reachable through the proxy alone.
+        value = (request_headers().get(header) or "").strip()
+        if value and value.isprintable() and len(value) <= 200:
+            return Writer(True, True, value, f"the lab login ({header})")
+        return Writer(False, True, source=header, why=f"no authenticated user in the {header} header: notes need the lab's login in front of the dashboard")
+    if os.environ.get(LOGIN_VARIABLE) == "1":
+        if getattr(st.user, "is_logged_in", False):
+            name = st.user.get("email") or st.user.get("name")
+            if name:
+                return Writer(True, True, str(name), "your login")
+        return Writer(False, True, source="login", why="log in to add notes")
+    return Writer(True, False)
 
 
 def clear_cached_results() -> None:
@@ -146,20 +189,6 @@ def label(name: str) -> str:
 
 
 @lru_cache(maxsize=256)
-def unit_text(unit: str | None) -> str:
-    """A stored unit as people write it (``us`` -> ``µs``); other units unchanged."""
-    unit = unit or ""
-    if re.fullmatch(r"u[A-Za-z]+", unit):
-        from runlog.units import parse_unit
-
-        try:
-            if format(parse_unit(unit), "~P") == "µ" + unit[1:]:
-                return "µ" + unit[1:]
-        except Exception:  # pint raises several types for text it does not know
-            pass
-    return unit
-
-
 def with_uncertainty(value: float | None, stderr: float | None = None, unit: str | None = None) -> str:
     """``656.9, 72.4, "us"`` -> ``657 ± 72 µs``: the error to two significant digits, the value
     to the same decimal place (common practice, no published source)."""

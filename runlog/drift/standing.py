@@ -20,7 +20,7 @@ import datetime as dt
 __all__ = ["HEADLINE", "standing"]
 
 #: The figures the overview and the digest lead with, when an apparatus has them.
-HEADLINE = ("fill_fraction", "survival", "coherence_time", "contrast")
+HEADLINE = ("fill_fraction", "survival", "t2_star", "contrast")
 
 
 def standing(drift, day: dt.date, alarms: list[dict[str, object]] | None = None) -> dict[str, object]:

@@ -79,9 +79,11 @@ def fit_ramsey(
 ) -> list[Figure]:
     """Fit a Ramsey scan, one point per shot, and return its coherence figures.
 
-    Returns ``coherence_time`` (``T``, in ``wait_unit``), ``contrast_at_zero`` (``C0``),
-    ``detuning`` (``delta``, in :func:`frequency_unit` of ``wait_unit``, e.g. MHz for
-    waits in us) and ``phase`` (``phi``, rad), each with its standard error.
+    Returns ``t2_star`` (the dephasing time ``T``, in ``wait_unit``), ``ramsey_contrast``
+    (``C0``), ``ramsey_frequency`` (``delta``, in :func:`frequency_unit` of ``wait_unit``,
+    e.g. MHz for waits in us; >= 0 here, signed by :mod:`runlog.derive` when the run's
+    programmed ``detuning`` gives the sign) and ``ramsey_phase`` (``phi``, rad), each with
+    its standard error.
 
     Raises :class:`FitError` when the scan cannot determine them.
     """
@@ -132,10 +134,10 @@ def fit_ramsey(
 
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
     return [
-        Figure("coherence_time", lifetime, wait_unit, stderr=lifetime_err, **common),
-        Figure("contrast_at_zero", c0, "", stderr=c0_err, **common),
-        Figure("detuning", delta, frequency_unit(wait_unit), stderr=delta_err, **common),
-        Figure("phase", _wrap(phi), "rad", stderr=phi_err, **common),
+        Figure("t2_star", lifetime, wait_unit, stderr=lifetime_err, **common),
+        Figure("ramsey_contrast", c0, "", stderr=c0_err, **common),
+        Figure("ramsey_frequency", delta, frequency_unit(wait_unit), stderr=delta_err, **common),
+        Figure("ramsey_phase", _wrap(phi), "rad", stderr=phi_err, **common),
     ]
 
 
@@ -148,8 +150,9 @@ def fit_envelope(
 ) -> list[Figure]:
     """Fit ``C(t) = C0 * E(t)`` to contrasts already measured per wait.
 
-    Returns ``coherence_time`` (``T``, in ``wait_unit``) and ``contrast_at_zero`` (``C0``),
-    each with its standard error. Raises :class:`FitError` when they cannot be determined.
+    Returns ``envelope_time`` (``T``, in ``wait_unit``) and ``envelope_contrast`` (``C0``),
+    each with its standard error: names of their own, since a contrast series may come from
+    a Ramsey or an echo sequence (the ``echo`` kind gives ``t2``). Raises :class:`FitError` when they cannot be determined.
 
     The fit runs in the decay rate ``k`` (``E = exp(-k t)``, or ``exp(-k t^2)`` for the
     Gaussian), so that a flat or growing contrast is a rate at or below zero rather than an
@@ -199,8 +202,8 @@ def fit_envelope(
     lifetime_err = lifetime / power * rate_err / rate  # |dT/dk| * err(k)
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
     return [
-        Figure("coherence_time", lifetime, wait_unit, stderr=lifetime_err, **common),
-        Figure("contrast_at_zero", c0, "", stderr=c0_err, **common),
+        Figure("envelope_time", lifetime, wait_unit, stderr=lifetime_err, **common),
+        Figure("envelope_contrast", c0, "", stderr=c0_err, **common),
     ]
 
 

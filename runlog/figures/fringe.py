@@ -113,7 +113,7 @@ def fit_fringe(
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
     return [
         Figure("contrast", contrast, "", stderr=contrast_err, **common),
-        Figure("phase", phi, phase_unit, stderr=phi_err, **common),
+        Figure("fringe_phase", phi, phase_unit, stderr=phi_err, **common),
         Figure("offset", offset, y_unit, stderr=offset_err, **common),
     ]
 

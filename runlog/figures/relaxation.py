@@ -9,7 +9,7 @@ decays as a stretched exponential::
 
 ``t2`` is the echo coherence time, ``stretch`` the exponent ``n`` (1 for a Markovian
 dephasing, 2 or 3 for slow noise; e.g. de Sousa R. 2009, Top. Appl. Phys. 115:183
-[memory]), ``contrast_at_zero`` C0. Given the contrast per wait (a measurement such as
+[memory]), ``echo_contrast`` C0. Given the contrast per wait (a measurement such as
 ``contrast``) the offset is zero; given a signal per shot (a population after the final
 pulse), the model gets an offset, ``y = a + C0 exp(-(t/T2)^n)``. ``stretch`` may be fixed
 (``stretch=2``) instead of fitted.
@@ -84,7 +84,7 @@ def fit_echo(
     contrast_series: bool = True,
     stretch: float | None = None,
 ) -> list[Figure]:
-    """Fit the stretched-exponential echo decay; returns ``t2``, ``stretch``, ``contrast_at_zero``.
+    """Fit the stretched-exponential echo decay; returns ``t2``, ``stretch``, ``echo_contrast``.
 
     ``contrast_series``: ``y`` is a contrast per wait (offset 0, residual covariance);
     otherwise a signal per shot (fitted offset, HC3 covariance). ``stretch``: a fixed
@@ -147,7 +147,7 @@ def fit_echo(
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
     figures = [
         Figure("t2", t2, wait_unit, stderr=t2_err, **common),
-        Figure("contrast_at_zero", c0, "", stderr=c0_err, **common),
+        Figure("echo_contrast", c0, "", stderr=c0_err, **common),
     ]
     if stretch is None:
         figures.insert(1, Figure("stretch", fit.value("stretch"), "", stderr=fit.error("stretch"), **common))

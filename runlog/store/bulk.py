@@ -44,7 +44,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.store.engine import BUSY_TIMEOUT_MS, exclusive_bulk_writer, sqlite_path
 from runlog.store.failures import BusyError
-from runlog.store.partitions import ensure_months, missing_months
+from runlog.store.partitions import SHOT_TABLES, ensure_months, missing_months
 from runlog.store.schema import to_epoch_us
 
 __all__ = [
@@ -270,7 +270,7 @@ def _copy_text(data: pa.Table) -> pa.Table:
     return pa.table(columns, names=data.column_names)
 
 
-def _make_months(engine: Engine, months: Iterable[dt.date]) -> None:
+def _make_months(engine: Engine, months: Iterable[dt.date], tables: tuple[str, ...] = SHOT_TABLES) -> None:
     """Create the missing month partitions, committed before the data transaction begins.
 
     Attaching a month blocks neither readers nor writers (runlog.store.partitions), so a new
@@ -281,24 +281,24 @@ def _make_months(engine: Engine, months: Iterable[dt.date]) -> None:
     if not months:
         return
     with engine.connect() as connection:
-        missing = missing_months(connection, months)
+        missing = missing_months(connection, months, tables)
         connection.rollback()
     if not missing:
         return
 
     def make(connection) -> None:
         for month in missing:
-            ensure_months(connection, month, month)
+            ensure_months(connection, month, month, tables)
 
-    short_write(engine, make, what=f"making the month partitions {missing[0]:%Y-%m}..{missing[-1]:%Y-%m}", table="shots")
+    short_write(engine, make, what=f"making the month partitions {missing[0]:%Y-%m}..{missing[-1]:%Y-%m}", table=tables[0])
 
 
 class _PostgresWriter:
     dialect = "postgresql"
     partitioned = True
 
-    def __init__(self, engine: Engine, months: Iterable[dt.date] = ()):
-        _make_months(engine, months)
+    def __init__(self, engine: Engine, months: Iterable[dt.date] = (), tables: tuple[str, ...] = SHOT_TABLES):
+        _make_months(engine, months, tables)
         self._connection = engine.connect()
         self._transaction = self._connection.begin()
         try:
@@ -344,12 +344,13 @@ class _PostgresWriter:
             self._connection.close()
 
 
-def open_writer(engine: Engine, months: Iterable[dt.date] = ()) -> Writer:
+def open_writer(engine: Engine, months: Iterable[dt.date] = (), tables: tuple[str, ...] = SHOT_TABLES) -> Writer:
     """A writer holding an open write transaction on the catalogue.
 
-    ``months`` (UTC calendar months, as dates) are those the shots to be written fall in;
-    on PostgreSQL their partitions are made first. Rows outside them cannot be written there.
+    ``months`` (UTC calendar months, as dates) are those the rows to be written fall in;
+    on PostgreSQL the partitions of ``tables`` (the shot-level tables by default, or the
+    monitor values) for them are made first. Rows outside them cannot be written there.
     """
     if engine.dialect.name == "sqlite":
         return _SqliteWriter(engine)
-    return _PostgresWriter(engine, months)
+    return _PostgresWriter(engine, months, tables)

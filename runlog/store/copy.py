@@ -36,7 +36,7 @@ from runlog.errors import RunlogError, SchemaVersionError, StoreError
 from runlog.store.arrow_reader import arrow_read, is_arrow
 from runlog.store.bulk import Writer, open_writer
 from runlog.store.engine import make_engine, redact, sqlite_path
-from runlog.store.partitions import SHOT_TABLES
+from runlog.store.partitions import PARTITIONED_TABLES, SHOT_TABLES
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX, SCHEMA_REVISION, Base, UTCDateTime, measurement_column
 
 __all__ = ["CHUNK_ROWS", "Progress", "copy_catalogue"]
@@ -52,7 +52,7 @@ Progress = Callable[[str, int, int], None]
 _CHILDREN = frozenset(SHOT_TABLES[1:])
 _PARTITION_TIME = "time"
 _MEASUREMENT = re.compile(rf"{MEASUREMENT_COLUMN_PREFIX}(\d+)")
-_PARTITION = re.compile(rf"({'|'.join(SHOT_TABLES)})_y\d{{4}}m\d{{2}}")
+_PARTITION = re.compile(rf"({'|'.join(PARTITIONED_TABLES)})_y\d{{4}}m\d{{2}}")
 
 
 @dataclass(frozen=True)
@@ -312,12 +312,15 @@ def _plans(reading: Connection, target_dialect: str) -> list[_TablePlan]:
 
 
 def _months(reading: Connection) -> list[dt.date]:
-    """The UTC calendar months the source's shots fall in."""
-    if reading.dialect.name == "postgresql":
-        found = reading.exec_driver_sql("SELECT DISTINCT CAST(date_trunc('month', time AT TIME ZONE 'UTC') AS DATE) FROM shots").scalars().all()
-        return sorted(found)
-    found = reading.exec_driver_sql("SELECT DISTINCT strftime('%Y-%m', time / 1000000, 'unixepoch') FROM shots").scalars().all()
-    return sorted(dt.date(int(month[:4]), int(month[5:7]), 1) for month in found)
+    """The UTC calendar months the source's shots and monitor values fall in."""
+    months: set[dt.date] = set()
+    for table in ("shots", "monitor_values"):
+        if reading.dialect.name == "postgresql":
+            months.update(reading.exec_driver_sql(f"SELECT DISTINCT CAST(date_trunc('month', time AT TIME ZONE 'UTC') AS DATE) FROM {table}").scalars().all())
+        else:
+            found = reading.exec_driver_sql(f"SELECT DISTINCT strftime('%Y-%m', time / 1000000, 'unixepoch') FROM {table}").scalars().all()
+            months.update(dt.date(int(month[:4]), int(month[5:7]), 1) for month in found)
+    return sorted(months)
 
 
 def _chunks(reading: Connection, plan: _TablePlan, size: int) -> Iterator[pa.Table]:
@@ -413,7 +416,7 @@ def _copy(reading: Connection, engine: Engine, target: _Target, progress: Progre
         target.step = "creating the target's schema"
         create_or_upgrade(engine)
     target.step = "opening the target for writing"
-    writer = open_writer(engine, months)
+    writer = open_writer(engine, months, PARTITIONED_TABLES)
     try:
         _add_measurement_columns(writer, next(plan for plan in plans if plan.name == "shot_measurements"))
         copied = {}
@@ -429,7 +432,7 @@ def _copy(reading: Connection, engine: Engine, target: _Target, progress: Progre
                 raise StoreError(f"the copy of {plan.name} does not add up: {plan.rows} rows in the source, {copied[plan.name]} read, {found} in the target; nothing was copied")
         if writer.dialect == "postgresql":
             # Autovacuum analyses the partitions, never a partitioned parent.
-            writer.execute(f"ANALYZE {', '.join(SHOT_TABLES)}")
+            writer.execute(f"ANALYZE {', '.join(PARTITIONED_TABLES)}")
         target.step = "committing"
         writer.commit()
         target.committed = True

@@ -12,7 +12,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.errors import SchemaVersionError, StoreError
 
-from runlog.store.partitions import SHOT_TABLES, partition_shot_tables
+from runlog.store.partitions import PARTITIONED_TABLES, SHOT_TABLES, partition_monitor_values, partition_shot_tables
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
 __all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
@@ -22,7 +22,7 @@ __all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "dow
 # models' SQLite layout: the children's partition key column, shots' unique key with the
 # partition key, no foreign keys from the children, and one table per month.
 _CHILDREN = frozenset(SHOT_TABLES[1:])
-_PARTITION = re.compile(rf"({'|'.join(SHOT_TABLES)})_y\d{{4}}m\d{{2}}")
+_PARTITION = re.compile(rf"({'|'.join(PARTITIONED_TABLES)})_y\d{{4}}m\d{{2}}")
 
 
 def include_object(obj, name, type_, reflected, compare_to) -> bool:
@@ -209,6 +209,7 @@ def create_or_upgrade(engine: Engine) -> None:
             if not inspect(connection).get_table_names():
                 Base.metadata.create_all(connection)
                 partition_shot_tables(connection)
+                partition_monitor_values(connection)
                 # The same version table Alembic itself would create.
                 version = Table(
                     "alembic_version",

@@ -40,6 +40,9 @@ from runlog.store.schema import BigId, UTCDateTime
 __all__ = [
     "SHOT_PARAMETERS_WITH_TIME",
     "SHOT_TABLES",
+    "MONITOR_TABLES",
+    "PARTITIONED_TABLES",
+    "partition_monitor_values",
     "partition_name",
     "month_start",
     "is_partitioned",
@@ -63,6 +66,10 @@ SHOT_PARAMETERS_WITH_TIME = Table(
 
 #: The shot-level tables, parent first; partitioned alike, month by month.
 SHOT_TABLES = ("shots", "shot_parameters", "shot_measurements", "occupancy")
+#: The monitors' raw values (runlog.monitors), partitioned by month of their own time; its
+#: key (monitor_id, time) already holds the partition key, so the layout equals the model's.
+MONITOR_TABLES = ("monitor_values",)
+PARTITIONED_TABLES = SHOT_TABLES + MONITOR_TABLES
 
 _KEY = "time"
 
@@ -100,8 +107,8 @@ def _months(first: dt.date | dt.datetime, last: dt.date | dt.datetime) -> list[d
 
 def partition_name(table: str, month: dt.date | dt.datetime) -> str:
     """The partition of ``table`` that holds ``month``, e.g. ``shots_y2026m03``."""
-    if table not in SHOT_TABLES:
-        raise ValueError(f"'{table}' is not a shot-level table")
+    if table not in PARTITIONED_TABLES:
+        raise ValueError(f"'{table}' is not a shot-level or monitor table")
     month = month_start(month)
     return f"{table}_y{month.year:04d}m{month.month:02d}"
 
@@ -114,30 +121,30 @@ def is_partitioned(connection: Connection) -> bool:
     return found is not None
 
 
-def _attached(connection: Connection) -> set[str]:
-    """The partitions attached to the shot-level tables."""
+def _attached(connection: Connection, tables: Iterable[str] = SHOT_TABLES) -> set[str]:
+    """The partitions attached to ``tables`` (the shot-level tables by default)."""
     rows = connection.execute(
         text(
             "SELECT child.relname FROM pg_inherits JOIN pg_class child ON child.oid = pg_inherits.inhrelid "
             "WHERE pg_inherits.inhparent IN (SELECT to_regclass(name) FROM unnest(CAST(:tables AS text[])) AS name)"
         ),
-        {"tables": list(SHOT_TABLES)},
+        {"tables": list(tables)},
     )
     return {name for (name,) in rows}
 
 
-def missing_months(connection: Connection, months: Iterable[dt.date | dt.datetime]) -> list[dt.date]:
-    """Those of ``months`` that lack a partition of any shot-level table, in order.
+def missing_months(connection: Connection, months: Iterable[dt.date | dt.datetime], tables: tuple[str, ...] = SHOT_TABLES) -> list[dt.date]:
+    """Those of ``months`` that lack a partition of any of ``tables`` (shot-level by default), in order.
 
     A catalogue query that waits for no lock: ingest asks it first, so that the common
     case (every month already there) costs nothing more.
     """
-    attached = _attached(connection)
+    attached = _attached(connection, tables)
     wanted = sorted({month_start(month) for month in months})
-    return [month for month in wanted if any(partition_name(table, month) not in attached for table in SHOT_TABLES)]
+    return [month for month in wanted if any(partition_name(table, month) not in attached for table in tables)]
 
 
-def ensure_months(connection: Connection, first: dt.date | dt.datetime, last: dt.date | dt.datetime) -> list[str]:
+def ensure_months(connection: Connection, first: dt.date | dt.datetime, last: dt.date | dt.datetime, tables: tuple[str, ...] = SHOT_TABLES) -> list[str]:
     """Create the missing month partitions of every shot-level table, ``first``..``last``
     (whole UTC months, both included); returns the partitions created, in order.
 
@@ -145,13 +152,13 @@ def ensure_months(connection: Connection, first: dt.date | dt.datetime, last: dt
     ingest calls it in a short transaction of its own under the writer lock (see
     :mod:`runlog.store.bulk`), before its data transaction; migrations run alone.
     """
-    attached = _attached(connection)
+    attached = _attached(connection, tables)
     created = []
     for month in _months(first, last):
         low = dt.datetime(month.year, month.month, 1, tzinfo=dt.timezone.utc)
         end = _next_month(month)
         high = dt.datetime(end.year, end.month, 1, tzinfo=dt.timezone.utc)
-        for table in SHOT_TABLES:
+        for table in tables:
             name = partition_name(table, month)
             if name in attached:
                 continue
@@ -283,3 +290,25 @@ def unpartition_shot_tables(connection: Connection) -> dict[str, int]:
     for table in reversed(SHOT_TABLES):
         connection.exec_driver_sql(f"DROP TABLE {table}{old}")
     return moved
+
+
+def partition_monitor_values(connection: Connection) -> bool:
+    """Make the (empty) plain ``monitor_values`` the models create a table partitioned by
+    month of ``time``, same columns and key; True when it did. A no-op on SQLite and when
+    already partitioned. Runs in the caller's transaction: migration 0013 and a fresh
+    catalogue right after ``create_all``, so both end with the same layout."""
+    if connection.dialect.name != "postgresql":
+        return False
+    table = MONITOR_TABLES[0]
+    found = connection.execute(text("SELECT 1 FROM pg_partitioned_table WHERE partrelid = to_regclass(:t)"), {"t": table}).first()
+    if found is not None:
+        return False
+    if connection.exec_driver_sql(f"SELECT 1 FROM {table} LIMIT 1").first() is not None:
+        raise StoreError(f"{table} already holds values; it is partitioned only when new")
+    columns = _columns(connection, table)
+    keys = _constraints(connection, table, "p")
+    connection.exec_driver_sql(f"DROP TABLE {table}")
+    definitions = [f'"{name}" {sql_type}{" NOT NULL" if not_null else ""}' for name, sql_type, not_null in columns]
+    definitions += [f'CONSTRAINT "{name}" {definition}' for name, definition in keys]
+    connection.exec_driver_sql(f"CREATE TABLE {table} ({', '.join(definitions)}) PARTITION BY RANGE ({_KEY})")
+    return True

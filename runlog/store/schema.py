@@ -74,10 +74,14 @@ __all__ = [
     "Series",
     "SeriesValue",
     "SeriesMember",
+    "Monitor",
+    "MonitorValue",
+    "MonitorRollup",
+    "MonitorFile",
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0012"
+SCHEMA_REVISION = "0007"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -612,3 +616,58 @@ class SeriesMember(Base):
     x: Mapped[float] = mapped_column(Float)
     y: Mapped[float] = mapped_column(Float)
     stderr: Mapped[float | None] = mapped_column(Float)
+
+
+class Monitor(Base):
+    """A time series of the lab around the atoms (room temperature, a laser power, ...),
+    logged independently of the shots; ``name`` as written in its file, ``unit`` the one
+    its values are stored in (docs/monitor-table.md)."""
+
+    __tablename__ = "monitors"
+    __table_args__ = (UniqueConstraint("apparatus_id", "name"),)
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
+    name: Mapped[str] = mapped_column(String(200))
+    unit: Mapped[str] = mapped_column(String(60), default="")
+    value_count: Mapped[int] = mapped_column(BigInteger, default=0)
+    first_time: Mapped[dt.datetime | None] = mapped_column(UTCDateTime())
+    last_time: Mapped[dt.datetime | None] = mapped_column(UTCDateTime())
+
+
+class MonitorValue(Base):
+    """One logged value of a monitor. On PostgreSQL partitioned by month of ``time``
+    (:mod:`runlog.store.partitions`). No foreign key to ``monitors``: rows are written by
+    monitor ingest alone, with the id it has just read or made under the writer lock, and a
+    per-row check would cost more than the row (as for the shot-level children)."""
+
+    __tablename__ = "monitor_values"
+    __table_args__ = {"sqlite_with_rowid": False}
+    monitor_id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    time: Mapped[dt.datetime] = mapped_column(UTCDateTime(), primary_key=True)
+    value: Mapped[float] = mapped_column(Float)
+
+
+class MonitorRollup(Base):
+    """A monitor downsampled to one ``resolution`` ('minute', 'hour' or 'day' = lab day):
+    count, sum, sum of squares, minimum and maximum of its values from ``start`` (the
+    period's first instant, UTC) on, maintained at ingest; the mean is sum / count."""
+
+    __tablename__ = "monitor_rollups"
+    __table_args__ = {"sqlite_with_rowid": False}
+    monitor_id: Mapped[int] = mapped_column(ForeignKey("monitors.id", ondelete="CASCADE"), primary_key=True)
+    resolution: Mapped[str] = mapped_column(String(10), primary_key=True)
+    start: Mapped[dt.datetime] = mapped_column(UTCDateTime(), primary_key=True)
+    value_count: Mapped[int] = mapped_column(BigInteger)
+    value_sum: Mapped[float] = mapped_column(Float)
+    value_square_sum: Mapped[float] = mapped_column(Float)
+    minimum: Mapped[float] = mapped_column(Float)
+    maximum: Mapped[float] = mapped_column(Float)
+
+
+class MonitorFile(Base):
+    """Which ingested monitor file brought how many values of which monitor."""
+
+    __tablename__ = "monitor_files"
+    ingest_id: Mapped[int] = mapped_column(ForeignKey("ingest_log.id"), primary_key=True)
+    monitor_id: Mapped[int] = mapped_column(ForeignKey("monitors.id", ondelete="CASCADE"), primary_key=True, index=True)
+    value_count: Mapped[int] = mapped_column(BigInteger)

@@ -17,7 +17,11 @@ from runlog.store.failures import describe
 url = common.catalogue_url()
 zone = common.lab_timezone(url)
 st.title("Notes and alarms")
-st.caption("Notes appear on the drift charts at their time. The author defaults to the login name of the account running the dashboard.")
+who = common.writer()
+if who.fixed and who.author:
+    st.caption(f"Notes appear on the drift charts at their time. You write as **{who.author}** ({who.source}).")
+else:
+    st.caption("Notes appear on the drift charts at their time. The author defaults to the login name of the account running the dashboard.")
 
 names = common.apparatus_names(url)
 if not names:
@@ -40,8 +44,37 @@ def written(action) -> None:
         st.rerun()
 
 
+def latest_notes() -> None:
+    st.markdown("#### Latest notes")
+    notes = common.annotations(url)
+    if notes.empty:
+        st.caption("No notes yet.")
+        return
+    latest = notes.sort_values("at", ascending=False).head(50)
+    st.dataframe(
+        pd.DataFrame({f"at ({zone})": latest["local_time"], "apparatus": latest["apparatus"], "run": latest["run"], "note": latest["text"], "author": latest["author"]}),
+        hide_index=True,
+        key="notes",
+    )
+
+
+def author_field(key: str) -> str | None:
+    """The author: the authenticated user when the server names one, else what is typed."""
+    if who.fixed:
+        return who.author
+    return st.text_input("author (optional)", key=key)
+
+
 if "annotate-done" in st.session_state:
     st.success(st.session_state.pop("annotate-done"))
+
+if not who.allowed:
+    # No forms at all: nothing can be written under a name that was not authenticated.
+    st.info(who.why)
+    if who.source == "login":
+        st.button("Log in", key="annotate-login", on_click=st.login)
+    latest_notes()
+    st.stop()
 
 
 day_column, run_column, alarm_column = st.columns(3, gap="large")
@@ -54,7 +87,7 @@ with day_column:
         day = st.date_input(f"lab day ({zone})", value=latest, format="YYYY-MM-DD", key="note-day-day")
         time = st.time_input(f"time ({zone})", value=dt.time(9, 0), key="note-day-time")
         text = st.text_area("note", key="note-day-text", placeholder="e.g. realigned the lattice beam")
-        author = st.text_input("author (optional)", key="note-day-author")
+        author = author_field("note-day-author")
         if st.form_submit_button("Add note", type="primary", key="note-day-submit"):
             at = dt.datetime.combine(day, time, tzinfo=ZoneInfo(zone))
             written(lambda: f"note {common.add_note(url, text, apparatus=apparatus, at=at, author=author)} added to {apparatus} on {day:%d %b %Y}")
@@ -67,7 +100,7 @@ with run_column:
     with st.form("note-run", clear_on_submit=True):
         run = st.selectbox("run (newest first)", list(labels), format_func=labels.get, key="note-run-run")
         text = st.text_area("note", key="note-run-text", placeholder="e.g. camera saturated in the last shots")
-        author = st.text_input("author (optional)", key="note-run-author")
+        author = author_field("note-run-author")
         if st.form_submit_button("Add note", type="primary", key="note-run-submit"):
             written(lambda: f"note {common.add_note(url, text, run=run, apparatus=apparatus, author=author)} added to run {run}")
 
@@ -86,19 +119,9 @@ with alarm_column:
                 key="acknowledge-alarm",
             )
             note = st.text_area("what it was", key="acknowledge-note", help="Becomes a note on the alarm's lab day.")
-            author = st.text_input("author (optional)", key="acknowledge-author")
+            author = author_field("acknowledge-author")
             accept = st.checkbox("accept the new level", key="acknowledge-accept", help="The level since the alarm's day becomes the reference: the baseline starts again from that day. Recorded as a note.")
             if st.form_submit_button("Acknowledge", type="primary", key="acknowledge-submit"):
                 written(lambda: f"alarm {alarm} {'acknowledged, new level accepted' if accept else 'acknowledged'} (note {common.acknowledge(url, alarm, note, author=author, accept=accept)})")
 
-st.markdown("#### Latest notes")
-notes = common.annotations(url)
-if notes.empty:
-    st.caption("No notes yet.")
-else:
-    latest_notes = notes.sort_values("at", ascending=False).head(50)
-    st.dataframe(
-        pd.DataFrame({f"at ({zone})": latest_notes["local_time"], "apparatus": latest_notes["apparatus"], "run": latest_notes["run"], "note": latest_notes["text"], "author": latest_notes["author"]}),
-        hide_index=True,
-        key="notes",
-    )
+latest_notes()

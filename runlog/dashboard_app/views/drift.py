@@ -15,7 +15,7 @@ from runlog.dashboard_app import charts, common
 from runlog.errors import RunlogError
 
 #: The panels the page opens on, when the apparatus has them.
-FIRST_PANELS = ("fill_fraction", "survival", "coherence_time")
+FIRST_PANELS = ("fill_fraction", "survival", "t2_star")
 
 url = common.catalogue_url()
 zone = common.lab_timezone(url)

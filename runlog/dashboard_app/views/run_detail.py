@@ -94,7 +94,7 @@ with right:
         st.dataframe(figures, hide_index=True, key="run-figures")
 
 # A stored fit to draw: fringe, Ramsey, or one of the health kinds (marked by one figure each).
-if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime", "fidelity", "temperature", "overlap_width"}:
+if {"contrast", "offset"} <= set(info.figures) or {"t2_star", "ramsey_frequency"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime", "fidelity", "temperature", "overlap_width"}:
     st.markdown("**Fit over the shots**")
     scanned = [n for n, e in info.parameters.items() if e["scanned"] and "min" in e]
     slots = iter(st.columns(3))
@@ -104,7 +104,7 @@ if {"contrast", "offset"} <= set(info.figures) or {"coherence_time", "detuning"}
     preferred = next((i for i, n in enumerate(measured) if "fraction" in n), 0)
     y = next(slots).selectbox("y (measurement)", measured, index=preferred, key="run-fit-y")
     envelope = "gaussian"
-    if "coherence_time" in info.figures:
+    if "t2_star" in info.figures:
         envelope = next(slots).selectbox("envelope", ["gaussian", "exponential"], key="run-fit-envelope", help="The stored figures do not say which envelope the fit used; the rules default to gaussian.")
     try:
         curve = common.fit_curve(url, info.run, info.apparatus, x, y, envelope)
