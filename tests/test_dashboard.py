@@ -171,7 +171,7 @@ def test_a_port_in_use_is_detected_and_the_next_free_one_taken():
 
 def test_overview_shows_the_latest_lab_day_open_alarms_and_ingest(lab):
     at = start()  # the overview is the first page
-    headline = ["fill fraction", "survival", "coherence time", "contrast"]
+    headline = ["fill fraction", "survival", "t2 star", "contrast"]
     assert [m.label for m in at.metric][:8] == headline * 2
     metrics = iter(at.metric)
     for apparatus in ("lattice-east", "tweezer-west"):
@@ -229,10 +229,10 @@ def test_drift_page_follows_its_widgets(lab):
     assert (days.min, days.max) == (dt.date.fromisoformat(FIRST_DAY), LAST_DAY) == (every_run["started"].min().date(), every_run["started"].max().date())
     offered = at.multiselect(key="drift-quantities-lattice-east").options
     assert [option.split(" [")[0] for option in offered] == [name.replace("_", " ") for name in sorted(lab.figures(apparatus="lattice-east")["name"].unique())]
-    assert "coherence time [µs]" in offered and "fill fraction" in offered
+    assert "t2 star [µs]" in offered and "fill fraction" in offered
     assert at.multiselect(key="drift-quantities-lattice-east").value == ["fill_fraction", "survival", "t2_star"]
     shown = charts(at)
-    assert [c["spec"]["title"]["text"] for c in shown] == ["fill fraction: lattice-east", "survival: lattice-east", "coherence time: lattice-east"]
+    assert [c["spec"]["title"]["text"] for c in shown] == ["fill fraction: lattice-east", "survival: lattice-east", "t2 star: lattice-east"]
     for chart in shown:  # no shot leaves the server for this page: one row per lab day at most
         for data in chart["layers"].values():
             assert data is None or (len(data) <= 2 * 11 and "shot" not in data.columns)
@@ -245,7 +245,7 @@ def test_drift_page_follows_its_widgets(lab):
     np.testing.assert_allclose(limits.query("limit == 'lower'")["bound"], np.array(expected.limits["lower"], dtype=float), rtol=1e-12)
     np.testing.assert_allclose(limits.query("limit == 'upper'")["bound"], np.array(expected.limits["upper"], dtype=float), rtol=1e-12)
     axis = shown[2]["spec"]["layer"][-1]["encoding"]
-    assert axis["y"]["title"] == "coherence time [µs]" and axis["x"]["axis"]["title"] == "lab day (UTC)"
+    assert axis["y"]["title"] == "t2 star [µs]" and axis["x"]["axis"]["title"] == "lab day (UTC)"
     assert shown[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "fill fraction (dimensionless)"
     assert not [s for s in at.selectbox if s.key.startswith("drift-change-lattice-east")]  # nothing to explain there
 
