@@ -1004,6 +1004,24 @@ class Catalogue:
             apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
             return suspects(connection, apparatus_id, _as_day(day), quantity, zone, window=window, top=top)
 
+    # --- monitors --------------------------------------------------------------------
+
+    def monitors(self, *, now: dt.datetime | None = None, silent_after: dt.timedelta = dt.timedelta(hours=1)) -> list[dict[str, object]]:
+        """Every monitor with its latest value, and whether it stopped reporting
+        (nothing logged within ``silent_after`` before ``now``)."""
+        from runlog.monitors.overlay import monitor_list
+
+        with self.engine.connect() as connection:
+            return monitor_list(connection, now=now, silent_after=silent_after)
+
+    def monitor_series(self, name: str, *, apparatus: str | None = None, since: dt.datetime | str | None = None, until: dt.datetime | str | None = None, max_points: int = 2_000) -> "pd.DataFrame":
+        """One monitor over a span, from its rollups (at most ``max_points`` periods):
+        ``start``, ``mean``, ``minimum``, ``maximum``, ``count``; for charts."""
+        from runlog.monitors.overlay import monitor_series
+
+        with self.engine.connect() as connection:
+            return monitor_series(connection, name, apparatus=apparatus, since=_as_utc(since), until=_as_utc(until), max_points=max_points)
+
     # --- access ----------------------------------------------------------------------
 
     def grant_reader(self, role: str, *, password: str | None = None) -> None:

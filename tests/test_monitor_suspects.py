@@ -101,3 +101,27 @@ def test_as_of_values_equal_pandas_merge_asof(catalogue, tmp_path):
     assert np.isnan(reference).sum() > 10  # the gap and the start are exercised
     np.testing.assert_array_equal(np.isnan(ours), np.isnan(reference))
     np.testing.assert_array_equal(ours[~np.isnan(ours)], reference[~np.isnan(reference)])
+
+
+def test_drift_chart_overlays_a_monitor_on_a_second_axis_in_lab_time(catalogue, tmp_path):
+    from click.testing import CliRunner
+
+    from runlog.cli import cli
+    from runlog.plots import drift_chart
+
+    catalogue.ingest(list(_scenario(tmp_path)), apparatus="bench-a")
+    catalogue.set_lab_timezone("Europe/Berlin")
+    drift = catalogue.drift("fill_fraction", apparatus="bench-a", record_alarms=False)
+    series = catalogue.monitor_series("room_temp", apparatus="bench-a", max_points=2000)
+    spec = drift_chart(drift, monitors=[series], zone="Europe/Berlin").to_dict()
+    assert spec["resolve"] == {"scale": {"y": "independent"}}
+    monitor_layer = spec["layer"][1]["layer"][1]
+    assert monitor_layer["encoding"]["y"]["axis"]["orient"] == "right"
+    assert monitor_layer["encoding"]["y"]["title"] == "room_temp (degC) (hour mean)"
+    rows = next(rows for rows in spec["datasets"].values() if rows and "monitor" in rows[0])
+    # The hour of the room's step, 06:00 UTC, is 08:00 in Berlin (CEST) on the chart.
+    step = next(r for r in rows if r["monitor"] > 22.0)
+    assert step["day"] == "2026-05-04T08:00:00"
+    result = CliRunner().invoke(cli, ["--db", catalogue.engine.url.render_as_string(hide_password=False), "plot", "drift", "fill_fraction", "--apparatus", "bench-a", "--monitor", "room_temp", "--out", str(tmp_path / "d.svg")])
+    assert result.exit_code == 0, result.output
+    assert "room_temp" in (tmp_path / "d.svg").read_text(encoding="utf-8")
