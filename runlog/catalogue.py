@@ -90,6 +90,13 @@ class RunInfo:
         return out
 
 
+def _times_us(column) -> "np.ndarray":
+    """Integer microseconds since the epoch of a column of aware times."""
+    import pandas as pd
+
+    return pd.to_datetime(column, utc=True).dt.as_unit("us").astype("int64").to_numpy()
+
+
 def _as_utc(value: dt.datetime | dt.date | str | None) -> dt.datetime | None:
     if value is None:
         return None
@@ -1021,6 +1028,26 @@ class Catalogue:
 
         with self.engine.connect() as connection:
             return monitor_series(connection, name, apparatus=apparatus, since=_as_utc(since), until=_as_utc(until), max_points=max_points)
+
+    def shots_with_monitors(self, run: str, monitors: Iterable[str], *, apparatus: str | None = None, max_gap_seconds: float | None = None) -> "pd.DataFrame":
+        """:meth:`shots` of one run with a column per monitor: its as-of value at each
+        shot's time (last value at or before it, within ``max_gap_seconds``, default 600 s;
+        docs/monitor-table.md), in the monitor's unit (``attrs["units"]``)."""
+        import numpy as np
+
+        from runlog.monitors.align import MAX_GAP_SECONDS, value_at, values_between
+        from runlog.monitors.overlay import _monitor_id
+
+        frame = self.shots(run, apparatus=apparatus)
+        gap = MAX_GAP_SECONDS if max_gap_seconds is None else max_gap_seconds
+        times = _times_us(frame["time"])
+        with self.engine.connect() as connection:
+            for name in monitors:
+                monitor_id, unit = _monitor_id(connection, name, apparatus)
+                logged_us, logged = values_between(connection, monitor_id, int(times.min() - gap * 1e6), int(times.max())) if len(times) else (np.array([], dtype=np.int64), np.array([]))
+                frame[name] = value_at(times, logged_us, logged, gap)
+                frame.attrs.setdefault("units", {})[name] = unit
+        return frame
 
     # --- access ----------------------------------------------------------------------
 

@@ -125,3 +125,13 @@ def test_drift_chart_overlays_a_monitor_on_a_second_axis_in_lab_time(catalogue, 
     result = CliRunner().invoke(cli, ["--db", catalogue.engine.url.render_as_string(hide_password=False), "plot", "drift", "fill_fraction", "--apparatus", "bench-a", "--monitor", "room_temp", "--out", str(tmp_path / "d.svg")])
     assert result.exit_code == 0, result.output
     assert "room_temp" in (tmp_path / "d.svg").read_text(encoding="utf-8")
+
+
+def test_shots_carry_the_monitor_at_their_time_like_merge_asof(catalogue, tmp_path):
+    catalogue.ingest(list(_scenario(tmp_path)), apparatus="bench-a")
+    frame = catalogue.shots_with_monitors("run-150", ["room_temp", "laser_power"], apparatus="bench-a")
+    logged = pq.read_table(tmp_path / "slow.parquet").to_pandas()
+    reference = pd.merge_asof(frame[["time"]].assign(time=pd.to_datetime(frame["time"], utc=True)).sort_values("time"), logged, on="time", direction="backward", tolerance=pd.Timedelta(seconds=600))
+    np.testing.assert_allclose(frame["room_temp"].to_numpy(), reference["room_temp[degC]"].to_numpy())
+    np.testing.assert_allclose(frame["laser_power"].to_numpy(), reference["laser_power[mW]"].to_numpy())
+    assert frame.attrs["units"]["room_temp"] == "degC"
