@@ -171,7 +171,7 @@ def test_a_port_in_use_is_detected_and_the_next_free_one_taken():
 
 def test_overview_shows_the_latest_lab_day_open_alarms_and_ingest(lab):
     at = start()  # the overview is the first page
-    headline = ["fill fraction", "survival", "coherence time", "contrast"]
+    headline = ["fill fraction", "survival", "t2 star", "contrast"]
     assert [m.label for m in at.metric][:8] == headline * 2
     metrics = iter(at.metric)
     for apparatus in ("lattice-east", "tweezer-west"):
@@ -229,10 +229,10 @@ def test_drift_page_follows_its_widgets(lab):
     assert (days.min, days.max) == (dt.date.fromisoformat(FIRST_DAY), LAST_DAY) == (every_run["started"].min().date(), every_run["started"].max().date())
     offered = at.multiselect(key="drift-quantities-lattice-east").options
     assert [option.split(" [")[0] for option in offered] == [name.replace("_", " ") for name in sorted(lab.figures(apparatus="lattice-east")["name"].unique())]
-    assert "coherence time [µs]" in offered and "fill fraction" in offered
+    assert "t2 star [µs]" in offered and "fill fraction" in offered
     assert at.multiselect(key="drift-quantities-lattice-east").value == ["fill_fraction", "survival", "t2_star"]
     shown = charts(at)
-    assert [c["spec"]["title"]["text"] for c in shown] == ["fill fraction: lattice-east", "survival: lattice-east", "coherence time: lattice-east"]
+    assert [c["spec"]["title"]["text"] for c in shown] == ["fill fraction: lattice-east", "survival: lattice-east", "t2 star: lattice-east"]
     for chart in shown:  # no shot leaves the server for this page: one row per lab day at most
         for data in chart["layers"].values():
             assert data is None or (len(data) <= 2 * 11 and "shot" not in data.columns)
@@ -245,7 +245,7 @@ def test_drift_page_follows_its_widgets(lab):
     np.testing.assert_allclose(limits.query("limit == 'lower'")["bound"], np.array(expected.limits["lower"], dtype=float), rtol=1e-12)
     np.testing.assert_allclose(limits.query("limit == 'upper'")["bound"], np.array(expected.limits["upper"], dtype=float), rtol=1e-12)
     axis = shown[2]["spec"]["layer"][-1]["encoding"]
-    assert axis["y"]["title"] == "coherence time [µs]" and axis["x"]["axis"]["title"] == "lab day (UTC)"
+    assert axis["y"]["title"] == "t2 star [µs]" and axis["x"]["axis"]["title"] == "lab day (UTC)"
     assert shown[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "fill fraction (dimensionless)"
     assert at.info[0].value.startswith("No change in level")
 
@@ -290,12 +290,11 @@ def test_drift_page_follows_its_widgets(lab):
     at.multiselect(key="drift-quantities-tweezer-west").set_value(["contrast"]).run()
     (only,) = charts(at)
     assert only["spec"]["title"]["text"] == "contrast: tweezer-west"
-    # A name stored in two units (fringe phase in deg, Ramsey phase in rad) is flagged.
-    assert "phase [deg, rad]" in at.multiselect(key="drift-quantities-tweezer-west").options
+    # Fringe phase (deg) and Ramsey phase (rad) are two names now (migration 0007), each in one unit.
+    offered = at.multiselect(key="drift-quantities-tweezer-west").options
+    assert "fringe phase [deg]" in offered and "ramsey phase [rad]" in offered
     at.multiselect(key="drift-quantities-tweezer-west").set_value(["fringe_phase"]).run()
-    assert at.warning[0].value.startswith("phase is stored in several units: deg (phase-scan); rad (ramsey).")
-    at.selectbox(key="drift-sequence-tweezer-west").set_value("ramsey").run()
-    assert not at.warning and charts(at)[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "phase [rad]"
+    assert not at.warning and charts(at)[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "fringe phase [deg]"
 
 
 # --- run detail -----------------------------------------------------------------------------
@@ -369,7 +368,11 @@ def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
     def ramsey(t, a, c0, lifetime, delta, phi):
         return a * (1 + c0 * np.exp(-((t / lifetime) ** 2)) * np.cos(2 * np.pi * delta * t + phi))
 
-    start_values = [curve.offset] + [figures[n]["value"] for n in ("ramsey_contrast", "t2_star", "ramsey_frequency", "ramsey_phase")]
+    from runlog.units import convert
+
+    # ramsey_frequency is stored in the programmed detuning's unit (kHz); the model takes MHz for waits in us.
+    frequency = float(convert(np.asarray([figures["ramsey_frequency"]["value"]]), figures["ramsey_frequency"]["unit"], "MHz")[0])
+    start_values = [curve.offset, figures["ramsey_contrast"]["value"], figures["t2_star"]["value"], frequency, figures["ramsey_phase"]["value"]]
     refit, _ = curve_fit(ramsey, curve.x, curve.y, p0=start_values)
     assert curve.offset == pytest.approx(refit[0], rel=1e-6)
     np.testing.assert_allclose(refit[1:], start_values[1:], rtol=1e-4)
