@@ -62,6 +62,9 @@ class RunInfo:
     analyses: list[dict[str, object]] = field(default_factory=list)
     #: Every figure record of the shown version, newest first (only when asked for).
     figure_history: list[dict[str, object]] | None = None
+    #: Shots left out of every figure because their status does not count ([figures]
+    #: counting_status, default ``ok``); they stay in the run and in filters.
+    excluded_shots: int = 0
 
     def as_dict(self) -> dict[str, object]:
         out = {
@@ -69,6 +72,7 @@ class RunInfo:
             "apparatus": self.apparatus,
             "sequence": self.sequence,
             "shots": self.shots,
+            "excluded_shots": self.excluded_shots,
             "started": self.started.isoformat(),
             "finished": self.finished.isoformat(),
             "operator": self.operator,
@@ -84,6 +88,13 @@ class RunInfo:
         if self.figure_history is not None:
             out["figure_history"] = self.figure_history
         return out
+
+
+def _times_us(column) -> "np.ndarray":
+    """Integer microseconds since the epoch of a column of aware times."""
+    import pandas as pd
+
+    return pd.to_datetime(column, utc=True).dt.as_unit("us").astype("int64").to_numpy()
 
 
 def _as_utc(value: dt.datetime | dt.date | str | None) -> dt.datetime | None:
@@ -342,11 +353,13 @@ class Catalogue:
                 if row.ci_low is not None:
                     entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
                 entry["method"] = row.method
+                if row.binomial_method is not None:
+                    entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
                 figures[row.name] = entry
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
             listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
             records = _figure_records(connection, found.id) if history else None
-        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records)
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0))
 
     def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
@@ -878,9 +891,11 @@ class Catalogue:
 
     def figures(self, *, apparatus: str | None = None, since: dt.date | str | None = None, until: dt.date | str | None = None, names: Iterable[str] | None = None, runs: Iterable[str] | None = None) -> "pd.DataFrame":
         """Stored figures, one row per run and figure, by lab day: run, apparatus, sequence,
-        day, started, name, value, stderr, ci_low, ci_high, unit, method."""
+        day, started, name, value, stderr, ci_low, ci_high, unit, method; for counting
+        figures also binomial_ci_low, binomial_ci_high (the pooled interval) and
+        binomial_method (ci_low/ci_high are shot-level)."""
         query = (
-            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method)
+            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method)
             .join(s.Run, s.Run.id == s.FigureRow.run_id)
             .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
             .where(s.Run.is_current)
@@ -898,7 +913,7 @@ class Catalogue:
             query = query.where(s.Run.key.in_(list(runs)))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
-        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method"])
+        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method"])
 
     def calibrations(self, *, apparatus: str | None = None, names: Iterable[str] | None = None) -> list:
         """The calibration register: per apparatus, the latest stored value of each
@@ -995,6 +1010,44 @@ class Catalogue:
         with self.engine.connect() as connection:
             apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
             return suspects(connection, apparatus_id, _as_day(day), quantity, zone, window=window, top=top)
+
+    # --- monitors --------------------------------------------------------------------
+
+    def monitors(self, *, now: dt.datetime | None = None, silent_after: dt.timedelta = dt.timedelta(hours=1)) -> list[dict[str, object]]:
+        """Every monitor with its latest value, and whether it stopped reporting
+        (nothing logged within ``silent_after`` before ``now``)."""
+        from runlog.monitors.overlay import monitor_list
+
+        with self.engine.connect() as connection:
+            return monitor_list(connection, now=now, silent_after=silent_after)
+
+    def monitor_series(self, name: str, *, apparatus: str | None = None, since: dt.datetime | str | None = None, until: dt.datetime | str | None = None, max_points: int = 2_000) -> "pd.DataFrame":
+        """One monitor over a span, from its rollups (at most ``max_points`` periods):
+        ``start``, ``mean``, ``minimum``, ``maximum``, ``count``; for charts."""
+        from runlog.monitors.overlay import monitor_series
+
+        with self.engine.connect() as connection:
+            return monitor_series(connection, name, apparatus=apparatus, since=_as_utc(since), until=_as_utc(until), max_points=max_points)
+
+    def shots_with_monitors(self, run: str, monitors: Iterable[str], *, apparatus: str | None = None, max_gap_seconds: float | None = None) -> "pd.DataFrame":
+        """:meth:`shots` of one run with a column per monitor: its as-of value at each
+        shot's time (last value at or before it, within ``max_gap_seconds``, default 600 s;
+        docs/monitor-table.md), in the monitor's unit (``attrs["units"]``)."""
+        import numpy as np
+
+        from runlog.monitors.align import MAX_GAP_SECONDS, value_at, values_between
+        from runlog.monitors.overlay import _monitor_id
+
+        frame = self.shots(run, apparatus=apparatus)
+        gap = MAX_GAP_SECONDS if max_gap_seconds is None else max_gap_seconds
+        times = _times_us(frame["time"])
+        with self.engine.connect() as connection:
+            for name in monitors:
+                monitor_id, unit = _monitor_id(connection, name, apparatus)
+                logged_us, logged = values_between(connection, monitor_id, int(times.min() - gap * 1e6), int(times.max())) if len(times) else (np.array([], dtype=np.int64), np.array([]))
+                frame[name] = value_at(times, logged_us, logged, gap)
+                frame.attrs.setdefault("units", {})[name] = unit
+        return frame
 
     # --- access ----------------------------------------------------------------------
 
@@ -1104,6 +1157,8 @@ def _figure_records(connection, run_id: int) -> list[dict[str, object]]:
             entry["stderr"] = row.stderr
         if row.ci_low is not None:
             entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
+        if row.binomial_method is not None:
+            entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
         entry.update(
             {
                 "method": row.method,

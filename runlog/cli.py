@@ -269,6 +269,8 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         listed = ", ".join(f"'{a['analysis']}'" + (" (current)" if a["current"] else " (withdrawn)" if a["withdrawn"] else "") for a in info.analyses)
         _wrapped(f"analysis '{info.analysis}'; versions: {listed}")
     _wrapped(f"{info.shots} shots, {_when(info.started)} to {_when(info.finished)} UTC" + (f", operator {info.operator}" if info.operator else ""))
+    if info.excluded_shots:
+        _wrapped(f"{info.excluded_shots} of them left out of the figures by their status (see [figures] counting_status)")
     if info.notes:
         _wrapped(f"notes: {info.notes}")
     if info.tags:
@@ -989,14 +991,17 @@ def plot() -> None:
 @click.option("--sequence", default=None)
 @click.option("--since", default=None, metavar="DATE")
 @click.option("--until", default=None, metavar="DATE")
+@click.option("--monitor", "monitor_names", multiple=True, metavar="NAME", help="Monitor drawn on a second axis (repeatable).")
 @_common
-def plot_drift_command(state: _State, quantity: str, out: Path, apparatus: str | None, sequence: str | None, since: str | None, until: str | None) -> None:
-    """Daily values of a figure with intervals and changes."""
+def plot_drift_command(state: _State, quantity: str, out: Path, apparatus: str | None, sequence: str | None, since: str | None, until: str | None, monitor_names: tuple[str, ...]) -> None:
+    """Daily values of a figure with intervals and changes; monitors on a second axis."""
     from runlog.plots import plot_drift
 
     with _open(state) as catalogue:
         result = catalogue.drift(quantity, apparatus=apparatus, sequence=sequence, since=_day_option(since, "--since"), until=_day_option(until, "--until"), record_alarms=False)
-        _echo(f"wrote {plot_drift(result, out)}")
+        span = (result.points[0].date, result.points[-1].date + dt.timedelta(days=1)) if result.points else (None, None)
+        monitors = [catalogue.monitor_series(name, apparatus=result.apparatus, since=span[0], until=span[1], max_points=2000) for name in monitor_names]
+        _echo(f"wrote {plot_drift(result, out, monitors=monitors, zone=catalogue.lab_timezone)}")
 
 
 @plot.command("run")

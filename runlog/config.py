@@ -24,6 +24,12 @@ Example::
 
     [figures]
     interval = "wilson"       # or "clopper-pearson", for fill fraction and survival
+    counting_status = ["ok"]  # shot statuses that count in figures (default: only "ok");
+                              # other shots are kept and filterable, and counted as left out
+
+    [image_roles]             # per sequence (a pattern): what the second image shows.
+    "sort*" = "rearrangement" # after moving atoms: no survival or loss for these runs
+    "hold*" = "survival"      # (default; a sequence with a sorting rule is "rearrangement")
 
     [[rules]]                 # fitted figures computed automatically (see docs/figures.md)
     sequence = "ramsey*"
@@ -82,6 +88,24 @@ class Mapping:
     time_window: TimeWindow = DEFAULT_TIME_WINDOW
     #: ``[units]``: lab-defined units, ``(name, definition)`` pairs (runlog.units).
     units: tuple[tuple[str, str], ...] = ()
+    #: ``[figures] counting_status``: the shot statuses that count in figures.
+    counting_status: tuple[str, ...] = ("ok",)
+    #: ``[image_roles]``: sequence pattern -> ``survival`` or ``rearrangement``.
+    image_roles: dict[str, str] = field(default_factory=dict)
+
+    def second_image_role(self, sequence: str) -> str:
+        """What the second image of a run of ``sequence`` shows: ``survival`` (the same
+        atoms after a hold, so survival and loss mean something) or ``rearrangement``
+        (atoms moved in between, from a declared role or a ``sorting`` rule)."""
+        from fnmatch import fnmatchcase
+
+        for pattern, role in self.image_roles.items():
+            if fnmatchcase(sequence, pattern):
+                return role
+        for rule in self.rules:
+            if rule.get("kind") == "sorting" and fnmatchcase(sequence, str(rule.get("sequence", "*"))):
+                return "rearrangement"
+        return "survival"
 
 
 def _time_window(table: object, source: str) -> TimeWindow:
@@ -107,7 +131,7 @@ def load_config(path: str | Path | None) -> Mapping:
         raise ConfigError(str(path), "file not found") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
         raise ConfigError(str(path), f"not valid TOML: {error}") from None
-    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "monitors"}
+    known = {"columns", "occupancy", "defaults", "rules", "figures", "apparatus", "reference", "time_window", "units", "monitors", "image_roles"}
     unknown = sorted(set(data) - known)
     if unknown:
         raise ConfigError(str(path), f"unknown section [{unknown[0]}] (known: {', '.join(sorted(known))})")
@@ -136,6 +160,17 @@ def load_config(path: str | Path | None) -> Mapping:
     interval = figures.get("interval", "wilson")
     if interval not in INTERVAL_METHODS:
         raise ConfigError(str(path), f"[figures] interval must be one of {', '.join(repr(m) for m in INTERVAL_METHODS)}, not {interval!r}")
+    counting = figures.get("counting_status", ["ok"])
+    if isinstance(counting, str):
+        counting = [counting]
+    if not isinstance(counting, list) or not counting or not all(isinstance(v, str) and v for v in counting):
+        raise ConfigError(str(path), "[figures] counting_status must be a non-empty list of shot statuses, e.g. [\"ok\"]")
+    roles = data.get("image_roles", {})
+    if not isinstance(roles, dict) or not all(isinstance(v, str) for v in roles.values()):
+        raise ConfigError(str(path), "[image_roles] must map sequence patterns to 'survival' or 'rearrangement'")
+    for pattern, role in roles.items():
+        if role not in ("survival", "rearrangement"):
+            raise ConfigError(str(path), f"[image_roles] '{pattern}' must be 'survival' or 'rearrangement', not {role!r}")
     rules = check_rules(data.get("rules", []), str(path))
     settings = check_apparatus_settings(data.get("apparatus", {}), str(path))
     monitor_files = data.get("monitors", {}).get("files", [])
@@ -156,6 +191,8 @@ def load_config(path: str | Path | None) -> Mapping:
         monitor_files=tuple(monitor_files),
         references=check_references(data.get("reference", {}), str(path)),
         time_window=_time_window(data.get("time_window", {}), str(path)),
+        counting_status=tuple(counting),
+        image_roles={str(k): v for k, v in roles.items()},
         units=_lab_units(data.get("units", {}), str(path)),
     )
 

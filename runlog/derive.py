@@ -65,7 +65,7 @@ from runlog.errors import FitError, NotFoundError, RunlogError
 from runlog.figures.base import Figure
 from runlog.figures.coherence import ENVELOPES, fit_envelope, fit_ramsey, frequency_unit
 from runlog.figures.correlator import PAIR_LABELS, correlators, correlators_from_pairs
-from runlog.figures.counting import counts_fill, counts_survival, proportion_figure
+from runlog.figures.counting import counted_figure, shot_sums_fill, shot_sums_survival, survival_figures
 from runlog.figures.detection import COUNT_MODELS, corrected_fill, corrected_survival, detection_figures, fit_counts
 from runlog.figures.fringe import fit_fringe
 from runlog.figures.interference import coincidences, dip_model, fit_visibility, visibility_at_one_setting
@@ -76,7 +76,7 @@ from runlog.figures.rabi import fit_rabi, rabi_model
 from runlog.figures.relaxation import echo_model, fit_echo, fit_t1, relaxation_model
 from runlog.figures.spectroscopy import LINESHAPES, field_from_resonance, fit_lineshape, lorentzian, rabi_lineshape
 from runlog.figures.sorting import sorting_figures
-from runlog.figures.spreading import fit_spreading, position_spread
+from runlog.figures.spreading import fit_spreading, start_sites, walk_spread
 from runlog.units import UnitError, conversion, convert, converter, parse_unit, quantity, registry
 
 if TYPE_CHECKING:
@@ -92,6 +92,7 @@ _RULE_OPTIONS = ("x", "y", "envelope", "target", "image", "model")
 #: Kind-specific settings a rule or ``derive(settings=...)`` may give, by kind.
 SETTINGS = {
     "coherence": ("oscillator", "side"),
+    "spreading": ("start_site",),
     "rabi": ("pulse",),
     "spectroscopy": ("pulse",),
     "echo": ("stretch",),
@@ -188,8 +189,13 @@ class _Source:
 
     @property
     def shots(self) -> pd.DataFrame:
+        """The run's shots whose status counts in figures (the catalogue's
+        ``counting_status`` setting, default ``ok``); the others are left out."""
         if self._shots is None:
-            self._shots = self.catalogue.shots(self.info.run, apparatus=self.info.apparatus)
+            shots = self.catalogue.shots(self.info.run, apparatus=self.info.apparatus)
+            self._counting = shots["status"].isin(counting_statuses(self.catalogue)).to_numpy()
+            self._shots = shots[self._counting].reset_index(drop=True)
+            self._shots.attrs = shots.attrs
         return self._shots
 
     def unit(self, column: str) -> str:
@@ -213,7 +219,22 @@ class _Source:
         # line up with the shots; a mismatch means the store is not what we think it is.
         if occupancy.shape[0] != self.info.shots:
             raise FitError(self.kind, f"image '{image}' has {occupancy.shape[0]} shots of the run's {self.info.shots}")
+        self.shots  # noqa: B018 (sets the counting mask)
+        occupancy = occupancy[self._counting]
+        if occupancy.shape[0] == 0:
+            raise FitError(self.kind, "no shot of the run has a status that counts")
         return occupancy
+
+
+def counting_statuses(catalogue: Catalogue) -> list[str]:
+    """The shot statuses that count in figures, as the catalogue's ingest recorded them."""
+    import json
+
+    from sqlalchemy import text
+
+    with catalogue.engine.connect() as connection:
+        stored = connection.execute(text("SELECT value FROM settings WHERE key = 'counting_status'")).scalar()
+    return json.loads(stored) if stored else ["ok"]
 
 
 def derive(
@@ -451,23 +472,18 @@ def _counting(source: _Source, options: _Options) -> list[Figure]:
     # The same counts and the same arithmetic as ingest, so a recomputation from the stored
     # occupancy gives the stored figures to the last bit.
     loaded = source.occupancy(loading)
-    figures = [_counted("fill_fraction", *counts_fill(loaded), interval)]
+    figures = [counted_figure("fill_fraction", shot_sums_fill(loaded), interval)]
     if survival is not None and images[survival]["sites"] == images[loading]["sites"]:
-        kept, tries = counts_survival(loaded, source.occupancy(survival))
-        if tries:
-            figures.append(_counted("survival", kept, tries, interval))
-            figures.append(_counted("loss", tries - kept, tries, interval))
+        sums = shot_sums_survival(loaded, source.occupancy(survival))
+        if sums.trials:
+            figures.extend(survival_figures(sums, interval))
     return figures
 
 
 def _stored_interval(info: RunInfo) -> str:
-    method = info.figures.get("fill_fraction", {}).get("method")
+    stored = info.figures.get("fill_fraction", {})
+    method = stored.get("binomial_method") or stored.get("method")
     return method if method in INTERVAL_METHODS else "wilson"
-
-
-def _counted(name: str, successes: int, trials: int, interval: str) -> Figure:
-    figure = proportion_figure(name, successes, trials, interval)
-    return dataclasses.replace(figure, successes=successes, trials=trials)
 
 
 def _fringe(source: _Source, options: _Options) -> list[Figure]:
@@ -577,9 +593,32 @@ def _spreading(source: _Source, options: _Options) -> list[Figure]:
         )
     occupancy = source.occupancy(image)
     steps = source.numbers(f"p.{x}")
-    values = np.unique(steps[np.isfinite(steps)])
-    spreads = [position_spread(occupancy[steps == value]) for value in values]
+    start = _walk_start(source, image, options)
+    values, spreads = [], []
+    for value in np.unique(steps[np.isfinite(steps)]):
+        chosen = steps == value
+        try:
+            spread, _ = walk_spread(occupancy[chosen], start if np.ndim(start) == 0 else start[chosen])
+        except FitError:
+            continue  # every shot of this step reached the edge or lost its atoms: no width
+        values.append(value)
+        spreads.append(spread)
     return fit_spreading(values, spreads)
+
+
+def _walk_start(source: _Source, image: str, options: _Options):
+    """Where each shot's walk started: the ``start_site`` setting (a site index), else the
+    one occupied site of each shot's loading image when the walk is imaged apart from it."""
+    given = options.settings.get("start_site")
+    sites = source.info.images[image]["sites"]
+    if given is not None:
+        if isinstance(given, bool) or not isinstance(given, (int, float)) or not 0 <= given < sites:
+            raise FitError("spreading", f"start_site must be a site index 0..{sites - 1}, got {given!r}")
+        return float(given)
+    loading = next((name for name, entry in source.info.images.items() if entry["role"] == "loading" and name != image and entry["sites"] == sites), None)
+    if loading is None:
+        raise FitError("spreading", "no start site: give the start_site setting, or a loading image of the same sites showing where each atom started")
+    return start_sites(source.occupancy(loading))
 
 
 def _sorting(source: _Source, options: _Options) -> list[Figure]:

@@ -59,7 +59,7 @@ def build_digest(catalogue, *, day: dt.date | None = None, apparatus: str | None
                 drift = catalogue.drift(quantity, apparatus=name, record_alarms=False)
             except NotFoundError:
                 continue
-            found = standing(drift, day)
+            found = standing(drift, day, open_alarms)
             history = [(p.date.isoformat(), p.value, p.ci_low, p.ci_high, (drift.limits.get("lower") or [None] * len(drift.points))[i], (drift.limits.get("upper") or [None] * len(drift.points))[i], i in set(drift.out_of_limits)) for i, p in enumerate(drift.points) if day - dt.timedelta(days=HISTORY_DAYS) < p.date <= day]
             figures.append({**found, "history": history})
         days = catalogue.lab_days(apparatus=name)

@@ -136,8 +136,10 @@ def _runs_table(connection, per_run_shots: dict[int, int], zone: ZoneInfo, froze
             "finished": pa.array([r["finished"] for r in rows], pa.timestamp("us", tz="UTC")),
             "day": pa.array([_as_date(r["day"]) if r["day"] is not None else r["started"].astimezone(zone).date() for r in rows], pa.date32()),
             "operator": pa.array([r["operator"] for r in rows], pa.string()),
+            "notes": pa.array([r.get("notes") for r in rows], pa.string()),
             "tags": pa.array([r["tags"] for r in rows], pa.string()),
             "shots": pa.array([int(r["shots"]) for r in rows], pa.int64()),
+            "excluded_shots": pa.array([int(r.get("excluded_shots") or 0) for r in rows], pa.int64()),
             "shots_exported": pa.array([per_run_shots[int(r["id"])] for r in rows], pa.int64()),
         }
     )
@@ -149,10 +151,10 @@ def _figures_table(connection, run_order: list[int], runs_table: pa.Table, recor
     records ``records``, which never change."""
     figures = s.FigureRow.__table__ if records is None else s.FigureRecord.__table__
     position = {rid: i for i, rid in enumerate(run_order)}
-    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials")
-    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64())
+    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method")
+    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64(), pa.float64(), pa.float64(), pa.string())
     rows: list[tuple] = []
-    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials)
+    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials, figures.c.binomial_ci_low, figures.c.binomial_ci_high, figures.c.binomial_method)
     for chunk in _chunks(run_order if records is None else sorted(records)):
         rows += connection.execute(select(*columns).where(id_in(figures.c.run_id if records is None else figures.c.id, chunk))).all()
     rows.sort(key=lambda r: (position[int(r[0])], r[1]))
@@ -266,13 +268,18 @@ _DESCRIPTIONS = {
     "operator": "who ran it",
     "tags": "the run's labels, comma-separated",
     "shots": "shots of the run in the catalogue",
+    "notes": "the run's notes, as the shot table gave them",
+    "excluded_shots": "shots of the run left out of its figures because their status does not count (they are in the shots table)",
     "shots_exported": "shots of the run in this export",
     "figure": "the figure of merit's name",
     "kind": "the family of figures it belongs to",
     "value": "the figure's value (in 'unit')",
     "stderr": "its standard error",
-    "ci_low": "lower end of its confidence interval",
-    "ci_high": "upper end of its confidence interval",
+    "ci_low": "lower end of its confidence interval (counting figures: shot-level, from the spread between shots)",
+    "ci_high": "upper end of its confidence interval (counting figures: shot-level, from the spread between shots)",
+    "binomial_ci_low": "counting figures: lower end of the pooled binomial interval (every site an independent try; too narrow when loading varies between shots)",
+    "binomial_ci_high": "counting figures: upper end of the pooled binomial interval",
+    "binomial_method": "counting figures: the method of the pooled binomial interval",
     "unit": "the unit of value, stderr and interval",
     "method": "how it was computed",
     "method_version": "version of that method",
@@ -335,21 +342,36 @@ def _resource(name: str, path: Path, format: str, schema: dict[str, object], des
     return entry
 
 
-def _source_files(connection, run_order: list[int], runs_table: pa.Table) -> list[dict[str, object]]:
-    """The ingested files that wrote shots into the exported run versions (``run_files``),
-    with the runs of the export each wrote into."""
+def _source_files(connection, run_order: list[int], runs_table: pa.Table, shot_ids: np.ndarray | None = None) -> list[dict[str, object]]:
+    """The ingested files that brought the exported shots (``run_files``), with the runs of
+    the export each wrote into, per apparatus: run keys coincide across apparatus (a date
+    is the usual key), so a key alone does not say whose run it is.
+
+    With the exported ``shot_ids``, a file is named only when one of its shots is exported
+    (its shots are the id range ``first_shot_id``..``last_shot_id`` of each run version it
+    wrote into); catalogues from before that range was kept name every file of the run.
+    """
     position = {rid: i for i, rid in enumerate(run_order)}
     keys = runs_table.column("run").to_pylist()
+    apparatus = runs_table.column("apparatus").to_pylist()
+    exported = np.sort(np.asarray(shot_ids, dtype=np.int64)) if shot_ids is not None else None
     files, log = s.RunFile.__table__, s.IngestLogEntry.__table__
     found: dict[tuple[str, str], dict[str, object]] = {}
     for chunk in _chunks(run_order):
-        for run_id, file, sha256, shots in connection.execute(
-            select(files.c.run_id, log.c.file, log.c.sha256, log.c.shots).join(log, log.c.id == files.c.ingest_id).where(id_in(files.c.run_id, chunk))
+        for run_id, file, sha256, shots, first, last in connection.execute(
+            select(files.c.run_id, log.c.file, log.c.sha256, log.c.shots, files.c.first_shot_id, files.c.last_shot_id).join(log, log.c.id == files.c.ingest_id).where(id_in(files.c.run_id, chunk))
         ):
-            entry = found.setdefault((file, sha256), {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": []})
-            entry["runs"].append(keys[position[int(run_id)]])
+            if exported is not None and first is not None and last is not None:
+                low, high = np.searchsorted(exported, int(first), side="left"), np.searchsorted(exported, int(last), side="right")
+                if high <= low:
+                    continue  # the file wrote into the run, but none of its shots is exported
+            entry = found.setdefault((file, sha256), {"file": file, "sha256": sha256, "shots": int(shots or 0), "runs": [], "apparatus": {}})
+            at = position[int(run_id)]
+            entry["runs"].append(keys[at])
+            entry["apparatus"].setdefault(apparatus[at], []).append(keys[at])
     for entry in found.values():
         entry["runs"] = sorted(set(entry["runs"]))
+        entry["apparatus"] = {name: sorted(set(runs)) for name, runs in sorted(entry["apparatus"].items())}
     return [found[k] for k in sorted(found)]
 
 
@@ -686,7 +708,8 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
             "withdrawn_since": withdrawn_since(connection, found),
         }
     else:
-        selection = select_on(connection, where, shot_ids=with_occupancy)
+        # The shot ids name the files that brought exactly these shots (provenance).
+        selection = select_on(connection, where, shot_ids=True)
         frozen, records = None, None
     if selected is not None:
         selected(selection.table)
@@ -700,7 +723,7 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
         occupancy_columns, images_table = _occupancy(connection, selection, run_order, runs_table)
         for name, values in occupancy_columns.items():
             shots_table = shots_table.append_column(name, values)
-    sources = _source_files(connection, run_order, runs_table)
+    sources = _source_files(connection, run_order, runs_table, selection.shot_ids)
     if pinned is None:
         from runlog.pins import other_versions_pinned
 

@@ -30,6 +30,7 @@ from runlog.config import Mapping
 from runlog.contract import FROM_COUNTS, MAX_MEASUREMENTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
 from runlog.errors import ContractError, one_line
+from runlog.figures.shot_level import ShotSums
 from runlog.store.bulk import Writer, open_writer, short_write
 from runlog.store.failures import describe
 from runlog.store.schema import IngestLogEntry, Measurement, measurement_column
@@ -119,6 +120,10 @@ class _Run:
     measurement_counts: dict[str, int] = field(default_factory=dict)
     # Per-site counts of this file's shots: name -> (successes, trials), for counting figures.
     site_counts: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+    # Sums over this file's shots (runlog.figures.shot_level.ShotSums) for the same names.
+    shot_sums: dict[str, object] = field(default_factory=dict)
+    # Shots of this file left out of the figures by their status.
+    excluded: int = 0
     # Photon counts per image: (shot indices, shots x sites matrix) per batch.
     photon_counts: dict[str, list[tuple[np.ndarray, np.ndarray]]] = field(default_factory=dict)
     # The threshold of each image whose occupancy comes from its counts.
@@ -229,9 +234,11 @@ def _group(run_index: np.ndarray) -> list[tuple[int, np.ndarray]]:
 class _Plan:
     """What pass 1 learned of a file: its runs, and their per-run parameter statistics."""
 
-    def __init__(self, path: Path, layout: Layout):
+    def __init__(self, path: Path, layout: Layout, mapping: Mapping | None = None):
         self.path = path
         self.layout = layout
+        # Which shot statuses count in figures, and what a sequence's second image shows.
+        self.mapping = mapping if mapping is not None else Mapping()
         self.rows = 0
         self.runs: list[_Run] = []
         self.index: dict[tuple[str, str], int] = {}
@@ -652,7 +659,7 @@ def _write_runs(writer: Writer, plan: _Plan, ids: _Catalogue) -> None:
                 shape = column.shape or (sites,)
                 if int(np.prod(shape)) != sites:
                     raise ContractError(file, f"lattice shape {','.join(map(str, shape))} does not hold {sites} sites", column=column.source, row=run.first_row)
-                role = "loading" if name == layout.loading else "survival" if name == layout.survival else "other"
+                role = "loading" if name == layout.loading else _second_role(plan, run) if name == layout.survival else "other"
                 writer.execute(
                     "INSERT INTO images (run_id, name, role, sites, shape) VALUES (:r, :n, :role, :sites, :shape)",
                     {"r": run.run_id, "n": name, "role": role, "sites": sites, "shape": ",".join(map(str, shape))},
@@ -889,21 +896,47 @@ def _list_matrix(lists: pa.ListArray, rows: np.ndarray, sites: int, dtype) -> np
     return values[starts[rows][:, None] + np.arange(sites)[None, :]]
 
 
+def _second_role(plan: _Plan, run: _Run) -> str:
+    """The stored role of a run's second image: ``survival`` only when it shows the same
+    atoms after a hold; ``rearranged`` when the sequence moves atoms in between."""
+    return "survival" if plan.mapping.second_image_role(run.sequence) == "survival" else "rearranged"
+
+
+def _counting_rows(plan: _Plan, batch: Batch) -> np.ndarray:
+    """Which rows of the batch have a status that counts in figures (no status: ``ok``)."""
+    if batch.status is None:
+        return np.full(batch.length, "ok" in plan.mapping.counting_status)
+    status = np.where(batch.status == None, "ok", batch.status).astype(str)  # noqa: E711
+    return np.isin(status, list(plan.mapping.counting_status))
+
+
 def _count_sites(plan: _Plan, batch: Batch, run_index: np.ndarray) -> None:
-    """Add this batch's per-site loading and survival counts to each run's tally."""
+    """Add this batch's per-site loading and survival counts to each run's tally, from the
+    shots whose status counts; the others are tallied as left out."""
     layout = plan.layout
+    counting = _counting_rows(plan, batch)
+    for position, rows in _group(run_index):
+        run = plan.runs[position]
+        run.excluded += int(np.count_nonzero(~counting[rows]))
     if layout.loading is None:
         return
     for position, rows in _group(run_index):
         run = plan.runs[position]
-        if not run.has_image.get(layout.loading):
+        rows = rows[counting[rows]]
+        if not run.has_image.get(layout.loading) or len(rows) == 0:
             continue
         sites = run.image_sites[layout.loading]
         loaded = _occupancy_matrix(batch.occupancy[layout.loading], rows, sites)
         _add_counts(run, "fill", loaded.sum(axis=0), np.full(sites, len(rows), dtype=np.int64))
-        if layout.survival is not None and run.has_image.get(layout.survival) and run.image_sites[layout.survival] == sites:
+        _add_sums(run, "fill", ShotSums.of(loaded.sum(axis=1), np.full(len(rows), sites)))
+        if layout.survival is not None and run.has_image.get(layout.survival) and run.image_sites[layout.survival] == sites and _second_role(plan, run) == "survival":
             kept = _occupancy_matrix(batch.occupancy[layout.survival], rows, sites)
             _add_counts(run, "survival", (loaded & kept).sum(axis=0), loaded.sum(axis=0))
+            _add_sums(run, "survival", ShotSums.of((loaded & kept).sum(axis=1), loaded.sum(axis=1)))
+
+
+def _add_sums(run: _Run, name: str, sums: ShotSums) -> None:
+    run.shot_sums[name] = run.shot_sums[name] + sums if name in run.shot_sums else sums
 
 
 def _add_counts(run: _Run, name: str, successes: np.ndarray, trials: np.ndarray) -> None:
@@ -913,28 +946,46 @@ def _add_counts(run: _Run, name: str, successes: np.ndarray, trials: np.ndarray)
     run.site_counts[name] = (successes.astype(np.int64), trials.astype(np.int64))
 
 
+def _record_counting_status(writer: Writer, mapping: Mapping) -> None:
+    """Keep the counting statuses in the catalogue's settings, so that figures derived later
+    (``runlog derive``) leave out the same shots as ingest did."""
+    import json
+
+    value = json.dumps(sorted(mapping.counting_status))
+    stored = writer.rows("SELECT value FROM settings WHERE key = 'counting_status'")
+    if stored and stored[0][0] == value or (not stored and mapping.counting_status == ("ok",)):
+        return
+    writer.execute("DELETE FROM settings WHERE key = 'counting_status'")
+    writer.execute("INSERT INTO settings (key, value) VALUES ('counting_status', :v)", {"v": value})
+
+
 def _store_counting_figures(writer: Writer, plan: _Plan, interval: str) -> None:
     """Fill fraction, survival and loss of every run this file touched, from all its shots."""
+    for run in plan.runs:
+        if run.excluded:
+            writer.execute("UPDATE runs SET excluded_shots = excluded_shots + :n WHERE id = :r", {"n": run.excluded, "r": run.run_id})
     if not any(run.site_counts for run in plan.runs):
         return
-    from runlog.figures.counting import proportion_figure
-    from runlog.store.figures import read_site_counts, store_figures, store_site_counts
+    from runlog.figures.counting import counted_figure, survival_figures
+    from runlog.store.figures import read_shot_sums, read_site_counts, store_figures, store_site_counts
 
     for run in plan.runs:
         figures = []
         for name, (successes, trials) in run.site_counts.items():
             stored = read_site_counts(writer, run.run_id, name)
+            sums = run.shot_sums[name]
             if stored is not None and len(stored[0]) == len(successes):
                 successes, trials = successes + stored[0], trials + stored[1]
+                earlier = read_shot_sums(writer, run.run_id, "fill_fraction" if name == "fill" else "survival")
+                if earlier is not None:
+                    sums = sums + earlier
             store_site_counts(writer, run.run_id, name, successes, trials)
-            total, tries = int(successes.sum()), int(trials.sum())
-            if tries == 0:
+            if sums.trials == 0:
                 continue  # no loaded site: survival is undefined, and no figure is made up
             if name == "fill":
-                figures.append(replace(proportion_figure("fill_fraction", total, tries, interval), successes=total, trials=tries))
+                figures.append(counted_figure("fill_fraction", sums, interval))
             else:
-                figures.append(replace(proportion_figure("survival", total, tries, interval), successes=total, trials=tries))
-                figures.append(replace(proportion_figure("loss", tries - total, tries, interval), successes=tries - total, trials=tries))
+                figures.extend(survival_figures(sums, interval))
         if figures:
             store_figures(writer, run.run_id, "counting", figures, options={"interval": interval})
 
@@ -1043,7 +1094,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
         text_columns = [c.source for c in layout.columns if c.role in ("reserved", "optional") and c.name not in ("shot", "time")]
         text_columns += [c.source for c in layout.by_role("parameter") if c.kind == "text"]
         parquet = _open(path, text_columns)
-        plan = _Plan(path, layout)
+        plan = _Plan(path, layout, mapping)
         # Checked batches are kept for the write while they fit a fixed budget, so a small
         # file is read once; a larger one is read again, and memory stays bounded either way.
         kept: list[tuple[int, Batch]] | None = []
@@ -1069,6 +1120,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             batches = kept if kept is not None else _batches(path, parquet, layout)
             shots, first_id = _write_shots(writer, path, batches, plan, ids, progress)
             _store_photon_counts(writer, plan)
+            _record_counting_status(writer, mapping)
             _store_counting_figures(writer, plan, mapping.interval)
             refresh_rollups(writer, _rollup_groups(plan))
             if after_write is not None:

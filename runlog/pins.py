@@ -82,7 +82,8 @@ def _iso(value) -> str | None:
 
 def run_fields(connection, run_ids: list[int]) -> dict[int, dict[str, object]]:
     """The exported fields of run versions: key, apparatus, analysis, sequence, started,
-    finished, lab day, operator, tags (sorted, comma-separated) and shot count."""
+    finished, lab day, operator, notes, tags (sorted, comma-separated), shot count and the
+    shots left out of the figures by their status."""
     from runlog.selection import id_in
     from runlog.store import schema as s
     from sqlalchemy import select
@@ -92,7 +93,7 @@ def run_fields(connection, run_ids: list[int]) -> dict[int, dict[str, object]]:
     for start in range(0, len(run_ids), 10_000):
         chunk = run_ids[start : start + 10_000]
         for r in connection.execute(
-            select(runs.c.id, runs.c.key, apparatus.c.name, runs.c.analysis, runs.c.sequence, runs.c.started, runs.c.finished, runs.c.day, runs.c.operator, runs.c.shot_count)
+            select(runs.c.id, runs.c.key, apparatus.c.name, runs.c.analysis, runs.c.sequence, runs.c.started, runs.c.finished, runs.c.day, runs.c.operator, runs.c.notes, runs.c.shot_count, runs.c.excluded_shots)
             .join(apparatus, apparatus.c.id == runs.c.apparatus_id)
             .where(id_in(runs.c.id, chunk))
         ):
@@ -105,8 +106,10 @@ def run_fields(connection, run_ids: list[int]) -> dict[int, dict[str, object]]:
                 "finished": r.finished,
                 "day": r.day,
                 "operator": r.operator,
+                "notes": r.notes,
                 "tags": [],
                 "shots": int(r.shot_count or 0),
+                "excluded_shots": int(r.excluded_shots or 0),
             }
         for run_id, tag in connection.execute(select(tags.c.run_id, tags.c.tag).where(id_in(tags.c.run_id, chunk))):
             out[int(run_id)]["tags"].append(tag)

@@ -16,6 +16,7 @@ so the dashboard can show the very chart that is printed; the ``plot_*`` functio
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -41,6 +42,7 @@ FAINT = "#9aa7b8"
 LIMIT = "#7f7f7f"
 FINDING = "#b3261e"
 EWMA = "#2f6fb3"  # the smoothed line and its band
+MONITOR = "#5b8c3a"  # monitors on the second axis
 WIDTH, HEIGHT = 560, 300
 # Raw shots are drawn under the means only up to this many (Vega-Lite inlines the data).
 MAX_RAW_SHOTS = 5000
@@ -87,9 +89,28 @@ def _subtitle(figures: dict[str, dict[str, object]], per_line: int = 3) -> list[
 # --- drift -------------------------------------------------------------------------------
 
 
-def drift_chart(drift: Drift, *, title: str | None = None) -> alt.LayerChart:
+def _monitor_layers(x, monitors: Sequence[pd.DataFrame], zone: str) -> list:
+    """Monitors (frames of ``Catalogue.monitor_series``) as lines on a second axis, at the
+    lab's wall-clock time: the lab-day axis places a day's midnight at the day, so a
+    period is placed at its local time on that day."""
+    import altair as alt
+
+    layers = []
+    for frame in monitors:
+        local = pd.to_datetime(frame["start"], utc=True).dt.tz_convert(zone).dt.strftime("%Y-%m-%dT%H:%M:%S")
+        data = pd.DataFrame({"day": local, "monitor": frame["mean"], "low": frame["minimum"], "high": frame["maximum"]})
+        title = _axis_title(str(frame.attrs.get("monitor", "monitor")), str(frame.attrs.get("unit", "")))
+        y = alt.Y("monitor:Q", title=f"{title} ({frame.attrs.get('resolution', '')} mean)", scale=alt.Scale(zero=False), axis=alt.Axis(orient="right"))
+        layers.append(alt.Chart(data).mark_area(color=MONITOR, opacity=0.15).encode(x=x, y=alt.Y("low:Q", scale=alt.Scale(zero=False), axis=None), y2="high:Q"))
+        layers.append(alt.Chart(data).mark_line(color=MONITOR, strokeWidth=1).encode(x=x, y=y, tooltip=["day:N", alt.Tooltip("monitor:Q", format=".4g")]))
+    return layers
+
+
+def drift_chart(drift: Drift, *, title: str | None = None, monitors: Sequence[pd.DataFrame] = (), zone: str = "UTC") -> alt.LayerChart:
     """The drift of one quantity as a chart: daily points with interval bars, limits,
-    changes. Points outside the control limits are drawn in red."""
+    changes. Points outside the control limits are drawn in red. ``monitors`` (frames of
+    ``Catalogue.monitor_series``) are drawn on a second axis at lab time (``zone``),
+    with their range per period shaded."""
     import altair as alt
 
     if not drift.points:
@@ -155,12 +176,16 @@ def drift_chart(drift: Drift, *, title: str | None = None) -> alt.LayerChart:
         notes.append(str(drift.limits["method"]))
     if drift.changes:
         notes.append("red: changes in level, " + ", ".join(f"{c.date.isoformat()} {_format(c.before)} → {_format(c.after)}" for c in drift.changes))
-    return alt.layer(*layers).properties(width=WIDTH, height=HEIGHT, title=alt.TitleParams(heading, subtitle=notes, anchor="start"))
+    chart = alt.layer(*layers)
+    if monitors:
+        notes.append("right axis: " + ", ".join(str(f.attrs.get("monitor")) for f in monitors) + f" (line: mean, shaded: min to max; lab time {zone})")
+        chart = alt.layer(chart, alt.layer(*_monitor_layers(x, monitors, zone))).resolve_scale(y="independent")
+    return chart.properties(width=WIDTH, height=HEIGHT, title=alt.TitleParams(heading, subtitle=notes, anchor="start"))
 
 
-def plot_drift(drift: Drift, out_path: str | Path, *, title: str | None = None) -> Path:
+def plot_drift(drift: Drift, out_path: str | Path, *, title: str | None = None, monitors: Sequence[pd.DataFrame] = (), zone: str = "UTC") -> Path:
     """Save :func:`drift_chart` as SVG, PNG or PDF (by the suffix of ``out_path``)."""
-    return save_chart(drift_chart(drift, title=title), out_path)
+    return save_chart(drift_chart(drift, title=title, monitors=monitors, zone=zone), out_path)
 
 
 # --- one run -------------------------------------------------------------------------------

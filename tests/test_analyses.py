@@ -42,15 +42,17 @@ def thresholded(runs: dict[str, int], threshold: float, *, analysis: str | None 
 
 
 def counted(path, run: str) -> dict[str, tuple[float, float]]:
-    """Fill fraction and survival of one run of a file, with binomial standard errors, by numpy."""
+    """Fill fraction and survival of one run of a file, with shot-level standard errors
+    (ratio estimate over shots, Cochran 1977 section 6.3, never below the binomial one), by numpy."""
     table = pq.read_table(path).to_pandas()
     rows = table[table["run"] == run]
     load = np.array([np.asarray(v, bool) for v in rows["occ.load"]])
     survive = np.array([np.asarray(v, bool) for v in rows["occ.survive"]])
     out = {}
-    for name, k, n in (("fill_fraction", load.sum(), load.size), ("survival", (load & survive).sum(), load.sum())):
-        p = k / n
-        out[name] = (p, math.sqrt(p * (1 - p) / n))
+    for name, y, x in (("fill_fraction", load.sum(axis=1), np.full(len(load), load.shape[1])), ("survival", (load & survive).sum(axis=1), load.sum(axis=1))):
+        p, shots = y.sum() / x.sum(), len(y)
+        between = shots / (shots - 1) * ((y - p * x) ** 2).sum() / x.sum() ** 2
+        out[name] = (p, math.sqrt(max(between, p * (1 - p) / x.sum())))
     return out
 
 
@@ -192,14 +194,15 @@ def test_every_derive_adds_an_immutable_record_and_the_newest_is_in_force(catalo
     survival = [h for h in history if h["figure"] == "survival"]
     assert [h["options"] for h in survival] == [{"interval": "clopper-pearson"}, {"interval": "wilson"}]
     assert [h["in_force"] for h in survival] == [True, False]
-    assert [h["method"] for h in survival] == ["clopper-pearson", "wilson"]
+    assert [h["binomial_method"] for h in survival] == ["clopper-pearson", "wilson"]
+    assert [h["method"] for h in survival] == ["shot-ratio", "shot-ratio"]
     assert survival[0]["runlog_version"] == runlog.__version__ and survival[0]["analysis"] == ""
     assert survival[0]["shots"] == 50 and survival[0]["kind"] == "counting"
-    assert catalogue.run("r1").figures["survival"]["method"] == "clopper-pearson"
+    assert catalogue.run("r1").figures["survival"]["binomial_method"] == "clopper-pearson"
     # One version: the impact report sets the figure in force against the record before it.
     entry = next(e for e in catalogue.impact("r1") if e["figure"] == "survival")
     assert entry["old"]["record"] == survival[1]["record"] and entry["new"]["record"] == survival[0]["record"]
-    assert entry["sigma"] == 0.0  # same counts, same binomial stderr: only the interval moved
+    assert entry["sigma"] == 0.0  # same counts, same stderr: only the pooled interval moved
 
 
 def test_show_json_gives_analysis_analyses_and_figure_history(two_versions, capsys):

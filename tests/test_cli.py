@@ -171,10 +171,12 @@ def test_show_json_contract(db_url, files):
         "wait": {"unit": "us", "scanned": True, "min": 0.0, "max": 90.0},
     }
     assert info["measurements"] == ["atom_number"]
-    # Counting figures are computed at ingest; each carries value, unit, stderr, interval, method.
+    # Counting figures are computed at ingest; each carries value, unit, stderr, the
+    # shot-level interval and its method, and the pooled binomial interval with its method.
     assert set(info["figures"]) == {"fill_fraction", "survival", "loss"}
     for figure in info["figures"].values():
-        assert set(figure) == {"value", "unit", "stderr", "ci_low", "ci_high", "method"} and figure["method"] == "wilson"
+        assert set(figure) == {"value", "unit", "stderr", "ci_low", "ci_high", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method"}
+        assert (figure["method"], figure["binomial_method"]) == ("shot-ratio", "wilson")
 
 
 LONG_RUN = "2026-03-02-release-recapture-scan-0042"

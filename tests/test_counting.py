@@ -72,22 +72,39 @@ def test_per_site_survival_is_nan_for_a_never_loaded_site():
     assert math.isnan(out[1])
 
 
-def test_fill_fraction_figure_matches_statsmodels_wilson():
+def test_fill_fraction_pooled_interval_matches_statsmodels_wilson():
     figure = fill_fraction(LOADING)
     low, high = proportion_confint(6, 12, alpha=0.05, method="wilson")  # reference: statsmodels
     assert figure.name == "fill_fraction"
     assert figure.value == 0.5
-    assert figure.stderr == pytest.approx(math.sqrt(0.5 * 0.5 / 12), rel=1e-15)
-    assert (figure.ci_low, figure.ci_high) == pytest.approx((low, high), abs=1e-12)
-    assert figure.method == "wilson"
+    assert (figure.binomial_ci_low, figure.binomial_ci_high) == pytest.approx((low, high), abs=1e-12)
+    assert figure.binomial_method == "wilson"
+    assert figure.method == "shot-ratio"
     assert figure.unit == ""
+
+
+def test_fill_fraction_shot_level_interval_by_hand():
+    # Per shot 2, 3, 1 of 4 sites: with equal shot sizes the ratio estimate is the mean of
+    # the shot fractions and its variance their sample variance / n (Cochran 1977, 6.3).
+    fractions = np.array([2, 3, 1]) / 4
+    variance = fractions.var(ddof=1) / 3
+    assert variance == pytest.approx(0.25 / 12)  # design effect 1: no excess spread here
+    figure = fill_fraction(LOADING)
+    assert figure.stderr == pytest.approx(math.sqrt(variance), rel=1e-12)
+    # Wilson at the effective size 12 * (z / t_2)^2 (Korn & Graubard 1998), statsmodels as
+    # the reference for Wilson and scipy for the t quantile.
+    from scipy import stats
+
+    effective = 12 * (stats.norm.ppf(0.975) / stats.t.ppf(0.975, 2)) ** 2
+    low, high = proportion_confint(0.5 * effective, effective, alpha=0.05, method="wilson")
+    assert (figure.ci_low, figure.ci_high) == pytest.approx((low, high), abs=1e-12)
 
 
 def test_fill_fraction_clopper_pearson_matches_statsmodels_beta():
     figure = fill_fraction(LOADING, method="clopper-pearson")
     low, high = proportion_confint(6, 12, alpha=0.05, method="beta")  # reference: statsmodels
-    assert (figure.ci_low, figure.ci_high) == pytest.approx((low, high), abs=1e-12)
-    assert figure.method == "clopper-pearson"
+    assert (figure.binomial_ci_low, figure.binomial_ci_high) == pytest.approx((low, high), abs=1e-12)
+    assert figure.binomial_method == "clopper-pearson"
 
 
 def test_survival_and_loss_figures():
@@ -95,9 +112,10 @@ def test_survival_and_loss_figures():
     low, high = proportion_confint(3, 6, alpha=0.05, method="wilson")  # reference: statsmodels
     assert (kept.name, lost.name) == ("survival", "loss")
     assert kept.value == 0.5 and lost.value == 0.5
-    assert (kept.ci_low, kept.ci_high) == pytest.approx((low, high), abs=1e-12)
-    assert (lost.ci_low, lost.ci_high) == pytest.approx((1 - high, 1 - low), abs=1e-12)
-    assert lost.stderr == kept.stderr == pytest.approx(math.sqrt(0.25 / 6))
+    assert (kept.binomial_ci_low, kept.binomial_ci_high) == pytest.approx((low, high), abs=1e-12)
+    assert (lost.binomial_ci_low, lost.binomial_ci_high) == pytest.approx((1 - high, 1 - low), abs=1e-12)
+    assert (lost.ci_low, lost.ci_high) == pytest.approx((1 - kept.ci_high, 1 - kept.ci_low), abs=1e-12)
+    assert lost.stderr == pytest.approx(kept.stderr)
 
 
 def test_loss_interval_is_the_mirror_for_an_uneven_case():
@@ -107,9 +125,10 @@ def test_loss_interval_is_the_mirror_for_an_uneven_case():
     kept, lost = survival(loading, kept_mask, method="clopper-pearson")
     x, n = counts_survival(loading, kept_mask)
     low, high = proportion_confint(x, n, alpha=0.05, method="beta")  # reference: statsmodels
-    assert (kept.ci_low, kept.ci_high) == pytest.approx((low, high), abs=1e-12)
+    assert (kept.binomial_ci_low, kept.binomial_ci_high) == pytest.approx((low, high), abs=1e-12)
     assert lost.value == pytest.approx(1 - x / n)
-    assert (lost.ci_low, lost.ci_high) == pytest.approx((1 - high, 1 - low), abs=1e-12)
+    assert (lost.binomial_ci_low, lost.binomial_ci_high) == pytest.approx((1 - high, 1 - low), abs=1e-12)
+    assert (lost.ci_low, lost.ci_high) == pytest.approx((1 - kept.ci_high, 1 - kept.ci_low), abs=1e-12)
 
 
 def test_full_survival_gives_exact_upper_end():

@@ -247,7 +247,7 @@ def test_drift_page_follows_its_widgets(lab):
     axis = shown[2]["spec"]["layer"][-1]["encoding"]
     assert axis["y"]["title"] == "t2 star [µs]" and axis["x"]["axis"]["title"] == "lab day (UTC)"
     assert shown[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "fill fraction (dimensionless)"
-    assert at.info[0].value.startswith("No change in level")
+    assert not [s for s in at.selectbox if s.key.startswith("drift-change-lattice-east")]  # nothing to explain there
 
     # The other apparatus: its planted drop shows as a change, with what else moved beside it.
     at.selectbox(key="drift-apparatus").set_value("tweezer-west").run()
@@ -256,13 +256,17 @@ def test_drift_page_follows_its_widgets(lab):
     assert [c.date.isoformat() for c in expected.changes] == [CHANGE_DAY]
     assert list(fill["layers"]["changes"]["day"]) == [CHANGE_DAY]
     np.testing.assert_allclose(fill["layers"]["levels"]["level"], [expected.changes[0].before, expected.changes[0].after], rtol=1e-12)
-    change = at.selectbox(key="drift-change-tweezer-west")
+    # What may explain it sits under its own chart (no side panel): notes first, then suspects.
+    change = at.selectbox(key="drift-change-tweezer-west-fill_fraction")
     assert change.value is None and not [d for d in at.dataframe if "candidate" in d.value.columns]  # ranked on demand
     (fill_change,) = [option for option in change.options if option.startswith(f"fill fraction on {CHANGE_DAY}")]
     change.select_index(change.options.index(fill_change)).run()
-    assert at.selectbox(key="drift-change-tweezer-west").value[:2] == ("fill_fraction", CHANGE_DAY)
+    assert at.selectbox(key="drift-change-tweezer-west-fill_fraction").value[:2] == ("fill_fraction", CHANGE_DAY)
+    found = lab.suspects("fill_fraction", CHANGE_DAY, apparatus="tweezer-west")
+    assert found["notes"] and [i.value for i in at.info][: len(found["notes"])] == [f"**{n['kind']}** {n['day']}" + (f" · run {n['run']}" if n.get("run") else "") + f": {n['text']}" for n in found["notes"]]
+    assert any(m.value == f"*{found['verdict']}*" for m in at.markdown)
     causes = table(at, "candidate", "standard errors")
-    ranked = lab.what_else_changed("fill_fraction", CHANGE_DAY, apparatus="tweezer-west")
+    ranked = found["causes"]
     assert list(causes["candidate"]) == [c["name"].replace("_", " ") for c in ranked]
     np.testing.assert_allclose(causes["standard errors"].astype(float), [np.nan if c["standardised_change"] is None else c["standardised_change"] for c in ranked], rtol=1e-12)
 
@@ -564,3 +568,18 @@ def test_series_page_draws_the_member_runs_and_the_fitted_model(db_url, tmp_path
         assert set(fitted.index) == set(made["values"])
     finally:
         _forget_cached(db_url)
+
+
+def test_overview_cards_judge_each_figure_against_its_baseline_and_link_alarm_and_chart(lab):
+    at = start()
+    cards = [m.value for m in at.markdown if m.value.startswith(":")]
+    west = lab.drift("fill_fraction", apparatus="tweezer-west", record_alarms=False)
+    from runlog.drift.standing import standing
+
+    (alarm,) = [a for a in lab.alarms() if a["apparatus"] == "tweezer-west" and a["quantity"] == "fill_fraction"]
+    found = standing(west, LAST_DAY, lab.alarms())
+    assert found["state"] == "changed" and found["since"] == CHANGE_DAY and found["alarm"] == alarm["id"]
+    assert any(c.startswith(":red[**changed**] since 2026-09-10") and "standard errors) from baseline" in c for c in cards)
+    captions = [c.value for c in at.caption]
+    assert any(f"[alarm #{alarm['id']}](annotate)" in c and "[chart](drift?apparatus=tweezer-west)" in c for c in captions)
+    assert sum(c.startswith(":green[**in limits**]") for c in cards) >= 2

@@ -22,7 +22,7 @@ T0 = dt.datetime(2026, 5, 1, tzinfo=dt.timezone.utc)
 
 hostile_names = st.text(alphabet=st.characters(codec="utf-8", exclude_categories=("Cs",)), min_size=1, max_size=12)
 names = st.one_of(st.sampled_from(["wait", "depth", "detuning", "phase", "atom_number", "ü_power", "x y"]), hostile_names)
-units = st.sampled_from(["", "us", "ms", "uK", "MHz", "deg", "µs", "V", "", "us", "furlong/fortnight", "blorp", "[", "1/0"])
+units = st.sampled_from(["", "us", "ms", "uK", "MHz", "deg", "µs", "V", "", "us", "furlong/fortnight", "blorp", "[", "1/0", "9**9**9", "m**99"])
 numbers = st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.integers(-(2**40), 2**40), st.none())
 
 

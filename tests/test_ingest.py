@@ -113,10 +113,15 @@ def test_counting_figures_are_computed_at_ingest_and_pooled_over_files(catalogue
     assert figures["fill_fraction"]["value"] == load.sum() / load.size
     assert figures["survival"]["value"] == (load & kept).sum() / load.sum()
     assert figures["loss"]["value"] == pytest.approx(1 - figures["survival"]["value"], abs=1e-15)
-    # Interval equal to statsmodels' Wilson interval for the same counts.
+    # The pooled interval equal to statsmodels' Wilson interval for the same counts; the
+    # shot-level one is that of all shots of both files (tests/test_shot_level.py checks it).
     low, high = proportion_confint(int(load.sum()), load.size, alpha=0.05, method="wilson")
-    assert (figures["fill_fraction"]["ci_low"], figures["fill_fraction"]["ci_high"]) == pytest.approx((low, high), abs=1e-12)
-    assert figures["fill_fraction"]["method"] == "wilson"
+    assert (figures["fill_fraction"]["binomial_ci_low"], figures["fill_fraction"]["binomial_ci_high"]) == pytest.approx((low, high), abs=1e-12)
+    assert figures["fill_fraction"]["binomial_method"] == "wilson"
+    assert figures["fill_fraction"]["method"] == "shot-ratio"
+    from runlog.figures.counting import fill_fraction
+
+    assert figures["fill_fraction"]["ci_low"] == pytest.approx(fill_fraction(load).ci_low, rel=1e-12)
     successes, trials, shape = catalogue.site_counts("r1", "fill")
     assert np.array_equal(successes, load.sum(axis=0)) and np.array_equal(trials, np.full(16, 11))
     assert shape == (16,)

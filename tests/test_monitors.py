@@ -231,3 +231,21 @@ def test_sigkill_mid_ingest_leaves_nothing_half_written(db_url, tmp_path):
     assert subprocess.run(command, stdout=subprocess.DEVNULL).returncode == 0
     with runlog.open(db_url) as catalogue:
         assert _counts(catalogue)[1] == 400_000
+
+
+def test_monitor_series_reads_the_rollups_and_the_list_flags_silent_monitors(catalogue, tmp_path):
+    path = _wide(tmp_path / "log.parquet", n=720, step_s=10)  # two hours
+    catalogue.ingest(path)
+    series = catalogue.monitor_series("room_temp", max_points=200)
+    assert series.attrs["resolution"] == "minute" and series.attrs["unit"] == "degC"
+    assert series["count"].tolist() == [6] * 120
+    expected = pq.read_table(path).to_pandas().set_index("time")["room_temp[degC]"].resample("1min").mean()
+    assert series["mean"].tolist() == pytest.approx(expected.tolist())
+    assert catalogue.monitor_series("room_temp", max_points=10).attrs["resolution"] == "hour"
+    last = T0 + dt.timedelta(seconds=7190)
+    listed = {m["name"]: m for m in catalogue.monitors(now=last + dt.timedelta(minutes=30))}
+    assert listed["room_temp"]["latest_value"] == pytest.approx(pq.read_table(path)["room_temp[degC]"].to_pylist()[-1])
+    assert not listed["room_temp"]["stopped_reporting"]
+    assert all(m["stopped_reporting"] for m in catalogue.monitors(now=last + dt.timedelta(hours=2)))
+    with pytest.raises(runlog.NotFoundError):
+        catalogue.monitor_series("no_such_monitor")

@@ -61,6 +61,7 @@ POISON = {
     "NUL in the notes": (lambda: shot_table({"p1": 3}, extra={"notes": ["fine\x00"] * 3}), "notes", "text holds a NUL character"),
     "text parameter over the index limit": (lambda: _text_parameter(os.urandom(1400).hex()), "p.beam", f"text longer than {MAX_TEXT_BYTES} bytes"),
     "multibyte text over the byte limit": (lambda: _text_parameter("µ" * (MAX_TEXT_BYTES // 2 + 1)), "p.beam", f"text longer than {MAX_TEXT_BYTES} bytes"),
+    "power-tower unit": (lambda: shot_table({"p1": 3}, extra={"p.x[9**9**9]": np.ones(3)}), "p.x[9**9**9]", "'9**9**9' is not a unit"),
     "NUL in a column name": (lambda: shot_table({"p1": 3}, extra={"m.n\x00": np.ones(3)}), None, "column name holds a control character"),
     "too many measurement columns": (
         lambda: shot_table({"p1": 3}, extra={f"m.q{i}": np.ones(3) for i in range(MAX_MEASUREMENTS_PER_FILE)}),  # and m.atom_number
@@ -193,11 +194,12 @@ def test_watch_quarantines_poison_files_and_keeps_going(catalogue, tmp_path, cap
     write_table(folder / "d_shot.parquet", shot_table({"p2": 2}, first_shot=2**31))
     write_table(folder / "e_good.parquet", shot_table({"g2": 5}, seed=2, start=T0 + dt.timedelta(hours=1)))
     write_table(folder / "f\nrefused fake.parquet", _last_day())
+    write_table(folder / "h_unit.parquet", shot_table({"p3": 2}, extra={"p.x[9**9**9]": np.ones(2)}))
     watcher = Watcher(folder, catalogue.ingest)
     with caplog.at_level(logging.INFO, logger="runlog.watch"):
         assert watcher.poll() == []
         results = {os.path.basename(r.file): r.status for r in watcher.poll()}
-    assert results == {"a_good.parquet": "ingested", "b_future.parquet": "rejected", "c_nul.parquet": "rejected", "d_shot.parquet": "rejected", "e_good.parquet": "ingested", "f\nrefused fake.parquet": "rejected"}
+    assert results == {"a_good.parquet": "ingested", "b_future.parquet": "rejected", "c_nul.parquet": "rejected", "d_shot.parquet": "rejected", "e_good.parquet": "ingested", "f\nrefused fake.parquet": "rejected", "h_unit.parquet": "rejected"}
     assert sorted(p.name for p in folder.glob("*.parquet")) == ["a_good.parquet", "e_good.parquet"]
     quarantined = sorted(p.name for p in (folder / "quarantine").iterdir())
     assert "b_future.parquet" in quarantined and "b_future.parquet.reason.txt" in quarantined

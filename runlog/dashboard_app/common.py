@@ -437,6 +437,22 @@ def what_else_changed(url: str, quantity: str, day: dt.date, apparatus: str) -> 
 
 
 @_cached
+def suspects(url: str, quantity: str, day: dt.date, apparatus: str) -> dict[str, object]:
+    """``catalogue.suspects``: notes first, then ranked suspects, then the verdict."""
+    return catalogue(url).suspects(quantity, day, apparatus=apparatus)
+
+
+@_cached
+def standing(url: str, quantity: str, apparatus: str, day: dt.date) -> dict[str, object]:
+    """Where ``quantity``'s reference series stands on ``day`` against its baseline
+    (:func:`runlog.drift.standing.standing`); read-only."""
+    from runlog.drift.standing import standing as standing_of
+
+    opened = catalogue(url)
+    return standing_of(opened.drift(quantity, apparatus=apparatus, record_alarms=False), day, opened.alarms(status=None, apparatus=apparatus))
+
+
+@_cached
 def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str, object]:
     """``catalogue.stability``: the Allan deviation over a series' runs, in plain words."""
     return catalogue(url).stability(quantity, apparatus=apparatus, series=series)

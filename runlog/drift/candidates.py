@@ -86,6 +86,9 @@ class Candidate:
     errors_after: tuple[float, ...] | None = None
     unit: str = ""
     lag: float = 0.0
+    #: How many tests chose these readings (e.g. the lags a monitor was tried at); its
+    #: p-value is multiplied by it (Bonferroni) before the Benjamini-Hochberg step.
+    tests: int = 1
 
     def __post_init__(self) -> None:
         if self.kind not in KINDS:
@@ -122,6 +125,7 @@ class Suspect:
             "kind": self.kind,
             "unit": self.unit,
             "lag": self.lag,
+            **({"lag_hours": self.lag / 3600.0} if self.kind == "monitor" else {}),
             "before_mean": self.before_mean,
             "after_mean": self.after_mean,
             "before_stderr": _finite(self.before_stderr),
@@ -240,6 +244,8 @@ def rank(candidates: Sequence[Candidate], *, alpha: float = 0.05) -> list[Suspec
         if not len(c.before) or not len(c.after):
             continue
         mb, ma, sb, sa, z, p = standardised_change(c)
+        if c.tests > 1 and np.isfinite(p):
+            p = min(1.0, p * c.tests)
         constant = c.kind == "parameter" and np.ptp(c.before) == 0 and np.ptp(c.after) == 0
         if constant and mb == ma:
             continue

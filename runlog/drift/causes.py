@@ -100,6 +100,9 @@ register_source("parameters", parameter_candidates)
 register_source("measurements", measurement_candidates)
 register_source("figures", figure_candidates)
 
+# Monitors (runlog.monitors) join the candidates, each at its best time lag.
+from runlog.drift import monitor_suspects  # noqa: E402,F401  (registers its source)
+
 
 def what_else_changed(connection: Connection, apparatus_id: int, day: dt.date, quantity: str, *, window: int = 3, top: int = 10) -> list[dict[str, object]]:
     """Setting changes, then candidates ranked by |standardised change| across ``day``."""

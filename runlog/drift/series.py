@@ -6,8 +6,10 @@ so a headline number never mixes unlike runs; ``series`` names another, ``pooled
 every run of the apparatus (or of ``sequence``) as before. Daily points pool the stored
 figures of the series' runs per lab day (never shots):
 
-* counting figures (fill fraction, survival, loss): the day's pooled counts, with a
-  Wilson interval and the binomial standard error;
+* counting figures (fill fraction, survival, loss): the day's pooled counts, with the
+  shot-level interval and stderr of :mod:`runlog.figures.shot_level` over all the day's
+  shots (the Wilson interval and binomial standard error of the pooled counts only for
+  runs stored before the sums over shots were kept);
 * fitted figures (coherence time, contrast, ...): the inverse-variance weighted mean of
   the day's runs, its standard error scaled by the Birge ratio when the runs disagree
   by more than their errors, and the spread between runs.
@@ -33,6 +35,8 @@ from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
 from runlog.figures.intervals import wilson
+from runlog.drift.pooling import arithmetic_of, half_period, pool
+from runlog.figures.shot_level import ShotSums, shot_level_interval
 from runlog.store import schema as s
 
 __all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "drift_of"]
@@ -139,6 +143,10 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
             func.sum(r.shots),
             func.sum(r.successes),
             func.sum(r.trials),
+            func.sum(r.counted_shots),
+            func.sum(r.successes_squares),
+            func.sum(r.trials_squares),
+            func.sum(r.successes_trials),
             func.sum(r.value_count),
             func.sum(r.value_sum),
             func.sum(r.value_square_sum),
@@ -176,12 +184,17 @@ def _one_unit(connection: Connection, units_query, quantity: str) -> None:
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
 
 
-def _point(day, runs, shots, successes, trials, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
+def _point(day, runs, shots, successes, trials, counted, y2, x2, xy, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
     """One day's point from the pooled sums of its runs (see the module docstring)."""
     day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
     if trials:
         successes, trials = int(successes), int(trials)
         p = successes / trials
+        # SUM over runs is NULL if any run lacks the sums, so a day is shot-level only when
+        # all of its runs are.
+        honest = shot_level_interval(ShotSums(int(counted), successes, trials, float(y2), float(x2), float(xy))) if counted is not None and y2 is not None else None
+        if honest is not None:
+            return DriftPoint(day, p, honest.low, honest.high, int(runs), int(shots), honest.stderr, None, successes, trials)
         low, high = wilson(successes, trials)
         return DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials)
     spread = None
@@ -210,7 +223,7 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
     """
     f, r = s.FigureRow, s.Run
     query = (
-        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.unit)
+        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials, f.unit)
         .join(r, r.id == f.run_id)
         .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current))
         .order_by(r.day)
@@ -244,25 +257,45 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         units = sorted({row[-1] or "(none)" for row in rows})
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
     days: dict[object, list[float]] = {}
+    fitted: dict[object, tuple[list[float], list[float | None]]] = {}
     unit = ""
-    for day, shots, value, stderr, successes, trials, figure_unit in rows:
+    for day, shots, value, stderr, successes, trials, counted, y2, x2, xy, figure_unit in rows:
         unit = figure_unit or unit
-        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, None, None, None])
+        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, 0.0, 0, 0.0, 0.0, None, None, None])
         sums[0] += 1
         sums[1] += shots
         if trials is not None:
             sums[2] = (sums[2] or 0) + successes
             sums[3] = (sums[3] or 0) + trials
-        sums[4] += 1
-        sums[5] += value
-        sums[6] += value * value
-        if stderr is not None and stderr > 0:
-            w = 1.0 / (stderr * stderr)
-            sums[7] = (sums[7] or 0.0) + w
-            sums[8] = (sums[8] or 0.0) + w * value
-            sums[9] = (sums[9] or 0.0) + w * value * value
-    points = [p for p in (_point(day, *sums) for day, sums in days.items()) if p is not None]
+            # As SQL's SUM in the rollups: one run without sums over shots makes them NULL.
+            for position, part in ((4, counted), (5, y2), (6, x2), (7, xy)):
+                sums[position] = None if part is None or sums[position] is None else sums[position] + part
+        sums[8] += 1
+        fitted.setdefault(day, ([], []))
+        fitted[day][0].append(value)
+        fitted[day][1].append(stderr)
+    points = []
+    for day, sums in days.items():
+        if sums[3]:
+            point = _point(day, *sums[:8], sums[8], 0.0, 0.0, None, None, None)
+        else:
+            # Fitted figures: linear, circular (angles) or logarithmic (times) pooling.
+            value, low, high, stderr, spread = pool(*fitted[day], unit)
+            day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
+            point = DriftPoint(day, value, low, high, int(sums[0]), int(sums[1]), stderr, spread)
+        if point is not None:
+            points.append(point)
     return points, unit, any(p.trials is not None for p in points)
+
+
+def _unwrapped(points: list[DriftPoint], half: float) -> list[DriftPoint]:
+    """Daily phases shifted by whole turns so that each lies within half a turn of the day
+    before: a phase drifting through 180 deg is charted as a drift, not as a jump of a
+    full turn (limits and changes are judged on this series)."""
+    from dataclasses import replace
+
+    values = np.unwrap(np.array([p.value for p in points]), period=2 * half)
+    return [replace(p, value=float(v), ci_low=p.ci_low + float(v) - p.value, ci_high=p.ci_high + float(v) - p.value) for p, v in zip(points, values)]
 
 
 def _accepted_days(connection: Connection, apparatus_id: int, quantity: str, series_key: str) -> list[dt.date]:
@@ -345,6 +378,8 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         runs = chosen["runs"]
         others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
     points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
+    if not counting and points and arithmetic_of(unit) == "circular":
+        points = _unwrapped(points, half_period(unit))
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
     if chosen is not None and table is not None:

@@ -23,8 +23,9 @@ __all__ = ["HEADLINE", "standing"]
 HEADLINE = ("fill_fraction", "survival", "t2_star", "contrast")
 
 
-def standing(drift, day: dt.date) -> dict[str, object]:
-    """The standing of one drift result (``Catalogue.drift``) on ``day``."""
+def standing(drift, day: dt.date, alarms: list[dict[str, object]] | None = None) -> dict[str, object]:
+    """The standing of one drift result (``Catalogue.drift``) on ``day``; ``alarms`` (recorded
+    ones, default the drift's own) give the id of the alarm of the current excursion."""
     base = {"quantity": drift.quantity, "apparatus": drift.apparatus, "unit": drift.unit, "series": drift.series, "day": day.isoformat()}
     before = [i for i, p in enumerate(drift.points) if p.date <= day]
     if not before:
@@ -46,7 +47,8 @@ def standing(drift, day: dt.date) -> dict[str, object]:
     else:
         state = "building baseline" if (i < len(learning) and learning[i]) or centre is None else "in limits"
         since = None
-    alarm = next((a for a in drift.alarms if since is not None and a.get("date") == since), None)
+    key = (drift.series or {}).get("key")
+    alarm = next((a for a in (drift.alarms if alarms is None else alarms) if since is not None and a.get("date") == since and a.get("quantity") == drift.quantity and a.get("apparatus") == drift.apparatus and ((a.get("series") or {}).get("key") == key)), None)
     size = None if centre is None else point.value - centre
     unit = f" {drift.unit}" if drift.unit else ""
     if size is None:

@@ -34,6 +34,13 @@ class Figure:
     #: For counting figures: the counts behind ``value``, kept so days can pool them.
     successes: int | None = None
     trials: int | None = None
+    #: For counting figures whose ``ci_low``/``ci_high`` are shot-level
+    #: (:mod:`runlog.figures.shot_level`): the pooled binomial interval beside it, its
+    #: method, and the sums over shots the shot-level interval came from.
+    binomial_ci_low: float | None = None
+    binomial_ci_high: float | None = None
+    binomial_method: str | None = None
+    shot_sums: object | None = None
 
     def __post_init__(self) -> None:
         if not self.name:
@@ -56,4 +63,8 @@ class Figure:
             out["ci_low"] = self.ci_low
             out["ci_high"] = self.ci_high
         out["method"] = self.method
+        if self.binomial_ci_low is not None:
+            out["binomial_ci_low"] = self.binomial_ci_low
+            out["binomial_ci_high"] = self.binomial_ci_high
+            out["binomial_method"] = self.binomial_method
         return out

@@ -12,11 +12,13 @@ A site that is empty in the loading image but occupied in the second image (a fa
 detection or an atom arriving from elsewhere) does not count towards survival: survival
 is conditional on the site having been loaded.
 
-Each figure carries the binomial standard error ``sqrt(p(1 - p)/n)`` and a confidence
-interval (95 %) from :mod:`runlog.figures.intervals`; ``method`` names that interval.
-Pooling every site observation treats them as independent tries; shot-to-shot
-fluctuations of the loading (laser power, trap depth) correlate sites within a shot, so
-the interval is then narrower than the true spread between shots.
+Each figure's ``ci_low``/``ci_high`` (95 %) and ``stderr`` are shot-level
+(:mod:`runlog.figures.shot_level`: a ratio estimate over shots with the variance from the
+spread between shots, Cochran 1977 section 6.3), ``method`` ``shot-ratio``: they
+hold when the loading varies from shot to shot, as it always does. The pooled binomial
+interval, which treats every site observation as an independent try and is far too narrow
+then, stays beside it as ``binomial_ci_low``/``binomial_ci_high`` with its method
+(``binomial_method``, from :mod:`runlog.figures.intervals`).
 
 The ``counts_*`` functions return the raw ``(successes, trials)`` so the store can pool
 runs or days and recompute an interval from the summed counts.
@@ -32,9 +34,11 @@ import numpy as np
 from runlog.errors import FitError, NotFoundError
 from runlog.figures.base import Figure
 from runlog.figures.intervals import INTERVAL_METHODS, newcombe_difference
+from runlog.figures.shot_level import SHOT_LEVEL_METHOD, ShotSums, shot_level_interval
 
 __all__ = [
     "compare_proportions",
+    "counted_figure",
     "counts_fill",
     "counts_survival",
     "fill_fraction",
@@ -43,7 +47,10 @@ __all__ = [
     "per_site_survival",
     "per_site_survival_counts",
     "proportion_figure",
+    "shot_sums_fill",
+    "shot_sums_survival",
     "survival",
+    "survival_figures",
 ]
 
 
@@ -98,6 +105,44 @@ def proportion_figure(name: str, successes: int, trials: int, method: str = "wil
     )
 
 
+def counted_figure(name: str, sums: ShotSums, method: str = "wilson") -> Figure:
+    """A figure ``sums.successes / sums.trials`` with the shot-level interval and stderr,
+    and the pooled ``method`` interval as ``binomial_ci_low``/``binomial_ci_high``.
+
+    With a single shot the spread between shots is unknown: the figure then has no
+    interval and no stderr rather than the binomial one passed off as honest.
+    """
+    pooled = proportion_figure(name, sums.successes, sums.trials, method)
+    shot_level = shot_level_interval(sums)
+    return Figure(
+        name=name,
+        value=pooled.value,
+        stderr=None if shot_level is None else shot_level.stderr,
+        ci_low=None if shot_level is None else shot_level.low,
+        ci_high=None if shot_level is None else shot_level.high,
+        method=SHOT_LEVEL_METHOD,
+        method_version="2",
+        successes=sums.successes,
+        trials=sums.trials,
+        binomial_ci_low=pooled.ci_low,
+        binomial_ci_high=pooled.ci_high,
+        binomial_method=method,
+        shot_sums=sums,
+    )
+
+
+def shot_sums_fill(loading: np.ndarray) -> ShotSums:
+    """The per-shot sums of occupied sites out of sites."""
+    occupancy = _as_occupancy(loading, "loading")
+    return ShotSums.of(np.count_nonzero(occupancy, axis=1), np.full(occupancy.shape[0], occupancy.shape[1]))
+
+
+def shot_sums_survival(loading: np.ndarray, survival: np.ndarray) -> ShotSums:
+    """The per-shot sums of sites occupied in both images out of sites loaded."""
+    first, second = _as_pair(loading, survival)
+    return ShotSums.of(np.count_nonzero(first & second, axis=1), np.count_nonzero(first, axis=1))
+
+
 def counts_fill(loading: np.ndarray) -> tuple[int, int]:
     """``(occupied site observations, all site observations)`` over all shots."""
     occupancy = _as_occupancy(loading, "loading")
@@ -144,10 +189,10 @@ def per_site_survival(loading: np.ndarray, survival: np.ndarray) -> np.ndarray:
 
 
 def fill_fraction(loading: np.ndarray, method: str = "wilson") -> Figure:
-    """Figure ``fill_fraction``: occupied sites / sites over all shots, ``method`` interval."""
+    """Figure ``fill_fraction``: occupied sites / sites over all shots, shot-level interval
+    (and the pooled ``method`` one beside it)."""
     _interval_method(method)  # fail on a bad method name before counting a large array
-    successes, trials = counts_fill(loading)
-    return proportion_figure("fill_fraction", successes, trials, method)
+    return counted_figure("fill_fraction", shot_sums_fill(loading), method)
 
 
 def survival(loading: np.ndarray, survival: np.ndarray, method: str = "wilson") -> list[Figure]:
@@ -156,19 +201,16 @@ def survival(loading: np.ndarray, survival: np.ndarray, method: str = "wilson") 
     Raises :class:`FitError` when no site was loaded in any shot: survival is then undefined.
     """
     _interval_method(method)
-    successes, trials = counts_survival(loading, survival)
-    if trials == 0:
+    sums = shot_sums_survival(loading, survival)
+    if sums.trials == 0:
         raise FitError("counting", "no loaded sites in any shot: survival is undefined")
-    kept = proportion_figure("survival", successes, trials, method)
-    lost = Figure(
-        name="loss",
-        value=1.0 - kept.value,
-        stderr=kept.stderr,
-        ci_low=1.0 - kept.ci_high,
-        ci_high=1.0 - kept.ci_low,
-        method=method,
-    )
-    return [kept, lost]
+    return survival_figures(sums, method)
+
+
+def survival_figures(sums: ShotSums, method: str = "wilson") -> list[Figure]:
+    """``[survival, loss]`` from the per-shot sums of atoms kept out of atoms loaded; loss
+    is counted as the failures, so its intervals are the mirror images of survival's."""
+    return [counted_figure("survival", sums, method), counted_figure("loss", sums.complement(), method)]
 
 
 def compare_proportions(x1: int, n1: int, x2: int, n2: int) -> Figure:

@@ -8,12 +8,13 @@ mask of length ``sites``.
 * ``defect_free_probability`` = shots whose target sites are all occupied / shots;
 * ``target_fill_fraction`` = occupied target-site observations / (shots x target sites).
 
-Both carry the binomial stderr ``sqrt(p(1 - p)/n)`` and a 95 % interval, Wilson's score
-interval by default (Wilson 1927; see :mod:`runlog.figures.intervals`). The defect-free
-probability counts one try per shot and its interval is sound. The target fill fraction
-pools every target-site observation as an independent try; defects within one shot are
-correlated (a short reservoir of atoms leaves several holes at once), so its interval is
-narrower than the shot-to-shot spread would give.
+The defect-free probability counts one try per shot and carries the binomial stderr
+``sqrt(p(1 - p)/n)`` and a 95 % interval, Wilson's score interval by default (Wilson 1927;
+see :mod:`runlog.figures.intervals`), which is sound for independent shots. Defects
+within one shot are correlated (a short reservoir of atoms leaves several holes at once),
+so the target fill fraction carries the shot-level interval of
+:mod:`runlog.figures.shot_level` (each shot a cluster of target sites), with the pooled
+binomial one beside it as ``binomial_ci_low``/``binomial_ci_high``.
 """
 
 from __future__ import annotations
@@ -21,7 +22,8 @@ from __future__ import annotations
 import numpy as np
 
 from runlog.figures.base import Figure
-from runlog.figures.counting import _as_occupancy, _interval_method, proportion_figure
+from runlog.figures.counting import _as_occupancy, _interval_method, counted_figure, proportion_figure
+from runlog.figures.shot_level import ShotSums
 
 __all__ = ["defect_free_probability", "sorting_figures", "target_fill_fraction"]
 
@@ -71,8 +73,8 @@ def _defect_free(on_target: np.ndarray, method: str) -> Figure:
 
 
 def _target_fill(on_target: np.ndarray, method: str) -> Figure:
-    successes = int(np.count_nonzero(on_target))
-    return proportion_figure("target_fill_fraction", successes, on_target.size, method)
+    sums = ShotSums.of(np.count_nonzero(on_target, axis=1), np.full(on_target.shape[0], on_target.shape[1]))
+    return counted_figure("target_fill_fraction", sums, method)
 
 
 def defect_free_probability(

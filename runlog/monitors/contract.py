@@ -182,15 +182,23 @@ def _numbers(file: str, column: pa.ChunkedArray, source: str, *, allow_empty: bo
     return values, present
 
 
-def _texts(file: str, column: pa.ChunkedArray, source: str, what: str) -> np.ndarray:
+def _labels(file: str, column: pa.ChunkedArray, source: str, what: str) -> tuple[list[str], np.ndarray]:
+    """(distinct labels, stripped; per-row index into them) of a text column, without a
+    Python loop over the rows (a logger's file has millions)."""
     array = column.combine_chunks()
-    if not (pa.types.is_string(array.type) or pa.types.is_large_string(array.type) or pa.types.is_dictionary(array.type)):
+    if pa.types.is_dictionary(array.type):
+        array = array.cast(array.type.value_type)
+    if not (pa.types.is_string(array.type) or pa.types.is_large_string(array.type)):
         raise ContractError(file, f"{what} must be text, found {array.type}", column=source, row=0)
-    values = np.array(array.to_pylist(), dtype=object)
-    empty = np.array([v is None or not str(v).strip() for v in values], dtype=bool)
-    if empty.any():
-        raise ContractError(file, f"empty {what}", column=source, row=_first(empty))
-    return np.array([str(v).strip() for v in values], dtype=object)
+    if array.null_count:
+        raise ContractError(file, f"empty {what}", column=source, row=_first(array.is_null().to_numpy(zero_copy_only=False)))
+    encoded = pc.dictionary_encode(pc.utf8_trim_whitespace(array))
+    labels = [str(v) for v in encoded.dictionary.to_pylist()]
+    codes = encoded.indices.to_numpy(zero_copy_only=False)
+    for code, label in enumerate(labels):
+        if not label:
+            raise ContractError(file, f"empty {what}", column=source, row=_first(codes == code))
+    return labels, codes
 
 
 def _unit(file: str, text: str, source: str, row: int | None) -> str:
@@ -229,7 +237,8 @@ def read_monitor_table(path: str | Path, mapping: Mapping | None = None, apparat
     time_us = _times(file, table[sources["time"]], sources["time"])
     rows = np.arange(table.num_rows)
     if "apparatus" in sources:
-        apparatus_of_row = _texts(file, table[sources["apparatus"]], sources["apparatus"], "apparatus")
+        apparatus_names, apparatus_codes = _labels(file, table[sources["apparatus"]], sources["apparatus"], "apparatus")
+        apparatus_of_row = True
     else:
         default = apparatus or mapping.apparatus
         if not default:
@@ -238,7 +247,7 @@ def read_monitor_table(path: str | Path, mapping: Mapping | None = None, apparat
     if apparatus_of_row is None:
         groups = [(default, rows)]
     else:
-        groups = [(name, rows[apparatus_of_row == name]) for name in sorted(set(apparatus_of_row))]
+        groups = [(name, rows[apparatus_codes == code]) for code, name in sorted(enumerate(apparatus_names), key=lambda item: item[1])]
     found: list[MonitorSeries] = []
     long_form = all(name in sources for name in ("monitor", "value"))
     if long_form:
@@ -247,27 +256,35 @@ def read_monitor_table(path: str | Path, mapping: Mapping | None = None, apparat
         extra = sorted(set(sources) - {"time", "apparatus", *_LONG})
         if extra:
             raise ContractError(file, "unexpected column in the long form (columns: time, apparatus, monitor, value, unit)", column=sources[extra[0]])
-        monitors = _texts(file, table[sources["monitor"]], sources["monitor"], "monitor name")
+        monitor_names, monitor_codes = _labels(file, table[sources["monitor"]], sources["monitor"], "monitor name")
         values, _ = _numbers(file, table[sources["value"]], sources["value"], allow_empty=False)
         unit_column = table[sources["unit"]].combine_chunks()
-        units = np.array(["" if u is None else str(u) for u in unit_column.to_pylist()], dtype=object)
+        if pa.types.is_dictionary(unit_column.type):
+            unit_column = unit_column.cast(unit_column.type.value_type)
+        encoded = pc.dictionary_encode(pc.fill_null(unit_column, ""))
+        unit_texts = [str(u) for u in encoded.dictionary.to_pylist()]
+        unit_codes = encoded.indices.to_numpy(zero_copy_only=False)
         for apparatus_name, group_rows in groups:
-            for name in sorted(set(monitors[group_rows])):
-                picked = group_rows[monitors[group_rows] == name]
-                given = sorted(set(units[picked]))
-                checked = {text: _unit(file, text, sources["unit"], int(picked[units[picked] == text][0])) for text in given}
-                unit = checked[units[picked[0]]]
+            group_monitors = monitor_codes[group_rows]
+            for code, name in sorted(enumerate(monitor_names), key=lambda item: item[1]):
+                picked = group_rows[group_monitors == code]
+                if picked.size == 0:
+                    continue
+                picked_units = unit_codes[picked]
+                given = sorted(set(np.unique(picked_units).tolist()))
+                checked = {u: _unit(file, unit_texts[u], sources["unit"], int(picked[_first(picked_units == u)])) for u in given}
+                unit = checked[int(picked_units[0])]
                 series_values = values[picked].copy()
                 if len(given) > 1:
                     from runlog.units import conversion
 
-                    for text in given:
-                        if checked[text] == unit:
+                    for u in given:
+                        if checked[u] == unit:
                             continue
-                        factors = conversion(checked[text], unit)
-                        at = units[picked] == text
+                        factors = conversion(checked[u], unit)
+                        at = picked_units == u
                         if factors is None:
-                            raise ContractError(file, f"monitor '{name}' in '{checked[text]}' and in '{unit}', which are not the same kind of quantity", column=sources["unit"], row=int(picked[at][0]))
+                            raise ContractError(file, f"monitor '{name}' in '{checked[u]}' and in '{unit}', which are not the same kind of quantity", column=sources["unit"], row=int(picked[at][0]))
                         series_values[at] = series_values[at] * factors[0] + factors[1]
                 series = MonitorSeries(apparatus_name, name, unit, time_us[picked], series_values, picked)
                 _check_duplicates(file, series, sources["time"])

@@ -20,11 +20,12 @@ import numpy as np
 from runlog.figures.base import Figure
 from runlog.store.bulk import Writer
 
-__all__ = ["store_figures", "read_site_counts", "store_site_counts", "options_text"]
+__all__ = ["store_figures", "read_shot_sums", "read_site_counts", "store_site_counts", "options_text"]
 
 _COLUMNS = (
     "run_id", "name", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version",
-    "successes", "trials", "model", "options", "analysis", "runlog_version", "computed_at",
+    "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method",
+    "counted_shots", "successes_squares", "trials_squares", "successes_trials", "model", "options", "analysis", "runlog_version", "computed_at",
 )
 
 
@@ -69,6 +70,10 @@ def store_figures(
             "method_version": figure.method_version,
             "successes": figure.successes,
             "trials": figure.trials,
+            "binomial_ci_low": figure.binomial_ci_low,
+            "binomial_ci_high": figure.binomial_ci_high,
+            "binomial_method": figure.binomial_method,
+            **_sums(figure.shot_sums),
             "model": model,
             "options": options_text(merged),
             "analysis": analysis,
@@ -82,6 +87,26 @@ def store_figures(
         writer.execute(f"INSERT INTO figures ({names}, record_id) VALUES ({values}, :record_id)", {**row, "record_id": record_id})
         records.append(record_id)
     return records
+
+
+def _sums(sums: object | None) -> dict[str, object]:
+    if sums is None:
+        return {"counted_shots": None, "successes_squares": None, "trials_squares": None, "successes_trials": None}
+    return {"counted_shots": sums.shots, "successes_squares": sums.successes_squares, "trials_squares": sums.trials_squares, "successes_trials": sums.successes_trials}
+
+
+def read_shot_sums(writer: Writer, run_id: int, name: str):
+    """The stored sums over shots of the run version's counting figure ``name``, or None."""
+    from runlog.figures.shot_level import ShotSums
+
+    rows = writer.rows(
+        "SELECT counted_shots, successes, trials, successes_squares, trials_squares, successes_trials FROM figures WHERE run_id = :r AND name = :n",
+        {"r": run_id, "n": name},
+    )
+    if not rows or rows[0][0] is None:
+        return None
+    shots, successes, trials, y2, x2, xy = rows[0]
+    return ShotSums(int(shots), int(successes), int(trials), float(y2), float(x2), float(xy))
 
 
 def _model(kind: str, options: Mapping[str, object]) -> str:

@@ -22,10 +22,13 @@ DEFAULT_TIMEZONE = "UTC"
 
 _AGGREGATE = """
 INSERT INTO daily_rollups (apparatus_id, day, sequence, name, unit, runs, shots, successes, trials,
+                           counted_shots, successes_squares, trials_squares, successes_trials,
                            value_count, value_sum, value_square_sum, weight_sum, weighted_value_sum,
                            weighted_square_sum)
 SELECT r.apparatus_id, r.day, r.sequence, f.name, MAX(f.unit), COUNT(*), SUM(r.shot_count),
-       SUM(f.successes), SUM(f.trials), COUNT(f.value), SUM(f.value), SUM(f.value * f.value),
+       SUM(f.successes), SUM(f.trials),
+       SUM(f.counted_shots), SUM(f.successes_squares), SUM(f.trials_squares), SUM(f.successes_trials),
+       COUNT(f.value), SUM(f.value), SUM(f.value * f.value),
        SUM(CASE WHEN f.stderr > 0 THEN 1.0 / (f.stderr * f.stderr) END),
        SUM(CASE WHEN f.stderr > 0 THEN f.value / (f.stderr * f.stderr) END),
        SUM(CASE WHEN f.stderr > 0 THEN f.value * f.value / (f.stderr * f.stderr) END)

@@ -81,7 +81,7 @@ __all__ = [
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0007"
+SCHEMA_REVISION = "0009"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -180,6 +180,9 @@ class Run(Base):
     started: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     finished: Mapped[dt.datetime] = mapped_column(UTCDateTime())
     shot_count: Mapped[int] = mapped_column(Integer, default=0)
+    # Shots left out of every figure, rollup and drift point because their status is not
+    # one that counts ([figures] counting_status in runlog.toml; default 'ok').
+    excluded_shots: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
     # The lab day the run started on, in the catalogue's lab time zone (settings).
     day: Mapped[dt.date | None] = mapped_column(Date)
     operator: Mapped[str | None] = mapped_column(String(200))
@@ -338,6 +341,16 @@ class _FigureColumns:
     # Counting figures keep their counts, so days and filters can pool them exactly.
     successes: Mapped[int | None] = mapped_column(BigInteger)
     trials: Mapped[int | None] = mapped_column(BigInteger)
+    # Counting figures: ci_low/ci_high are shot-level (runlog.figures.shot_level); the
+    # pooled binomial interval and its method stay beside them, and the sums over shots
+    # the shot-level interval is made of are kept so that days can pool them too.
+    binomial_ci_low: Mapped[float | None] = mapped_column(Float)
+    binomial_ci_high: Mapped[float | None] = mapped_column(Float)
+    binomial_method: Mapped[str | None] = mapped_column(String(100))
+    counted_shots: Mapped[int | None] = mapped_column(BigInteger)
+    successes_squares: Mapped[float | None] = mapped_column(Float)
+    trials_squares: Mapped[float | None] = mapped_column(Float)
+    successes_trials: Mapped[float | None] = mapped_column(Float)
     # The model and options (a JSON object: envelope, x, y, image, interval ...) it was
     # computed with, the analysis version of its run version, and runlog's version.
     model: Mapped[str | None] = mapped_column(String(100))
@@ -415,6 +428,11 @@ class DailyRollup(Base):
     shots: Mapped[int] = mapped_column(BigInteger)
     successes: Mapped[int | None] = mapped_column(BigInteger)
     trials: Mapped[int | None] = mapped_column(BigInteger)
+    # The day's sums over shots of counting figures (runlog.figures.shot_level.ShotSums).
+    counted_shots: Mapped[int | None] = mapped_column(BigInteger)
+    successes_squares: Mapped[float | None] = mapped_column(Float)
+    trials_squares: Mapped[float | None] = mapped_column(Float)
+    successes_trials: Mapped[float | None] = mapped_column(Float)
     value_count: Mapped[int] = mapped_column(Integer)
     value_sum: Mapped[float] = mapped_column(Float)
     value_square_sum: Mapped[float] = mapped_column(Float)

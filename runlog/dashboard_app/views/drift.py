@@ -27,7 +27,8 @@ if not names:
     st.stop()
 
 top = st.columns([1, 3])
-apparatus = top[0].selectbox("apparatus", names, key="drift-apparatus")
+asked = st.query_params.get("apparatus")  # a card on the overview links here
+apparatus = top[0].selectbox("apparatus", names, index=names.index(asked) if asked in names else 0, key="drift-apparatus")
 stored = common.figure_names(url, apparatus)
 quantities = top[1].multiselect(
     "quantities",
@@ -65,9 +66,42 @@ if filtered_by:
         ranges.append((name, float(picked[0]), float(picked[1])))
     st.caption("A run counts when its constant value lies in the range, or its whole scanned range does.")
 
-charts_column, causes_column = st.columns([4, 3], gap="large")
 all_changes: list[tuple[str, str, float, float]] = []
-with charts_column:
+
+
+def explain(quantity: str, moments: list[tuple[str, str, float, float]]) -> None:
+    """Under the chart: what may explain a change, notes of the day and the day before
+    first, then the suspects in plain words, then the verdict. Read only when asked: the
+    suspects read six lab days of runs and would hold up the first drawing of the charts."""
+    picked = st.selectbox(
+        f"what may explain a change of {common.label(quantity)}",
+        moments,
+        index=None,
+        placeholder=f"choose one of {len(moments)} day{'s' if len(moments) > 1 else ''}",
+        format_func=lambda c: f"{common.label(c[0])} on {c[1]}" + ("" if math.isnan(c[2]) else f": {c[2]:.4g} → {c[3]:.4g}") + ("" if not math.isnan(c[2]) else ": out of control"),
+        key=f"drift-change-{apparatus}-{quantity}",
+    )
+    if picked is None:
+        return
+    found = common.suspects(url, quantity, pd.Timestamp(picked[1]).date(), apparatus)
+    for note in found["notes"]:
+        st.info(f"**{note['kind']}** {note['day']}" + (f" · run {note['run']}" if note.get("run") else "") + f": {note['text']}")
+    causes = pd.DataFrame(found["causes"], columns=["name", "kind", "words", "standardised_change", "q_value", "setting_changed"])
+    if not causes.empty:
+        st.dataframe(
+            pd.DataFrame({"what moved": causes["words"], "candidate": [common.label(n) for n in causes["name"]], "standard errors": causes["standardised_change"], "BH q": causes["q_value"]}),
+            hide_index=True,
+            key=f"drift-suspects-{quantity}",
+            column_config={
+                "what moved": st.column_config.TextColumn(width="large"),
+                "standard errors": st.column_config.NumberColumn(format="%+.1f", width="small"),
+                "BH q": st.column_config.NumberColumn(format="%.2g", width="small"),
+            },
+        )
+    st.markdown(f"*{found['verdict']}*")
+    st.caption("Notes of the day and the day before first. Then the runs of the three lab days before against the day and the two after: setting changes first, then each candidate by how many of its own standard errors it moved; q: Benjamini & Hochberg (1995) corrected. It points at likely causes, it proves none.")
+
+if True:  # one column: what may explain a change sits under its own chart
     if not quantities:
         st.info("Choose one or more quantities.")
     for quantity in quantities:
@@ -91,47 +125,9 @@ with charts_column:
             steady = common.stability(url, quantity, apparatus, view["series"]["key"])
             st.caption(f"stability: {steady['words']} (Allan deviation over the series' runs)")
         st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}.")
-        all_changes += [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
+        moments = [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
+        moments += [(quantity, e["date"], math.nan, math.nan) for e in view["excursions"] if e["date"] not in {m[1] for m in moments}]
+        all_changes += moments
+        if moments:
+            explain(quantity, sorted(moments, key=lambda m: m[1]))
 
-with causes_column:
-    st.markdown("#### What else changed")
-    if not all_changes:
-        st.info("No change in level among these panels. A detected change lists here the parameters, measurements and figures that moved with it.")
-    else:
-        # Nothing is ranked until a change is chosen: the ranking reads the shots of six
-        # lab days and would hold up the first drawing of the charts.
-        picked = st.selectbox(
-            "change",
-            all_changes,
-            index=None,
-            placeholder=f"choose one of {len(all_changes)} change{'s' if len(all_changes) > 1 else ''} in level",
-            format_func=lambda c: f"{common.label(c[0])} on {c[1]}: {c[2]:.4g} → {c[3]:.4g}",
-            key=f"drift-change-{apparatus}",
-        )
-        ranked = None if picked is None else common.what_else_changed(url, picked[0], pd.Timestamp(picked[1]).date(), apparatus)
-        if ranked is None:
-            pass
-        elif ranked.empty:
-            st.info("Nothing to compare on both sides of this day.")
-        else:
-            ranked = pd.DataFrame(
-                {
-                    "candidate": [common.label(n) for n in ranked["name"]],
-                    "standard errors": ranked["standardised_change"],
-                    "BH q": ranked["q_value"],
-                    "before → after": [f"{b:.4g} → {a:.4g}" for b, a in zip(ranked["before_mean"], ranked["after_mean"])],
-                    "n": [f"{b} / {a}" for b, a in zip(ranked["n_before"], ranked["n_after"])],
-                }
-            )
-            st.dataframe(
-                ranked,
-                hide_index=True,
-                key="drift-causes",
-                column_config={
-                    "candidate": st.column_config.TextColumn(width="medium"),
-                    "standard errors": st.column_config.NumberColumn(format="%+.1f", width="small"),
-                    "BH q": st.column_config.NumberColumn(format="%.2g", width="small"),
-                    "n": st.column_config.TextColumn(width="small"),
-                },
-            )
-        st.caption("Runs of the three lab days before the change against the day and the two after, on all runs of the apparatus; setting changes first, then ranked by how many of its own standard errors each moved; q: Benjamini-Hochberg (1995) corrected. It points at likely causes, it proves none.")

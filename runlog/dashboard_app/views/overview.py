@@ -1,4 +1,4 @@
-"""Overview: per apparatus, its latest lab day; the open alarms; what ingest did last."""
+"""Overview: per apparatus, each headline figure of its reference series against its baseline on the latest lab day; the open alarms; what ingest did last."""
 
 from __future__ import annotations
 
@@ -9,6 +9,7 @@ import pandas as pd
 import streamlit as st
 
 from runlog.dashboard_app import common
+from runlog.errors import RunlogError
 from runlog.times import shift_day
 
 url = common.catalogue_url()
@@ -19,28 +20,39 @@ st.caption(f"{held['apparatus']} apparatus · {held['runs']:,} runs · {held['sh
 
 # --- per apparatus: the latest lab day ---------------------------------------------------
 
+latest_anywhere = max((common.lab_days(url, name)[0] for name in common.apparatus_names(url)), default=None)
 for apparatus in common.apparatus_names(url):
     day = common.lab_days(url, apparatus)[0]
     stored = common.figure_names(url, apparatus)
     st.subheader(f"{apparatus} · lab day {day:%a %d %b %Y}", anchor=False)
+    if latest_anywhere is not None and day < latest_anywhere:
+        st.warning(f"{apparatus} sent nothing since {day:%d %b %Y}: its latest data is {(latest_anywhere - day).days} lab day(s) older than the catalogue's latest day ({latest_anywhere:%d %b}).")
     shown = [name for name in common.HEADLINE if name in stored]
     for column, name in zip(st.columns(max(1, len(shown))), shown):
-        # The day's value is the drift page's daily point: pooled counts or weighted mean.
-        view = common.drift_view(url, name, apparatus, since=shift_day(day, -14), until=day)
-        points = view["points"]
-        today = points[points["day"] == day.isoformat()]
-        if today.empty:
-            column.metric(common.label(name), "–", help=f"no {common.label(name)} on this lab day", border=True)
+        # Each card: the reference series' point of the day against its baseline, never
+        # against the previous day; its state, its size in unit and in standard errors.
+        try:
+            found = common.standing(url, name, apparatus, day)
+        except RunlogError as error:
+            column.metric(common.label(name), "–", help=str(error), border=True)
             continue
-        row = today.iloc[-1]
-        earlier = points[points["day"] < day.isoformat()]
-        unit = common.unit_text(view["unit"])
-        value, _, error = common.with_uncertainty(row["value"], row["stderr"]).partition(" ± ")
-        decimals = len(value.partition(".")[2])  # the change to the value's own decimal place
-        delta = None if earlier.empty else f"{row['value'] - earlier.iloc[-1]['value']:+.{decimals}f} {unit} since {earlier.iloc[-1]['day'][5:]}".replace("  ", " ")
+        chart_link = f"[chart](drift?apparatus={apparatus})"
+        if found["state"] == "no data" or found.get("date") != day.isoformat():
+            with column.container(border=True):
+                st.metric(common.label(name), "–", help=f"no {common.label(name)} of its reference series on this lab day", border=False)
+                latest = f"latest {found['date']}" if found.get("date") else "no data yet"
+                st.caption(f"{latest} · {chart_link}")
+            continue
+        unit = common.unit_text(found["unit"])
+        value, _, error = common.with_uncertainty(found["value"], found["stderr"]).partition(" ± ")
         with column.container(border=True):
-            st.metric(common.label(name), f"{value} {unit}".strip(), delta=delta, delta_color="off", help="The day's value as on the drift page: pooled counts, or the weighted mean of the runs. The change is against the previous lab day with data.")
-            st.caption(f"± {error or '–'} · 95 % [{row['ci_low']:.4g}, {row['ci_high']:.4g}] · {int(row['runs'])} run{'s' if int(row['runs']) != 1 else ''}")
+            st.metric(common.label(name), f"{value} {unit}".strip(), help="The reference series' value of the day (pooled counts, or the weighted mean of its runs), judged against its baseline of in-control days.")
+            colour = {"in limits": "green", "changed": "red", "drifting": "orange"}.get(found["state"], "gray")
+            size = "" if found.get("size") is None else f" · {found['size']:+.3g} {unit} ({found['z']:+.1f} standard errors) from baseline {found['centre']:.4g}".replace("  ", " ")
+            st.markdown(f":{colour}[**{found['state']}**]" + (f" since {found['since']}" if found.get("since") else "") + size)
+            alarm_link = f" · [alarm #{found['alarm']}](annotate)" if found.get("alarm") else ""
+            series = found["series"]["label"] if found.get("series") else ""
+            st.caption(f"± {error or '–'} · 95 % [{found['ci_low']:.4g}, {found['ci_high']:.4g}] · {chart_link}{alarm_link} · series {series}")
 
     runs = common.runs_table(url, apparatus)
     runs = runs[runs["day"] == day].sort_values("started")

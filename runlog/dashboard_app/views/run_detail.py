@@ -50,6 +50,7 @@ span = common.wall_clock(pd.Series([info.started, info.finished]), zone).str.rep
 st.subheader(f"{info.run} · {info.sequence} on {info.apparatus}", anchor=False)
 st.caption(
     f"{info.shots} shots, {span[0]} to {span[1][11:]} ({zone})"
+    + (f" · {info.excluded_shots} left out of the figures by their status" if info.excluded_shots else "")
     + (f" · operator {info.operator}" if info.operator else "")
     + (f" · tags: {', '.join(info.tags)}" if info.tags else "")
 )

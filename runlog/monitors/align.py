@@ -1,0 +1,55 @@
+"""Monitors at the shots' times: the as-of value of a monitor at given instants.
+
+The value of a monitor at time t is its last logged value at or before t, provided it was
+logged at most ``max_gap`` before t (default :data:`MAX_GAP_SECONDS`); otherwise there is
+none (NaN). This is a backward as-of join (the semantics of ``pandas.merge_asof`` with
+``direction="backward"`` and ``tolerance=max_gap``, which the tests compare against): a
+logger's value holds until the next one, and a logger that stopped is not extrapolated.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import numpy as np
+from sqlalchemy import text
+from sqlalchemy.engine import Connection
+
+from runlog.store.rollups import as_datetime
+from runlog.store.schema import to_epoch_us
+
+__all__ = ["MAX_GAP_SECONDS", "values_between", "value_at"]
+
+#: The default longest time a logged value stands for (10 minutes).
+MAX_GAP_SECONDS = 600.0
+
+
+def _utc(us: int) -> dt.datetime:
+    return dt.datetime(1970, 1, 1, tzinfo=dt.timezone.utc) + dt.timedelta(microseconds=int(us))
+
+
+def values_between(connection: Connection, monitor_id: int, first_us: int, last_us: int) -> tuple[np.ndarray, np.ndarray]:
+    """(times in integer microseconds, values) of one monitor in [first, last], in time order."""
+    rows = connection.execute(
+        text("SELECT time, value FROM monitor_values WHERE monitor_id = :m AND time >= :a AND time <= :b ORDER BY time"),
+        {"m": monitor_id, "a": _utc(first_us) if connection.dialect.name != "sqlite" else int(first_us), "b": _utc(last_us) if connection.dialect.name != "sqlite" else int(last_us)},
+    ).all()
+    if not rows:
+        return np.array([], dtype=np.int64), np.array([], dtype=float)
+    times = np.array([t if isinstance(t, (int, np.integer)) else to_epoch_us(as_datetime(t)) for t, _ in rows], dtype=np.int64)
+    return times, np.array([v for _, v in rows], dtype=float)
+
+
+def value_at(times_us: np.ndarray, logged_us: np.ndarray, logged_values: np.ndarray, max_gap_seconds: float = MAX_GAP_SECONDS) -> np.ndarray:
+    """The as-of value (see the module notes) at each of ``times_us`` from one monitor's
+    logged times (sorted) and values; NaN where none was logged within ``max_gap``."""
+    times_us = np.asarray(times_us, dtype=np.int64)
+    out = np.full(times_us.shape, np.nan)
+    if logged_us.size == 0:
+        return out
+    index = np.searchsorted(logged_us, times_us, side="right") - 1
+    found = index >= 0
+    gap = np.where(found, times_us - logged_us[np.clip(index, 0, None)], np.iinfo(np.int64).max)
+    ok = found & (gap <= int(max_gap_seconds * 1e6))
+    out[ok] = logged_values[index[ok]]
+    return out
