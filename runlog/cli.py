@@ -601,7 +601,7 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
 @click.option("--kind", default=None, metavar="KIND", help="counting, fringe, coherence, spreading, sorting, correlator, rabi, spectroscopy, echo, t1, lifetime, detection, release_recapture or two_atom.")
 @click.option("--x", "x", default=None, metavar="PARAMETER", help="The scanned parameter (default: the only suitable one).")
 @click.option("--y", "y", default=None, metavar="MEASUREMENT", help="The measurement; correlator: q1,q2,q3 or a,b (default: the only one).")
-@click.option("--envelope", type=click.Choice(["gaussian", "exponential"]), default="gaussian", show_default=True, help="Coherence decay shape.")
+@click.option("--envelope", type=click.Choice(["gaussian", "exponential", "thermal"]), default="gaussian", show_default=True, help="Coherence decay shape (thermal: trapped atoms, docs/figures.md).")
 @click.option("--target", default=None, metavar="SITES", help="Sorting target: site indices like 0,1,2,5, or a parameter holding them.")
 @click.option("--image", default=None, help="Occupancy image for spreading and sorting (default: the last).")
 @click.option("--model", default=None, help="The model of a kind that has several: spectroscopy lorentzian|rabi, rabi oscillation|lineshape, lifetime single|two-body, detection poisson|gaussian.")

@@ -252,7 +252,7 @@ def check_apparatus_settings(tables: object, source: str = "<apparatus>") -> dic
 # The figure kinds a rule may name: those of runlog.derive.KINDS, which sits above this
 # module and so cannot be imported here; tests/test_derive.py keeps the two equal.
 _RULE_KINDS = ("coherence", "correlator", "counting", "detection", "echo", "fringe", "lifetime", "rabi", "release_recapture", "sorting", "spectroscopy", "spreading", "t1", "two_atom")
-_RULE_ENVELOPES = ("gaussian", "exponential")
+_RULE_ENVELOPES = ("gaussian", "exponential", "thermal")
 _RULE_TEXT_KEYS = ("sequence", "kind", "x", "y", "envelope", "apparatus", "image", "model", "pulse", "reference")
 # Kind-specific settings (docs/figures.md): numbers, or texts naming a parameter or a quantity.
 _RULE_SETTING_KEYS = ("stretch", "threshold", "depth", "waist", "mass", "wavelength", "gravity")

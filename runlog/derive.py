@@ -1038,7 +1038,7 @@ def fit_curve(
     apparatus: str | None = None,
     x: str | None = None,
     y: str | None = None,
-    envelope: str = "gaussian",
+    envelope: str | None = None,
     points: int = 400,
 ) -> FitCurve:
     """The stored fringe or Ramsey fit of ``run`` evaluated over its scan, with its shots.
@@ -1046,8 +1046,8 @@ def fit_curve(
     The kind follows from the stored figures: ``contrast``/``phase``/``offset`` draw the
     fringe ``y = a (1 + C cos(x + phi))``; ``t2_star``/``ramsey_contrast``/
     ``ramsey_frequency``/``ramsey_phase`` the Ramsey fringe ``y = a (1 + C0 E(t) cos(2 pi delta t + phi))``.
-    ``x`` and ``y`` default as in :func:`derive`. The envelope shape of a Ramsey fit is not
-    stored, so ``envelope`` names it (the rules' default is ``"gaussian"``).
+    ``x``, ``y`` and the Ramsey ``envelope`` default to those the stored fit was made with
+    (its figure record's options), else as in :func:`derive` (envelope ``"gaussian"``).
 
     The Ramsey offset ``a`` is not stored either. The model is linear in ``a``, so for the
     stored ``C0, T, delta, phi`` the least-squares ``a`` has the closed form
@@ -1056,10 +1056,14 @@ def fit_curve(
 
     Raises :class:`FitError` when the run has neither fit stored.
     """
-    if envelope not in ENVELOPES:
-        raise NotFoundError("envelope", envelope, "known: " + ", ".join(ENVELOPES))
     info = catalogue.run(run, apparatus=apparatus)
     figures = info.figures
+    made_with = _stored_options(catalogue, info)
+    x = x or made_with.get("x")
+    y = y or made_with.get("y")
+    envelope = envelope or made_with.get("envelope") or "gaussian"
+    if envelope not in ENVELOPES:
+        raise NotFoundError("envelope", envelope, "known: " + ", ".join(ENVELOPES))
     kind = next((k for k, names in _CURVE_FIGURES.items() if all(n in figures for n in names)), None)
     if kind is None:
         health = next((k for k, marker in _HEALTH_CURVES.items() if marker in figures), None)
@@ -1107,9 +1111,17 @@ def fit_curve(
 
     g = shape_only(shots_x)
     offset = float(np.dot(shots_y, g) / np.dot(g, g))
-    decay = "exp(-(t/T)²)" if envelope == "gaussian" else "exp(-t/T)"
+    decay = {"gaussian": "exp(-(t/T)²)", "exponential": "exp(-t/T)", "thermal": "(1 + 0.95 (t/T)²)^(-3/2)"}[envelope]
     formula = f"y = a (1 + C0 E(t) cos(2π δ t + φ)), E(t) = {decay}"
     return FitCurve(info.run, kind, formula, x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, offset * shape_only(grid), offset, True)
+
+
+def _stored_options(catalogue: Catalogue, info: RunInfo) -> dict[str, object]:
+    """The options (x, y, envelope ...) the run's stored fringe or Ramsey fit was made with."""
+    for record in catalogue.figure_history(info.run, apparatus=info.apparatus):
+        if record.get("in_force") and record.get("figure") in ("t2_star", "fringe_phase", "envelope_time"):
+            return {k: v for k, v in dict(record.get("options") or {}).items() if isinstance(v, str)}
+    return {}
 
 
 #: The figure that marks each health kind's stored fit.

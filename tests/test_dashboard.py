@@ -294,12 +294,11 @@ def test_drift_page_follows_its_widgets(lab):
     at.multiselect(key="drift-quantities-tweezer-west").set_value(["contrast"]).run()
     (only,) = charts(at)
     assert only["spec"]["title"]["text"] == "contrast: tweezer-west"
-    # A name stored in two units (fringe phase in deg, Ramsey phase in rad) is flagged.
-    assert "phase [deg, rad]" in at.multiselect(key="drift-quantities-tweezer-west").options
+    # Fringe phase (deg) and Ramsey phase (rad) are two names now (migration 0007), each in one unit.
+    offered = at.multiselect(key="drift-quantities-tweezer-west").options
+    assert "fringe phase [deg]" in offered and "ramsey phase [rad]" in offered
     at.multiselect(key="drift-quantities-tweezer-west").set_value(["fringe_phase"]).run()
-    assert at.warning[0].value.startswith("phase is stored in several units: deg (phase-scan); rad (ramsey).")
-    at.selectbox(key="drift-sequence-tweezer-west").set_value("ramsey").run()
-    assert not at.warning and charts(at)[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "phase [rad]"
+    assert not at.warning and charts(at)[0]["spec"]["layer"][-1]["encoding"]["y"]["title"] == "fringe phase [deg]"
 
 
 # --- run detail -----------------------------------------------------------------------------
@@ -373,7 +372,11 @@ def test_fit_curve_of_a_ramsey_run_matches_a_full_refit(recent):
     def ramsey(t, a, c0, lifetime, delta, phi):
         return a * (1 + c0 * np.exp(-((t / lifetime) ** 2)) * np.cos(2 * np.pi * delta * t + phi))
 
-    start_values = [curve.offset] + [figures[n]["value"] for n in ("ramsey_contrast", "t2_star", "ramsey_frequency", "ramsey_phase")]
+    from runlog.units import convert
+
+    # ramsey_frequency is stored in the programmed detuning's unit (kHz); the model takes MHz for waits in us.
+    frequency = float(convert(np.asarray([figures["ramsey_frequency"]["value"]]), figures["ramsey_frequency"]["unit"], "MHz")[0])
+    start_values = [curve.offset, figures["ramsey_contrast"]["value"], figures["t2_star"]["value"], frequency, figures["ramsey_phase"]["value"]]
     refit, _ = curve_fit(ramsey, curve.x, curve.y, p0=start_values)
     assert curve.offset == pytest.approx(refit[0], rel=1e-6)
     np.testing.assert_allclose(refit[1:], start_values[1:], rtol=1e-4)

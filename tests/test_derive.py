@@ -491,7 +491,7 @@ def test_derive_command_prints_figures_within_80_columns(catalogue, make_file, d
     assert max(map(len, lines)) <= 80
     as_json = json.loads(invoke("--db", db_url, "derive", "fringe1", "--kind", "fringe", "--y", "bright_fraction", "--json").stdout)
     assert as_json["run"] == "fringe1" and as_json["kind"] == "fringe"
-    assert set(as_json["figures"]["fringe_phase"]) == {"value", "unit", "stderr", "method"}
+    assert set(as_json["figures"]["fringe_phase"]) == {"value", "unit", "stderr", "ci_low", "ci_high", "method"}
     help_text = invoke("derive", "--help").stdout
     assert all(kind in help_text for kind in KINDS)
     assert invoke("--db", db_url, "derive", "fringe1").exit_code == 2  # no --kind: usage error

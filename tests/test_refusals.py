@@ -408,7 +408,7 @@ def test_runlog_toml_that_is_not_toml_raises_config_error_with_its_message(catal
 @pytest.mark.parametrize(
     ("text", "reason"),
     [
-        ('[colums]\nseq_id = "run"\n', "unknown section [colums] (known: apparatus, columns, defaults, figures, monitors, occupancy, reference, rules, time_window, units)"),
+        ('[colums]\nseq_id = "run"\n', "unknown section [colums] (known: apparatus, columns, defaults, figures, image_roles, monitors, occupancy, reference, rules, time_window, units)"),
         ('[columns]\nignore = "comment"\n', "[columns] ignore must be a list of column names"),
         ("[columns]\nseq_id = 3\n", "[columns] 'seq_id' must map to a contract column name"),
         ("[occupancy]\nshape = [10, 0]\n", "[occupancy] shape must be a list of positive integers"),

@@ -424,7 +424,7 @@ def site_map(url: str, run: str, apparatus: str, name: str) -> pd.DataFrame:
 
 
 @_cached
-def fit_curve(url: str, run: str, apparatus: str, x: str | None, y: str | None, envelope: str = "gaussian"):
+def fit_curve(url: str, run: str, apparatus: str, x: str | None, y: str | None, envelope: str | None = None):
     from runlog.derive import fit_curve as curve_of
 
     return curve_of(catalogue(url), run, apparatus=apparatus, x=x, y=y, envelope=envelope)

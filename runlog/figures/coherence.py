@@ -45,7 +45,7 @@ from scipy.signal import lombscargle
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit, scan_points
+from runlog.figures.fitting import least_squares_fit, scan_points, with_t_intervals
 
 __all__ = ["ENVELOPES", "fit_envelope", "fit_ramsey", "frequency_unit"]
 
@@ -56,9 +56,17 @@ _PEAKS = 3  # periodogram peaks tried as starting detunings
 _OVERSAMPLING = 10  # periodogram points per 1/span
 _LIFETIMES = (0.25, 0.5, 1.0, 2.0, 4.0)  # starting coherence times, in units of the scan span
 
+#: The thermal envelope of atoms in a trap whose differential light shift follows their
+#: energy: a Boltzmann distribution of energies gives C(t) = C0 [1 + 0.95 (t/T2*)^2]^(-3/2)
+#: (S. Kuhr et al., "Analysis of dephasing mechanisms in a standing-wave dipole trap",
+#: Phys. Rev. A 72, 023406 (2005), the Ramsey envelope alpha(t) [memory for the equation's
+#: number]; 0.95 makes T2* the 1/e time of the envelope).
+_THERMAL = 0.95
+
 ENVELOPES: dict[str, Callable[[np.ndarray, float], np.ndarray]] = {
     "gaussian": lambda t, lifetime: np.exp(-((t / lifetime) ** 2)),
     "exponential": lambda t, lifetime: np.exp(-t / lifetime),
+    "thermal": lambda t, lifetime: (1.0 + _THERMAL * (t / lifetime) ** 2) ** -1.5,
 }
 
 # The reciprocal of a time unit as a frequency unit pint understands by name.
@@ -133,12 +141,12 @@ def fit_ramsey(
     _require_resolved("ramsey", "contrast at zero wait", c0, c0_err, "")
 
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
-    return [
+    return with_t_intervals([
         Figure("t2_star", lifetime, wait_unit, stderr=lifetime_err, **common),
         Figure("ramsey_contrast", c0, "", stderr=c0_err, **common),
         Figure("ramsey_frequency", delta, frequency_unit(wait_unit), stderr=delta_err, **common),
         Figure("ramsey_phase", _wrap(phi), "rad", stderr=phi_err, **common),
-    ]
+    ], best.dof)
 
 
 def fit_envelope(
@@ -171,6 +179,8 @@ def fit_envelope(
     abscissa = t**power
 
     def model(times: np.ndarray, c0: float, rate: float) -> np.ndarray:
+        if envelope == "thermal":  # rate = 1/T^2; a negative rate is clipped, then refused below
+            return c0 * (1.0 + _THERMAL * np.maximum(rate, -0.99 / _THERMAL / max(float(times.max()), 1e-300)) * times) ** -1.5
         return c0 * np.exp(-rate * times)
 
     fit = least_squares_fit(
@@ -201,10 +211,10 @@ def fit_envelope(
     lifetime = rate ** (-1.0 / power)
     lifetime_err = lifetime / power * rate_err / rate  # |dT/dk| * err(k)
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
-    return [
+    return with_t_intervals([
         Figure("envelope_time", lifetime, wait_unit, stderr=lifetime_err, **common),
         Figure("envelope_contrast", c0, "", stderr=c0_err, **common),
-    ]
+    ], fit.dof)
 
 
 def _envelope(name: str) -> Callable[[np.ndarray, float], np.ndarray]:

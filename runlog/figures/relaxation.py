@@ -46,7 +46,7 @@ import numpy as np
 from runlog.errors import FitError
 from runlog.figures.base import Figure
 from runlog.figures.coherence import _arrays  # the same checks of a wait scan
-from runlog.figures.fitting import FitResult, least_squares_fit
+from runlog.figures.fitting import FitResult, least_squares_fit, with_t_intervals
 
 __all__ = ["echo_model", "fit_echo", "fit_relaxation", "fit_t1", "relaxation_model", "time_from_rate"]
 
@@ -151,7 +151,7 @@ def fit_echo(
     ]
     if stretch is None:
         figures.insert(1, Figure("stretch", fit.value("stretch"), "", stderr=fit.error("stretch"), **common))
-    return figures
+    return with_t_intervals(figures, fit.dof)
 
 
 def fit_relaxation(
@@ -206,7 +206,7 @@ def fit_t1(
     if reference is None or not np.any(reference):
         fit = fit_relaxation(t, values, kind=kind)
         t1, t1_err = time_from_rate(fit.value("rate"), fit.error("rate"), kind, "population")
-        return [Figure("t1", t1, wait_unit, stderr=t1_err, **common)]
+        return with_t_intervals([Figure("t1", t1, wait_unit, stderr=t1_err, **common)], fit.dof)
     flags = np.asarray(reference, dtype=bool).ravel()
     if flags.shape != t.shape:
         raise ValueError("reference and wait differ in length")
@@ -233,5 +233,5 @@ def fit_t1(
     if loss > _MIN_SIGNIFICANCE * loss_err:
         lifetime, lifetime_err = time_from_rate(loss, loss_err, kind, "atom survival")
         figures.append(Figure("loss_lifetime", lifetime, wait_unit, stderr=lifetime_err, method="least-squares/loss-corrected", method_version=_METHOD_VERSION))
-    return figures
+    return with_t_intervals(figures, fit.dof)
 

@@ -104,9 +104,10 @@ if {"contrast", "offset"} <= set(info.figures) or {"t2_star", "ramsey_frequency"
     # The signal a fringe is fitted to is a fraction; offer that one first.
     preferred = next((i for i, n in enumerate(measured) if "fraction" in n), 0)
     y = next(slots).selectbox("y (measurement)", measured, index=preferred, key="run-fit-y")
-    envelope = "gaussian"
+    envelope = None
     if "t2_star" in info.figures:
-        envelope = next(slots).selectbox("envelope", ["gaussian", "exponential"], key="run-fit-envelope", help="The stored figures do not say which envelope the fit used; the rules default to gaussian.")
+        chosen = next(slots).selectbox("envelope", ["as fitted", "gaussian", "exponential", "thermal"], key="run-fit-envelope", help="The envelope the stored fit was made with, or another one to compare.")
+        envelope = None if chosen == "as fitted" else chosen
     try:
         curve = common.fit_curve(url, info.run, info.apparatus, x, y, envelope)
     except RunlogError as error:
