@@ -1130,15 +1130,20 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             _unchanged_since(path, before)
             log_id = _log(engine, result, sha, size, started, read_s, write_s, writer)
             _record_files(writer, plan, int(log_id), first_id)
-            if os.environ.get("RUNLOG_TEST_PAUSE_BEFORE_COMMIT"):
-                # Lets the crash test kill the process with the transaction still open.
-                time.sleep(float(os.environ["RUNLOG_TEST_PAUSE_BEFORE_COMMIT"]))
-            writer.commit()
+            commit_file(writer)
             return result
         finally:
             writer.close()
     except Exception as error:  # noqa: BLE001 - any failure of one file is that file's refusal
         return record_refusal(engine, name, error, sha, size, started, read_s, write_s)
+
+
+def commit_file(writer) -> None:
+    """Commit one file's write transaction (shots or monitor values)."""
+    if os.environ.get("RUNLOG_TEST_PAUSE_BEFORE_COMMIT"):
+        # Lets the crash tests kill the process with the transaction still open.
+        time.sleep(float(os.environ["RUNLOG_TEST_PAUSE_BEFORE_COMMIT"]))
+    writer.commit()
 
 
 def record_refusal(engine: Engine, name: str, error: Exception, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float) -> IngestResult:

@@ -10,7 +10,6 @@ first one it was ingested in), converted through :mod:`runlog.units`. The rollup
 from __future__ import annotations
 
 import datetime as dt
-import os
 import time
 from pathlib import Path
 
@@ -20,7 +19,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
 from runlog.errors import ContractError
-from runlog.ingest import IngestResult, _Catalogue, _log, _months, _times, _unchanged_since, hash_file, record_refusal
+from runlog.ingest import IngestResult, _Catalogue, _log, _months, _times, _unchanged_since, commit_file, hash_file, record_refusal
 from runlog.monitors.contract import MonitorSeries, read_monitor_table
 from runlog.monitors.rollups import store_rollups, summarise
 from runlog.store.bulk import Writer, open_writer
@@ -119,10 +118,7 @@ def ingest_monitor_file(engine: Engine, path: Path, mapping: Mapping | None = No
             log_id = _log(engine, result, sha, size, started, read_s, write_s, writer)
             for monitor_id, count in written:
                 writer.execute("INSERT INTO monitor_files (ingest_id, monitor_id, value_count) VALUES (:i, :m, :c)", {"i": log_id, "m": monitor_id, "c": count})
-            if os.environ.get("RUNLOG_TEST_PAUSE_BEFORE_COMMIT"):
-                # Lets the crash test kill the process with the transaction still open.
-                time.sleep(float(os.environ["RUNLOG_TEST_PAUSE_BEFORE_COMMIT"]))
-            writer.commit()
+            commit_file(writer)
             return result
         finally:
             writer.close()
