@@ -715,11 +715,13 @@ class Catalogue:
 
     # --- selections and exports ---------------------------------------------------
 
-    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
-        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs."""
+    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None, monitors: Iterable[str] = ()) -> "pd.DataFrame":
+        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs.
+        ``monitors``: a column ``monitor.<name>`` each, the monitor's as-of value at the
+        shot's time (last value at or before it, at most 600 s before; docs/filters.md)."""
         from runlog.selection import select_shots
 
-        return select_shots(self, where, columns=columns, limit=limit)
+        return select_shots(self, where, columns=columns, limit=limit, monitors=tuple(monitors))
 
     def pin(self, name: str, where: str, *, author: str | None = None) -> dict[str, object]:
         """Freeze the shots ``where`` selects now, with their analysis versions and the
