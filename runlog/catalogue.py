@@ -18,7 +18,6 @@ from typing import TYPE_CHECKING
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-import numpy as np
 from sqlalchemy import and_, bindparam, func, select, text
 from sqlalchemy.engine import Engine
 
@@ -28,6 +27,7 @@ from runlog.store.engine import current_revision, make_engine, redact, resolve_u
 from runlog.times import day_start_utc
 
 if TYPE_CHECKING:
+    import numpy as np
     import pandas as pd
 
     import runlog.derive
@@ -421,6 +421,8 @@ class Catalogue:
 
         ``image`` defaults to the run's loading image.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             query = select(s.Image.id, s.Image.sites, s.Image.name).where(s.Image.run_id == found.id)
@@ -442,6 +444,8 @@ class Catalogue:
         shot index, and the threshold ingest derived the occupancy with (``None``: the file
         carried the occupancy). ``image`` defaults to the run's loading image.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             query = select(s.Image.id, s.Image.name).where(s.Image.run_id == found.id)
@@ -491,6 +495,8 @@ class Catalogue:
         """Per-site ``(successes, trials, lattice shape)`` of a run: ``fill`` (loaded shots /
         shots) or ``survival`` (survived / loaded). Divide for the map; 0 trials means never loaded.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             row = connection.execute(select(s.SiteCounts.successes, s.SiteCounts.trials).where(and_(s.SiteCounts.run_id == found.id, s.SiteCounts.name == name))).first()

@@ -66,6 +66,8 @@ def _echo(message: Any = "", **kwargs: Any) -> None:
 
 
 def _printable(text: str) -> str:
+    if text.replace("\n", "").replace("\t", "").isprintable():
+        return text  # the common case, checked in C: a long --json answer costs no loop over its characters
     return "".join(c if c.isprintable() or c in "\n\t" else repr(c)[1:-1] for c in text)
 
 
