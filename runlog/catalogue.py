@@ -65,6 +65,10 @@ class RunInfo:
     #: Shots left out of every figure because their status does not count ([figures]
     #: counting_status, default ``ok``); they stay in the run and in filters.
     excluded_shots: int = 0
+    #: Each monitor of the apparatus over the run's span, first to last shot: count,
+    #: mean, minimum, maximum, and the as-of value at the start
+    #: (:func:`runlog.monitors.align.over_span`).
+    monitors: list[dict[str, object]] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, object]:
         out = {
@@ -84,6 +88,7 @@ class RunInfo:
             "figures": self.figures,
             "analysis": self.analysis,
             "analyses": self.analyses,
+            "monitors": self.monitors,
         }
         if self.figure_history is not None:
             out["figure_history"] = self.figure_history
@@ -359,7 +364,10 @@ class Catalogue:
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
             listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
             records = _figure_records(connection, found.id) if history else None
-        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0))
+            from runlog.monitors.align import over_span
+
+            monitors = over_span(connection, found.apparatus_id, found.started, found.finished)
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0), monitors)
 
     def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.

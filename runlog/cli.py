@@ -298,6 +298,15 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         _echo("figures")
         for name, figure in info.figures.items():
             _echo("  " + _figure_line(name, figure))
+    if info.monitors:
+        _echo("monitors over the run (first to last shot)")
+        for entry in info.monitors:
+            unit = f" {_unit_text(entry['unit'])}" if entry["unit"] else ""
+            if entry["count"]:
+                _echo(f"  {entry['name']:<24} mean {entry['mean']:.6g}{unit}, {entry['minimum']:.6g} .. {entry['maximum']:.6g}, {entry['count']} values")
+            else:
+                start = f"; {entry['at_start']:.6g}{unit} at the start" if entry["at_start"] is not None else "; none within 600 s before the start"
+                _echo(f"  {entry['name']:<24} no value logged during the run{start}")
     if info.figure_history is not None:
         _echo("figure records, newest first")
         for record in info.figure_history:
