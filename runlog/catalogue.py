@@ -814,7 +814,10 @@ class Catalogue:
             baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
         thresholds = THRESHOLDS if baseline_days is None else replaced(THRESHOLDS, window=int(baseline_days))
         zone = ZoneInfo(self.lab_timezone)
-        with self.engine.connect() as connection:
+        # One snapshot for the several reads of a drift (the series' runs, then their
+        # figures): a new analysis version committed between them would leave no points.
+        options = {"isolation_level": "REPEATABLE READ"} if self.engine.dialect.name == "postgresql" else {}
+        with self.engine.connect().execution_options(**options) as connection:
             result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, series=series, pooled=pooled, since=since, until=until, baseline=baseline, parameters=parameters, thresholds=thresholds, zone=zone)
         if record_alarms and result.points and not parameters and baseline is None and since is None and until is None:
             # A writer from the start on SQLite: a deferred transaction that read first
