@@ -58,6 +58,13 @@ def test_the_fit_is_not_bounded_and_a_contrast_above_1_is_flagged():
     envelope = {f.name: f for f in fit_envelope(wait, 1.3 * np.exp(-wait / 80.0) * (1 + 0.01 * np.sin(wait)), envelope="exponential")}
     assert envelope["envelope_contrast"].value == pytest.approx(1.3, rel=0.02) and envelope["envelope_contrast"].out_of_range
     assert not envelope["envelope_time"].out_of_range
+    # A Rabi oscillation moving the whole population (C = 1; seed 1 fits 1.022).
+    from runlog.figures.rabi import fit_rabi
+
+    duration = np.tile(np.linspace(0.0, 4.0, 33), 3)
+    moved = np.random.default_rng(1).binomial(ATOMS, 0.5 * (1 - np.exp(-duration / 20) * np.cos(math.pi * duration))) / ATOMS
+    rabi = {f.name: f for f in fit_rabi(duration, moved)}
+    assert rabi["contrast"].value > 1 and rabi["contrast"].out_of_range and not rabi["rabi_frequency"].out_of_range
 
 
 def test_a_flagged_contrast_is_shown_exported_and_left_out_of_drift(catalogue, make_file, db_url, capsys, tmp_path):

@@ -2,7 +2,8 @@
 
 - ``figures.out_of_range`` / ``figure_records.out_of_range``: a fitted value outside its
   physical range, kept as fitted and left out of rollups and drift. Stored contrasts
-  (``ramsey_contrast``, ``envelope_contrast``, ``echo_contrast``, the fringe ``contrast``)
+  (``ramsey_contrast``, ``envelope_contrast``, ``echo_contrast``, the fringe and Rabi
+  ``contrast``)
   outside [0, 1] are flagged: the relative contrast of a non-negative signal cannot exceed
   1, and the shots are not read again here.
 - A Ramsey frequency stored before 0007 (``detuning``, renamed ``ramsey_frequency`` by 0007
@@ -33,7 +34,7 @@ down_revision: Union[str, None] = '0009'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 
-_CONTRASTS = "(name IN ('ramsey_contrast', 'envelope_contrast', 'echo_contrast') OR (kind = 'fringe' AND name = 'contrast'))"
+_CONTRASTS = "(name IN ('ramsey_contrast', 'envelope_contrast', 'echo_contrast') OR (kind IN ('fringe', 'rabi') AND name = 'contrast'))"
 _ROLLUP_COLUMNS = (
     ("weighted_count", sa.Integer()), ("cosine_sum", sa.Float()), ("sine_sum", sa.Float()),
     ("weighted_cosine_sum", sa.Float()), ("weighted_sine_sum", sa.Float()), ("positive_count", sa.Integer()),
