@@ -18,7 +18,6 @@ from typing import TYPE_CHECKING
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-import numpy as np
 from sqlalchemy import and_, bindparam, func, select, text
 from sqlalchemy.engine import Engine
 
@@ -28,6 +27,7 @@ from runlog.store.engine import current_revision, make_engine, redact, resolve_u
 from runlog.times import day_start_utc
 
 if TYPE_CHECKING:
+    import numpy as np
     import pandas as pd
 
     import runlog.derive
@@ -65,6 +65,10 @@ class RunInfo:
     #: Shots left out of every figure because their status does not count ([figures]
     #: counting_status, default ``ok``); they stay in the run and in filters.
     excluded_shots: int = 0
+    #: Each monitor of the apparatus over the run's span, first to last shot: count,
+    #: mean, minimum, maximum, and the as-of value at the start
+    #: (:func:`runlog.monitors.align.over_span`).
+    monitors: list[dict[str, object]] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, object]:
         out = {
@@ -84,6 +88,7 @@ class RunInfo:
             "figures": self.figures,
             "analysis": self.analysis,
             "analyses": self.analyses,
+            "monitors": self.monitors,
         }
         if self.figure_history is not None:
             out["figure_history"] = self.figure_history
@@ -361,7 +366,10 @@ class Catalogue:
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
             listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
             records = _figure_records(connection, found.id) if history else None
-        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0))
+            from runlog.monitors.align import over_span
+
+            monitors = over_span(connection, found.apparatus_id, found.started, found.finished)
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0), monitors)
 
     def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
@@ -423,6 +431,8 @@ class Catalogue:
 
         ``image`` defaults to the run's loading image.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             query = select(s.Image.id, s.Image.sites, s.Image.name).where(s.Image.run_id == found.id)
@@ -444,6 +454,8 @@ class Catalogue:
         shot index, and the threshold ingest derived the occupancy with (``None``: the file
         carried the occupancy). ``image`` defaults to the run's loading image.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             query = select(s.Image.id, s.Image.name).where(s.Image.run_id == found.id)
@@ -493,6 +505,8 @@ class Catalogue:
         """Per-site ``(successes, trials, lattice shape)`` of a run: ``fill`` (loaded shots /
         shots) or ``survival`` (survived / loaded). Divide for the map; 0 trials means never loaded.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             row = connection.execute(select(s.SiteCounts.successes, s.SiteCounts.trials).where(and_(s.SiteCounts.run_id == found.id, s.SiteCounts.name == name))).first()
@@ -717,11 +731,13 @@ class Catalogue:
 
     # --- selections and exports ---------------------------------------------------
 
-    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
-        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs."""
+    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None, monitors: Iterable[str] = ()) -> "pd.DataFrame":
+        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs.
+        ``monitors``: a column ``monitor.<name>`` each, the monitor's as-of value at the
+        shot's time (last value at or before it, at most 600 s before; docs/filters.md)."""
         from runlog.selection import select_shots
 
-        return select_shots(self, where, columns=columns, limit=limit)
+        return select_shots(self, where, columns=columns, limit=limit, monitors=tuple(monitors))
 
     def pin(self, name: str, where: str, *, author: str | None = None) -> dict[str, object]:
         """Freeze the shots ``where`` selects now, with their analysis versions and the
