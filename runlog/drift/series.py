@@ -30,7 +30,7 @@ import datetime as dt
 from dataclasses import dataclass, field
 
 import numpy as np
-from sqlalchemy import and_, exists, func, or_, select
+from sqlalchemy import and_, exists, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
