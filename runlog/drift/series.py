@@ -305,14 +305,14 @@ def _accepted_days(connection: Connection, apparatus_id: int, quantity: str, ser
     return sorted({d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in rows})
 
 
-def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None):
+def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None, period: float | None = None):
     days = [p.date for p in points]
     values = np.array([p.value for p in points])
     errors = np.array([p.stderr for p in points])
     fixed = None
     if baseline is not None:
         fixed = [baseline[0] <= d <= baseline[1] for d in days]
-    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed)
+    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed, period=period)
     sigma = judgement.sigma
     # The day limits are around the centre at +-day_limit of each day's own sigma; the
     # EWMA of standardised values is drawn back in the figure's unit around the centre
@@ -378,8 +378,11 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         runs = chosen["runs"]
         others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
     points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
-    if not counting and points and arithmetic_of(unit) == "circular":
-        points = _unwrapped(points, half_period(unit))
+    # Phases are judged on the circle: the baseline's centre is a mean direction and every
+    # residual is wrapped (runlog.drift.detect); the unwrapped series is what is charted.
+    period = 2.0 * half_period(unit) if not counting and points and arithmetic_of(unit) == "circular" else None
+    if period is not None:
+        points = _unwrapped(points, period / 2.0)
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
     if chosen is not None and table is not None:
@@ -388,7 +391,7 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result
     accepted = _accepted_days(connection, apparatus_id, quantity, key)
-    limits, judgement = _limits(points, accepted, thresholds, baseline)
+    limits, judgement = _limits(points, accepted, thresholds, baseline, period)
     result.limits = limits
     result.z = [None if not np.isfinite(v) else float(v) for v in judgement.z]
     result.out_of_limits = [int(i) for i in np.flatnonzero(judgement.out)]
