@@ -165,3 +165,25 @@ def test_each_run_has_each_monitor_mean_and_range_over_its_span(catalogue, tmp_p
     assert json.loads(shown.output)["monitors"] == catalogue.run("run-150").monitors
     text = CliRunner().invoke(cli, ["--db", url, "show", "run-150"])
     assert "monitors over the run (first to last shot)" in text.output and "room_temp" in text.output
+
+
+def test_plot_drift_marks_the_notes_at_their_lab_time_beside_the_monitors(catalogue, tmp_path):
+    from click.testing import CliRunner
+
+    from runlog.cli import cli
+    from runlog.plots import drift_chart
+
+    catalogue.ingest(list(_scenario(tmp_path)), apparatus="bench-a")
+    catalogue.set_lab_timezone("Europe/Berlin")
+    catalogue.annotate("new coil supply", apparatus="bench-a", at="2026-05-04T09:30:00+00:00")
+    drift = catalogue.drift("fill_fraction", apparatus="bench-a", record_alarms=False)
+    series = catalogue.monitor_series("room_temp", apparatus="bench-a", max_points=2000)
+    spec = drift_chart(drift, monitors=[series], zone="Europe/Berlin").to_dict()
+    assert "n1 2026-05-04 11:30: new coil supply" in spec["title"]["subtitle"]
+    rows = next(rows for rows in spec["datasets"].values() if rows and "label" in rows[0])
+    assert rows == [{"day": "2026-05-04T11:30:00", "label": "n1", "text": "new coil supply"}]
+    out = tmp_path / "d.svg"
+    result = CliRunner().invoke(cli, ["--db", catalogue.engine.url.render_as_string(hide_password=False), "plot", "drift", "fill_fraction", "--apparatus", "bench-a", "--monitor", "room_temp", "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    svg = out.read_text(encoding="utf-8")
+    assert "new coil supply" in svg and "room_temp" in svg
