@@ -360,6 +360,8 @@ class Catalogue:
                 entry["method"] = row.method
                 if row.binomial_method is not None:
                     entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
+                if row.out_of_range:
+                    entry["out_of_range"] = True
                 figures[row.name] = entry
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
             listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
@@ -828,7 +830,10 @@ class Catalogue:
             baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
         thresholds = THRESHOLDS if baseline_days is None else replaced(THRESHOLDS, window=int(baseline_days))
         zone = ZoneInfo(self.lab_timezone)
-        with self.engine.connect() as connection:
+        # One snapshot for the several reads of a drift (the series' runs, then their
+        # figures): a new analysis version committed between them would leave no points.
+        options = {"isolation_level": "REPEATABLE READ"} if self.engine.dialect.name == "postgresql" else {}
+        with self.engine.connect().execution_options(**options) as connection:
             result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, series=series, pooled=pooled, since=since, until=until, baseline=baseline, parameters=parameters, thresholds=thresholds, zone=zone)
         if record_alarms and result.points and not parameters and baseline is None and since is None and until is None:
             # A writer from the start on SQLite: a deferred transaction that read first
@@ -909,9 +914,10 @@ class Catalogue:
         """Stored figures, one row per run and figure, by lab day: run, apparatus, sequence,
         day, started, name, value, stderr, ci_low, ci_high, unit, method; for counting
         figures also binomial_ci_low, binomial_ci_high (the pooled interval) and
-        binomial_method (ci_low/ci_high are shot-level)."""
+        binomial_method (ci_low/ci_high are shot-level); out_of_range (a fitted value
+        outside its physical range, left out of drift)."""
         query = (
-            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method)
+            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method, s.FigureRow.out_of_range)
             .join(s.Run, s.Run.id == s.FigureRow.run_id)
             .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
             .where(s.Run.is_current)
@@ -929,7 +935,7 @@ class Catalogue:
             query = query.where(s.Run.key.in_(list(runs)))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
-        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method"])
+        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method", "out_of_range"])
 
     def calibrations(self, *, apparatus: str | None = None, names: Iterable[str] | None = None) -> list:
         """The calibration register: per apparatus, the latest stored value of each
@@ -1176,6 +1182,8 @@ def _figure_records(connection, run_id: int) -> list[dict[str, object]]:
             entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
         if row.binomial_method is not None:
             entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
+        if row.out_of_range:
+            entry["out_of_range"] = True
         entry.update(
             {
                 "method": row.method,

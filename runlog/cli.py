@@ -449,7 +449,8 @@ def _figure_line(name: str, figure: dict[str, Any]) -> str:
     text += unit
     if "ci_low" in figure:
         text += f"  [{figure['ci_low']:.4g}, {figure['ci_high']:.4g}]"
-    return text + f"  ({figure['method']})"
+    text += f"  ({figure['method']})"
+    return text + ("  out of range: outside its physical range, not in drift" if figure.get("out_of_range") else "")
 
 
 @cli.command("note")

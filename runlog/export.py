@@ -153,10 +153,10 @@ def _figures_table(connection, run_order: list[int], runs_table: pa.Table, recor
     records ``records``, which never change."""
     figures = s.FigureRow.__table__ if records is None else s.FigureRecord.__table__
     position = {rid: i for i, rid in enumerate(run_order)}
-    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method")
-    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64(), pa.float64(), pa.float64(), pa.string())
+    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method", "out_of_range")
+    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64(), pa.float64(), pa.float64(), pa.string(), pa.bool_())
     rows: list[tuple] = []
-    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials, figures.c.binomial_ci_low, figures.c.binomial_ci_high, figures.c.binomial_method)
+    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials, figures.c.binomial_ci_low, figures.c.binomial_ci_high, figures.c.binomial_method, figures.c.out_of_range)
     for chunk in _chunks(run_order if records is None else sorted(records)):
         rows += connection.execute(select(*columns).where(id_in(figures.c.run_id if records is None else figures.c.id, chunk))).all()
     rows.sort(key=lambda r: (position[int(r[0])], r[1]))
@@ -285,6 +285,7 @@ _DESCRIPTIONS = {
     "binomial_ci_low": "counting figures: lower end of the pooled binomial interval (every site an independent try; too narrow when loading varies between shots)",
     "binomial_ci_high": "counting figures: upper end of the pooled binomial interval",
     "binomial_method": "counting figures: the method of the pooled binomial interval",
+    "out_of_range": "true when the fitted value lies outside its physical range (a contrast of a fraction signal above 1): kept as fitted, left out of daily rollups, drift and alarms",
     "unit": "the unit of value, stderr and interval",
     "method": "how it was computed",
     "method_version": "version of that method",

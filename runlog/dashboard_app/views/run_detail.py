@@ -82,16 +82,18 @@ with right:
                 "value": common.with_uncertainty(f["value"], f.get("stderr"), f.get("unit")),
                 "95 % interval": f"[{f['ci_low']:.4g}, {f['ci_high']:.4g}]" if "ci_low" in f else "",
                 "method": f["method"],
+                "out of range": "outside its physical range; not in drift" if f.get("out_of_range") else "",
             }
             for name, f in info.figures.items()
         ],
-        columns=["figure", "value", "95 % interval", "method"],
+        columns=["figure", "value", "95 % interval", "method", "out of range"],
     )
     if figures.empty:
         st.caption("No figures stored for this run.")
     else:
-        if not figures["95 % interval"].any():
-            figures = figures.drop(columns=["95 % interval"])
+        for optional in ("95 % interval", "out of range"):
+            if not figures[optional].any():
+                figures = figures.drop(columns=[optional])
         st.dataframe(figures, hide_index=True, key="run-figures")
 
 if info.monitors:
