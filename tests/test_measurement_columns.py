@@ -102,7 +102,9 @@ def test_new_names_within_a_block_change_no_partition(catalogue, tmp_path):
     assert out.shots == 3 and shots["m.probe_y"].tolist() == [2.5] * 3
 
 
-# --- upgrade from 0009 ------------------------------------------------------------------
+# --- upgrade from the revision before 0015 --------------------------------------------------
+
+PREVIOUS = "0016"
 
 
 def _values(engine) -> list[tuple]:
@@ -113,7 +115,7 @@ def _values(engine) -> list[tuple]:
         return [tuple(row) for row in connection.execute(text(f"SELECT s.id, {listed} FROM shots s JOIN shot_measurements sm ON sm.shot_id = s.id ORDER BY s.id"))]
 
 
-def test_upgrade_from_0009_keeps_every_measured_value_and_pinned_export(db_url, tmp_path):
+def test_upgrade_from_the_previous_revision_keeps_every_measured_value_and_pinned_export(db_url, tmp_path):
     postgres = db_url.startswith("postgresql")
     rng = np.random.default_rng(7)
     files = []
@@ -128,8 +130,8 @@ def test_upgrade_from_0009_keeps_every_measured_value_and_pinned_export(db_url, 
         first = catalogue.export(None, tmp_path / "then", pin="all")
         shots_then = {key: catalogue.shots(key) for key in ("r0", "r3")}
     engine = make_engine(db_url)
-    migrate.downgrade(engine, "0009")
-    # At 0009 a name's column is made with the name: nothing ahead of them.
+    migrate.downgrade(engine, PREVIOUS)
+    # Before 0015 a name's column is made with the name: nothing ahead of them.
     with engine.connect() as connection:
         ids = sorted(connection.execute(text("SELECT id FROM measurements")).scalars())
     assert _columns(engine) == ids == list(range(1, 7))
@@ -164,7 +166,7 @@ def test_downgrade_below_0015_drops_only_the_columns_no_name_uses(db_url, tmp_pa
     engine = make_engine(db_url)
     try:
         before = _values(engine)
-        migrate.downgrade(engine, "0009")
+        migrate.downgrade(engine, PREVIOUS)
         assert _columns(engine) == list(range(1, names + 2))  # atom_number and the signals
         assert _values(engine) == before
     finally:

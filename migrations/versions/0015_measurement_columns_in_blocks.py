@@ -13,7 +13,7 @@ a column made ahead: the revision keeps it away from such a catalogue. The downg
 the columns no name uses.
 
 Revision ID: 0015
-Revises: 0009
+Revises: 0016
 Create Date: 2026-12-02
 """
 import re
@@ -23,7 +23,7 @@ from alembic import op
 
 
 revision: str = '0015'
-down_revision: Union[str, None] = '0009'
+down_revision: Union[str, None] = '0016'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 

@@ -20,6 +20,7 @@ from __future__ import annotations
 import datetime as dt
 
 from sqlalchemy import (
+    DDL,
     BigInteger,
     Boolean,
     Date,
@@ -33,6 +34,7 @@ from sqlalchemy import (
     String,
     Text,
     UniqueConstraint,
+    event,
     false,
     text,
     true,
@@ -166,8 +168,11 @@ class Run(Base):
         UniqueConstraint("apparatus_id", "key", "analysis"),
         Index(None, "started"),
         Index(None, "apparatus_id", "day"),
-        # At most one current version per run.
-        Index("uq_runs_current_version", "apparatus_id", "key", unique=True, sqlite_where=text("is_current"), postgresql_where=text("is_current")),
+        # At most one current version per run: a partial unique index. On PostgreSQL the
+        # DDL after this class makes it, because a postgresql_where argument here would
+        # make SQLAlchemy import its whole PostgreSQL dialect whenever this module loads
+        # (~60 ms of every command, on SQLite too; benchmarks/startup.py).
+        Index("uq_runs_current_version", "apparatus_id", "key", unique=True, sqlite_where=text("is_current")).ddl_if(dialect="sqlite"),
     )
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
@@ -187,6 +192,13 @@ class Run(Base):
     day: Mapped[dt.date | None] = mapped_column(Date)
     operator: Mapped[str | None] = mapped_column(String(200))
     notes: Mapped[str | None] = mapped_column(Text)
+
+
+event.listen(
+    Run.__table__,
+    "after_create",
+    DDL("CREATE UNIQUE INDEX uq_runs_current_version ON runs (apparatus_id, key) WHERE is_current").execute_if(dialect="postgresql"),
+)
 
 
 class RunTag(Base):
@@ -352,6 +364,9 @@ class _FigureColumns:
     successes_squares: Mapped[float | None] = mapped_column(Float)
     trials_squares: Mapped[float | None] = mapped_column(Float)
     successes_trials: Mapped[float | None] = mapped_column(Float)
+    # A fitted value outside its physical range (a contrast of a fraction signal above 1):
+    # kept as fitted, shown with the flag, and left out of rollups, drift and alarms.
+    out_of_range: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
     # The model and options (a JSON object: envelope, x, y, image, interval ...) it was
     # computed with, the analysis version of its run version, and runlog's version.
     model: Mapped[str | None] = mapped_column(String(100))
@@ -415,8 +430,11 @@ class DailyRollup(Base):
     """One figure pooled over the runs of one apparatus, lab day and sequence.
 
     Counting figures pool their counts (``successes``/``trials``); fitted figures keep the
-    sums an inverse-variance weighted mean and the spread between runs are made of.
-    Maintained at ingest and derive time for the groups they touch.
+    additive sums of :data:`runlog.drift.pooling.SUMS` - linear ones for every figure, the
+    sums of cos and sin for a phase, of ln T for a time - so that a day's point made from
+    its rollup rows equals the one made from its runs' figures. Figures flagged
+    ``out_of_range`` are left out. Maintained at ingest and derive time for the groups
+    they touch.
     """
 
     __tablename__ = "daily_rollups"
@@ -440,6 +458,18 @@ class DailyRollup(Base):
     weight_sum: Mapped[float | None] = mapped_column(Float)
     weighted_value_sum: Mapped[float | None] = mapped_column(Float)
     weighted_square_sum: Mapped[float | None] = mapped_column(Float)
+    # Runs with a stderr (the Birge ratio's k); a phase's sums of cos and sin; a time's ln T.
+    weighted_count: Mapped[int | None] = mapped_column(Integer)
+    cosine_sum: Mapped[float | None] = mapped_column(Float)
+    sine_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_cosine_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_sine_sum: Mapped[float | None] = mapped_column(Float)
+    positive_count: Mapped[int | None] = mapped_column(Integer)
+    log_sum: Mapped[float | None] = mapped_column(Float)
+    log_square_sum: Mapped[float | None] = mapped_column(Float)
+    log_weight_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_log_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_log_square_sum: Mapped[float | None] = mapped_column(Float)
 
 
 class Alarm(Base):
