@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-from sqlalchemy import and_, bindparam, func, select, text
+from sqlalchemy import and_, bindparam, case, func, select, text
 from sqlalchemy.engine import Engine
 
 from runlog.errors import ConfigError, NotFoundError, SchemaVersionError, StoreError
@@ -35,6 +35,9 @@ if TYPE_CHECKING:
     from runlog.ingest import IngestResult, Progress
 
 __all__ = ["Catalogue", "RunInfo", "open_catalogue"]
+
+#: The ingest log's word for a refused file before it was ``refused`` (mapped on read).
+_OLD_REFUSED = "rejected"
 
 _RUN_COLUMNS = ("run", "apparatus", "sequence", "shots", "started", "finished", "operator")
 
@@ -475,10 +478,18 @@ class Catalogue:
         return frame.astype({"at": "datetime64[us, UTC]"}) if len(frame) else frame
 
     def ingest_log(self, *, limit: int = 100, status: str | None = None) -> "pd.DataFrame":
-        """The latest ingest attempts, newest first."""
-        query = select(s.IngestLogEntry.file, s.IngestLogEntry.status, s.IngestLogEntry.reason, s.IngestLogEntry.runs, s.IngestLogEntry.shots, s.IngestLogEntry.sha256, s.IngestLogEntry.finished_at).order_by(s.IngestLogEntry.id.desc()).limit(limit)
+        """The latest ingest attempts, newest first; ``status`` is ``ingested``,
+        ``already-present`` or ``refused``.
+
+        Catalogues written before the status of a refusal was called ``refused`` hold
+        ``rejected``: it is read, and selected by ``status="refused"``, as ``refused``.
+        """
+        log = s.IngestLogEntry
+        said = case((log.status == _OLD_REFUSED, "refused"), else_=log.status).label("status")
+        query = select(log.file, said, log.reason, log.runs, log.shots, log.sha256, log.finished_at).order_by(log.id.desc()).limit(limit)
         if status is not None:
-            query = query.where(s.IngestLogEntry.status == status)
+            wanted = "refused" if status == _OLD_REFUSED else status
+            query = query.where(log.status.in_(("refused", _OLD_REFUSED)) if wanted == "refused" else log.status == wanted)
         with self.engine.connect() as connection:
             return _frame(connection.execute(query).all(), ["file", "status", "reason", "runs", "shots", "sha256", "finished_at"])
 
