@@ -682,6 +682,30 @@ class Catalogue:
             found = self._find_run(connection, run, apparatus, analysis)
             return _figure_records(connection, found.id)
 
+    def sequence_fit(self, apparatus: str, sequence: str) -> dict[str, str] | None:
+        """What the newest stored fit of a run of ``sequence`` on ``apparatus`` was made
+        with: ``kind``, ``x`` (the scanned parameter; ``None`` when derive chose the only
+        one), ``y`` (the measurement) and ``run`` (that run's key); ``None`` when no current
+        run of the sequence has a fit of a named measurement. Used to draw a run that has no
+        fit of its own."""
+        import json
+
+        fr = s.FigureRecord
+        query = (
+            select(fr.kind, fr.options, s.Run.key)
+            .join(s.Run, s.Run.id == fr.run_id)
+            .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .where(and_(s.Apparatus.name == apparatus, s.Run.sequence == sequence, s.Run.is_current, fr.options.is_not(None)))
+            .order_by(fr.id.desc())
+        )
+        with self.engine.connect() as connection:
+            for kind, options, key in connection.execute(query):
+                made_with = json.loads(options) if options else {}
+                if isinstance(made_with.get("y"), str):
+                    x = made_with.get("x")
+                    return {"kind": kind, "x": x if isinstance(x, str) else None, "y": made_with["y"], "run": key}
+        return None
+
     def impact(self, run: str, *, apparatus: str | None = None, from_analysis: str | None = None, to_analysis: str | None = None) -> list[dict[str, object]]:
         """What moved between two analysis versions of ``run`` (default: the current one and
         the one before; with one version, its figure records in force and the ones before):
