@@ -1178,7 +1178,7 @@ def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping |
         if not files:
             # A folder without shot tables is a mistake worth saying so (a wrong day's
             # folder, files not yet copied): a refusal of the folder, never a silent success.
-            results.append(IngestResult(str(raw), "refused", reason=one_line(f"{raw}: no *.parquet files in this folder"), cause="contract"))
+            results.append(IngestResult(str(raw), "refused", reason=one_line(f"{raw}: no *.parquet or *.csv files in this folder"), cause="contract"))
             continue
         # Monitor tables are told apart by the contract (or runlog.toml's [monitors] files rule).
         results.extend(ingest_monitor_file(engine, path, mapping, apparatus) if is_monitor_table(path, mapping) else ingest_file(engine, path, mapping, progress, after_write) for path in files)

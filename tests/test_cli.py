@@ -121,9 +121,9 @@ def test_ingest_of_an_empty_folder_is_a_one_line_refusal(db_url, tmp_path, capsy
     (empty / "notes.txt").write_text("no shot tables here")
     code, out, err = run_main(capsys, "--db", db_url, "ingest", str(empty))
     assert code == 1 and err == ""
-    assert out.splitlines() == [f"refused          {empty}: no *.parquet files in this folder"]
+    assert out.splitlines() == [f"refused          {empty}: no *.parquet or *.csv files in this folder"]
     code, out, _ = run_main(capsys, "--db", db_url, "ingest", str(empty), "--json")
-    assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "refused", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet files in this folder"}]
+    assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "refused", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet or *.csv files in this folder"}]
 
 
 # --- runs and show ------------------------------------------------------------------------
