@@ -11,7 +11,8 @@
    selected with ``select_shots``, against the named peer: pandas ``merge_asof`` of the
    same shots and monitor rows read from their Parquet files, then the same comparison,
    measured in the same run (the peer holds everything in memory; runlog reads a catalogue).
-   With ``--postgres SERVER_URL`` also on a fresh database of that server.
+   With ``--postgres SERVER_URL`` also on a fresh database of that server. Also printed:
+   every shot with the monitor's column (``select_shots(..., monitors=["room_temp"])``).
 
     python benchmarks/monitors.py [--year-days 365] [--postgres SERVER_URL]
 """
@@ -76,7 +77,10 @@ def _filter_timing(url: str, folder: Path, label: str, threshold: float) -> tupl
             tick = time.perf_counter()
             found = select_shots(catalogue, f"room_temp > {threshold} degC")
             timings.append(time.perf_counter() - tick)
-    print(f"  runlog {label}: {len(found):,} shots in {min(timings):.2f} s (best of 3)")
+        tick = time.perf_counter()
+        column = select_shots(catalogue, None, monitors=["room_temp"])
+        took = time.perf_counter() - tick
+    print(f"  runlog {label}: {len(found):,} shots in {min(timings):.2f} s (best of 3); every shot with its monitor.room_temp column: {len(column):,} shots in {took:.2f} s")
     return min(timings), len(found)
 
 

@@ -68,6 +68,10 @@ class RunInfo:
     #: Shots left out of every figure because their status does not count ([figures]
     #: counting_status, default ``ok``); they stay in the run and in filters.
     excluded_shots: int = 0
+    #: Each monitor of the apparatus over the run's span, first to last shot: count,
+    #: mean, minimum, maximum, and the as-of value at the start
+    #: (:func:`runlog.monitors.align.over_span`).
+    monitors: list[dict[str, object]] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, object]:
         out = {
@@ -87,6 +91,7 @@ class RunInfo:
             "figures": self.figures,
             "analysis": self.analysis,
             "analyses": self.analyses,
+            "monitors": self.monitors,
         }
         if self.figure_history is not None:
             out["figure_history"] = self.figure_history
@@ -358,11 +363,16 @@ class Catalogue:
                 entry["method"] = row.method
                 if row.binomial_method is not None:
                     entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
+                if row.out_of_range:
+                    entry["out_of_range"] = True
                 figures[row.name] = entry
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
             listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
             records = _figure_records(connection, found.id) if history else None
-        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0))
+            from runlog.monitors.align import over_span
+
+            monitors = over_span(connection, found.apparatus_id, found.started, found.finished)
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0), monitors)
 
     def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
@@ -756,11 +766,13 @@ class Catalogue:
 
     # --- selections and exports ---------------------------------------------------
 
-    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
-        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs."""
+    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None, monitors: Iterable[str] = ()) -> "pd.DataFrame":
+        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs.
+        ``monitors``: a column ``monitor.<name>`` each, the monitor's as-of value at the
+        shot's time (last value at or before it, at most 600 s before; docs/filters.md)."""
         from runlog.selection import select_shots
 
-        return select_shots(self, where, columns=columns, limit=limit)
+        return select_shots(self, where, columns=columns, limit=limit, monitors=tuple(monitors))
 
     def pin(self, name: str, where: str, *, author: str | None = None) -> dict[str, object]:
         """Freeze the shots ``where`` selects now, with their analysis versions and the
@@ -853,7 +865,10 @@ class Catalogue:
             baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
         thresholds = THRESHOLDS if baseline_days is None else replaced(THRESHOLDS, window=int(baseline_days))
         zone = ZoneInfo(self.lab_timezone)
-        with self.engine.connect() as connection:
+        # One snapshot for the several reads of a drift (the series' runs, then their
+        # figures): a new analysis version committed between them would leave no points.
+        options = {"isolation_level": "REPEATABLE READ"} if self.engine.dialect.name == "postgresql" else {}
+        with self.engine.connect().execution_options(**options) as connection:
             result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, series=series, pooled=pooled, since=since, until=until, baseline=baseline, parameters=parameters, thresholds=thresholds, zone=zone)
         if record_alarms and result.points and not parameters and baseline is None and since is None and until is None:
             # A writer from the start on SQLite: a deferred transaction that read first
@@ -934,9 +949,10 @@ class Catalogue:
         """Stored figures, one row per run and figure, by lab day: run, apparatus, sequence,
         day, started, name, value, stderr, ci_low, ci_high, unit, method; for counting
         figures also binomial_ci_low, binomial_ci_high (the pooled interval) and
-        binomial_method (ci_low/ci_high are shot-level)."""
+        binomial_method (ci_low/ci_high are shot-level); out_of_range (a fitted value
+        outside its physical range, left out of drift)."""
         query = (
-            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method)
+            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method, s.FigureRow.out_of_range)
             .join(s.Run, s.Run.id == s.FigureRow.run_id)
             .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
             .where(s.Run.is_current)
@@ -954,7 +970,7 @@ class Catalogue:
             query = query.where(s.Run.key.in_(list(runs)))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
-        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method"])
+        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method", "out_of_range"])
 
     def calibrations(self, *, apparatus: str | None = None, names: Iterable[str] | None = None) -> list:
         """The calibration register: per apparatus, the latest stored value of each
@@ -1200,6 +1216,8 @@ def _figure_records(connection, run_id: int) -> list[dict[str, object]]:
             entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
         if row.binomial_method is not None:
             entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
+        if row.out_of_range:
+            entry["out_of_range"] = True
         entry.update(
             {
                 "method": row.method,

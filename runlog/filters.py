@@ -51,6 +51,8 @@ from sqlalchemy import (
     bindparam,
     literal_column,
     exists,
+    false,
+    func,
     not_,
     literal,
     or_,
@@ -471,6 +473,8 @@ class _Names:
     lab_units: tuple[tuple[str, str], ...] = ()
     #: Monitor name -> that monitor on each apparatus that logs it.
     monitors: dict[str, tuple[_Monitor, ...]] = field(default_factory=dict)
+    #: Whether the catalogue knows a single apparatus (every shot is that apparatus's).
+    one_apparatus: bool = False
 
     @classmethod
     def load(cls, connection: Connection) -> _Names:
@@ -488,7 +492,8 @@ class _Names:
         for mid, apparatus_id, name, unit in connection.execute(select(s.Monitor.id, s.Monitor.apparatus_id, s.Monitor.name, s.Monitor.unit).order_by(s.Monitor.id)):
             monitors.setdefault(name, []).append(_Monitor(int(mid), int(apparatus_id), name, unit or ""))
         frozen = {name: tuple(found) for name, found in monitors.items()}
-        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql", lab_units, frozen)
+        one = connection.execute(select(func.count()).select_from(s.Apparatus.__table__)).scalar_one() <= 1
+        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql", lab_units, frozen, one)
 
     def all(self) -> list[str]:
         return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures, *self.monitors]
@@ -566,22 +571,25 @@ def _in_runs(condition: ColumnElement[bool]) -> ColumnElement[bool]:
     return _shots.c.run_id.in_(select(_runs.c.id).where(condition))
 
 
-def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
-    """``column operator values``, never NULL: a missing value compares false."""
+def _test(column, operator: str, values: list) -> ColumnElement[bool]:
+    """``column operator values`` as SQL has it (NULL when the column is NULL)."""
     # Lists are IN (...) of one bound value each, not expanding parameters, so the statement
     # has a fixed set of plain bound values and can be handed to the driver as it is; not a
     # chain of = terms either, which SQLite parses one level deeper per value and refuses
     # past 1000 ("Expression tree is too large").
     if operator == "between":
-        test = column.between(values[0], values[1])
-    elif operator in ("in", "not in"):
+        return column.between(values[0], values[1])
+    if operator in ("in", "not in"):
         # Each value bound with the column's type (times are stored as numbers on SQLite),
         # a fraction as a float: 'shot in (0.5)' matches no shot rather than shot 0.
         bound = [literal(v, Float() if isinstance(v, float) else column.type) for v in values]
-        test = column.in_(bound) if operator == "in" else column.not_in(bound)
-    else:
-        test = {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
-    return and_(column.is_not(None), test)
+        return column.in_(bound) if operator == "in" else column.not_in(bound)
+    return {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
+
+
+def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
+    """``column operator values``, never NULL: a missing value compares false."""
+    return and_(column.is_not(None), _test(column, operator, values))
 
 
 def _range_may_hold(low, high, operator: str, values: list[float]) -> ColumnElement[bool]:
@@ -945,10 +953,12 @@ class _Compiler:
             ).correlate(_runs)
             prunes.append(and_(on_apparatus, may_hold))
             value = as_of_value(monitor.id, _shots.c.time, sqlite=sqlite)
-            exact = _compare(value, node.operator, values)
-            # The apparatus is checked per shot too: inside an 'or' the prune does not hold
-            # the shots of other apparatus away from this monitor.
-            exacts.append(and_(_in_runs(on_apparatus), exact))
+            # Missing compares false, as in _compare, but the probe is written (and run)
+            # once per shot rather than twice.
+            exact = func.coalesce(_test(value, node.operator, values), false())
+            # The apparatus is checked per shot too (inside an 'or' the prune does not hold
+            # the shots of other apparatus away from this monitor), unless there is one.
+            exacts.append(exact if self.names.one_apparatus else and_(_in_runs(on_apparatus), exact))
         return CompiledFilter(or_(*prunes), or_(*exacts))
 
 

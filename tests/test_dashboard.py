@@ -583,3 +583,25 @@ def test_overview_cards_judge_each_figure_against_its_baseline_and_link_alarm_an
     captions = [c.value for c in at.caption]
     assert any(f"[alarm #{alarm['id']}](notes)" in c and "[chart](drift?apparatus=tweezer-west)" in c for c in captions)
     assert sum(c.startswith(":green[**in limits**]") for c in cards) >= 2
+
+
+def test_run_detail_marks_a_contrast_out_of_its_physical_range(db_url, tmp_path, monkeypatch):
+    from test_fit_ranges import OVER, OVER_SEED, T0 as START, fringe_table
+
+    pq.write_table(fringe_table("over1", OVER, OVER_SEED, START), tmp_path / "over.parquet")
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest([tmp_path / "over.parquet"])
+        catalogue.derive("over1", "fringe", y="bright_fraction")
+        stored = catalogue.run("over1").figures["contrast"]
+    assert stored["value"] > 1 and stored["out_of_range"]
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = open_page(start(), "run_detail")
+        at.selectbox(key="run-apparatus").set_value("bench-a").run()
+        at.selectbox(key="run-day-bench-a").set_value(START.date()).run()
+        assert not at.exception, at.exception
+        figures = table(at, "figure", "method").set_index("figure")
+        assert figures.loc["contrast", "out of range"] == "outside its physical range; not in drift"
+        assert figures.loc["offset", "out of range"] == ""
+    finally:
+        _forget_cached(db_url)

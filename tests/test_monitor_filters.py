@@ -121,3 +121,49 @@ def test_monitor_names_clash_with_parameters_and_are_listed(catalogue, tmp_path,
     assert known_names(catalogue)["monitors"] == ["room_temp"]
     with pytest.raises(FilterError, match="did you mean 'monitor.room_temp'"):
         select_shots(catalogue, "monitor.room_tmp > 1")
+
+
+def test_shots_and_exports_carry_each_monitor_as_of_the_shot_time(catalogue, tmp_path):
+    import json
+
+    from click.testing import CliRunner
+
+    from runlog.cli import cli
+    from runlog.errors import NotFoundError
+
+    files, logs = _data(tmp_path)
+    catalogue.ingest(files)
+    frame = catalogue.select("shot >= 0", monitors=["room_temp"])
+    # One column in bench-a's unit (the first apparatus by name); bench-b's K converted.
+    assert frame.attrs["units"]["monitor.room_temp"] == "degC"
+    reference = _reference(frame, logs).reindex(list(zip(frame["run"], frame["shot"])))
+    ours = frame["monitor.room_temp"].to_numpy()
+    np.testing.assert_array_equal(np.isnan(ours), reference.isna().to_numpy())
+    np.testing.assert_allclose(ours[~np.isnan(ours)], reference.dropna().to_numpy(), rtol=0, atol=1e-9)
+    # With a filter and a limit, and one apparatus only: the same values.
+    some = catalogue.select("apparatus = 'bench-b' and room_temp > 23 degC", monitors=["monitor.room_temp"], limit=20)
+    # Only bench-b runs: the column is in its unit, K.
+    assert len(some) == 20 and some.attrs["units"]["monitor.room_temp"] == "K" and (some["monitor.room_temp"] > 296.15).all()
+    with pytest.raises(NotFoundError) as error:
+        catalogue.select("shot >= 0", monitors=["room_tmp"])
+    assert str(error.value) == "no monitor 'room_tmp' (did you mean 'room_temp'?)"
+
+    url = catalogue.engine.url.render_as_string(hide_password=False)
+    shown = CliRunner().invoke(cli, ["--db", url, "shots", "--where", "run = 'bench-a-r3'", "--monitor", "room_temp", "--csv"])
+    assert shown.exit_code == 0, shown.output
+    assert shown.output.splitlines()[0].endswith(",monitor.room_temp")
+
+    out = tmp_path / "package"
+    done = CliRunner().invoke(cli, ["--db", url, "export", "--where", "shot >= 0", "--out", str(out), "--monitor", "room_temp", "--json"])
+    assert done.exit_code == 0, done.output
+    manifest = json.loads((out / "datapackage.json").read_text())
+    shots = next(r for r in manifest["resources"] if r["name"] == "shots")
+    column = next(f for f in shots["schema"]["fields"] if f["name"] == "monitor.room_temp")
+    assert column["unit"] == "degC" and column["type"] == "number"
+    assert "at most 600 s before" in column["description"]
+    provenance = manifest["provenance"]["monitors"]
+    assert provenance["max_gap_seconds"] == 600 and provenance["columns"] == [{"column": "monitor.room_temp", "monitor": "room_temp", "unit": "degC", "apparatus": ["bench-a", "bench-b"]}]
+    exported = pq.read_table(out / "shots.parquet").to_pandas()
+    np.testing.assert_array_equal(exported["monitor.room_temp"].to_numpy(), frame["monitor.room_temp"].to_numpy())
+    again = catalogue.export_again(out / "export.toml")
+    assert again.same

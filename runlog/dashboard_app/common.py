@@ -459,6 +459,25 @@ def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str,
 
 
 @_cached
+def monitor_names(url: str, apparatus: str) -> list[str]:
+    """The monitors an apparatus logs, by name."""
+    return sorted(m["name"] for m in catalogue(url).monitors() if m["apparatus"] == apparatus)
+
+
+@_cached
+def monitor_overlay(url: str, name: str, apparatus: str, since: dt.date, until: dt.date) -> pd.DataFrame:
+    """One monitor over the lab days [since, until] from its rollups (at most 2000
+    periods), with ``when``: each period's start in the lab's wall-clock time, as the
+    drift chart's axis places times."""
+    from runlog.times import day_start_utc
+
+    zone = lab_timezone(url)
+    frame = catalogue(url).monitor_series(name, apparatus=apparatus, since=day_start_utc(since, ZoneInfo(zone)), until=day_start_utc(until, ZoneInfo(zone), 1), max_points=2000)
+    frame["when"] = wall_clock(frame["start"], zone) if len(frame) else pd.Series(dtype=str)
+    return frame
+
+
+@_cached
 def drift_view(
     url: str,
     quantity: str,

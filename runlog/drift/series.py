@@ -11,8 +11,11 @@ figures of the series' runs per lab day (never shots):
   shots (the Wilson interval and binomial standard error of the pooled counts only for
   runs stored before the sums over shots were kept);
 * fitted figures (coherence time, contrast, ...): the inverse-variance weighted mean of
-  the day's runs, its standard error scaled by the Birge ratio when the runs disagree
-  by more than their errors, and the spread between runs.
+  the day's runs in the arithmetic of the figure's unit (linear; circular for phases;
+  ln T for times), its standard error scaled by the Birge ratio when the runs disagree
+  by more than their errors, and the spread between runs (:mod:`runlog.drift.pooling`,
+  the same for the rollup rows and the figures of chosen runs). Figures flagged
+  ``out_of_range`` are left out.
 
 Limits and alarms come from :mod:`runlog.drift.detect`: each day standardised by its own
 precision against a rolling baseline of in-control days (or the days after the last
@@ -24,24 +27,19 @@ values weighted by their inverse variances, with the documented default penalty 
 from __future__ import annotations
 
 import datetime as dt
-import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from sqlalchemy import and_, exists, func, or_, select
+from sqlalchemy import and_, exists, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
-from runlog.figures.intervals import wilson
-from runlog.drift.pooling import arithmetic_of, half_period, pool
-from runlog.figures.shot_level import ShotSums, shot_level_interval
+from runlog.drift.pooling import add_sums, arithmetic_of, half_period, run_sums
 from runlog.store import schema as s
 
 __all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "drift_of"]
-
-Z95 = 1.959963984540054
 
 
 @dataclass(frozen=True)
@@ -134,31 +132,12 @@ def _apparatus_id(connection: Connection, quantity: str, apparatus: str | None) 
 
 
 def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
-    """One point per lab day that has data, pooled over runs (and sequences unless given)."""
+    """One point per lab day that has data, from the daily rollups (pooled over sequences
+    unless one is given); the same point :func:`filtered_points` makes from the figures."""
+    from runlog.drift.pooling import SUMS
+
     r = s.DailyRollup
-    query = (
-        select(
-            r.day,
-            func.sum(r.runs),
-            func.sum(r.shots),
-            func.sum(r.successes),
-            func.sum(r.trials),
-            func.sum(r.counted_shots),
-            func.sum(r.successes_squares),
-            func.sum(r.trials_squares),
-            func.sum(r.successes_trials),
-            func.sum(r.value_count),
-            func.sum(r.value_sum),
-            func.sum(r.value_square_sum),
-            func.sum(r.weight_sum),
-            func.sum(r.weighted_value_sum),
-            func.sum(r.weighted_square_sum),
-            func.max(r.unit),
-        )
-        .where(and_(r.apparatus_id == apparatus_id, r.name == quantity))
-        .group_by(r.day)
-        .order_by(r.day)
-    )
+    query = select(r.day, r.unit, *(getattr(r, name) for name in SUMS)).where(and_(r.apparatus_id == apparatus_id, r.name == quantity)).order_by(r.day, r.sequence)
     if sequence is not None:
         query = query.where(r.sequence == sequence)
     if since is not None:
@@ -166,15 +145,13 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
     if until is not None:
         query = query.where(r.day <= until)
     _one_unit(connection, select(r.unit).where(and_(r.apparatus_id == apparatus_id, r.name == quantity, *([r.sequence == sequence] if sequence is not None else []))).distinct(), quantity)
-    points: list[DriftPoint] = []
-    unit, counting = "", False
-    for day, *sums, day_unit in connection.execute(query):
+    days: dict[object, list[dict]] = {}
+    unit = ""
+    for day, day_unit, *sums in connection.execute(query):
         unit = day_unit or unit
-        point = _point(day, *sums)
-        if point is not None:
-            counting = counting or point.trials is not None
-            points.append(point)
-    return points, unit, counting
+        days.setdefault(day, []).append(dict(zip(SUMS, sums)))
+    points = [p for p in (_point(day, add_sums(rows), unit) for day, rows in days.items()) if p is not None]
+    return points, unit, any(p.trials is not None for p in points)
 
 
 def _one_unit(connection: Connection, units_query, quantity: str) -> None:
@@ -184,49 +161,32 @@ def _one_unit(connection: Connection, units_query, quantity: str) -> None:
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
 
 
-def _point(day, runs, shots, successes, trials, counted, y2, x2, xy, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
-    """One day's point from the pooled sums of its runs (see the module docstring)."""
-    day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
-    if trials:
-        successes, trials = int(successes), int(trials)
-        p = successes / trials
-        # SUM over runs is NULL if any run lacks the sums, so a day is shot-level only when
-        # all of its runs are.
-        honest = shot_level_interval(ShotSums(int(counted), successes, trials, float(y2), float(x2), float(xy))) if counted is not None and y2 is not None else None
-        if honest is not None:
-            return DriftPoint(day, p, honest.low, honest.high, int(runs), int(shots), honest.stderr, None, successes, trials)
-        low, high = wilson(successes, trials)
-        return DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials)
-    spread = None
-    if count and count > 1:
-        spread = math.sqrt(max(0.0, (squares - total * total / count) / (count - 1)))
-    if weights:
-        mean = weighted / weights
-        stderr = 1.0 / math.sqrt(weights)
-        if count and count > 1:
-            # Birge ratio: runs that disagree beyond their errors widen the day's error.
-            chi2 = max(0.0, weighted_squares - weighted * weighted / weights)
-            stderr *= max(1.0, math.sqrt(chi2 / (count - 1)))
-    elif count:
-        mean = total / count
-        stderr = (spread / math.sqrt(count)) if spread is not None else math.nan
-    else:
+def _point(day, sums: dict | None, unit: str) -> DriftPoint | None:
+    """One day's point from the added sums of its runs (:func:`runlog.drift.pooling.day_point`)."""
+    from runlog.drift.pooling import day_point
+
+    made = day_point(sums, unit)
+    if made is None:
         return None
-    return DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread)
+    value, low, high, stderr, spread = made
+    day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
+    counted = bool(sums.get("trials"))
+    return DriftPoint(day, value, low, high, int(sums["runs"]), int(sums["shots"]), stderr, spread, int(sums["successes"]) if counted else None, int(sums["trials"]) if counted else None)
 
 
 def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
     """Daily points over only the given runs and the runs whose parameters lie in the given ranges.
 
     A run matches a range when its constant value lies in it, or when its whole scanned
-    range does. Pools the runs' stored figures per day, exactly as the rollups do.
+    range does. Pools the runs' stored figures per day, exactly as the rollups do (one
+    arithmetic, :mod:`runlog.drift.pooling`); figures flagged ``out_of_range`` are left out.
     """
     f, r = s.FigureRow, s.Run
     query = (
         select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials, f.unit)
         .join(r, r.id == f.run_id)
-        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current))
-        .order_by(r.day)
+        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current, f.out_of_range.is_(False)))
+        .order_by(r.day, r.id)
     )
     if runs is not None:
         query = query.where(r.id.in_(runs))
@@ -256,35 +216,13 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
     if len({row[-1] or "" for row in rows}) > 1:
         units = sorted({row[-1] or "(none)" for row in rows})
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
-    days: dict[object, list[float]] = {}
-    fitted: dict[object, tuple[list[float], list[float | None]]] = {}
-    unit = ""
-    for day, shots, value, stderr, successes, trials, counted, y2, x2, xy, figure_unit in rows:
-        unit = figure_unit or unit
-        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, 0.0, 0, 0.0, 0.0, None, None, None])
-        sums[0] += 1
-        sums[1] += shots
-        if trials is not None:
-            sums[2] = (sums[2] or 0) + successes
-            sums[3] = (sums[3] or 0) + trials
-            # As SQL's SUM in the rollups: one run without sums over shots makes them NULL.
-            for position, part in ((4, counted), (5, y2), (6, x2), (7, xy)):
-                sums[position] = None if part is None or sums[position] is None else sums[position] + part
-        sums[8] += 1
-        fitted.setdefault(day, ([], []))
-        fitted[day][0].append(value)
-        fitted[day][1].append(stderr)
-    points = []
-    for day, sums in days.items():
-        if sums[3]:
-            point = _point(day, *sums[:8], sums[8], 0.0, 0.0, None, None, None)
-        else:
-            # Fitted figures: linear, circular (angles) or logarithmic (times) pooling.
-            value, low, high, stderr, spread = pool(*fitted[day], unit)
-            day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
-            point = DriftPoint(day, value, low, high, int(sums[0]), int(sums[1]), stderr, spread)
-        if point is not None:
-            points.append(point)
+    unit = next((row[-1] for row in rows if row[-1]), "")
+    arithmetic = arithmetic_of(unit)
+    counts = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
+    days: dict[object, list[dict]] = {}
+    for day, shots, value, stderr, *counted, _ in rows:
+        days.setdefault(day, []).append(run_sums(value, stderr, unit, shots=shots, counts=dict(zip(counts, counted)), arithmetic=arithmetic))
+    points = [p for p in (_point(day, add_sums(parts), unit) for day, parts in days.items()) if p is not None]
     return points, unit, any(p.trials is not None for p in points)
 
 
@@ -305,14 +243,14 @@ def _accepted_days(connection: Connection, apparatus_id: int, quantity: str, ser
     return sorted({d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in rows})
 
 
-def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None):
+def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None, period: float | None = None):
     days = [p.date for p in points]
     values = np.array([p.value for p in points])
     errors = np.array([p.stderr for p in points])
     fixed = None
     if baseline is not None:
         fixed = [baseline[0] <= d <= baseline[1] for d in days]
-    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed)
+    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed, period=period)
     sigma = judgement.sigma
     # The day limits are around the centre at +-day_limit of each day's own sigma; the
     # EWMA of standardised values is drawn back in the figure's unit around the centre
@@ -378,8 +316,11 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         runs = chosen["runs"]
         others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
     points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
-    if not counting and points and arithmetic_of(unit) == "circular":
-        points = _unwrapped(points, half_period(unit))
+    # Phases are judged on the circle: the baseline's centre is a mean direction and every
+    # residual is wrapped (runlog.drift.detect); the unwrapped series is what is charted.
+    period = 2.0 * half_period(unit) if not counting and points and arithmetic_of(unit) == "circular" else None
+    if period is not None:
+        points = _unwrapped(points, period / 2.0)
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
     if chosen is not None and table is not None:
@@ -388,7 +329,7 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result
     accepted = _accepted_days(connection, apparatus_id, quantity, key)
-    limits, judgement = _limits(points, accepted, thresholds, baseline)
+    limits, judgement = _limits(points, accepted, thresholds, baseline, period)
     result.limits = limits
     result.z = [None if not np.isfinite(v) else float(v) for v in judgement.z]
     result.out_of_limits = [int(i) for i in np.flatnonzero(judgement.out)]

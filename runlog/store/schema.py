@@ -83,7 +83,7 @@ __all__ = [
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0009"
+SCHEMA_REVISION = "0016"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -363,6 +363,9 @@ class _FigureColumns:
     successes_squares: Mapped[float | None] = mapped_column(Float)
     trials_squares: Mapped[float | None] = mapped_column(Float)
     successes_trials: Mapped[float | None] = mapped_column(Float)
+    # A fitted value outside its physical range (a contrast of a fraction signal above 1):
+    # kept as fitted, shown with the flag, and left out of rollups, drift and alarms.
+    out_of_range: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
     # The model and options (a JSON object: envelope, x, y, image, interval ...) it was
     # computed with, the analysis version of its run version, and runlog's version.
     model: Mapped[str | None] = mapped_column(String(100))
@@ -426,8 +429,11 @@ class DailyRollup(Base):
     """One figure pooled over the runs of one apparatus, lab day and sequence.
 
     Counting figures pool their counts (``successes``/``trials``); fitted figures keep the
-    sums an inverse-variance weighted mean and the spread between runs are made of.
-    Maintained at ingest and derive time for the groups they touch.
+    additive sums of :data:`runlog.drift.pooling.SUMS` - linear ones for every figure, the
+    sums of cos and sin for a phase, of ln T for a time - so that a day's point made from
+    its rollup rows equals the one made from its runs' figures. Figures flagged
+    ``out_of_range`` are left out. Maintained at ingest and derive time for the groups
+    they touch.
     """
 
     __tablename__ = "daily_rollups"
@@ -451,6 +457,18 @@ class DailyRollup(Base):
     weight_sum: Mapped[float | None] = mapped_column(Float)
     weighted_value_sum: Mapped[float | None] = mapped_column(Float)
     weighted_square_sum: Mapped[float | None] = mapped_column(Float)
+    # Runs with a stderr (the Birge ratio's k); a phase's sums of cos and sin; a time's ln T.
+    weighted_count: Mapped[int | None] = mapped_column(Integer)
+    cosine_sum: Mapped[float | None] = mapped_column(Float)
+    sine_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_cosine_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_sine_sum: Mapped[float | None] = mapped_column(Float)
+    positive_count: Mapped[int | None] = mapped_column(Integer)
+    log_sum: Mapped[float | None] = mapped_column(Float)
+    log_square_sum: Mapped[float | None] = mapped_column(Float)
+    log_weight_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_log_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_log_square_sum: Mapped[float | None] = mapped_column(Float)
 
 
 class Alarm(Base):
