@@ -1071,8 +1071,9 @@ class Catalogue:
     # --- monitors --------------------------------------------------------------------
 
     def monitors(self, *, now: dt.datetime | None = None, silent_after: dt.timedelta = dt.timedelta(hours=1)) -> list[dict[str, object]]:
-        """Every monitor with its latest value, and whether it stopped reporting
-        (nothing logged within ``silent_after`` before ``now``)."""
+        """Every monitor with its latest value at or before ``now``, its usual interval, and
+        whether it stopped reporting: silent for more than 10 usual intervals and more than
+        ``silent_after`` (:func:`runlog.monitors.overlay.monitor_list`)."""
         from runlog.monitors.overlay import monitor_list
 
         with self.engine.connect() as connection:

@@ -32,6 +32,7 @@ import streamlit as st
 
 import runlog
 from runlog.dashboard import URL_VARIABLE
+from runlog.monitors.overlay import STOPPED_INTERVALS, duration_words, stopped_words
 from runlog.errors import RunlogError
 from runlog.redaction import scrub
 from runlog.units import unit_text  # one spelling of units for every page (in __all__)
@@ -62,6 +63,12 @@ __all__ = [
     "lab_timezone",
     "label",
     "mixed_units",
+    "monitor_list",
+    "monitor_names",
+    "monitor_overlay",
+    "duration_words",
+    "stopped_words",
+    "STOPPED_INTERVALS",
     "parameters_table",
     "run_info",
     "runs_table",
@@ -456,6 +463,12 @@ def standing(url: str, quantity: str, apparatus: str, day: dt.date) -> dict[str,
 def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str, object]:
     """``catalogue.stability``: the Allan deviation over a series' runs, in plain words."""
     return catalogue(url).stability(quantity, apparatus=apparatus, series=series)
+
+
+@_cached
+def monitor_list(url: str) -> list[dict[str, object]]:
+    """``catalogue.monitors()``: each monitor's latest value and whether it stopped reporting."""
+    return catalogue(url).monitors()
 
 
 @_cached

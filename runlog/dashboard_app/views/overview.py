@@ -5,6 +5,8 @@ from __future__ import annotations
 import datetime as dt
 from pathlib import Path
 
+from zoneinfo import ZoneInfo
+
 import pandas as pd
 import streamlit as st
 
@@ -96,6 +98,36 @@ else:
         hide_index=True,
         key="alarms",
         column_config={"value": st.column_config.NumberColumn(format="%.4g"), "size": st.column_config.NumberColumn(format="%+.3g")},
+    )
+
+# --- monitors ----------------------------------------------------------------------------
+
+monitors = common.monitor_list(url)
+if monitors:
+    st.subheader("Monitors", anchor=False)
+    for m in monitors:
+        if m["stopped_reporting"]:
+            st.warning(f"{m['apparatus']} · {common.stopped_words(m, ZoneInfo(zone))}")
+    st.caption(f"Latest value of each monitor. A monitor stopped reporting when nothing was logged for more than {common.STOPPED_INTERVALS} of its usual intervals (the median gap between its last values), and for more than an hour.")
+    st.dataframe(
+        pd.DataFrame(
+            [
+                {
+                    "apparatus": m["apparatus"],
+                    "monitor": m["name"],
+                    "latest": m["latest_value"],
+                    "unit": common.unit_text(m["unit"]),
+                    f"at ({zone})": "" if m["latest_time"] is None else common.wall_clock(pd.Series([m["latest_time"]]), zone).iloc[0].replace("T", " ")[:19],
+                    "usually every": common.duration_words(m["interval_seconds"]),
+                    "state": "stopped reporting" if m["stopped_reporting"] else "reporting",
+                }
+                for m in monitors
+            ],
+            columns=["apparatus", "monitor", "latest", "unit", f"at ({zone})", "usually every", "state"],
+        ),
+        hide_index=True,
+        key="monitors",
+        column_config={"latest": st.column_config.NumberColumn(format="%.6g")},
     )
 
 # --- ingest ------------------------------------------------------------------------------
