@@ -79,7 +79,7 @@ def test_an_idle_reader_cannot_stop_an_ingest_that_adds_a_measurement(catalogue,
         if postgres:
             [third] = third
             # A new block needs the table to itself: refused as busy, naming who holds it.
-            assert third.status == "rejected" and third.cause == "busy" and not third.files_fault, third.reason
+            assert third.status == "refused" and third.cause == "busy" and not third.files_fault, third.reason
             assert "adding 14 measurement name(s)" in third.reason and "pid" in third.reason and "idle in transaction" in third.reason
             assert "\n" not in third.reason and took < BOUND_S
     finally:
@@ -148,5 +148,5 @@ def test_a_writer_that_waits_too_long_is_refused_as_busy(catalogue, tmp_path, mo
     finally:
         transaction.rollback()
         holder.close()
-    assert result.status == "rejected" and result.cause == "busy" and "\n" not in result.reason
+    assert result.status == "refused" and result.cause == "busy" and "\n" not in result.reason
     assert "lock timeout" in result.reason

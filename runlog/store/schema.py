@@ -504,7 +504,7 @@ class IngestLogEntry(Base):
     file: Mapped[str] = mapped_column(Text)
     sha256: Mapped[str] = mapped_column(String(64))
     size: Mapped[int] = mapped_column(BigInteger)
-    status: Mapped[str] = mapped_column(String(20))  # ingested | already-present | rejected
+    status: Mapped[str] = mapped_column(String(20))  # ingested | already-present | refused (older catalogues hold "rejected": read as refused)
     reason: Mapped[str | None] = mapped_column(Text)
     runs: Mapped[str | None] = mapped_column(Text)  # comma-separated run keys
     shots: Mapped[int] = mapped_column(Integer, default=0)
