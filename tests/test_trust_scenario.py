@@ -127,13 +127,15 @@ def scenario(catalogue, tmp_path):
 
 def test_trust_scenario(scenario):
     catalogue, results, truth, (steps, per_step, start_site) = scenario
-    assert [r.status for r in results] == ["ingested"] * 4 + ["rejected"]
+    assert [r.status for r in results] == ["ingested"] * 4 + ["refused"]
     # Refused with its reason: the file, the column and the two units.
     assert "bad.parquet" in results[4].reason and "p.field[s]" in results[4].reason and "'G'" in results[4].reason
 
     # --- units: stored in the unit the catalogue first saw, converted from the others ---
     l1, l2 = catalogue.run("L1").parameters, catalogue.run("L2").parameters
     assert {n: l1[n]["unit"] for n in ("mw_power", "rabi", "field", "pressure")} == {"mw_power": "dBm", "rabi": "rad/us", "field": "G", "pressure": "Torr"}
+    assert {n: l1[n]["value"] for n in ("mw_power", "rabi", "field", "pressure")} == {"mw_power": 10.0, "rabi": pytest.approx(2 * math.pi * 0.25, rel=1e-15), "field": 3.0, "pressure": 1e-9}
+    assert catalogue.run("S1").parameters["field"]["value"] == 3.0
     assert l2["mw_power"]["value"] == pytest.approx(10 * math.log10(100.0 / 1.0), rel=1e-12)  # 100 mW = 20 dBm (IEC 60027-3)
     assert l2["rabi"]["value"] == pytest.approx(2 * math.pi * 0.5, rel=1e-12)  # omega = 2 pi f
     assert l2["field"]["value"] == pytest.approx(0.2e-3 / 1e-4, rel=1e-12)  # 0.2 mT = 2 G (NIST SP 811)
@@ -145,6 +147,7 @@ def test_trust_scenario(scenario):
     assert runs("mw_power > 15 dBm") == {"L2"} and runs("mw_power > 50 mW") == {"L2"} and runs("mw_power < 11 mW") == {"L1"}  # 10 dBm = 10 mW
     assert runs("rabi > 2 rad/us") == {"L2"} and runs("rabi < 0.3 MHz") == {"L1"}  # 0.25 MHz = 1.571 rad/us
     assert runs("field = 0.3 mT") == {"L1", "S1"} and runs("field < 2500 mG") == {"L2"}
+    assert len(catalogue.select("field = 0.3 mT")) == 40 + 20  # every shot of L1 (bad ones too) and S1
     assert runs("pressure > 1.5e-9 Torr") == {"L2"} and runs(f"pressure < {1.5e-9 * TORR} Pa") == {"L1"}
     # Refused pairs, with their reason.
     for where, reason in (("rabi > 1 rad", "'rad' is not a unit of the same dimension"), ("field > 1 Gs", "'Gs' is ambiguous"), ("mw_power > 1 s", "'s' is not a unit of the same dimension")):
