@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-from sqlalchemy import and_, bindparam, func, select, text
+from sqlalchemy import and_, bindparam, case, func, select, text
 from sqlalchemy.engine import Engine
 
 from runlog.errors import ConfigError, NotFoundError, SchemaVersionError, StoreError
@@ -35,6 +35,9 @@ if TYPE_CHECKING:
     from runlog.ingest import IngestResult, Progress
 
 __all__ = ["Catalogue", "RunInfo", "open_catalogue"]
+
+#: The ingest log's word for a refused file before it was ``refused`` (mapped on read).
+_OLD_REFUSED = "rejected"
 
 _RUN_COLUMNS = ("run", "apparatus", "sequence", "shots", "started", "finished", "operator")
 
@@ -485,10 +488,18 @@ class Catalogue:
         return frame.astype({"at": "datetime64[us, UTC]"}) if len(frame) else frame
 
     def ingest_log(self, *, limit: int = 100, status: str | None = None) -> "pd.DataFrame":
-        """The latest ingest attempts, newest first."""
-        query = select(s.IngestLogEntry.file, s.IngestLogEntry.status, s.IngestLogEntry.reason, s.IngestLogEntry.runs, s.IngestLogEntry.shots, s.IngestLogEntry.sha256, s.IngestLogEntry.finished_at).order_by(s.IngestLogEntry.id.desc()).limit(limit)
+        """The latest ingest attempts, newest first; ``status`` is ``ingested``,
+        ``already-present`` or ``refused``.
+
+        Catalogues written before the status of a refusal was called ``refused`` hold
+        ``rejected``: it is read, and selected by ``status="refused"``, as ``refused``.
+        """
+        log = s.IngestLogEntry
+        said = case((log.status == _OLD_REFUSED, "refused"), else_=log.status).label("status")
+        query = select(log.file, said, log.reason, log.runs, log.shots, log.sha256, log.finished_at).order_by(log.id.desc()).limit(limit)
         if status is not None:
-            query = query.where(s.IngestLogEntry.status == status)
+            wanted = "refused" if status == _OLD_REFUSED else status
+            query = query.where(log.status.in_(("refused", _OLD_REFUSED)) if wanted == "refused" else log.status == wanted)
         with self.engine.connect() as connection:
             return _frame(connection.execute(query).all(), ["file", "status", "reason", "runs", "shots", "sha256", "finished_at"])
 
@@ -680,6 +691,30 @@ class Catalogue:
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus, analysis)
             return _figure_records(connection, found.id)
+
+    def sequence_fit(self, apparatus: str, sequence: str) -> dict[str, str] | None:
+        """What the newest stored fit of a run of ``sequence`` on ``apparatus`` was made
+        with: ``kind``, ``x`` (the scanned parameter; ``None`` when derive chose the only
+        one), ``y`` (the measurement) and ``run`` (that run's key); ``None`` when no current
+        run of the sequence has a fit of a named measurement. Used to draw a run that has no
+        fit of its own."""
+        import json
+
+        fr = s.FigureRecord
+        query = (
+            select(fr.kind, fr.options, s.Run.key)
+            .join(s.Run, s.Run.id == fr.run_id)
+            .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .where(and_(s.Apparatus.name == apparatus, s.Run.sequence == sequence, s.Run.is_current, fr.options.is_not(None)))
+            .order_by(fr.id.desc())
+        )
+        with self.engine.connect() as connection:
+            for kind, options, key in connection.execute(query):
+                made_with = json.loads(options) if options else {}
+                if isinstance(made_with.get("y"), str):
+                    x = made_with.get("x")
+                    return {"kind": kind, "x": x if isinstance(x, str) else None, "y": made_with["y"], "run": key}
+        return None
 
     def impact(self, run: str, *, apparatus: str | None = None, from_analysis: str | None = None, to_analysis: str | None = None) -> list[dict[str, object]]:
         """What moved between two analysis versions of ``run`` (default: the current one and

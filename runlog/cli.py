@@ -181,7 +181,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
         _json([r.as_dict() | ({"derived": [_outcome_json(o) for o in r.derived]} if mapping.rules else {}) for r in results])
     else:
         for r in results:
-            if r.status == "rejected":
+            if r.status == "refused":
                 _echo(f"refused          {r.reason}")
             elif r.monitors:
                 names = ", ".join(r.monitors[:3]) + (f" (+{len(r.monitors) - 3} more)" if len(r.monitors) > 3 else "")
@@ -191,7 +191,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
                 _echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
             for outcome in r.derived:
                 _wrapped(_outcome_line(outcome))
-    if any(r.status == "rejected" for r in results):
+    if any(r.status == "refused" for r in results):
         sys.exit(1)
 
 
@@ -596,9 +596,9 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
         _wrapped(_alarm_line(alarm))
     _echo("to use the demo catalogue with every other command, in this shell:")
     _echo(f"  export RUNLOG_DB={shlex.quote(url)}")
-    if any(r.status == "rejected" for r in results):
+    if any(r.status == "refused" for r in results):
         for r in results:
-            if r.status == "rejected":
+            if r.status == "refused":
                 _echo(f"refused: {r.reason}", err=True)
         sys.exit(1)
     if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():

@@ -55,7 +55,7 @@ def build_digest(catalogue, *, day: dt.date | None = None, apparatus: str | None
     out = {"day": day.isoformat(), "lab_timezone": str(zone), "monitors_as_of": as_of.astimezone(zone).isoformat(), "apparatus": [], "ingest": {
         "stored": int((entries["status"] == "ingested").sum()) if len(entries) else 0,
         "already_present": int((entries["status"] == "already-present").sum()) if len(entries) else 0,
-        "refused": [{"file": os.path.basename(str(r.file)), "reason": r.reason} for r in entries.itertuples() if r.status == "rejected"] if len(entries) else [],
+        "refused": [{"file": os.path.basename(str(r.file)), "reason": r.reason} for r in entries.itertuples() if r.status == "refused"] if len(entries) else [],
     }}
     for name in names:
         stored = catalogue.figure_names(apparatus=name)

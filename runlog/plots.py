@@ -247,12 +247,15 @@ def run_chart(catalogue, run: str, *, apparatus: str | None = None, x: str | Non
     """One run as a chart: its scan (with the stored fit when there is one) or, for a run
     without a scanned number parameter, the per-site fill map of its loading image.
 
-    ``x`` defaults to the run's first scanned number parameter and ``y`` to its first
-    measurement (by name); a stored fringe or Ramsey fit picks them as ``derive`` does.
+    A run with a stored fit is drawn on the signal the fit was made on, with the fit. A run
+    without one is drawn on its figure-producing signal (:func:`runlog.derive.fitted_signal`:
+    as its sequence's runs were fitted, or its only measurement), without a line; when
+    nothing tells which signal that is, :class:`NotFoundError` says so in one line and
+    ``x``/``y`` choose.
     """
     import altair as alt
 
-    from runlog.derive import fit_curve
+    from runlog.derive import fit_curve, fitted_signal
 
     info = catalogue.run(run, apparatus=apparatus)
     heading = f"run {info.run} ({info.apparatus}, {info.sequence}, {info.shots} shots)"
@@ -269,8 +272,17 @@ def run_chart(catalogue, run: str, *, apparatus: str | None = None, x: str | Non
         layers.append(alt.Chart(model).mark_line(color=FINDING, strokeWidth=1.5).encode(x="x:Q", y="fit:Q"))
         subtitle = [*subtitle, f"line: stored fit, {curve.formula}"]
     elif scanned and info.measurements:
-        x_name = x or scanned[0]
-        y_name = y or info.measurements[0]
+        signal = fitted_signal(catalogue, info)  # (x, y, why) or None
+        if y is None and signal is None:
+            raise NotFoundError(
+                "fitted signal in run",
+                info.run,
+                f"no fit is stored for it or for another run of sequence '{info.sequence}' on {info.apparatus}; "
+                f"its measurements: {', '.join(info.measurements)}; choose one with --y, or fit the run first (runlog derive)",
+            )
+        y_name = y or signal[1]
+        x_name = x or (signal[0] if signal is not None else scanned[0])
+        why = "chosen" if y else signal[2]
         if x_name not in info.parameters:
             raise NotFoundError("parameter", x_name, f"run '{info.run}' scans {', '.join(scanned)}")
         if y_name not in info.measurements:
@@ -281,7 +293,7 @@ def run_chart(catalogue, run: str, *, apparatus: str | None = None, x: str | Non
             raise NotFoundError("shots with both", f"{x_name} and {y_name}", f"run '{info.run}'")
         units = shots.attrs.get("units", {})
         layers = _scan_layers(frame, x_name, units.get(f"p.{x_name}", ""), y_name, units.get(f"m.{y_name}", ""))
-        subtitle = [*subtitle, "points: mean and standard error per setting; grey: single shots"]
+        subtitle = [*subtitle, f"no fit stored for this run; signal: {y_name} ({why}); points: mean and standard error per setting; grey: single shots"]
     else:
         successes, trials, shape = catalogue.site_counts(info.run, "fill", apparatus=info.apparatus)
         rows, columns = (shape[0], shape[1]) if len(shape) == 2 else (1, int(np.prod(shape)))

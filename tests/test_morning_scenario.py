@@ -247,7 +247,7 @@ def morning(catalogue, db_url, tmp_path, *, calendar_days: int, apparatus: tuple
     assert len(false) <= months, [(a["apparatus"], a["quantity"], a["date"], a.get("method")) for a in false]
     # The mixing of depths and scans raised nothing of its own: every alarm is on a
     # reference series (the constant loading runs, the 40 uK Ramsey runs).
-    assert {(a["series"] or {}).get("label") for a in alarms} <= {"loading (load_time=200 ms)", "ramsey (lattice_depth=40 uK; scan of wait)"}
+    assert {(a["series"] or {}).get("label") for a in alarms} <= {"loading (load_time=200 ms)", "ramsey (lattice_depth=40 µK; scan of wait)"}
 
 
 def test_a_90_day_morning_scenario(catalogue, db_url, tmp_path):

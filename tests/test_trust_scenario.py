@@ -127,7 +127,7 @@ def scenario(catalogue, tmp_path):
 
 def test_trust_scenario(scenario):
     catalogue, results, truth, (steps, per_step, start_site) = scenario
-    assert [r.status for r in results] == ["ingested"] * 4 + ["rejected"]
+    assert [r.status for r in results] == ["ingested"] * 4 + ["refused"]
     # Refused with its reason: the file, the column and the two units.
     assert "bad.parquet" in results[4].reason and "p.field[s]" in results[4].reason and "'G'" in results[4].reason
 

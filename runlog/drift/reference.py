@@ -37,6 +37,7 @@ from sqlalchemy.engine import Connection
 
 from runlog.store import schema as s
 from runlog.store.rollups import as_date
+from runlog.units import unit_text
 
 __all__ = ["Declaration", "Series", "describe", "declaration_of", "declare", "run_series", "series_of", "reference_series", "setting_changes", "notes_between", "DEFAULT_TOLERANCE"]
 
@@ -162,7 +163,8 @@ def run_series(connection: Connection, apparatus_id: int, declaration: Declarati
         varying = {name for name, values in seen.items() if len(values) > 10 and len(values) > 0.2 * len(members)}
         for run_id in members:
             kept = {name: value for name, value in sorted(constants[run_id].items()) if name not in varying}
-            shown = tuple((name, f"{value} {units[name]}".strip() if name in units else value) for name, value in kept.items())
+            # People read the settings (labels, alarms, digest): units as runlog prints them (µK, µs).
+            shown = tuple((name, f"{value} {unit_text(units[name])}".strip() if name in units else value) for name, value in kept.items())
             canonical = json.dumps([sorted(kept.items()), sorted(scanned[run_id])])
             fingerprint = hashlib.sha256(canonical.encode()).hexdigest()[:8]
             table.series[run_id] = Series(sequence, fingerprint, shown, tuple(sorted(scanned[run_id])))

@@ -52,7 +52,7 @@ for apparatus in common.apparatus_names(url):
             colour = {"in limits": "green", "changed": "red", "drifting": "orange"}.get(found["state"], "gray")
             size = "" if found.get("size") is None else f" · {found['size']:+.3g} {unit} ({found['z']:+.1f} standard errors) from baseline {found['centre']:.4g}".replace("  ", " ")
             st.markdown(f":{colour}[**{found['state']}**]" + (f" since {found['since']}" if found.get("since") else "") + size)
-            alarm_link = f" · [alarm #{found['alarm']}](annotate)" if found.get("alarm") else ""
+            alarm_link = f" · [alarm #{found['alarm']}](notes)" if found.get("alarm") else ""
             series = found["series"]["label"] if found.get("series") else ""
             st.caption(f"± {error or '–'} · 95 % [{found['ci_low']:.4g}, {found['ci_high']:.4g}] · {chart_link}{alarm_link} · series {series}")
 
@@ -139,7 +139,7 @@ if log.empty:
 else:
     log = log.assign(when=common.wall_clock(log["finished_at"], zone).str.replace("T", " ").str[:16], name=[Path(f).name for f in log["file"]])
     stored_in = log[log["status"] == "ingested"]
-    refused = log[log["status"] == "rejected"]
+    refused = log[log["status"] == "refused"]
     left, right = st.columns([3, 1])
     with left.container(border=True):
         if stored_in.empty:
