@@ -28,7 +28,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from sqlalchemy import and_, exists, func, or_, select
+from sqlalchemy import and_, case, exists, func, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
@@ -39,7 +39,7 @@ from runlog.drift.pooling import arithmetic_of, half_period, pool
 from runlog.figures.shot_level import ShotSums, shot_level_interval
 from runlog.store import schema as s
 
-__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "drift_of"]
+__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "series_points", "drift_of"]
 
 Z95 = 1.959963984540054
 
@@ -215,21 +215,32 @@ def _point(day, runs, shots, successes, trials, counted, y2, x2, xy, count, tota
     return DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread)
 
 
-def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
-    """Daily points over only the given runs and the runs whose parameters lie in the given ranges.
+def _all_or_none(column):
+    """SUM of ``column`` over a day's counted runs, NULL when one of them lacks it (as
+    SQL's SUM in the rollups: one run without sums over shots makes them NULL)."""
+    f = s.FigureRow
+    counted = f.trials.is_not(None)
+    return case((func.count(case((and_(counted, column.is_(None)), 1))) > 0, None), else_=func.sum(case((counted, column))))
+
+
+def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, selection: list | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """Daily points over only the given runs (``runs``, or a series' ``selection``, see
+    :func:`runlog.drift.reference.series_of`) and the runs whose parameters lie in the
+    given ranges.
 
     A run matches a range when its constant value lies in it, or when its whole scanned
-    range does. Pools the runs' stored figures per day, exactly as the rollups do.
+    range does. Pools the runs' stored figures per day, exactly as the rollups do: the
+    counts of counting figures summed per day in SQL, the fitted figures of a day pooled
+    from each run's value and stderr (:func:`runlog.drift.pooling.pool`).
     """
     f, r = s.FigureRow, s.Run
-    query = (
-        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials, f.unit)
-        .join(r, r.id == f.run_id)
-        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current))
-        .order_by(r.day)
-    )
+    conditions = [r.apparatus_id == apparatus_id, f.name == quantity, r.is_current]
     if runs is not None:
-        query = query.where(r.id.in_(runs))
+        conditions.append(r.id.in_(runs))
+    if selection is not None:
+        from runlog.drift.reference import selected
+
+        conditions.append(selected(selection))
     for name, (low, high) in (parameters or {}).items():
         parameter_id = connection.execute(select(s.Parameter.id).where(s.Parameter.name == name)).scalar()
         if parameter_id is None:
@@ -245,44 +256,83 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
                 ),
             )
         )
-        query = query.where(exists(matches))
+        conditions.append(exists(matches))
     if sequence is not None:
-        query = query.where(r.sequence == sequence)
+        conditions.append(r.sequence == sequence)
     if since is not None:
-        query = query.where(r.day >= since)
+        conditions.append(r.day >= since)
     if until is not None:
-        query = query.where(r.day <= until)
+        conditions.append(r.day <= until)
+    unit_of = func.coalesce(f.unit, "")
+    counted = f.trials.is_not(None)
+    query = (
+        select(
+            r.day,
+            unit_of,
+            func.count(),
+            func.sum(r.shot_count),
+            func.sum(case((counted, f.successes))),
+            func.sum(f.trials),
+            _all_or_none(f.counted_shots),
+            _all_or_none(f.successes_squares),
+            _all_or_none(f.trials_squares),
+            _all_or_none(f.successes_trials),
+        )
+        .join(r, r.id == f.run_id)
+        .where(and_(*conditions))
+        .group_by(r.day, unit_of)
+        .order_by(r.day)
+    )
+    return _pooled(connection, quantity, connection.execute(query).all(), conditions)
+
+
+def series_points(connection: Connection, quantity: str, apparatus_id: int, selection: list, *, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """Daily points of a series' ``selection`` (see :func:`runlog.drift.reference.series_of`)
+    from the series rollups: the same points as :func:`filtered_points` over its runs."""
+    from runlog.drift.reference import selected
+
+    sr = s.SeriesRollup
+    conditions = [sr.apparatus_id == apparatus_id, sr.name == quantity, or_(*(and_(sr.sequence == q, sr.fingerprint == fp, *([sr.day.not_in(left_out)] if left_out else [])) for q, fp, left_out in selection))]
+    if since is not None:
+        conditions.append(sr.day >= since)
+    if until is not None:
+        conditions.append(sr.day <= until)
+    query = select(sr.day, sr.unit, sr.units, sr.runs, sr.shots, sr.successes, sr.trials, sr.counted_shots, sr.successes_squares, sr.trials_squares, sr.successes_trials).where(and_(*conditions)).order_by(sr.day)
     rows = connection.execute(query).all()
-    if len({row[-1] or "" for row in rows}) > 1:
-        units = sorted({row[-1] or "(none)" for row in rows})
-        raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
-    days: dict[object, list[float]] = {}
+    if len({row[1] for row in rows}) > 1 or any(row[2] > 1 for row in rows) or len({row[0] for row in rows}) < len(rows):
+        # Several units, or a day of two settings: pooled run by run (which names the units).
+        return filtered_points(connection, quantity, apparatus_id, selection=selection, since=since, until=until)
+    r, f = s.Run, s.FigureRow
+    runs = [r.apparatus_id == apparatus_id, f.name == quantity, r.is_current, selected(selection)]
+    return _pooled(connection, quantity, [(row[0], row[1], *row[3:]) for row in rows], runs)
+
+
+def _pooled(connection: Connection, quantity: str, days: list[tuple], conditions: list) -> tuple[list[DriftPoint], str, bool]:
+    """Points from per-day sums (day, unit, runs, shots, successes, trials, counted shots,
+    sums of squares and products); a day without counts pools its runs' fitted figures,
+    read with ``conditions`` (over figures and runs)."""
+    f, r = s.FigureRow, s.Run
+    units = sorted({row[1] for row in days})
+    if len(units) > 1:
+        raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(u or '(none)' for u in units)} by different sequences: give a sequence")
+    unit = units[0] if units else ""
     fitted: dict[object, tuple[list[float], list[float | None]]] = {}
-    unit = ""
-    for day, shots, value, stderr, successes, trials, counted, y2, x2, xy, figure_unit in rows:
-        unit = figure_unit or unit
-        sums = days.setdefault(day, [0, 0, None, None, 0, 0.0, 0.0, 0.0, 0, 0.0, 0.0, None, None, None])
-        sums[0] += 1
-        sums[1] += shots
-        if trials is not None:
-            sums[2] = (sums[2] or 0) + successes
-            sums[3] = (sums[3] or 0) + trials
-            # As SQL's SUM in the rollups: one run without sums over shots makes them NULL.
-            for position, part in ((4, counted), (5, y2), (6, x2), (7, xy)):
-                sums[position] = None if part is None or sums[position] is None else sums[position] + part
-        sums[8] += 1
-        fitted.setdefault(day, ([], []))
-        fitted[day][0].append(value)
-        fitted[day][1].append(stderr)
+    wanted = [row[0] for row in days if not row[5]]
+    for start in range(0, len(wanted), 500):
+        rows = connection.execute(select(r.day, f.value, f.stderr).join(r, r.id == f.run_id).where(and_(*conditions, r.day.in_(wanted[start : start + 500]))).order_by(r.day, r.id))
+        for day, value, stderr in rows:
+            fitted.setdefault(day, ([], []))
+            fitted[day][0].append(value)
+            fitted[day][1].append(stderr)
     points = []
-    for day, sums in days.items():
-        if sums[3]:
-            point = _point(day, *sums[:8], sums[8], 0.0, 0.0, None, None, None)
+    for day, _, count, shots, successes, trials, *sums in days:
+        if trials:
+            point = _point(day, count, shots, successes, trials, *sums, count, 0.0, 0.0, None, None, None)
         else:
             # Fitted figures: linear, circular (angles) or logarithmic (times) pooling.
             value, low, high, stderr, spread = pool(*fitted[day], unit)
             day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
-            point = DriftPoint(day, value, low, high, int(sums[0]), int(sums[1]), stderr, spread)
+            point = DriftPoint(day, value, low, high, int(count), int(shots), stderr, spread)
         if point is not None:
             points.append(point)
     return points, unit, any(p.trials is not None for p in points)
@@ -360,30 +410,31 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
     # Parameter ranges are the reader's own choice of comparable runs: they replace the series.
     pooled = pooled or bool(parameters)
     chosen = None
-    runs = None
-    table = None
     others: list[dict[str, object]] = []
     if not pooled:
-        table = reference.run_series(connection, apparatus_id)
-        found = reference.series_of(connection, apparatus_id, quantity, table)
+        found = reference.series_of(connection, apparatus_id, quantity)
         if series is not None:
             picked = [e for e in found if series == e["key"] or any(m["series"].key == series for m in e["members"])]
             if not picked:
                 raise NotFoundError("series", series, "known: " + ", ".join(e["key"] for e in found) if found else f"apparatus '{apparatus_name}' has no series with {quantity}")
             chosen = picked[0]
         else:
-            chosen = reference.reference_series(connection, apparatus_id, quantity, sequence=sequence, table=table)
+            chosen = reference.pick_reference(connection, apparatus_id, found, sequence)
             if chosen is None:
                 raise NotFoundError("series of", quantity, f"sequence '{sequence}' has no runs with it" if sequence else f"apparatus '{apparatus_name}' has none")
-        runs = chosen["runs"]
-        others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
-    points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
+        others = [{**reference.describe(e), "days": e["days"], "runs": e["runs"], "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
+    if chosen is not None and "run_ids" in chosen:
+        points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=chosen["run_ids"], since=since, until=until)
+    elif chosen is not None:
+        points, unit, counting = series_points(connection, quantity, apparatus_id, chosen["selection"], since=since, until=until)
+    else:
+        points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, sequence=sequence, since=since, until=until)
     if not counting and points and arithmetic_of(unit) == "circular":
         points = _unwrapped(points, half_period(unit))
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
-    if chosen is not None and table is not None:
-        result.settings = reference.setting_changes(connection, apparatus_id, chosen, table, zone)
+    if chosen is not None:
+        result.settings = reference.setting_changes(connection, apparatus_id, chosen, zone)
     if len(points) < 3:
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result

@@ -16,7 +16,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from runlog.errors import ConfigError
 from runlog.store.bulk import Writer
 
-__all__ = ["DEFAULT_TIMEZONE", "lab_timezone", "lab_day", "refresh_rollups", "rebuild_rollups", "check_timezone", "as_date", "as_datetime"]
+__all__ = ["DEFAULT_TIMEZONE", "lab_timezone", "lab_day", "refresh_rollups", "refresh_series_rollups", "rebuild_rollups", "check_timezone", "as_date", "as_datetime"]
 
 DEFAULT_TIMEZONE = "UTC"
 
@@ -35,6 +35,23 @@ SELECT r.apparatus_id, r.day, r.sequence, f.name, MAX(f.unit), COUNT(*), SUM(r.s
 FROM figures f JOIN runs r ON r.id = f.run_id
 WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current
 GROUP BY r.apparatus_id, r.day, r.sequence, f.name
+"""
+
+# One run without the sums over shots makes a series' day's sums NULL (as the drift query
+# pooled them run by run), where SQL's SUM would skip it.
+_ALL_OR_NONE = "CASE WHEN COUNT(CASE WHEN f.trials IS NOT NULL AND f.{0} IS NULL THEN 1 END) > 0 THEN NULL ELSE SUM(CASE WHEN f.trials IS NOT NULL THEN f.{0} END) END"
+
+_SERIES_AGGREGATE = f"""
+INSERT INTO series_rollups (apparatus_id, day, sequence, fingerprint, name, unit, units, runs, shots, successes, trials,
+                            counted_shots, successes_squares, trials_squares, successes_trials)
+SELECT r.apparatus_id, r.day, r.sequence, COALESCE(r.series_fingerprint, ''), f.name,
+       MAX(COALESCE(f.unit, '')), COUNT(DISTINCT COALESCE(f.unit, '')), COUNT(*), SUM(r.shot_count),
+       SUM(CASE WHEN f.trials IS NOT NULL THEN f.successes END), SUM(f.trials),
+       {_ALL_OR_NONE.format("counted_shots")}, {_ALL_OR_NONE.format("successes_squares")},
+       {_ALL_OR_NONE.format("trials_squares")}, {_ALL_OR_NONE.format("successes_trials")}
+FROM figures f JOIN runs r ON r.id = f.run_id
+WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current
+GROUP BY r.apparatus_id, r.day, r.sequence, COALESCE(r.series_fingerprint, ''), f.name
 """
 
 
@@ -57,10 +74,20 @@ def lab_day(moment: dt.datetime, zone: ZoneInfo) -> dt.date:
 
 def refresh_rollups(writer: Writer, groups: Iterable[tuple[int, dt.date, str]]) -> None:
     """Recompute the rollup rows of each (apparatus id, lab day, sequence) group."""
-    for apparatus_id, day, sequence in sorted(set(groups)):
+    groups = sorted(set(groups))
+    for apparatus_id, day, sequence in groups:
         params = {"a": apparatus_id, "d": day, "q": sequence}
         writer.execute("DELETE FROM daily_rollups WHERE apparatus_id = :a AND day = :d AND sequence = :q", params)
         writer.execute(_AGGREGATE, params)
+    refresh_series_rollups(writer, groups)
+
+
+def refresh_series_rollups(writer: Writer, groups: Iterable[tuple[int, dt.date, str]]) -> None:
+    """Recompute the series rollup rows of each (apparatus id, lab day, sequence) group."""
+    for apparatus_id, day, sequence in sorted(set(groups)):
+        params = {"a": apparatus_id, "d": day, "q": sequence}
+        writer.execute("DELETE FROM series_rollups WHERE apparatus_id = :a AND day = :d AND sequence = :q", params)
+        writer.execute(_SERIES_AGGREGATE, params)
 
 
 def rebuild_rollups(writer: Writer) -> int:
@@ -70,6 +97,7 @@ def rebuild_rollups(writer: Writer) -> int:
     for run_id, started in runs:
         writer.execute("UPDATE runs SET day = :d WHERE id = :r", {"d": lab_day(as_datetime(started), zone), "r": run_id})
     writer.execute("DELETE FROM daily_rollups")
+    writer.execute("DELETE FROM series_rollups")
     groups = [(int(a), as_date(d), q) for a, d, q in writer.rows("SELECT DISTINCT apparatus_id, day, sequence FROM runs")]
     refresh_rollups(writer, groups)
     return len(groups)

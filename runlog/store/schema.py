@@ -62,7 +62,10 @@ __all__ = [
     "SiteCounts",
     "PhotonCounts",
     "Setting",
+    "RunSetting",
+    "SequenceSeries",
     "DailyRollup",
+    "SeriesRollup",
     "Alarm",
     "IngestLogEntry",
     "Annotation",
@@ -81,7 +84,7 @@ __all__ = [
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0009"
+SCHEMA_REVISION = "0014"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -166,6 +169,7 @@ class Run(Base):
         UniqueConstraint("apparatus_id", "key", "analysis"),
         Index(None, "started"),
         Index(None, "apparatus_id", "day"),
+        Index(None, "apparatus_id", "sequence", "series_fingerprint"),
         # At most one current version per run.
         Index("uq_runs_current_version", "apparatus_id", "key", unique=True, sqlite_where=text("is_current"), postgresql_where=text("is_current")),
     )
@@ -187,6 +191,9 @@ class Run(Base):
     day: Mapped[dt.date | None] = mapped_column(Date)
     operator: Mapped[str | None] = mapped_column(String(200))
     notes: Mapped[str | None] = mapped_column(Text)
+    # The fingerprint of the run's constant settings (runlog.store.series_keys); with the
+    # sequence it names the run's reference series. Kept for current versions only.
+    series_fingerprint: Mapped[str | None] = mapped_column(String(16))
 
 
 class RunTag(Base):
@@ -402,6 +409,32 @@ class PhotonCounts(Base):
     counts: Mapped[bytes] = mapped_column(LargeBinary)
 
 
+class RunSetting(Base):
+    """A run's parameter as its reference series sees it (runlog.store.series_keys): a
+    constant rounded at the declared tolerance (``value``; ``with_unit`` when it is a
+    number shown with its unit), or only the name of a scanned one; parameters the lab
+    declared may vary are left out. Rewritten when the declaration changes."""
+
+    __tablename__ = "run_settings"
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
+    parameter_id: Mapped[int] = mapped_column(ForeignKey("parameters.id"), primary_key=True)
+    scanned: Mapped[bool] = mapped_column(Boolean, default=False)
+    with_unit: Mapped[bool] = mapped_column(Boolean, default=False)
+    value: Mapped[str | None] = mapped_column(Text)
+
+
+class SequenceSeries(Base):
+    """Per apparatus and sequence, what its runs' series fingerprints were computed with:
+    ``basis`` (a hash of the declared ``vary`` and ``tolerance``) and ``varying`` (JSON list
+    of the parameters left out because they take a new value in most runs)."""
+
+    __tablename__ = "sequence_series"
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"), primary_key=True)
+    sequence: Mapped[str] = mapped_column(String(200), primary_key=True)
+    basis: Mapped[str] = mapped_column(String(64))
+    varying: Mapped[str] = mapped_column(Text, default="[]")
+
+
 class Setting(Base):
     """Catalogue-wide settings, e.g. ``lab_timezone`` (IANA name) that defines lab days."""
 
@@ -439,6 +472,31 @@ class DailyRollup(Base):
     weight_sum: Mapped[float | None] = mapped_column(Float)
     weighted_value_sum: Mapped[float | None] = mapped_column(Float)
     weighted_square_sum: Mapped[float | None] = mapped_column(Float)
+
+
+class SeriesRollup(Base):
+    """Per apparatus, lab day, sequence, series fingerprint and figure name: what a
+    series' drift point needs of its current runs (runs, shots, the counts of counting
+    figures; ``units``: how many units the figures came in). Refreshed with the daily
+    rollups and whenever runs' fingerprints change (runlog.store.series_keys).
+    The sums over shots are NULL when one counted run lacks them."""
+
+    __tablename__ = "series_rollups"
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"), primary_key=True)
+    day: Mapped[dt.date] = mapped_column(Date, primary_key=True)
+    sequence: Mapped[str] = mapped_column(String(200), primary_key=True)
+    fingerprint: Mapped[str] = mapped_column(String(16), primary_key=True)  # '' for a run without one
+    name: Mapped[str] = mapped_column(String(100), primary_key=True)
+    unit: Mapped[str] = mapped_column(String(60), default="")
+    units: Mapped[int] = mapped_column(Integer)
+    runs: Mapped[int] = mapped_column(Integer)
+    shots: Mapped[int] = mapped_column(BigInteger)
+    successes: Mapped[int | None] = mapped_column(BigInteger)
+    trials: Mapped[int | None] = mapped_column(BigInteger)
+    counted_shots: Mapped[int | None] = mapped_column(BigInteger)
+    successes_squares: Mapped[float | None] = mapped_column(Float)
+    trials_squares: Mapped[float | None] = mapped_column(Float)
+    successes_trials: Mapped[float | None] = mapped_column(Float)
 
 
 class Alarm(Base):
