@@ -5,16 +5,21 @@ Prints two rates of the calibrated thresholds of :mod:`runlog.drift.detect`:
 * false alarms per apparatus per month: an apparatus has ``QUANTITIES`` headline
   quantities, each a stable reference series of lab days with 1 to 5 runs a day (so the
   days' standard errors differ), some with day-to-day scatter beyond their errors
-  (tau = 0, 0.5 or 1 daily standard error, drawn per series); every alarm raised on such a
-  series is false. A month is 30 judged lab days.
-* detection within 2 lab days: the same series with a step of 3 daily standard errors
-  (up or down) from a day D after the baseline has filled; detected when the series is
-  out of control on D, D + 1 or D + 2 (flagged by the second lab day after the step's
-  day). The stricter rate, flagged on D or D + 1, is printed too.
+  (tau = 0, 0.5 or 1 daily standard error of a three-run day, drawn per series); every
+  alarm raised on such a series is false. A month is 30 judged lab days. The rate is
+  printed for the mixture and for each scatter.
+* detection: the same series with a step of 3 daily standard errors (up or down) from a
+  day D after the baseline has filled, on two readings of "within 2 lab days": strict,
+  out of control on D or D + 1 (the step's lab day or the next); loose, on D, D + 1 or
+  D + 2 (by the second lab day after the step's day).
 
 The peer of each rate is its target, measured in the same run: at most about 1 false
-alarm per apparatus-month, at least 90 % detected. Run: ``python benchmarks/alarms.py``
-(``--series N`` for more or fewer simulated series; the default takes about a minute).
+alarm per apparatus-month, at least 90 % detected on the strict reading. Run:
+``python benchmarks/alarms.py`` (``--series N`` for more or fewer simulated series; the
+default takes one to two minutes). ``--calibrate`` repeats both rates for a range of
+two-day limits on a calibration seed of its own (never the benchmark's), which is how the
+default limit was chosen: the lowest limit whose false-alarm rate on the mixture stays
+below the budget, so that the strict detection rate is as high as the budget allows.
 """
 
 from __future__ import annotations
@@ -23,12 +28,15 @@ import argparse
 import datetime as dt
 import math
 import time
+from dataclasses import replace
 
 import numpy as np
 
 from runlog.drift.detect import THRESHOLDS, judge
 
 QUANTITIES = 4  # fill fraction, survival, coherence time, contrast
+SCATTERS = (0.0, 0.5, 1.0)  # day-to-day scatter beyond the errors, in daily standard errors
+CALIBRATION_SEED = 77  # the calibration's own seed; the benchmark's is --seed
 DAYS = 120
 STEP_DAY = 40
 START = dt.date(2026, 1, 5)
@@ -43,15 +51,18 @@ def stable_series(rng: np.random.Generator, days: int, tau_in_errors: float) -> 
     return values, errors
 
 
-def false_alarms(rng: np.random.Generator, series: int, thresholds=THRESHOLDS) -> tuple[float, int, int]:
-    alarms = judged = 0
+def false_alarms(rng: np.random.Generator, series: int, thresholds=THRESHOLDS) -> dict[float | None, tuple[float, int, int]]:
+    """Per scatter (and None: all of them) the false alarms per apparatus-month, the count
+    of alarms and of judged stable lab days."""
+    counts = {tau: [0, 0] for tau in SCATTERS}
     for _ in range(series):
-        values, errors = stable_series(rng, DAYS, float(rng.choice([0.0, 0.5, 1.0])))
+        tau = float(rng.choice(SCATTERS))
+        values, errors = stable_series(rng, DAYS, tau)
         judgement = judge(DATES, values, errors, thresholds=thresholds)
-        alarms += len(judgement.excursions())
-        judged += int((~judgement.learning).sum())
-    per_quantity_month = alarms / judged * 30
-    return per_quantity_month * QUANTITIES, alarms, judged
+        counts[tau][0] += len(judgement.excursions())
+        counts[tau][1] += int((~judgement.learning).sum())
+    counts[None] = [sum(c[0] for c in counts.values()), sum(c[1] for c in counts.values())]
+    return {tau: (alarms / max(judged, 1) * 30 * QUANTITIES, alarms, judged) for tau, (alarms, judged) in counts.items()}
 
 
 def detection(rng: np.random.Generator, series: int, size: float = 3.0, thresholds=THRESHOLDS) -> tuple[int, int]:
@@ -66,6 +77,12 @@ def detection(rng: np.random.Generator, series: int, size: float = 3.0, threshol
     return next_day, two_after
 
 
+def poisson_interval(alarms: int, judged: int) -> tuple[float, float]:
+    """95 % interval of a rate per apparatus-month (normal approximation to the count's root)."""
+    scale = 30 * QUANTITIES / max(judged, 1)
+    return max(0.0, math.sqrt(alarms) - 0.98) ** 2 * scale, (math.sqrt(alarms) + 0.98) ** 2 * scale
+
+
 def wilson(successes: int, trials: int) -> tuple[float, float]:
     z = 1.959963984540054
     p = successes / trials
@@ -74,24 +91,38 @@ def wilson(successes: int, trials: int) -> tuple[float, float]:
     return centre - half, centre + half
 
 
+def report(rng: np.random.Generator, series: int, thresholds=THRESHOLDS) -> tuple[float, float, float]:
+    """Print both rates of ``thresholds``; return (false alarms, strict, loose detection)."""
+    rates = false_alarms(rng, series, thresholds)
+    next_day, two_after = detection(rng, series, thresholds=thresholds)
+    rate, alarms, judged = rates[None]
+    low, high = poisson_interval(alarms, judged)
+    print(f"false alarms: {rate:.2f} per apparatus-month ({QUANTITIES} quantities; {alarms} alarms in {judged} judged stable lab days; 95 % [{low:.2f}, {high:.2f}]); target <= about 1")
+    for tau in SCATTERS:
+        r, a, j = rates[tau]
+        print(f"  with day-to-day scatter {tau:g} daily standard errors: {r:.2f} ({a} alarms in {j} days)")
+    for words, found in (("on the step's lab day or the next (strict reading)", next_day), ("by the second lab day after the step's day (loose reading)", two_after)):
+        d_low, d_high = wilson(found, series)
+        print(f"detection of a 3-standard-error step {words}: {100 * found / series:.1f} % ({found} of {series}; 95 % [{100 * d_low:.1f}, {100 * d_high:.1f}] %); target >= 90 %")
+    return rate, next_day / series, two_after / series
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--series", type=int, default=1000, help="simulated series per rate")
     parser.add_argument("--seed", type=int, default=2026)
+    parser.add_argument("--calibrate", action="store_true", help="both rates for a range of two-day limits, on the calibration seed")
     options = parser.parse_args()
-    rng = np.random.default_rng(options.seed)
     tick = time.perf_counter()
-    rate, alarms, judged = false_alarms(rng, options.series)
-    # Poisson interval on the count of false alarms (normal approximation to its root).
-    low = max(0.0, math.sqrt(alarms) - 0.98) ** 2 / judged * 30 * QUANTITIES
-    high = (math.sqrt(alarms) + 0.98) ** 2 / judged * 30 * QUANTITIES
-    next_day, two_after = detection(rng, options.series)
+    if options.calibrate:
+        for limit in (2.9, 2.7, 2.65, 2.6, 2.55):
+            print(f"-- two-day limit {limit:g}")
+            report(np.random.default_rng(CALIBRATION_SEED), options.series, replace(THRESHOLDS, pair_limit=limit))
+        print(f"({time.perf_counter() - tick:.1f} s)")
+        return
     print(f"thresholds: {THRESHOLDS.describe()}")
-    print(f"false alarms: {rate:.2f} per apparatus-month ({QUANTITIES} quantities; {alarms} alarms in {judged} judged stable lab days; 95 % [{low:.2f}, {high:.2f}]); target <= about 1")
-    for words, found in (("within 2 lab days (by the second lab day after the step's day)", two_after), ("on the step's day or the next", next_day)):
-        d_low, d_high = wilson(found, options.series)
-        print(f"detection of a 3-standard-error step {words}: {100 * found / options.series:.1f} % ({found} of {options.series}; 95 % [{100 * d_low:.1f}, {100 * d_high:.1f}] %); target >= 90 %")
-    print(f"ratio to target: false alarms {rate / 1.0:.2f} x budget, detection {two_after / options.series / 0.9:.3f} x target ({time.perf_counter() - tick:.1f} s)")
+    rate, strict, loose = report(np.random.default_rng(options.seed), options.series)
+    print(f"ratio to target: false alarms {rate / 1.0:.2f} x budget, detection {strict / 0.9:.3f} x target strict, {loose / 0.9:.3f} x loose ({time.perf_counter() - tick:.1f} s)")
 
 
 if __name__ == "__main__":

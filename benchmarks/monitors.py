@@ -6,8 +6,15 @@
    value) into a fresh SQLite file, measured in the same run. Target: ratio <= 0.5.
 2. An overlay query (``Catalogue.monitor_series``) for a year of one monitor at 1 Hz
    (31.5 M values, ingested month by month), answered from the rollups. Target: < 0.3 s.
+3. A filter by the monitor's name (``room_temp > 21.08 degC``: each shot's as-of value,
+   runlog.filters) over the 1 M-row monitor of 1. and 100 000 shots in the same span,
+   selected with ``select_shots``, against the named peer: pandas ``merge_asof`` of the
+   same shots and monitor rows read from their Parquet files, then the same comparison,
+   measured in the same run (the peer holds everything in memory; runlog reads a catalogue).
+   With ``--postgres SERVER_URL`` also on a fresh database of that server. Also printed:
+   every shot with the monitor's column (``select_shots(..., monitors=["room_temp"])``).
 
-    python benchmarks/monitors.py [--year-days 365]
+    python benchmarks/monitors.py [--year-days 365] [--postgres SERVER_URL]
 """
 
 from __future__ import annotations
@@ -39,14 +46,90 @@ def _file(path: Path, first_second: int, rows: int, seed: int) -> pd.DataFrame:
     return table.to_pandas()
 
 
+def _shots(path: Path, span_seconds: int, count: int, per_run: int = 100) -> None:
+    """``count`` shots evenly over ``span_seconds`` from START, ``per_run`` per run."""
+    base = int(START.timestamp()) * 1_000_000
+    times = base + (np.linspace(0, span_seconds - 1, count).astype(np.int64)) * 1_000_000
+    index = np.arange(count)
+    table = pa.table(
+        {
+            "run": pa.array([f"r{i // per_run:05d}" for i in index]),
+            "apparatus": pa.array(["bench"] * count).dictionary_encode(),
+            "sequence": pa.array(["loading"] * count).dictionary_encode(),
+            "shot": pa.array(index % per_run, pa.int64()),
+            "time": pa.array(times, pa.int64()).cast(pa.timestamp("us", tz="UTC")),
+            "p.wait[us]": (index % per_run).astype(float),
+        }
+    )
+    pq.write_table(table, path)
+
+
+def _filter_timing(url: str, folder: Path, label: str, threshold: float) -> tuple[float, int]:
+    from runlog.selection import select_shots
+
+    with runlog.open(url) as catalogue:
+        if not catalogue.runs().shape[0]:
+            for name in ("log.parquet", "shots.parquet"):
+                (result,) = catalogue.ingest(folder / name, apparatus="bench")
+                assert result.status == "ingested", result.reason
+        timings = []
+        for _ in range(3):
+            tick = time.perf_counter()
+            found = select_shots(catalogue, f"room_temp > {threshold} degC")
+            timings.append(time.perf_counter() - tick)
+        tick = time.perf_counter()
+        column = select_shots(catalogue, None, monitors=["room_temp"])
+        took = time.perf_counter() - tick
+    print(f"  runlog {label}: {len(found):,} shots in {min(timings):.2f} s (best of 3); every shot with its monitor.room_temp column: {len(column):,} shots in {took:.2f} s")
+    return min(timings), len(found)
+
+
+def _filter_peer(folder: Path, threshold: float) -> tuple[float, int]:
+    timings = []
+    for _ in range(3):
+        tick = time.perf_counter()
+        shots = pd.read_parquet(folder / "shots.parquet", columns=["run", "shot", "time"]).sort_values("time")
+        log = pd.read_parquet(folder / "log.parquet", columns=["time", "value"]).sort_values("time")
+        joined = pd.merge_asof(shots, log, on="time", direction="backward", tolerance=pd.Timedelta(seconds=600))
+        found = joined[joined["value"] > threshold]
+        timings.append(time.perf_counter() - tick)
+    return min(timings), len(found)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--rows", type=int, default=1_000_000)
     parser.add_argument("--year-days", type=int, default=365)
+    parser.add_argument("--filter-shots", type=int, default=100_000)
+    parser.add_argument("--postgres", metavar="URL", help="a PostgreSQL server: also time the filter on a fresh database there")
+    parser.add_argument("--only-filter", action="store_true", help="skip the ingest and overlay parts")
     options = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="runlog-bench-monitors-") as folder:
         folder = Path(folder)
         frame = _file(folder / "log.parquet", 0, options.rows, 1)
+        _shots(folder / "shots.parquet", options.rows, options.filter_shots)
+        threshold = 21.08  # about 5 % of the values (noise 0.05 degC around 21)
+        print(f"filter 'room_temp > {threshold} degC' over a {options.rows:,}-row monitor and {options.filter_shots:,} shots:")
+        peer, peer_count = _filter_peer(folder, threshold)
+        print(f"  peer pandas read_parquet + merge_asof: {peer_count:,} shots in {peer:.2f} s (best of 3)")
+        ours, count = _filter_timing(f"sqlite:///{folder / 'filter.sqlite'}", folder, "SQLite", threshold)
+        assert count == peer_count, (count, peer_count)
+        print(f"  ratio SQLite / peer {ours / peer:.1f}")
+        if options.postgres:
+            import sys
+
+            sys.path.insert(0, str(Path(__file__).parent))
+            from ingest import _postgres_databases
+
+            fresh = _postgres_databases(options.postgres)
+            try:
+                ours, count = _filter_timing(fresh("runlog_bench_monitor_filter"), folder, "PostgreSQL", threshold)
+                assert count == peer_count, (count, peer_count)
+                print(f"  ratio PostgreSQL / peer {ours / peer:.1f}")
+            finally:
+                fresh(None)
+        if options.only_filter:
+            return
         with runlog.open(f"sqlite:///{folder / 'ours.sqlite'}") as catalogue:
             tick = time.perf_counter()
             (result,) = catalogue.ingest(folder / "log.parquet", apparatus="bench")

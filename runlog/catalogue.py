@@ -18,8 +18,7 @@ from typing import TYPE_CHECKING
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
-import numpy as np
-from sqlalchemy import and_, bindparam, func, select, text
+from sqlalchemy import and_, bindparam, case, func, select, text
 from sqlalchemy.engine import Engine
 
 from runlog.errors import ConfigError, NotFoundError, SchemaVersionError, StoreError
@@ -28,6 +27,7 @@ from runlog.store.engine import current_revision, make_engine, redact, resolve_u
 from runlog.times import day_start_utc
 
 if TYPE_CHECKING:
+    import numpy as np
     import pandas as pd
 
     import runlog.derive
@@ -35,6 +35,9 @@ if TYPE_CHECKING:
     from runlog.ingest import IngestResult, Progress
 
 __all__ = ["Catalogue", "RunInfo", "open_catalogue"]
+
+#: The ingest log's word for a refused file before it was ``refused`` (mapped on read).
+_OLD_REFUSED = "rejected"
 
 _RUN_COLUMNS = ("run", "apparatus", "sequence", "shots", "started", "finished", "operator")
 
@@ -65,6 +68,10 @@ class RunInfo:
     #: Shots left out of every figure because their status does not count ([figures]
     #: counting_status, default ``ok``); they stay in the run and in filters.
     excluded_shots: int = 0
+    #: Each monitor of the apparatus over the run's span, first to last shot: count,
+    #: mean, minimum, maximum, and the as-of value at the start
+    #: (:func:`runlog.monitors.align.over_span`).
+    monitors: list[dict[str, object]] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, object]:
         out = {
@@ -84,6 +91,7 @@ class RunInfo:
             "figures": self.figures,
             "analysis": self.analysis,
             "analyses": self.analyses,
+            "monitors": self.monitors,
         }
         if self.figure_history is not None:
             out["figure_history"] = self.figure_history
@@ -355,11 +363,16 @@ class Catalogue:
                 entry["method"] = row.method
                 if row.binomial_method is not None:
                     entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
+                if row.out_of_range:
+                    entry["out_of_range"] = True
                 figures[row.name] = entry
             tags = [t for (t,) in connection.execute(select(s.RunTag.tag).where(s.RunTag.run_id == found.id).order_by(s.RunTag.tag))]
             listed = [v.as_dict() for v in versions(_rows_of(connection), found.apparatus_id, found.key)]
             records = _figure_records(connection, found.id) if history else None
-        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0))
+            from runlog.monitors.align import over_span
+
+            monitors = over_span(connection, found.apparatus_id, found.started, found.finished)
+        return RunInfo(found.key, apparatus_name, found.sequence, found.shot_count, found.started, found.finished, found.operator, found.notes, tags, parameters, measurements, images, figures, found.analysis, listed, records, int(found.excluded_shots or 0), monitors)
 
     def shots(self, run: str, *, apparatus: str | None = None) -> "pd.DataFrame":
         """The shots of one run, one row each: shot, time, status, ``p.<name>``, ``m.<name>``.
@@ -421,6 +434,8 @@ class Catalogue:
 
         ``image`` defaults to the run's loading image.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             query = select(s.Image.id, s.Image.sites, s.Image.name).where(s.Image.run_id == found.id)
@@ -442,6 +457,8 @@ class Catalogue:
         shot index, and the threshold ingest derived the occupancy with (``None``: the file
         carried the occupancy). ``image`` defaults to the run's loading image.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             query = select(s.Image.id, s.Image.name).where(s.Image.run_id == found.id)
@@ -471,10 +488,18 @@ class Catalogue:
         return frame.astype({"at": "datetime64[us, UTC]"}) if len(frame) else frame
 
     def ingest_log(self, *, limit: int = 100, status: str | None = None) -> "pd.DataFrame":
-        """The latest ingest attempts, newest first."""
-        query = select(s.IngestLogEntry.file, s.IngestLogEntry.status, s.IngestLogEntry.reason, s.IngestLogEntry.runs, s.IngestLogEntry.shots, s.IngestLogEntry.sha256, s.IngestLogEntry.finished_at).order_by(s.IngestLogEntry.id.desc()).limit(limit)
+        """The latest ingest attempts, newest first; ``status`` is ``ingested``,
+        ``already-present`` or ``refused``.
+
+        Catalogues written before the status of a refusal was called ``refused`` hold
+        ``rejected``: it is read, and selected by ``status="refused"``, as ``refused``.
+        """
+        log = s.IngestLogEntry
+        said = case((log.status == _OLD_REFUSED, "refused"), else_=log.status).label("status")
+        query = select(log.file, said, log.reason, log.runs, log.shots, log.sha256, log.finished_at).order_by(log.id.desc()).limit(limit)
         if status is not None:
-            query = query.where(s.IngestLogEntry.status == status)
+            wanted = "refused" if status == _OLD_REFUSED else status
+            query = query.where(log.status.in_(("refused", _OLD_REFUSED)) if wanted == "refused" else log.status == wanted)
         with self.engine.connect() as connection:
             return _frame(connection.execute(query).all(), ["file", "status", "reason", "runs", "shots", "sha256", "finished_at"])
 
@@ -491,6 +516,8 @@ class Catalogue:
         """Per-site ``(successes, trials, lattice shape)`` of a run: ``fill`` (loaded shots /
         shots) or ``survival`` (survived / loaded). Divide for the map; 0 trials means never loaded.
         """
+        import numpy as np
+
         with self.engine.connect() as connection:
             found = self._find_run(connection, run, apparatus)
             row = connection.execute(select(s.SiteCounts.successes, s.SiteCounts.trials).where(and_(s.SiteCounts.run_id == found.id, s.SiteCounts.name == name))).first()
@@ -665,6 +692,30 @@ class Catalogue:
             found = self._find_run(connection, run, apparatus, analysis)
             return _figure_records(connection, found.id)
 
+    def sequence_fit(self, apparatus: str, sequence: str) -> dict[str, str] | None:
+        """What the newest stored fit of a run of ``sequence`` on ``apparatus`` was made
+        with: ``kind``, ``x`` (the scanned parameter; ``None`` when derive chose the only
+        one), ``y`` (the measurement) and ``run`` (that run's key); ``None`` when no current
+        run of the sequence has a fit of a named measurement. Used to draw a run that has no
+        fit of its own."""
+        import json
+
+        fr = s.FigureRecord
+        query = (
+            select(fr.kind, fr.options, s.Run.key)
+            .join(s.Run, s.Run.id == fr.run_id)
+            .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
+            .where(and_(s.Apparatus.name == apparatus, s.Run.sequence == sequence, s.Run.is_current, fr.options.is_not(None)))
+            .order_by(fr.id.desc())
+        )
+        with self.engine.connect() as connection:
+            for kind, options, key in connection.execute(query):
+                made_with = json.loads(options) if options else {}
+                if isinstance(made_with.get("y"), str):
+                    x = made_with.get("x")
+                    return {"kind": kind, "x": x if isinstance(x, str) else None, "y": made_with["y"], "run": key}
+        return None
+
     def impact(self, run: str, *, apparatus: str | None = None, from_analysis: str | None = None, to_analysis: str | None = None) -> list[dict[str, object]]:
         """What moved between two analysis versions of ``run`` (default: the current one and
         the one before; with one version, its figure records in force and the ones before):
@@ -715,11 +766,13 @@ class Catalogue:
 
     # --- selections and exports ---------------------------------------------------
 
-    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
-        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs."""
+    def select(self, where: str | None = None, *, columns: Iterable[str] | None = None, limit: int | None = None, monitors: Iterable[str] = ()) -> "pd.DataFrame":
+        """Shots chosen by a filter expression (docs/filters.md), one row each; units in attrs.
+        ``monitors``: a column ``monitor.<name>`` each, the monitor's as-of value at the
+        shot's time (last value at or before it, at most 600 s before; docs/filters.md)."""
         from runlog.selection import select_shots
 
-        return select_shots(self, where, columns=columns, limit=limit)
+        return select_shots(self, where, columns=columns, limit=limit, monitors=tuple(monitors))
 
     def pin(self, name: str, where: str, *, author: str | None = None) -> dict[str, object]:
         """Freeze the shots ``where`` selects now, with their analysis versions and the
@@ -812,7 +865,10 @@ class Catalogue:
             baseline = (_as_day(baseline[0]), _as_day(baseline[1]))
         thresholds = THRESHOLDS if baseline_days is None else replaced(THRESHOLDS, window=int(baseline_days))
         zone = ZoneInfo(self.lab_timezone)
-        with self.engine.connect() as connection:
+        # One snapshot for the several reads of a drift (the series' runs, then their
+        # figures): a new analysis version committed between them would leave no points.
+        options = {"isolation_level": "REPEATABLE READ"} if self.engine.dialect.name == "postgresql" else {}
+        with self.engine.connect().execution_options(**options) as connection:
             result = drift_of(connection, quantity, apparatus=apparatus, sequence=sequence, series=series, pooled=pooled, since=since, until=until, baseline=baseline, parameters=parameters, thresholds=thresholds, zone=zone)
         if record_alarms and result.points and not parameters and baseline is None and since is None and until is None:
             # A writer from the start on SQLite: a deferred transaction that read first
@@ -894,9 +950,10 @@ class Catalogue:
         """Stored figures, one row per run and figure, by lab day: run, apparatus, sequence,
         day, started, name, value, stderr, ci_low, ci_high, unit, method; for counting
         figures also binomial_ci_low, binomial_ci_high (the pooled interval) and
-        binomial_method (ci_low/ci_high are shot-level)."""
+        binomial_method (ci_low/ci_high are shot-level); out_of_range (a fitted value
+        outside its physical range, left out of drift)."""
         query = (
-            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method)
+            select(s.Run.key.label("run"), s.Apparatus.name.label("apparatus"), s.Run.sequence, s.Run.day, s.Run.started, s.FigureRow.name, s.FigureRow.value, s.FigureRow.stderr, s.FigureRow.ci_low, s.FigureRow.ci_high, s.FigureRow.unit, s.FigureRow.method, s.FigureRow.binomial_ci_low, s.FigureRow.binomial_ci_high, s.FigureRow.binomial_method, s.FigureRow.out_of_range)
             .join(s.Run, s.Run.id == s.FigureRow.run_id)
             .join(s.Apparatus, s.Apparatus.id == s.Run.apparatus_id)
             .where(s.Run.is_current)
@@ -914,7 +971,7 @@ class Catalogue:
             query = query.where(s.Run.key.in_(list(runs)))
         with self.engine.connect() as connection:
             rows = connection.execute(query).all()
-        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method"])
+        return _frame(rows, ["run", "apparatus", "sequence", "day", "started", "name", "value", "stderr", "ci_low", "ci_high", "unit", "method", "binomial_ci_low", "binomial_ci_high", "binomial_method", "out_of_range"])
 
     def calibrations(self, *, apparatus: str | None = None, names: Iterable[str] | None = None) -> list:
         """The calibration register: per apparatus, the latest stored value of each
@@ -1015,8 +1072,9 @@ class Catalogue:
     # --- monitors --------------------------------------------------------------------
 
     def monitors(self, *, now: dt.datetime | None = None, silent_after: dt.timedelta = dt.timedelta(hours=1)) -> list[dict[str, object]]:
-        """Every monitor with its latest value, and whether it stopped reporting
-        (nothing logged within ``silent_after`` before ``now``)."""
+        """Every monitor with its latest value at or before ``now``, its usual interval, and
+        whether it stopped reporting: silent for more than 10 usual intervals and more than
+        ``silent_after`` (:func:`runlog.monitors.overlay.monitor_list`)."""
         from runlog.monitors.overlay import monitor_list
 
         with self.engine.connect() as connection:
@@ -1160,6 +1218,8 @@ def _figure_records(connection, run_id: int) -> list[dict[str, object]]:
             entry["ci_low"], entry["ci_high"] = row.ci_low, row.ci_high
         if row.binomial_method is not None:
             entry.update(binomial_ci_low=row.binomial_ci_low, binomial_ci_high=row.binomial_ci_high, binomial_method=row.binomial_method)
+        if row.out_of_range:
+            entry["out_of_range"] = True
         entry.update(
             {
                 "method": row.method,

@@ -66,6 +66,8 @@ def _echo(message: Any = "", **kwargs: Any) -> None:
 
 
 def _printable(text: str) -> str:
+    if text.replace("\n", "").replace("\t", "").isprintable():
+        return text  # the common case, checked in C: a long --json answer costs no loop over its characters
     return "".join(c if c.isprintable() or c in "\n\t" else repr(c)[1:-1] for c in text)
 
 
@@ -179,7 +181,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
         _json([r.as_dict() | ({"derived": [_outcome_json(o) for o in r.derived]} if mapping.rules else {}) for r in results])
     else:
         for r in results:
-            if r.status == "rejected":
+            if r.status == "refused":
                 _echo(f"refused          {r.reason}")
             elif r.monitors:
                 names = ", ".join(r.monitors[:3]) + (f" (+{len(r.monitors) - 3} more)" if len(r.monitors) > 3 else "")
@@ -189,7 +191,7 @@ def ingest(state: _State, paths: tuple[Path, ...], as_json: bool, config: Path |
                 _echo(f"{r.status:<16} {r.file}: {r.shots} shots, run {runs}")
             for outcome in r.derived:
                 _wrapped(_outcome_line(outcome))
-    if any(r.status == "rejected" for r in results):
+    if any(r.status == "refused" for r in results):
         sys.exit(1)
 
 
@@ -296,6 +298,15 @@ def show(state: _State, run: str, apparatus: str | None, analysis: str | None, h
         _echo("figures")
         for name, figure in info.figures.items():
             _echo("  " + _figure_line(name, figure))
+    if info.monitors:
+        _echo("monitors over the run (first to last shot)")
+        for entry in info.monitors:
+            unit = f" {_unit_text(entry['unit'])}" if entry["unit"] else ""
+            if entry["count"]:
+                _echo(f"  {entry['name']:<24} mean {entry['mean']:.6g}{unit}, {entry['minimum']:.6g} .. {entry['maximum']:.6g}, {entry['count']} values")
+            else:
+                start = f"; {entry['at_start']:.6g}{unit} at the start" if entry["at_start"] is not None else "; none within 600 s before the start"
+                _echo(f"  {entry['name']:<24} no value logged during the run{start}")
     if info.figure_history is not None:
         _echo("figure records, newest first")
         for record in info.figure_history:
@@ -438,7 +449,8 @@ def _figure_line(name: str, figure: dict[str, Any]) -> str:
     text += unit
     if "ci_low" in figure:
         text += f"  [{figure['ci_low']:.4g}, {figure['ci_high']:.4g}]"
-    return text + f"  ({figure['method']})"
+    text += f"  ({figure['method']})"
+    return text + ("  out of range: outside its physical range, not in drift" if figure.get("out_of_range") else "")
 
 
 @cli.command("note")
@@ -584,9 +596,9 @@ def demo(state: _State, days: int, seed: int, no_dashboard: bool, port: int) -> 
         _wrapped(_alarm_line(alarm))
     _echo("to use the demo catalogue with every other command, in this shell:")
     _echo(f"  export RUNLOG_DB={shlex.quote(url)}")
-    if any(r.status == "rejected" for r in results):
+    if any(r.status == "refused" for r in results):
         for r in results:
-            if r.status == "rejected":
+            if r.status == "refused":
                 _echo(f"refused: {r.reason}", err=True)
         sys.exit(1)
     if not no_dashboard and sys.stdin.isatty() and sys.stdout.isatty():
@@ -925,13 +937,14 @@ def dashboard(state: _State, port: int, host: str, author_header: str | None, lo
 @click.option("--limit", type=int, default=None, help="At most N shots.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object per shot.")
 @click.option("--csv", "as_csv", is_flag=True, help="CSV on standard output.")
+@click.option("--monitor", "monitor_names", multiple=True, metavar="NAME", help="A column monitor.NAME: the monitor's value at each shot's time (repeatable).")
 @_common
-def shots(state: _State, where: str | None, columns: str | None, limit: int | None, as_json: bool, as_csv: bool) -> None:
+def shots(state: _State, where: str | None, columns: str | None, limit: int | None, as_json: bool, as_csv: bool, monitor_names: tuple[str, ...]) -> None:
     """Shots chosen by a filter, for quick looks."""
     if as_json and as_csv:
         raise click.UsageError("choose one of --json and --csv")
     with _open(state) as catalogue:
-        frame = catalogue.select(where, columns=[c.strip() for c in columns.split(",")] if columns else None, limit=limit)
+        frame = catalogue.select(where, columns=[c.strip() for c in columns.split(",")] if columns else None, limit=limit, monitors=monitor_names)
     if as_csv:
         _echo(frame.to_csv(index=False), nl=False)
     elif as_json:
@@ -955,9 +968,10 @@ def shots(state: _State, where: str | None, columns: str | None, limit: int | No
 @click.option("--overwrite", is_flag=True, help="Replace an earlier export in --out.")
 @click.option("--spec", type=click.Path(path_type=Path, dir_okay=False, exists=True), default=None, help="Re-run a saved export (its export.toml).")
 @click.option("--pin", "pin_name", default=None, metavar="NAME", help="Export a pinned selection (runlog pin) as it was pinned.")
+@click.option("--monitor", "monitor_names", multiple=True, metavar="NAME", help="A shots column monitor.NAME: the monitor's value at each shot's time (repeatable).")
 @click.option("--json", "as_json", is_flag=True)
 @_common
-def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, pin_name: str | None, as_json: bool) -> None:
+def export(state: _State, where: str | None, out: Path | None, file_format: str, with_occupancy: bool, title: str | None, overwrite: bool, spec: Path | None, pin_name: str | None, monitor_names: tuple[str, ...], as_json: bool) -> None:
     """Write the chosen shots, their runs and provenance as a Frictionless Data Package."""
     if spec is None and ((where is None) == (pin_name is None) or out is None):
         raise click.UsageError("give --where EXPR (or --pin NAME) and --out DIR, or --spec FILE")
@@ -965,7 +979,7 @@ def export(state: _State, where: str | None, out: Path | None, file_format: str,
         if spec is not None:
             result = catalogue.export_again(spec, out=out)
         else:
-            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite, pin=pin_name)
+            result = catalogue.export(where, out, format=file_format, with_occupancy=with_occupancy, title=title, overwrite=overwrite, pin=pin_name, monitors=monitor_names)
     if as_json:
         _json(result.as_dict())
         return

@@ -82,7 +82,7 @@ from runlog.units import UnitError, conversion, convert, converter, parse_unit, 
 if TYPE_CHECKING:
     from runlog.catalogue import Catalogue, RunInfo
 
-__all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve"]
+__all__ = ["KINDS", "DeriveResult", "DeriveSummary", "FitCurve", "apply_rules", "derive", "derive_all", "fit_curve", "fitted_signal"]
 
 #: The figure kinds :func:`derive` can apply to a run.
 KINDS = frozenset({"counting", "fringe", "coherence", "spreading", "sorting", "correlator", "rabi", "spectroscopy", "echo", "t1", "lifetime", "detection", "release_recapture", "two_atom"})
@@ -1114,6 +1114,23 @@ def fit_curve(
     decay = {"gaussian": "exp(-(t/T)²)", "exponential": "exp(-t/T)", "thermal": "(1 + 0.95 (t/T)²)^(-3/2)"}[envelope]
     formula = f"y = a (1 + C0 E(t) cos(2π δ t + φ)), E(t) = {decay}"
     return FitCurve(info.run, kind, formula, x_name, x_unit, y_name, y_unit, shots_x, shots_y, grid, offset * shape_only(grid), offset, True)
+
+
+def fitted_signal(catalogue: Catalogue, info: RunInfo) -> tuple[str, str, str] | None:
+    """``(x, y, why)`` of the signal a run without a stored fit of its own is drawn with:
+    the parameter and measurement the newest fit of its sequence (same apparatus) was made
+    on, when this run has both; else its only measurement against its only scanned number
+    parameter, as :func:`derive` would fit it. ``None`` when neither tells.
+    """
+    scanned = [name for name, entry in info.parameters.items() if entry.get("scanned") and "min" in entry]
+    made = catalogue.sequence_fit(info.apparatus, info.sequence)
+    if made is not None and made["y"] in info.measurements:
+        x = made["x"] or (scanned[0] if len(scanned) == 1 else None)  # None: derive took the only one
+        if x in scanned:
+            return x, made["y"], f"as the {made['kind']} fit of run {made['run']} ({info.sequence})"
+    if len(scanned) == 1 and len(info.measurements) == 1:
+        return scanned[0], info.measurements[0], "the run's only measurement"
+    return None
 
 
 def _stored_options(catalogue: Catalogue, info: RunInfo) -> dict[str, object]:

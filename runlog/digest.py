@@ -3,8 +3,9 @@
 Per apparatus: each headline figure of its reference series on the day against its
 baseline (value with interval, state, size in unit and in standard errors;
 :mod:`runlog.drift.standing`), the open alarms with their top suspects (notes first), the
-day's notes, and ingest health (files stored and refused that day, an apparatus that sent
-nothing). Rendered as plain text and as one self-contained HTML page whose charts are
+day's notes, its monitors with their latest values at the end of the day and a warning for
+each monitor that stopped reporting (:func:`runlog.monitors.overlay.monitor_list`), and
+ingest health (files stored and refused that day, an apparatus that sent nothing). Rendered as plain text and as one self-contained HTML page whose charts are
 inline SVG drawn here (no script, no external file), and sent by e-mail (SMTP from the
 standard library; host and credentials from the environment, never printed) or to a chat
 webhook (a JSON POST of the text; the URL, which often holds a token, is never printed).
@@ -28,6 +29,7 @@ from zoneinfo import ZoneInfo
 
 from runlog.drift.standing import HEADLINE, standing
 from runlog.errors import ConfigError, NotFoundError
+from runlog.monitors.overlay import duration_words, stopped_words
 
 __all__ = ["build_digest", "digest_text", "digest_html", "send_mail", "send_webhook", "due_day", "send_due"]
 
@@ -46,10 +48,14 @@ def build_digest(catalogue, *, day: dt.date | None = None, apparatus: str | None
     start = dt.datetime.combine(day, dt.time(), zone)
     end = start + dt.timedelta(days=1)
     entries = log[(log["finished_at"] >= start) & (log["finished_at"] < end)] if len(log) else log
-    out = {"day": day.isoformat(), "lab_timezone": str(zone), "apparatus": [], "ingest": {
+    # Monitors as they stood at the end of the lab day (or now, for today): a digest made
+    # again later says the same.
+    as_of = min(end, dt.datetime.now(dt.timezone.utc))
+    monitors = catalogue.monitors(now=as_of)
+    out = {"day": day.isoformat(), "lab_timezone": str(zone), "monitors_as_of": as_of.astimezone(zone).isoformat(), "apparatus": [], "ingest": {
         "stored": int((entries["status"] == "ingested").sum()) if len(entries) else 0,
         "already_present": int((entries["status"] == "already-present").sum()) if len(entries) else 0,
-        "refused": [{"file": os.path.basename(str(r.file)), "reason": r.reason} for r in entries.itertuples() if r.status == "rejected"] if len(entries) else [],
+        "refused": [{"file": os.path.basename(str(r.file)), "reason": r.reason} for r in entries.itertuples() if r.status == "refused"] if len(entries) else [],
     }}
     for name in names:
         stored = catalogue.figure_names(apparatus=name)
@@ -76,8 +82,24 @@ def build_digest(catalogue, *, day: dt.date | None = None, apparatus: str | None
             "figures": figures,
             "alarms": alarms,
             "notes": notes,
+            "monitors": [
+                {**{k: m[k] for k in ("name", "unit", "latest_value", "latest_time", "interval_seconds", "silent_seconds", "stopped_reporting")}, "latest_local": _local(m["latest_time"], zone)}
+                for m in monitors
+                if m["apparatus"] == name
+            ],
         })
     return out
+
+
+def _local(moment: str | None, zone: ZoneInfo) -> str | None:
+    return None if moment is None else dt.datetime.fromisoformat(moment).astimezone(zone).strftime("%Y-%m-%d %H:%M:%S")
+
+
+def _monitor_words(monitor: dict[str, object]) -> str:
+    unit = f" {monitor['unit']}" if monitor["unit"] else ""
+    if monitor["latest_value"] is None:
+        return f"{monitor['name']}: nothing logged yet"
+    return f"{monitor['name']}: {monitor['latest_value']:.6g}{unit} at {monitor['latest_local']} (every {duration_words(monitor['interval_seconds'])})"
 
 
 def digest_text(digest: dict[str, object]) -> str:
@@ -100,6 +122,12 @@ def digest_text(digest: dict[str, object]) -> str:
             lines.append(f"      {alarm['verdict']}")
         for note in entry["notes"]:
             lines.append(f"  note {note['at']}: {note['text']}")
+        for monitor in entry["monitors"]:
+            if monitor["stopped_reporting"]:
+                lines.append(f"  WARNING: {stopped_words(monitor, ZoneInfo(digest['lab_timezone']))}")
+        if entry["monitors"]:
+            lines.append(f"  monitors (latest, as of {digest['monitors_as_of'][:16].replace('T', ' ')}):")
+            lines += [f"    {_monitor_words(m)}" for m in entry["monitors"]]
         lines.append("")
     ingest = digest["ingest"]
     lines.append(f"ingest on {digest['day']}: {ingest['stored']} files stored, {ingest['already_present']} already present, {len(ingest['refused'])} refused")
@@ -141,6 +169,13 @@ def _chart(history: list[tuple], width: int = 320, height: int = 90) -> str:
     return "".join(parts)
 
 
+def _monitor_row(monitor: dict[str, object]) -> str:
+    e = html.escape
+    value = "" if monitor["latest_value"] is None else f"{monitor['latest_value']:.6g}"
+    state = "<span class='warn'>stopped reporting</span>" if monitor["stopped_reporting"] else "reporting"
+    return f"<tr><td>{e(monitor['name'])}</td><td>{value}</td><td>{e(monitor['unit'])}</td><td>{e(monitor['latest_local'] or '')}</td><td>{e(duration_words(monitor['interval_seconds']))}</td><td>{state}</td></tr>"
+
+
 def digest_html(digest: dict[str, object]) -> str:
     e = html.escape
     body = [f"<h1>Lab day {e(digest['day'])}</h1><p class='quiet'>lab time zone {e(digest['lab_timezone'])} · advisory only: not a replacement for the lab's interlocks or rules</p>"]
@@ -171,6 +206,10 @@ def digest_html(digest: dict[str, object]) -> str:
             body.append("<p>No open alarms.</p>")
         if entry["notes"]:
             body.append("<h3>Notes of the day</h3><ul>" + "".join(f"<li>{e(n['at'])} {e(n['text'])}</li>" for n in entry["notes"]) + "</ul>")
+        if entry["monitors"]:
+            body.append(f"<h3>Monitors</h3><p class='quiet'>latest values as of {e(digest['monitors_as_of'][:16].replace('T', ' '))}</p>")
+            body += [f"<p class='warn'>{e(stopped_words(m, ZoneInfo(digest['lab_timezone'])))}.</p>" for m in entry["monitors"] if m["stopped_reporting"]]
+            body.append("<table><tr><th>monitor</th><th>latest</th><th>unit</th><th>at</th><th>usually every</th><th>state</th></tr>" + "".join(_monitor_row(m) for m in entry["monitors"]) + "</table>")
         body.append("</section>")
     ingest = digest["ingest"]
     refused = "".join(f"<li>{e(r['file'])}: {e(str(r['reason']))}</li>" for r in ingest["refused"])
@@ -178,7 +217,7 @@ def digest_html(digest: dict[str, object]) -> str:
     style = (
         "body{font-family:sans-serif;max-width:1100px;margin:1em auto;color:#1b1b1b}.cards{display:flex;flex-wrap:wrap;gap:12px}"
         ".card{border:1px solid #ccc;border-radius:6px;padding:8px 10px;width:340px}.name{font-weight:bold}.value{font-size:1.3em}"
-        ".quiet{color:#555}.small{font-size:.8em}.warn{color:#b3261e;font-weight:bold}"
+        ".quiet{color:#555}.small{font-size:.8em}.warn{color:#b3261e;font-weight:bold}td,th{padding:2px 10px;text-align:left}"
     )
     return f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>runlog digest {e(digest['day'])}</title><style>{style}</style></head><body>{''.join(body)}</body></html>\n"
 

@@ -3,7 +3,8 @@
 Owns the package layout and its guarantees. A package is a folder holding:
 
 * ``shots.parquet`` (or ``.csv``): one row per shot, as :mod:`runlog.selection` gives it,
-  plus ``occ.<image>`` columns (packed bits as hex) when asked for;
+  plus ``occ.<image>`` columns (packed bits as hex) and ``monitor.<name>`` columns (a
+  monitor's as-of value at the shot's time) when asked for;
 * ``runs``: one row per run with shots in the export; ``figures``: the stored figures
   of those runs (value, standard error, interval, unit, method); ``images`` (with
   occupancy only): each run's images, their role, site count and lattice shape;
@@ -44,6 +45,7 @@ import pyarrow.parquet as pq
 from sqlalchemy import select
 
 from runlog.errors import ExportError, ConfigError
+from runlog.monitors.align import MAX_GAP_SECONDS
 from runlog.selection import PARALLEL_READS, Selection, id_in, select_on
 from runlog.store import schema as s
 from runlog.store.arrow_reader import arrow_read
@@ -151,10 +153,10 @@ def _figures_table(connection, run_order: list[int], runs_table: pa.Table, recor
     records ``records``, which never change."""
     figures = s.FigureRow.__table__ if records is None else s.FigureRecord.__table__
     position = {rid: i for i, rid in enumerate(run_order)}
-    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method")
-    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64(), pa.float64(), pa.float64(), pa.string())
+    names = ("run_id", "figure", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version", "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method", "out_of_range")
+    types = (None, pa.string(), pa.string(), pa.float64(), pa.float64(), pa.float64(), pa.float64(), pa.string(), pa.string(), pa.string(), pa.int64(), pa.int64(), pa.float64(), pa.float64(), pa.string(), pa.bool_())
     rows: list[tuple] = []
-    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials, figures.c.binomial_ci_low, figures.c.binomial_ci_high, figures.c.binomial_method)
+    columns = (figures.c.run_id, figures.c.name, figures.c.kind, figures.c.value, figures.c.stderr, figures.c.ci_low, figures.c.ci_high, figures.c.unit, figures.c.method, figures.c.method_version, figures.c.successes, figures.c.trials, figures.c.binomial_ci_low, figures.c.binomial_ci_high, figures.c.binomial_method, figures.c.out_of_range)
     for chunk in _chunks(run_order if records is None else sorted(records)):
         rows += connection.execute(select(*columns).where(id_in(figures.c.run_id if records is None else figures.c.id, chunk))).all()
     rows.sort(key=lambda r: (position[int(r[0])], r[1]))
@@ -255,6 +257,9 @@ def _field_type(data_type: pa.DataType) -> str:
     return "string"
 
 
+#: The as-of rule of monitor columns, as the package states it (runlog.monitors.align).
+AS_OF_RULE = f"the last value the monitor of the shot's apparatus logged at or before the shot's time, if logged at most {MAX_GAP_SECONDS:g} s before it; else empty (no interpolation)"
+
 _DESCRIPTIONS = {
     "run": "the run's key (unique per apparatus)",
     "apparatus": "the machine the shot ran on",
@@ -280,6 +285,7 @@ _DESCRIPTIONS = {
     "binomial_ci_low": "counting figures: lower end of the pooled binomial interval (every site an independent try; too narrow when loading varies between shots)",
     "binomial_ci_high": "counting figures: upper end of the pooled binomial interval",
     "binomial_method": "counting figures: the method of the pooled binomial interval",
+    "out_of_range": "true when the fitted value lies outside its physical range (a contrast of a fraction signal above 1): kept as fitted, left out of daily rollups, drift and alarms",
     "unit": "the unit of value, stderr and interval",
     "method": "how it was computed",
     "method_version": "version of that method",
@@ -301,6 +307,8 @@ def _schema(table: pa.Table, units: dict[str, str], primary_key: list[str], fore
             entry["description"] = f"parameter '{item.name[2:]}'" + (f", in {unit}" if unit else "")
         elif item.name.startswith("m."):
             entry["description"] = f"measurement '{item.name[2:]}'" + (f", in {unit}" if unit else "")
+        elif item.name.startswith("monitor."):
+            entry["description"] = f"monitor '{item.name[8:]}' at the shot's time: {AS_OF_RULE}" + (f"; in {unit}" if unit else "")
         elif item.name.startswith("occ."):
             entry["description"] = (
                 f"site occupancy of image '{item.name[4:]}': numpy.packbits (big-endian) of one boolean per site, "
@@ -467,7 +475,7 @@ def _toml_string(value: str) -> str:
     return json.dumps(value, ensure_ascii=True)
 
 
-def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: Path, data: dict[str, str], pin: str | None = None) -> str:
+def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: Path, data: dict[str, str], pin: str | None = None, monitors: tuple[str, ...] = ()) -> str:
     lines = [
         "# A runlog export: `runlog export --spec export.toml` writes it again and says",
         "# whether the data files still hash as listed under [data].",
@@ -475,6 +483,7 @@ def _spec_text(where: str, format: str, with_occupancy: bool, title: str, out: P
         f"where = {_toml_string(where)}",
         f"format = {_toml_string(format)}",
         f"with_occupancy = {'true' if with_occupancy else 'false'}",
+        *([f"monitors = [{', '.join(_toml_string(m) for m in monitors)}]"] if monitors else []),
         f"title = {_toml_string(title)}",
         f"out = {_toml_string(str(out))}",
         "",
@@ -561,7 +570,7 @@ def _catalogue_url(catalogue) -> str:
     return redact(url) if isinstance(url, str) else redact(catalogue.engine.url)
 
 
-def export(catalogue, where: str | None, out: str | Path, *, format: str = "parquet", with_occupancy: bool = False, title: str | None = None, overwrite: bool = False, pin: str | None = None) -> ExportResult:
+def export(catalogue, where: str | None, out: str | Path, *, format: str = "parquet", with_occupancy: bool = False, title: str | None = None, overwrite: bool = False, pin: str | None = None, monitors=()) -> ExportResult:
     """Write the shots ``where`` selects as a Data Package in the folder ``out``.
 
     ``format`` is ``"parquet"`` or ``"csv"``; ``with_occupancy`` adds the ``occ.<image>``
@@ -573,11 +582,16 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
     shots under the analysis versions, figure records and run fields it froze, so the
     data files come out byte-identical to the pin's first export; the provenance names the
     pin and what newer analyses would change in it.
+
+    ``monitors`` adds a shots column ``monitor.<name>`` per monitor, its as-of value at
+    each shot's time (:data:`AS_OF_RULE`); the schema gives its unit and the provenance
+    the rule.
     """
     from runlog import __version__
 
     if format not in FORMATS:
         raise ValueError(f"unknown export format '{format}': use {' or '.join(FORMATS)}")
+    monitors = tuple(dict.fromkeys(monitors))
     if pin is not None:
         if where:
             raise ValueError("export a pin or a filter, not both (the pin holds its filter)")
@@ -616,14 +630,14 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
     try:
         with arrow_read(engine, parallel=PARALLEL_READS) as fast:
             if fast is not None:
-                tables = _read(fast, where, with_occupancy, early, pin)
+                tables = _read(fast, where, with_occupancy, early, pin, monitors)
         if fast is None:
             with engine.connect().execution_options(**options) as connection:
-                tables = _read(connection, where, with_occupancy, early, pin)
+                tables = _read(connection, where, with_occupancy, early, pin, monitors)
         selection, shots_table, runs_table, figures_table, images_table, sources, zone, pinned = tables
 
         tables = [
-            ("shots", shots_table, selection.units, ["run", "apparatus", "shot"], True, "one row per shot: run fields, time, parameters (p.), measurements (m.)" + (", occupancy (occ.)" if with_occupancy else "")),
+            ("shots", shots_table, selection.units, ["run", "apparatus", "shot"], True, "one row per shot: run fields, time, parameters (p.), measurements (m.)" + (", monitors at the shot's time (monitor.)" if monitors else "") + (", occupancy (occ.)" if with_occupancy else "")),
             ("runs", runs_table, {}, ["run", "apparatus"], False, "one row per run with shots in this export"),
             ("figures", figures_table, {}, ["run", "apparatus", "figure"], True, "the stored figures of merit of those runs, one row per run and figure"),
         ]
@@ -660,6 +674,12 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
                 "source_files": sources,
             },
         }
+        if monitors:
+            manifest["provenance"]["monitors"] = {
+                "rule": AS_OF_RULE,
+                "max_gap_seconds": MAX_GAP_SECONDS,
+                "columns": [{"column": f"monitor.{m.name}", "monitor": m.name, "unit": m.unit, "apparatus": [a for a, _, _ in m.apparatus]} for m in selection.monitors],
+            }
         if "name" in pinned:
             manifest["provenance"]["pin"] = pinned
         elif pinned["other_versions_pinned"]:
@@ -668,7 +688,7 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
         headline = _headline(figures_table)
         files = [(f"{name}.{suffix}", description) for name, _, _, _, _, description in tables]
         (staging / README).write_text(_readme(title, where, shots_table, runs_table, headline, zone, files, pinned), encoding="utf-8")
-        (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data, pin), encoding="utf-8")
+        (staging / SPEC).write_text(_spec_text(where, format, with_occupancy, title, out, data, pin, monitors), encoding="utf-8")
         _move_into_place(staging, out, overwrite, catalogue)
     except BaseException:
         background.shutdown(wait=True, cancel_futures=True)
@@ -685,7 +705,7 @@ def export(catalogue, where: str | None, out: str | Path, *, format: str = "parq
     )
 
 
-def _read(connection, where: str | None, with_occupancy: bool, selected: Callable[[pa.Table], None] | None = None, pin: str | None = None):
+def _read(connection, where: str | None, with_occupancy: bool, selected: Callable[[pa.Table], None] | None = None, pin: str | None = None, monitors: tuple[str, ...] = ()):
     """Everything an export writes, read in the connection's one transaction;
     ``selected`` is given the shots table as soon as it is read. With ``pin``, the pin's
     shots, frozen run fields and figure records instead of the filter's."""
@@ -694,7 +714,7 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
         from runlog.pins import changes, load_pin, pinned_selection, withdrawn_since
 
         found = load_pin(connection, pin)
-        selection = pinned_selection(connection, found)
+        selection = pinned_selection(connection, found, monitors)
         frozen = {run.run_id: run.fields for run in found.runs}
         records: list[int] | None = [r for run in found.runs for r in run.records]
         pinned = {
@@ -709,7 +729,7 @@ def _read(connection, where: str | None, with_occupancy: bool, selected: Callabl
         }
     else:
         # The shot ids name the files that brought exactly these shots (provenance).
-        selection = select_on(connection, where, shot_ids=True)
+        selection = select_on(connection, where, shot_ids=True, monitors=monitors)
         frozen, records = None, None
     if selected is not None:
         selected(selection.table)
@@ -764,7 +784,7 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
     for key in ("where", "format"):
         if not isinstance(spec.get(key), str):
             raise ConfigError(str(spec_path), f"the export spec needs '{key}' (text)")
-    unknown = sorted(set(spec) - {"pin", "where", "format", "with_occupancy", "title", "out", "data"})
+    unknown = sorted(set(spec) - {"pin", "where", "format", "with_occupancy", "monitors", "title", "out", "data"})
     if unknown:
         raise ConfigError(str(spec_path), f"unknown key(s) {', '.join(unknown)} in the export spec")
     previous = {str(k): str(v) for k, v in (spec.get("data") or {}).items()}
@@ -786,6 +806,7 @@ def export_spec(catalogue, spec_path: str | Path, *, out: str | Path | None = No
         pin=pin if isinstance(pin, str) else None,
         format=spec["format"],
         with_occupancy=bool(spec.get("with_occupancy", False)),
+        monitors=tuple(str(m) for m in spec.get("monitors", [])),
         title=spec.get("title"),
         overwrite=True,
     )

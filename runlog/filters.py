@@ -11,8 +11,10 @@ Meaning, in short:
 
 * names are run fields (``run``, ``apparatus``, ``sequence``, ``operator``, ``tag``),
   shot fields (``shot``, ``status``, ``time``, ``date`` = the lab day of the shot in the
-  catalogue's lab time zone), parameters, measurements and the stored figures of the run;
-  ``p.``, ``m.`` and ``f.`` pick a parameter, measurement or figure when names collide;
+  catalogue's lab time zone), parameters, measurements, the stored figures of the run and
+  monitors (the as-of value of the monitor of the shot's apparatus at the shot's time,
+  :mod:`runlog.monitors.align`); ``p.``, ``m.``, ``f.`` and ``monitor.`` pick a parameter,
+  measurement, figure or monitor when names collide;
 * a number may carry a unit; it is converted with pint to the unit the catalogue stores
   (without one, it is taken to be in the stored unit);
 * a shot lacking a value (a parameter it does not have, a measurement not made, a run
@@ -37,24 +39,32 @@ from typing import Union
 from zoneinfo import ZoneInfo
 
 from sqlalchemy import (
+    BigInteger,
     Column,
+    DateTime,
+    Interval,
     ColumnElement,
     Float,
     MetaData,
     Table,
     and_,
     bindparam,
+    literal_column,
     exists,
+    false,
+    func,
     not_,
     literal,
     or_,
     select,
     true,
+    type_coerce,
 )
 from sqlalchemy import text as sql_text
 from sqlalchemy.engine import Connection, Engine
 
 from runlog.errors import FilterError
+from runlog.monitors.align import MAX_GAP_SECONDS
 from runlog.store import schema as s
 from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
 from runlog.times import day_start_utc
@@ -76,6 +86,7 @@ __all__ = [
     "compile_filter",
     "compile_selection",
     "known_names",
+    "as_of_value",
     "FigureNames",
 ]
 
@@ -400,6 +411,16 @@ class _Measurement:
     unit: str
 
 
+@dataclass(frozen=True)
+class _Monitor:
+    """A monitor of one apparatus (monitors are named per apparatus)."""
+
+    id: int
+    apparatus_id: int
+    name: str
+    unit: str
+
+
 class FigureNames(Mapping[str, tuple[str, ...]]):
     """The stored figures' names, each with the units its rows are stored in.
 
@@ -450,6 +471,10 @@ class _Names:
     partitioned: bool = False
     #: The lab-defined units recorded at ingest (runlog.units), so filters read them too.
     lab_units: tuple[tuple[str, str], ...] = ()
+    #: Monitor name -> that monitor on each apparatus that logs it.
+    monitors: dict[str, tuple[_Monitor, ...]] = field(default_factory=dict)
+    #: Whether the catalogue knows a single apparatus (every shot is that apparatus's).
+    one_apparatus: bool = False
 
     @classmethod
     def load(cls, connection: Connection) -> _Names:
@@ -463,10 +488,15 @@ class _Names:
         }
         zone_name = connection.execute(select(s.Setting.value).where(s.Setting.key == "lab_timezone")).scalar() or "UTC"
         lab_units = tuple(sorted((str(key)[5:], str(value)) for key, value in connection.execute(select(s.Setting.key, s.Setting.value).where(s.Setting.key.like("unit:%")))))
-        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql", lab_units)
+        monitors: dict[str, list[_Monitor]] = {}
+        for mid, apparatus_id, name, unit in connection.execute(select(s.Monitor.id, s.Monitor.apparatus_id, s.Monitor.name, s.Monitor.unit).order_by(s.Monitor.id)):
+            monitors.setdefault(name, []).append(_Monitor(int(mid), int(apparatus_id), name, unit or ""))
+        frozen = {name: tuple(found) for name, found in monitors.items()}
+        one = connection.execute(select(func.count()).select_from(s.Apparatus.__table__)).scalar_one() <= 1
+        return cls(parameters, measurements, FigureNames(connection), ZoneInfo(zone_name), connection.dialect.name == "postgresql", lab_units, frozen, one)
 
     def all(self) -> list[str]:
-        return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures]
+        return [*RUN_FIELDS, *SHOT_FIELDS, *self.parameters, *self.measurements, *self.figures, *self.monitors]
 
 
 @contextlib.contextmanager
@@ -483,7 +513,7 @@ def _connected(source) -> Iterator[Connection]:
 
 def known_names(source) -> dict[str, list[str]]:
     """Every name a filter can use on this catalogue, by group: ``fields``,
-    ``parameters``, ``measurements`` and ``figures`` (sorted)."""
+    ``parameters``, ``measurements``, ``figures`` and ``monitors`` (sorted)."""
     with _connected(source) as connection:
         names = _Names.load(connection)
     return {
@@ -491,6 +521,7 @@ def known_names(source) -> dict[str, list[str]]:
         "parameters": sorted(names.parameters),
         "measurements": sorted(names.measurements),
         "figures": sorted(names.figures),
+        "monitors": sorted(names.monitors),
     }
 
 
@@ -540,22 +571,25 @@ def _in_runs(condition: ColumnElement[bool]) -> ColumnElement[bool]:
     return _shots.c.run_id.in_(select(_runs.c.id).where(condition))
 
 
-def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
-    """``column operator values``, never NULL: a missing value compares false."""
+def _test(column, operator: str, values: list) -> ColumnElement[bool]:
+    """``column operator values`` as SQL has it (NULL when the column is NULL)."""
     # Lists are IN (...) of one bound value each, not expanding parameters, so the statement
     # has a fixed set of plain bound values and can be handed to the driver as it is; not a
     # chain of = terms either, which SQLite parses one level deeper per value and refuses
     # past 1000 ("Expression tree is too large").
     if operator == "between":
-        test = column.between(values[0], values[1])
-    elif operator in ("in", "not in"):
+        return column.between(values[0], values[1])
+    if operator in ("in", "not in"):
         # Each value bound with the column's type (times are stored as numbers on SQLite),
         # a fraction as a float: 'shot in (0.5)' matches no shot rather than shot 0.
         bound = [literal(v, Float() if isinstance(v, float) else column.type) for v in values]
-        test = column.in_(bound) if operator == "in" else column.not_in(bound)
-    else:
-        test = {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
-    return and_(column.is_not(None), test)
+        return column.in_(bound) if operator == "in" else column.not_in(bound)
+    return {"=": column.__eq__, "!=": column.__ne__, "<": column.__lt__, "<=": column.__le__, ">": column.__gt__, ">=": column.__ge__}[operator](values[0])
+
+
+def _compare(column, operator: str, values: list) -> ColumnElement[bool]:
+    """``column operator values``, never NULL: a missing value compares false."""
+    return and_(column.is_not(None), _test(column, operator, values))
 
 
 def _range_may_hold(low, high, operator: str, values: list[float]) -> ColumnElement[bool]:
@@ -573,6 +607,41 @@ def _range_may_hold(low, high, operator: str, values: list[float]) -> ColumnElem
     if operator in (">", ">="):
         return high > values[0] if operator == ">" else high >= values[0]
     return true()  # != and not in: any range wider than one point may hold one
+
+
+_PREFIX_OF_KIND = {"parameter": "p", "measurement": "m", "figure": "f", "monitor": "monitor"}
+_KIND_OF_PREFIX = {prefix: kind for kind, prefix in _PREFIX_OF_KIND.items()}
+
+
+def _interval(microseconds: int):
+    """A PostgreSQL interval constant (an integer of ours, never user text)."""
+    return literal_column(f"interval '{int(microseconds)} microseconds'", type_=Interval())
+
+
+def as_of_value(monitor_id: int, time, *, sqlite: bool, max_gap_seconds: float = MAX_GAP_SECONDS):
+    """The as-of value of one monitor at ``time`` (a column or expression of the outer
+    query) as a correlated scalar subquery: its last value logged at or before ``time`` and
+    at most ``max_gap_seconds`` before it, else NULL (runlog.monitors.align, docs/filters.md).
+
+    One probe of the (monitor, time) primary key per outer row, read backwards from
+    ``time``; on PostgreSQL the bounds on ``time`` let each probe read only the month
+    partitions they overlap.
+    """
+    values = s.MonitorValue.__table__.alias("monitor_value")
+    if sqlite:  # times are integer microseconds
+        logged, at = type_coerce(values.c.time, BigInteger), type_coerce(time, BigInteger)
+        earliest = at - int(round(max_gap_seconds * 1e6))
+    else:
+        logged, at = values.c.time, type_coerce(time, DateTime(timezone=True))
+        earliest = at - _interval(int(round(max_gap_seconds * 1e6)))
+    return (
+        select(values.c.value)
+        .where(values.c.monitor_id == literal(int(monitor_id)), logged <= at, logged >= earliest)
+        .order_by(values.c.time.desc())
+        .limit(1)
+        .correlate_except(values)
+        .scalar_subquery()
+    )
 
 
 class _Compiler:
@@ -620,23 +689,24 @@ class _Compiler:
     def resolve(self, node: Comparison) -> tuple[str, object]:
         name = node.name
         prefix, _, rest = name.partition(".")
-        groups = {"p": self.names.parameters, "m": self.names.measurements, "f": self.names.figures}
+        groups = {"p": self.names.parameters, "m": self.names.measurements, "f": self.names.figures, "monitor": self.names.monitors}
         if rest and prefix in groups:
             found = groups[prefix].get(rest)
             if found is not None:
-                return {"p": "parameter", "m": "measurement", "f": "figure"}[prefix], (found if prefix != "f" else rest)
+                return _KIND_OF_PREFIX[prefix], (found if prefix != "f" else rest)
         if name in RUN_FIELDS or name in SHOT_FIELDS:
             return "field", name
         matches = [(kind, group[name]) for kind, group in (("parameter", self.names.parameters), ("measurement", self.names.measurements)) if name in group]
         if name in self.names.figures:
             matches.append(("figure", name))
+        if name in self.names.monitors:
+            matches.append(("monitor", self.names.monitors[name]))
         if len(matches) == 1:
             return matches[0]
         if len(matches) > 1:
-            prefixes = {"parameter": "p", "measurement": "m", "figure": "f"}
-            choices = " or ".join(f"'{prefixes[kind]}.{name}'" for kind, _ in matches)
+            choices = " or ".join(f"'{_PREFIX_OF_KIND[kind]}.{name}'" for kind, _ in matches)
             raise self.error(f"'{name}' is both a {' and a '.join(kind for kind, _ in matches)}: write {choices}", node.position)
-        known = self.names.all() + [f"p.{n}" for n in self.names.parameters] + [f"m.{n}" for n in self.names.measurements] + [f"f.{n}" for n in self.names.figures]
+        known = self.names.all() + [f"{prefix}.{n}" for prefix, group in groups.items() for n in group]
         close = difflib.get_close_matches(name, known, n=3, cutoff=0.6)
         hint = f"; did you mean {', '.join(repr(c) for c in close)}?" if close else "; see known_names() or docs/filters.md"
         raise self.error(f"unknown name '{name}'{hint}", node.position)
@@ -649,6 +719,8 @@ class _Compiler:
             return self.parameter(node, target)  # type: ignore[arg-type]
         if kind == "measurement":
             return self.measurement(node, target)  # type: ignore[arg-type]
+        if kind == "monitor":
+            return self.monitor(node, target)  # type: ignore[arg-type]
         return self.figure(node, str(target))
 
     def check_operator(self, node: Comparison, allowed: frozenset[str], what: str) -> None:
@@ -847,6 +919,47 @@ class _Compiler:
             values = self.numbers(node, unit, f" (stored in '{unit}')" if unit else "")
             per_unit.append(and_(_figures.c.unit == unit, _compare(_figures.c.value, node.operator, values)) if len(units) > 1 else _compare(_figures.c.value, node.operator, values))
         return CompiledFilter(exists().where(and_(_figures.c.run_id == _runs.c.id, _figures.c.name == name, or_(*per_unit))).correlate(_runs), None)
+
+    def monitor(self, node: Comparison, monitors: tuple[_Monitor, ...]) -> CompiledFilter:
+        """The monitor of the shot's apparatus, as of the shot's time. Runs are pruned on
+        the minute rollups: a run can hold a match only if some minute from ``max_gap``
+        before its start to its end logged a value range that can meet the comparison."""
+        sqlite = not self.names.partitioned
+        units = sorted({m.unit for m in monitors})
+        if len(units) > 1:
+            for value in node.values:
+                if value.kind == "number" and value.unit is None:
+                    raise self.error(f"'{node.name}' is logged in {' and '.join(repr(u or 'no unit') for u in units)} on different apparatus: write the number with its unit", value.position)
+        prunes, exacts = [], []
+        gap_us = int(round(MAX_GAP_SECONDS * 1e6))
+        rollups = s.MonitorRollup.__table__
+        for monitor in monitors:
+            values = self.numbers(node, monitor.unit, f" (logged in '{monitor.unit}')" if monitor.unit else "")
+            on_apparatus = _runs.c.apparatus_id == monitor.apparatus_id
+            # The as-of value of a shot was logged in [start - gap, end] of its run, inside a
+            # minute period that starts at most a minute before that.
+            if sqlite:
+                start, low, high = type_coerce(rollups.c.start, BigInteger), type_coerce(_runs.c.started, BigInteger) - gap_us - 60_000_000, type_coerce(_runs.c.finished, BigInteger)
+            else:
+                start, low, high = rollups.c.start, type_coerce(_runs.c.started, DateTime(timezone=True)) - _interval(gap_us + 60_000_000), _runs.c.finished
+            may_hold = exists().where(
+                and_(
+                    rollups.c.monitor_id == literal(monitor.id),
+                    rollups.c.resolution == literal("minute"),
+                    start >= low,
+                    start <= high,
+                    _range_may_hold(rollups.c.minimum, rollups.c.maximum, node.operator, values),
+                )
+            ).correlate(_runs)
+            prunes.append(and_(on_apparatus, may_hold))
+            value = as_of_value(monitor.id, _shots.c.time, sqlite=sqlite)
+            # Missing compares false, as in _compare, but the probe is written (and run)
+            # once per shot rather than twice.
+            exact = func.coalesce(_test(value, node.operator, values), false())
+            # The apparatus is checked per shot too (inside an 'or' the prune does not hold
+            # the shots of other apparatus away from this monitor), unless there is one.
+            exacts.append(exact if self.names.one_apparatus else and_(_in_runs(on_apparatus), exact))
+        return CompiledFilter(or_(*prunes), or_(*exacts))
 
 
 def compile_selection(source, filter: Filter | str, *, whole_run: frozenset[int] = frozenset()) -> CompiledFilter:

@@ -48,10 +48,11 @@ Progress = Callable[[str, int, int], None]  # (file, rows done, rows total)
 
 @dataclass(frozen=True)
 class IngestResult:
-    """How one file ended: ``ingested``, ``already-present`` or ``rejected`` (with a reason).
+    """How one file ended: ``ingested``, ``already-present`` or ``refused`` (with a reason).
 
-    People read a refusal as "refused" (CLI lines, dashboard, docs); ``rejected`` stays the
-    machine value of ``status`` in the library and ``--json``, which scripts already test.
+    One word in the library, ``--json``, the ingest log, the CLI lines, the dashboard and
+    the docs. Catalogues written before that hold ``rejected`` in their ingest log;
+    :meth:`runlog.Catalogue.ingest_log` reads it as ``refused``.
     """
 
     file: str
@@ -73,7 +74,7 @@ class IngestResult:
     @property
     def files_fault(self) -> bool:
         """Whether the file itself was refused (``runlog watch`` quarantines only those)."""
-        return self.status == "rejected" and self.cause in ("contract", "data", None)
+        return self.status == "refused" and self.cause in ("contract", "data", None)
 
     def as_dict(self) -> dict[str, object]:
         found: dict[str, object] = {
@@ -1151,10 +1152,10 @@ def commit_file(writer) -> None:
 def record_refusal(engine: Engine, name: str, error: Exception, sha: str, size: int, started: dt.datetime, read_s: float, write_s: float) -> IngestResult:
     """The refusal of one file as a result, written to the ingest log when the catalogue can take it."""
     if isinstance(error, ContractError):
-        result = IngestResult(name, "rejected", reason=_storable(str(error)), cause="contract")
+        result = IngestResult(name, "refused", reason=_storable(str(error)), cause="contract")
     else:
         failure = describe(error, doing="writing this file")
-        result = IngestResult(name, "rejected", reason=_storable(f"{name}: {failure.message}"), cause=failure.kind)
+        result = IngestResult(name, "refused", reason=_storable(f"{name}: {failure.message}"), cause=failure.kind)
     try:
         _log(engine, result, sha, size, started, read_s, write_s)
     except Exception as error:  # noqa: BLE001 - a catalogue that cannot take the refusal either
@@ -1179,7 +1180,7 @@ def ingest_files(engine: Engine, paths: Iterable[str | Path], mapping: Mapping |
         if not files:
             # A folder without shot tables is a mistake worth saying so (a wrong day's
             # folder, files not yet copied): a refusal of the folder, never a silent success.
-            results.append(IngestResult(str(raw), "rejected", reason=one_line(f"{raw}: no *.parquet files in this folder"), cause="contract"))
+            results.append(IngestResult(str(raw), "refused", reason=one_line(f"{raw}: no *.parquet or *.csv files in this folder"), cause="contract"))
             continue
         # Monitor tables are told apart by the contract (or runlog.toml's [monitors] files rule).
         results.extend(ingest_monitor_file(engine, path, mapping, apparatus) if is_monitor_table(path, mapping) else ingest_file(engine, path, mapping, progress, after_write) for path in files)

@@ -220,10 +220,10 @@ def load_pin(connection, name: str) -> Pin:
     return Pin(int(pin_id), pin_name, where, as_datetime(created_at), author, version, int(shots), runs)
 
 
-def pinned_selection(connection, pin: Pin) -> Selection:
+def pinned_selection(connection, pin: Pin, monitors=()) -> Selection:
     """The pin's shots, in the table a filter gives (:func:`runlog.selection.select_versions`)."""
     ids = np.concatenate([run.shot_ids for run in pin.runs]) if pin.runs else np.zeros(0, np.int64)
-    return select_versions(connection, [run.run_id for run in pin.runs], ids, pin.where)
+    return select_versions(connection, [run.run_id for run in pin.runs], ids, pin.where, tuple(monitors))
 
 
 _RECORD = "SELECT id, name, value, stderr, unit, analysis FROM figure_records WHERE id IN ({ids}) ORDER BY id"

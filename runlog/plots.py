@@ -43,6 +43,7 @@ LIMIT = "#7f7f7f"
 FINDING = "#b3261e"
 EWMA = "#2f6fb3"  # the smoothed line and its band
 MONITOR = "#5b8c3a"  # monitors on the second axis
+NOTE = "#7b4f9d"  # notes, at their lab time
 WIDTH, HEIGHT = 560, 300
 # Raw shots are drawn under the means only up to this many (Vega-Lite inlines the data).
 MAX_RAW_SHOTS = 5000
@@ -106,11 +107,39 @@ def _monitor_layers(x, monitors: Sequence[pd.DataFrame], zone: str) -> list:
     return layers
 
 
+def _note_layers(x, annotations: Sequence[dict], zone: str) -> list:
+    """Notes (``Drift.annotations``) as dotted rules at their lab wall-clock time, each
+    numbered at the top; the numbered texts go in the chart's subtitle (a printed figure
+    has no tooltips)."""
+    import altair as alt
+
+    if not annotations:
+        return []
+    local = [pd.Timestamp(a["at"]).tz_convert(zone).strftime("%Y-%m-%dT%H:%M:%S") for a in annotations]
+    data = pd.DataFrame({"day": local, "label": [f"n{i + 1}" for i in range(len(annotations))], "text": [str(a["text"]) for a in annotations]})
+    rules = alt.Chart(data).mark_rule(color=NOTE, strokeDash=[1, 2], strokeWidth=1.2).encode(x=x, tooltip=["day:N", "text:N"])
+    labels = alt.Chart(data).mark_text(color=NOTE, dy=-4, baseline="bottom", fontSize=9).encode(x=x, y=alt.value(0), text="label:N")
+    return [rules, labels]
+
+
+def _note_lines(annotations: Sequence[dict], zone: str, width: int = 70, most: int = 12) -> list[str]:
+    lines = []
+    for i, note in enumerate(annotations[:most]):
+        when = pd.Timestamp(note["at"]).tz_convert(zone).strftime("%Y-%m-%d %H:%M")
+        text = " ".join(str(note["text"]).split())
+        text = text if len(text) <= width else text[: width - 1] + "…"
+        lines.append(f"n{i + 1} {when}: {text}" + (f" (run {note['run']})" if note.get("run") else ""))
+    if len(annotations) > most:
+        lines.append(f"... and {len(annotations) - most} more notes (runlog notes)")
+    return lines
+
+
 def drift_chart(drift: Drift, *, title: str | None = None, monitors: Sequence[pd.DataFrame] = (), zone: str = "UTC") -> alt.LayerChart:
     """The drift of one quantity as a chart: daily points with interval bars, limits,
     changes. Points outside the control limits are drawn in red. ``monitors`` (frames of
     ``Catalogue.monitor_series``) are drawn on a second axis at lab time (``zone``),
-    with their range per period shaded."""
+    with their range per period shaded; the notes of the span (``drift.annotations``)
+    are dotted rules at their lab time, numbered, their texts under the title."""
     import altair as alt
 
     if not drift.points:
@@ -176,6 +205,11 @@ def drift_chart(drift: Drift, *, title: str | None = None, monitors: Sequence[pd
         notes.append(str(drift.limits["method"]))
     if drift.changes:
         notes.append("red: changes in level, " + ", ".join(f"{c.date.isoformat()} {_format(c.before)} → {_format(c.after)}" for c in drift.changes))
+    annotations = list(getattr(drift, "annotations", []) or [])
+    if annotations:
+        layers += _note_layers(x, annotations, zone)
+        notes.append(f"dotted purple: notes at their lab time ({zone})")
+        notes += _note_lines(annotations, zone)
     chart = alt.layer(*layers)
     if monitors:
         notes.append("right axis: " + ", ".join(str(f.attrs.get("monitor")) for f in monitors) + f" (line: mean, shaded: min to max; lab time {zone})")
@@ -213,12 +247,15 @@ def run_chart(catalogue, run: str, *, apparatus: str | None = None, x: str | Non
     """One run as a chart: its scan (with the stored fit when there is one) or, for a run
     without a scanned number parameter, the per-site fill map of its loading image.
 
-    ``x`` defaults to the run's first scanned number parameter and ``y`` to its first
-    measurement (by name); a stored fringe or Ramsey fit picks them as ``derive`` does.
+    A run with a stored fit is drawn on the signal the fit was made on, with the fit. A run
+    without one is drawn on its figure-producing signal (:func:`runlog.derive.fitted_signal`:
+    as its sequence's runs were fitted, or its only measurement), without a line; when
+    nothing tells which signal that is, :class:`NotFoundError` says so in one line and
+    ``x``/``y`` choose.
     """
     import altair as alt
 
-    from runlog.derive import fit_curve
+    from runlog.derive import fit_curve, fitted_signal
 
     info = catalogue.run(run, apparatus=apparatus)
     heading = f"run {info.run} ({info.apparatus}, {info.sequence}, {info.shots} shots)"
@@ -235,8 +272,17 @@ def run_chart(catalogue, run: str, *, apparatus: str | None = None, x: str | Non
         layers.append(alt.Chart(model).mark_line(color=FINDING, strokeWidth=1.5).encode(x="x:Q", y="fit:Q"))
         subtitle = [*subtitle, f"line: stored fit, {curve.formula}"]
     elif scanned and info.measurements:
-        x_name = x or scanned[0]
-        y_name = y or info.measurements[0]
+        signal = fitted_signal(catalogue, info)  # (x, y, why) or None
+        if y is None and signal is None:
+            raise NotFoundError(
+                "fitted signal in run",
+                info.run,
+                f"no fit is stored for it or for another run of sequence '{info.sequence}' on {info.apparatus}; "
+                f"its measurements: {', '.join(info.measurements)}; choose one with --y, or fit the run first (runlog derive)",
+            )
+        y_name = y or signal[1]
+        x_name = x or (signal[0] if signal is not None else scanned[0])
+        why = "chosen" if y else signal[2]
         if x_name not in info.parameters:
             raise NotFoundError("parameter", x_name, f"run '{info.run}' scans {', '.join(scanned)}")
         if y_name not in info.measurements:
@@ -247,7 +293,7 @@ def run_chart(catalogue, run: str, *, apparatus: str | None = None, x: str | Non
             raise NotFoundError("shots with both", f"{x_name} and {y_name}", f"run '{info.run}'")
         units = shots.attrs.get("units", {})
         layers = _scan_layers(frame, x_name, units.get(f"p.{x_name}", ""), y_name, units.get(f"m.{y_name}", ""))
-        subtitle = [*subtitle, "points: mean and standard error per setting; grey: single shots"]
+        subtitle = [*subtitle, f"no fit stored for this run; signal: {y_name} ({why}); points: mean and standard error per setting; grey: single shots"]
     else:
         successes, trials, shape = catalogue.site_counts(info.run, "fill", apparatus=info.apparatus)
         rows, columns = (shape[0], shape[1]) if len(shape) == 2 else (1, int(np.prod(shape)))

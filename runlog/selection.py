@@ -8,7 +8,10 @@ is read in chunks. Values constant over a run are not read per shot: they are sp
 
 Rows are sorted by apparatus, run and shot; columns are ``run``, ``apparatus``,
 ``sequence``, ``shot``, ``time``, then ``p.<name>`` and ``m.<name>`` (sorted by name) for
-the parameters and measurements that at least one selected shot has. Units are in
+the parameters and measurements that at least one selected shot has, then
+``monitor.<name>`` for each monitor asked for: its as-of value at the shot's time
+(:func:`runlog.filters.as_of_value`, the rule of filters and of
+:mod:`runlog.monitors.align`), read in the same query. Units are in
 ``DataFrame.attrs["units"]`` (Arrow: the field metadata ``unit``).
 """
 
@@ -23,11 +26,12 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import BigInteger, Column, ColumnElement, Float, MetaData, Table, and_, bindparam, cast, extract, func, select, type_coerce
+from sqlalchemy import BigInteger, Column, ColumnElement, Float, MetaData, Table, and_, bindparam, case, cast, extract, func, select, type_coerce
 from sqlalchemy.engine import Connection
 
 from runlog.errors import NotFoundError
-from runlog.filters import CompiledFilter, compile_selection
+from runlog.units import UnitError
+from runlog.filters import CompiledFilter, as_of_value, compile_selection
 from runlog.store import schema as s
 from runlog.store.partitions import SHOT_PARAMETERS_WITH_TIME
 from runlog.store.arrow_reader import arrow_read, fetch_arrow_parallel, fetch_postgres_arrow, is_arrow, parallel_readers
@@ -64,6 +68,8 @@ class Selection:
     run_ids: np.ndarray  # per row
     where: str | None
     units: dict[str, str] = field(default_factory=dict)
+    #: The monitor columns asked for (name, unit, apparatus that log it).
+    monitors: list = field(default_factory=list)
 
 
 @dataclass(frozen=True)
@@ -159,25 +165,65 @@ def _wanted(columns: Sequence[str] | None, parameters: dict[str, object], measur
     return want_p, want_m
 
 
-def select_table(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None, shot_ids: bool = False) -> Selection:
+@dataclass
+class _MonitorColumn:
+    """One requested monitor: its column, the unit of the column, and per apparatus of
+    the candidate runs the monitor's id there and the conversion into that unit."""
+
+    name: str
+    unit: str
+    apparatus: list[tuple[str, int, object]]  # (apparatus, monitor id, Conversion)
+
+
+def _monitor_columns(connection: Connection, names: Sequence[str], apparatus_present: set[str]) -> list[_MonitorColumn]:
+    """The monitors ``names`` (``room_temp`` or ``monitor.room_temp``) on the apparatus of
+    the selection. The column's unit is the monitor's unit on the first of those apparatus
+    (by name); another apparatus's values are converted into it."""
+    from runlog.units import converter
+
+    lab = tuple(sorted((str(key)[5:], str(value)) for key, value in connection.execute(select(s.Setting.key, s.Setting.value).where(s.Setting.key.like("unit:%")))))
+    known: dict[str, list[tuple[str, int, str]]] = {}
+    for mid, name, unit, apparatus in connection.execute(select(s.Monitor.id, s.Monitor.name, s.Monitor.unit, _apparatus.c.name).join(_apparatus, _apparatus.c.id == s.Monitor.apparatus_id).order_by(_apparatus.c.name)):
+        known.setdefault(name, []).append((apparatus, int(mid), unit or ""))
+    out = []
+    for asked in dict.fromkeys(names):
+        name = asked[len("monitor."):] if asked.startswith("monitor.") and asked[len("monitor."):] in known else asked
+        if name not in known:
+            import difflib
+
+            close = difflib.get_close_matches(name, list(known), n=3)
+            raise NotFoundError("monitor", asked, f"did you mean {', '.join(repr(c) for c in close)}?" if close else "")
+        here = [entry for entry in known[name] if entry[0] in apparatus_present]
+        unit = (here or known[name])[0][2]
+        entries = []
+        for apparatus, mid, own in here:
+            try:
+                entries.append((apparatus, mid, converter(own, unit, lab)))
+            except UnitError as error:
+                raise UnitError(own, f"monitor '{name}' is logged in '{own}' on {apparatus} and in '{unit}' elsewhere: {error}") from None
+        out.append(_MonitorColumn(name, unit, entries))
+    return out
+
+
+def select_table(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None, shot_ids: bool = False, monitors: Sequence[str] = ()) -> Selection:
     """The selected shots as an Arrow table with their run ids and, if asked, their
-    shot ids (for exports; reading them costs a sixth more)."""
+    shot ids (for exports; reading them costs a sixth more) and ``monitors``' values."""
     engine = catalogue.engine if hasattr(catalogue, "engine") else catalogue
     with arrow_read(engine, parallel=PARALLEL_READS) as fast:
         if fast is not None:
-            return select_on(fast, where, columns=columns, limit=limit, shot_ids=shot_ids)
+            return select_on(fast, where, columns=columns, limit=limit, shot_ids=shot_ids, monitors=monitors)
     with engine.connect() as connection:
-        return select_on(connection, where, columns=columns, limit=limit, shot_ids=shot_ids)
+        return select_on(connection, where, columns=columns, limit=limit, shot_ids=shot_ids, monitors=monitors)
 
 
-def select_on(connection: Connection, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None, shot_ids: bool = False) -> Selection:
+def select_on(connection: Connection, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None, shot_ids: bool = False, monitors: Sequence[str] = ()) -> Selection:
     """:func:`select_table` on an open connection, inside its transaction (so that a
     caller reading more afterwards, like an export, sees the same catalogue)."""
     compiled = compile_selection(connection, where) if where is not None and where.strip() else CompiledFilter(None, None)
-    return _select(connection, compiled, where, columns, limit, shot_ids)
+    return _select(connection, compiled, where, columns, limit, shot_ids, monitors)
 
 
-def select_versions(connection: Connection, run_ids: Sequence[int], shot_ids: np.ndarray, where: str | None = None) -> Selection:
+def select_versions(connection: Connection, run_ids: Sequence[int], shot_ids: np.ndarray, where: str | None = None, monitors: Sequence[str] = ()) -> Selection:
     """Exactly the shots ``shot_ids`` of the run versions ``run_ids`` (current or not), in
     the table :func:`select_on` gives: what a pinned selection (:mod:`runlog.pins`) names.
 
@@ -185,18 +231,18 @@ def select_versions(connection: Connection, run_ids: Sequence[int], shot_ids: np
     mostly whole runs, and a list of single shots would not fit in one SQL statement.
     Columns that none of the kept shots has a value in are dropped, as a filter's are.
     """
-    selection = _select(connection, CompiledFilter(None, None, versions=tuple(sorted(int(r) for r in run_ids))), where, None, None, True)
+    selection = _select(connection, CompiledFilter(None, None, versions=tuple(sorted(int(r) for r in run_ids))), where, None, None, True, monitors)
     assert selection.shot_ids is not None
     keep = np.isin(selection.shot_ids, np.asarray(shot_ids, dtype=np.int64))
     table = selection.table.filter(pa.array(keep))
-    dropped = [i for i, name in enumerate(table.column_names) if name not in BASE_COLUMNS and table.column(i).null_count == table.num_rows]
+    dropped = [i for i, name in enumerate(table.column_names) if name not in BASE_COLUMNS and not name.startswith("monitor.") and table.column(i).null_count == table.num_rows]
     for i in reversed(dropped):
         table = table.remove_column(i)
     units = {name: unit for name, unit in selection.units.items() if name in table.column_names}
-    return Selection(table, selection.shot_ids[keep], selection.run_ids[keep], where, units)
+    return Selection(table, selection.shot_ids[keep], selection.run_ids[keep], where, units, selection.monitors)
 
 
-def _select(connection: Connection, compiled: CompiledFilter, where: str | None, columns: Sequence[str] | None, limit: int | None, with_ids: bool) -> Selection:
+def _select(connection: Connection, compiled: CompiledFilter, where: str | None, columns: Sequence[str] | None, limit: int | None, with_ids: bool, monitors: Sequence[str] = ()) -> Selection:
     dialect = connection.dialect.name
     candidate_ids = compiled.run_ids()
     runs: dict[int, _Run] = {}
@@ -267,6 +313,20 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *time_column, *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
         source = source.outerjoin(wide, same_shot(wide))
         value_columns += [wide.c[s.measurement_column(mid)] for _, mid, _ in measurements]
+    # Each monitor as of the shot's time: one probe per shot and apparatus that logs it,
+    # only for the shots of that apparatus's runs.
+    monitor_columns = _monitor_columns(connection, monitors, {r.apparatus for r in runs.values()}) if monitors else []
+    monitor_parts: list[list[tuple[int, object]]] = []  # per monitor: (value column index, conversion)
+    for monitor in monitor_columns:
+        parts = []
+        for apparatus, mid, conversion in monitor.apparatus:
+            value = as_of_value(mid, _shots.c.time, sqlite=dialect == "sqlite")
+            mine = [rid for rid, run in runs.items() if run.apparatus == apparatus]
+            if len(mine) < len(runs):
+                value = case((id_in(_shots.c.run_id, mine), value), else_=None)
+            parts.append((len(value_columns), conversion))
+            value_columns.append(value.label(None))
+        monitor_parts.append(parts)
     query = select(*([_shots.c.id] if with_ids else []), _shots.c.run_id, _shots.c.shot, _time_us(dialect), *value_columns).select_from(source)
     if months:
         query = query.where(_shots.c.time.between(first, last))
@@ -288,7 +348,7 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
     # same snapshot): SQLite through ADBC, PostgreSQL through ADBC with imported snapshots.
     readers = 1 if limit is not None else parallel_readers(connection) if is_arrow(connection) else PARALLEL_READS if dialect == "postgresql" else 1
     parts = [shaped(exact(*bounds)) for bounds in _split(run_shots, readers)]
-    types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * len(measurements)
+    types = [pa.int64()] * (4 if with_ids else 3) + [_arrow_type(c.kind) if c.kind == "text" else pa.float64() for c in scanned] + [pa.float64()] * (len(measurements) + sum(len(p) for p in monitor_parts))
     arrays = None
     if not candidates:
         # Nothing to read: the shot query of no runs is not even well-formed with a limit.
@@ -368,9 +428,19 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         names.append(f"m.{name}")
         out.append(values)
         units[f"m.{name}"] = unit
+    for monitor, parts in zip(monitor_columns, monitor_parts):
+        # The apparatus' columns exclude each other (each holds only its runs' shots).
+        combined = np.full(len(run_ids), np.nan)
+        for index, conversion in parts:
+            values = reordered(arrays[3 + index]).to_numpy(zero_copy_only=False).astype(float)
+            present = ~np.isnan(values)
+            combined[present] = conversion(values[present])
+        names.append(f"monitor.{monitor.name}")
+        out.append(pa.array(combined, pa.float64(), from_pandas=True))
+        units[f"monitor.{monitor.name}"] = monitor.unit
     fields = [pa.field(n, a.type, metadata={"unit": units[n]} if n in units else None) for n, a in zip(names, out)]
     table = pa.Table.from_arrays(out, schema=pa.schema(fields))
-    return Selection(table, shot_ids.astype(np.int64) if shot_ids is not None else None, run_ids.astype(np.int64), where, units)
+    return Selection(table, shot_ids.astype(np.int64) if shot_ids is not None else None, run_ids.astype(np.int64), where, units, monitor_columns)
 
 
 # Below this many shots one connection reads faster than several.
@@ -464,20 +534,22 @@ def _read_arrow(connection: Connection, parts: list, types: list[pa.DataType], k
     return arrays
 
 
-def select_arrow(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None) -> pa.Table:
+def select_arrow(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None, monitors: Sequence[str] = ()) -> pa.Table:
     """The shots ``where`` selects (all shots for ``None``), as an Arrow table.
 
     ``columns`` limits the parameters and measurements to those named (``p.wait``,
     ``m.atom_number``, or a bare name that is only one of the two); the base columns are
-    always there. ``limit`` keeps the first rows in the table's order.
+    always there. ``limit`` keeps the first rows in the table's order. ``monitors`` adds a
+    column ``monitor.<name>`` per monitor: its as-of value at each shot's time (the last
+    value logged at or before it, at most 600 s before; else null; docs/filters.md).
     """
-    return select_table(catalogue, where, columns=columns, limit=limit).table
+    return select_table(catalogue, where, columns=columns, limit=limit, monitors=monitors).table
 
 
-def select_shots(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None) -> "pd.DataFrame":
+def select_shots(catalogue, where: str | None = None, *, columns: Sequence[str] | None = None, limit: int | None = None, monitors: Sequence[str] = ()) -> "pd.DataFrame":
     """The shots ``where`` selects, as a DataFrame (see :func:`select_arrow`); units in
     ``DataFrame.attrs["units"]``, a value a shot lacks is NaN (numbers) or None."""
-    selection = select_table(catalogue, where, columns=columns, limit=limit)
+    selection = select_table(catalogue, where, columns=columns, limit=limit, monitors=monitors)
     frame = selection.table.to_pandas(types_mapper=None)
     frame.attrs["units"] = dict(selection.units)
     return frame

@@ -16,8 +16,10 @@ from __future__ import annotations
 
 import datetime as dt
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
-import numpy as np
+if TYPE_CHECKING:
+    import numpy as np
 
 __all__ = ["TimeWindow", "DEFAULT_TIME_WINDOW", "WINDOW_LIMITS", "shift_day", "clamp_day", "day_start_utc"]
 
@@ -80,6 +82,8 @@ class TimeWindow:
 
     def outside(self, time_us: np.ndarray) -> np.ndarray:
         """Mask of the integer-microsecond UTC times that lie outside the window."""
+        import numpy as np
+
         time_us = np.asarray(time_us, dtype=np.int64)
         return (time_us < self.earliest_us) | (time_us >= self.latest_us)
 

@@ -120,14 +120,14 @@ class Watcher:
                 self.log.info("%s changed while being read; will look again", shown)
                 continue
             results.append(result)
-            if result.status == "rejected" and result.files_fault:
+            if result.status == "refused" and result.files_fault:
                 try:
                     self._quarantine(path, result.reason or "refused")
                 except OSError as error:
                     self.log.warning("refused %s but could not move it to %s: %s", shown, _printable(str(self.quarantine)), error)
                     self._done[name] = current[name]
                 self.log.warning("refused %s: %s", shown, _printable(result.reason or "refused"))
-            elif result.status == "rejected":
+            elif result.status == "refused":
                 self.log.warning("could not ingest %s now, will try again: %s", shown, _printable(result.reason or ""))
             else:
                 self._done[name] = current[name]

@@ -95,7 +95,7 @@ def test_a_new_version_lands_beside_the_old_one_and_becomes_current(two_versions
     # The same shots again under the same version: refused, as before versions existed.
     again = make_file("v2-again.parquet", thresholded({"r1": 60}, 0.81, analysis="thr-0.8"))
     [refused] = catalogue.ingest(again)
-    assert refused.status == "rejected"
+    assert refused.status == "refused"
     assert refused.reason == f"{again} (column 'shot', row 0): shot index 0 of run 'r1' is already in the catalogue"
 
 
@@ -107,7 +107,7 @@ def test_the_analysis_can_come_as_a_column_and_must_not_change_within_a_run(cata
     mixed = mixed.set_column(mixed.schema.get_field_index("analysis"), "analysis", pa.array(["roi-b"] * 7 + ["roi-c"] * 3))
     bad = make_file("b.parquet", mixed)
     [refused] = catalogue.ingest(bad)
-    assert refused.status == "rejected"
+    assert refused.status == "refused"
     assert refused.reason == f"{bad} (column 'analysis', row 7): run 'r2' changes analysis from 'roi-b' to 'roi-c': a file gives each run's shots one analysis version"
 
 

@@ -59,7 +59,7 @@ def test_setting_changes_are_listed_as_such_and_unchanged_settings_dropped():
     same = Candidate("wait", "parameter", (1.0,), (1.0, 1.0))
     ranked = rank([Candidate("atom_number", "measurement", (1.0, 1.1, 0.9), (1.0, 1.05)), moved, same])
     assert ranked[0].setting_changed and ranked[0].name == "lattice_depth"
-    assert ranked[0].words == "setting lattice_depth changed from 65 to 55 uK"
+    assert ranked[0].words == "setting lattice_depth changed from 65 to 55 µK"
     assert [s.name for s in ranked] == ["lattice_depth", "atom_number"]
 
 

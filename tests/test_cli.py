@@ -78,7 +78,7 @@ def test_ingest_json_contract_and_exit_codes(db_url, files):
     rows = json.loads(result.stdout)
     assert [set(row) for row in rows] == [INGEST_KEYS] * 3
     assert [(row["status"], row["run"], row["runs"], row["shots"]) for row in rows] == [
-        ("rejected", None, [], 0),
+        ("refused", None, [], 0),
         ("ingested", "r2", ["r2"], 6),
         ("already-present", "r1", ["r1"], 10),
     ]
@@ -109,7 +109,7 @@ def test_ingest_of_a_folder_and_a_missing_file(db_url, files, tmp_path):
     result = invoke("ingest", str(tmp_path), "--db", db_url, "--json")  # bad.parquet is in the folder
     assert result.exit_code == 1
     assert [(row["file"], row["status"]) for row in json.loads(result.stdout)] == [
-        (str(files["bad"]), "rejected"),
+        (str(files["bad"]), "refused"),
         (str(files["east"]), "ingested"),
         (str(files["west"]), "ingested"),
     ]
@@ -121,9 +121,9 @@ def test_ingest_of_an_empty_folder_is_a_one_line_refusal(db_url, tmp_path, capsy
     (empty / "notes.txt").write_text("no shot tables here")
     code, out, err = run_main(capsys, "--db", db_url, "ingest", str(empty))
     assert code == 1 and err == ""
-    assert out.splitlines() == [f"refused          {empty}: no *.parquet files in this folder"]
+    assert out.splitlines() == [f"refused          {empty}: no *.parquet or *.csv files in this folder"]
     code, out, _ = run_main(capsys, "--db", db_url, "ingest", str(empty), "--json")
-    assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "rejected", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet files in this folder"}]
+    assert code == 1 and json.loads(out) == [{"file": str(empty), "status": "refused", "run": None, "runs": [], "shots": 0, "reason": f"{empty}: no *.parquet or *.csv files in this folder"}]
 
 
 # --- runs and show ------------------------------------------------------------------------

@@ -201,7 +201,7 @@ def test_overview_shows_the_latest_lab_day_open_alarms_and_ingest(lab):
     assert next(m for m in at.metric if m.label.startswith("refused")).value == "1"
     refused = table(at, "file", "reason")
     assert list(refused["file"]) == ["broken.parquet"]
-    assert refused["reason"].iloc[0] == lab.ingest_log(status="rejected")["reason"].iloc[0]
+    assert refused["reason"].iloc[0] == lab.ingest_log(status="refused")["reason"].iloc[0]
 
 
 # --- drift ----------------------------------------------------------------------------------
@@ -424,7 +424,7 @@ def test_shots_explorer_plots_the_chosen_runs_and_downloads_them(recent, monkeyp
 
 def test_notes_and_acknowledged_alarms_reach_the_catalogue_and_the_drift_chart(lab):
     lab.set_lab_timezone("Europe/Berlin")  # the forms speak lab time
-    at = open_page(start(), "annotate")
+    at = open_page(start(), "notes")
     at.selectbox(key="note-day-apparatus").set_value("tweezer-west")
     at.date_input(key="note-day-day").set_value(dt.date(2026, 9, 10))
     at.time_input(key="note-day-time").set_value(dt.time(8, 15))
@@ -512,7 +512,7 @@ def test_pages_work_on_an_independent_scenario(db_url, tmp_path, monkeypatch):
         assert list(fill["layers"]["changes"]["day"]) == [c.date.isoformat() for c in expected.changes]
         open_page(at, "run_detail")
         open_page(at, "shots")
-        open_page(at, "annotate")
+        open_page(at, "notes")
     finally:
         _forget_cached(db_url)
 
@@ -581,5 +581,27 @@ def test_overview_cards_judge_each_figure_against_its_baseline_and_link_alarm_an
     assert found["state"] == "changed" and found["since"] == CHANGE_DAY and found["alarm"] == alarm["id"]
     assert any(c.startswith(":red[**changed**] since 2026-09-10") and "standard errors) from baseline" in c for c in cards)
     captions = [c.value for c in at.caption]
-    assert any(f"[alarm #{alarm['id']}](annotate)" in c and "[chart](drift?apparatus=tweezer-west)" in c for c in captions)
+    assert any(f"[alarm #{alarm['id']}](notes)" in c and "[chart](drift?apparatus=tweezer-west)" in c for c in captions)
     assert sum(c.startswith(":green[**in limits**]") for c in cards) >= 2
+
+
+def test_run_detail_marks_a_contrast_out_of_its_physical_range(db_url, tmp_path, monkeypatch):
+    from test_fit_ranges import OVER, OVER_SEED, T0 as START, fringe_table
+
+    pq.write_table(fringe_table("over1", OVER, OVER_SEED, START), tmp_path / "over.parquet")
+    with runlog.open(db_url) as catalogue:
+        catalogue.ingest([tmp_path / "over.parquet"])
+        catalogue.derive("over1", "fringe", y="bright_fraction")
+        stored = catalogue.run("over1").figures["contrast"]
+    assert stored["value"] > 1 and stored["out_of_range"]
+    monkeypatch.setenv(URL_VARIABLE, db_url)
+    try:
+        at = open_page(start(), "run_detail")
+        at.selectbox(key="run-apparatus").set_value("bench-a").run()
+        at.selectbox(key="run-day-bench-a").set_value(START.date()).run()
+        assert not at.exception, at.exception
+        figures = table(at, "figure", "method").set_index("figure")
+        assert figures.loc["contrast", "out of range"] == "outside its physical range; not in drift"
+        assert figures.loc["offset", "out of range"] == ""
+    finally:
+        _forget_cached(db_url)

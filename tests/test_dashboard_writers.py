@@ -31,7 +31,7 @@ def _page(user: dict | None = None) -> AppTest:
     if user is not None:
         at.user = user
     at.run()
-    at.switch_page("views/annotate.py").run()
+    at.switch_page("views/notes.py").run()
     assert not at.exception, [e.message for e in at.exception]
     return at
 
@@ -74,7 +74,7 @@ def test_streamlit_login_names_the_author(served, monkeypatch):
     assert served.annotations().iloc[-1]["author"] == "ada@lab.example"
     logged_out = _page({"is_logged_in": False})
     assert not _has(logged_out, "note-run-text") and logged_out.info[0].value == "log in to add notes"
-    assert logged_out.button(key="annotate-login").label == "Log in"
+    assert logged_out.button(key="note-login").label == "Log in"
 
 
 def test_writing_can_be_switched_off(served, monkeypatch):

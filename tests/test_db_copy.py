@@ -93,7 +93,7 @@ def _fill(url: str, folder: Path) -> None:
     ]
     with runlog.open(url) as catalogue:
         catalogue.set_lab_timezone("Europe/Berlin")
-        assert [r.status for r in catalogue.ingest(files)] == ["ingested", "ingested", "rejected"]
+        assert [r.status for r in catalogue.ingest(files)] == ["ingested", "ingested", "refused"]
         catalogue.annotate("realigned lattice beam", run="d09")
         alarms = catalogue.check_drift()
         assert alarms, "the fill fraction step should raise an alarm"

@@ -185,7 +185,7 @@ def test_bad_counts_are_refused_naming_file_column_and_row(catalogue, make_file)
     table = counts_table(first).set_column(5, "counts.first", pa.array([list(map(float, r)) for r in first[:3]] + [[1.0, float("nan")] + [0.0] * 23] + [list(map(float, r)) for r in first[4:]], pa.list_(pa.float64())))
     path = make_file(table=table)
     result = catalogue.ingest(path)[0]
-    assert result.status == "rejected"
+    assert result.status == "refused"
     assert result.reason == f"{path} (column 'counts.first', row 3): empty or non-finite site in counts list"
     flat = np.random.default_rng(9).poisson(1.0, (40, 25))
     path = make_file(table=counts_table(flat, run="flat"))

@@ -270,6 +270,7 @@ def test_known_names(lab):
         "parameters": ["beam", "depth", "flag", "wait"],
         "measurements": ["atom_number", "signal"],
         "figures": ["fill_fraction", "loss", "survival"],
+        "monitors": [],
     }
 
 

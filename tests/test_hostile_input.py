@@ -94,7 +94,7 @@ def test_an_empty_or_control_character_column_name_is_a_one_line_refusal(catalog
     pq.write_table(table, path)
     before = _state(catalogue)
     [result] = catalogue.ingest(path)
-    assert result.status == "rejected" and result.reason.startswith(f"{path} (column '")
+    assert result.status == "refused" and result.reason.startswith(f"{path} (column '")
     assert result.reason.isprintable() and _state(catalogue) == before
     assert result.reason.endswith(("holds a control character", "empty name", "empty name after the prefix")), result.reason
 
@@ -129,8 +129,8 @@ def _check_one(catalogue, tmp_path, table):
         return  # not even writable as Parquet: nothing to ingest
     before = _state(catalogue)
     [result] = catalogue.ingest(path)  # must not raise
-    assert result.status in {"ingested", "rejected", "already-present"}
-    if result.status == "rejected":
+    assert result.status in {"ingested", "refused", "already-present"}
+    if result.status == "refused":
         assert result.reason and result.reason.startswith(str(path)) and "\n" not in result.reason
         assert _state(catalogue) == before
     elif result.status == "ingested":

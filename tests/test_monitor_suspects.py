@@ -135,3 +135,55 @@ def test_shots_carry_the_monitor_at_their_time_like_merge_asof(catalogue, tmp_pa
     np.testing.assert_allclose(frame["room_temp"].to_numpy(), reference["room_temp[degC]"].to_numpy())
     np.testing.assert_allclose(frame["laser_power"].to_numpy(), reference["laser_power[mW]"].to_numpy())
     assert frame.attrs["units"]["room_temp"] == "degC"
+
+
+def test_each_run_has_each_monitor_mean_and_range_over_its_span(catalogue, tmp_path):
+    import json
+
+    from click.testing import CliRunner
+
+    from runlog.cli import cli
+
+    catalogue.ingest(list(_scenario(tmp_path)), apparatus="bench-a")
+    logged = pq.read_table(tmp_path / "slow.parquet").to_pandas().set_index("time").sort_index()
+    for key in ("run-000", "run-150", "run-287"):
+        info = catalogue.run(key, apparatus="bench-a")
+        by_name = {m["name"]: m for m in info.monitors}
+        assert sorted(by_name) == ["laser_power", "noise_walk", "noise_white", "room_temp"]
+        for name, column in (("room_temp", "room_temp[degC]"), ("laser_power", "laser_power[mW]")):
+            inside = logged.loc[info.started : info.finished, column]  # both ends included, as documented
+            entry = by_name[name]
+            assert entry["count"] == len(inside) and entry["count"] >= 3
+            assert entry["mean"] == pytest.approx(inside.mean(), rel=1e-12)
+            assert (entry["minimum"], entry["maximum"]) == (inside.min(), inside.max())
+            before = logged.loc[: info.started, column]
+            assert entry["at_start"] == before.iloc[-1]  # logged every 60 s: within the 600 s gap
+        assert by_name["room_temp"]["unit"] == "degC"
+    url = catalogue.engine.url.render_as_string(hide_password=False)
+    shown = CliRunner().invoke(cli, ["--db", url, "show", "run-150", "--json"])
+    assert shown.exit_code == 0, shown.output
+    assert json.loads(shown.output)["monitors"] == catalogue.run("run-150").monitors
+    text = CliRunner().invoke(cli, ["--db", url, "show", "run-150"])
+    assert "monitors over the run (first to last shot)" in text.output and "room_temp" in text.output
+
+
+def test_plot_drift_marks_the_notes_at_their_lab_time_beside_the_monitors(catalogue, tmp_path):
+    from click.testing import CliRunner
+
+    from runlog.cli import cli
+    from runlog.plots import drift_chart
+
+    catalogue.ingest(list(_scenario(tmp_path)), apparatus="bench-a")
+    catalogue.set_lab_timezone("Europe/Berlin")
+    catalogue.annotate("new coil supply", apparatus="bench-a", at="2026-05-04T09:30:00+00:00")
+    drift = catalogue.drift("fill_fraction", apparatus="bench-a", record_alarms=False)
+    series = catalogue.monitor_series("room_temp", apparatus="bench-a", max_points=2000)
+    spec = drift_chart(drift, monitors=[series], zone="Europe/Berlin").to_dict()
+    assert "n1 2026-05-04 11:30: new coil supply" in spec["title"]["subtitle"]
+    rows = next(rows for rows in spec["datasets"].values() if rows and "label" in rows[0])
+    assert rows == [{"day": "2026-05-04T11:30:00", "label": "n1", "text": "new coil supply"}]
+    out = tmp_path / "d.svg"
+    result = CliRunner().invoke(cli, ["--db", catalogue.engine.url.render_as_string(hide_password=False), "plot", "drift", "fill_fraction", "--apparatus", "bench-a", "--monitor", "room_temp", "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    svg = out.read_text(encoding="utf-8")
+    assert "new coil supply" in svg and "room_temp" in svg

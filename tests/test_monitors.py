@@ -143,7 +143,7 @@ def test_a_refused_file_writes_nothing_and_a_clash_with_stored_times_is_refused(
     # A new monitor first (would be written), then a value at a time room_temp already has.
     clash = _long_csv(tmp_path / "b.csv", [("2026-03-02T09:00:00Z", "humidity", 40.0, "percent"), ("2026-03-02T09:00:20Z", "room_temp", 22.2, "degC"), ("2026-03-02T09:00:10Z", "room_temp", 22.3, "degC")])
     (result,) = catalogue.ingest(clash, apparatus="bench-a")
-    assert result.status == "rejected"
+    assert result.status == "refused"
     assert result.reason == f"{clash} (column 'time', row 2): monitor 'room_temp' already has a value at 2026-03-02T09:00:10+00:00 (from an earlier file)"
     assert _counts(catalogue) == before
 

@@ -136,7 +136,7 @@ def test_a_shot_index_already_stored_is_refused_even_in_another_month(pg_url, tm
         catalogue.ingest(write_table(tmp_path / "a.parquet", shot_table({"r1": 10})))
         clash = write_table(tmp_path / "b.parquet", shot_table({"r1": 3}, first_shot=5, start=dt.datetime(2026, 4, 2, tzinfo=UTC), seed=2))
         [result] = catalogue.ingest(clash)
-        assert result.status == "rejected"
+        assert result.status == "refused"
         assert result.reason == f"{clash} (column 'shot', row 0): shot index 5 of run 'r1' is already in the catalogue"
         assert catalogue.counts()["shots"] == 10
 

@@ -60,7 +60,7 @@ def test_ingest_into_a_read_only_sqlite_file_names_the_cause(read_only_sqlite):
 
 def test_a_note_on_a_read_only_sqlite_file_names_the_cause(read_only_sqlite):
     url, folder, _ = read_only_sqlite
-    done = _as_other_user(["--db", url, "annotate", "realigned the lattice", "--run", "r1"])
+    done = _as_other_user(["--db", url, "note", "realigned the lattice", "--run", "r1"])
     assert done.returncode == 1 and done.stdout == ""
     assert done.stderr.count("\n") == 1 and READ_ONLY in done.stderr
     assert "INSERT" not in done.stderr and "Traceback" not in done.stderr
@@ -77,7 +77,7 @@ def _reader_url(db_url: str) -> str:
 
 def test_the_read_only_role_gets_one_line_in_the_cli(pg_url, capsys, tmp_path):
     reader = _reader_url(pg_url)
-    code, out, err = run_main(capsys, "--db", reader, "annotate", "realigned the lattice", "--run", "r1")
+    code, out, err = run_main(capsys, "--db", reader, "note", "realigned the lattice", "--run", "r1")
     assert code == 1 and err.count("\n") == 1 and READ_ONLY in err and "permission denied for table" in err
     assert "INSERT" not in err and "Traceback" not in err
     code, out, err = run_main(capsys, "--db", reader, "ingest", str(write_table(tmp_path / "b.parquet", shot_table({"r2": 3}, seed=3))))
@@ -91,7 +91,7 @@ def test_the_dashboard_note_form_names_the_cause(pg_url, monkeypatch):
 
     monkeypatch.setenv(URL_VARIABLE, _reader_url(pg_url))
     at = AppTest.from_file(str(APP), default_timeout=60).run()
-    at.switch_page("views/annotate.py").run()
+    at.switch_page("views/notes.py").run()
     assert not at.exception, at.exception
     at.text_area(key="note-run-text").input("camera saturated")
     at.button(key="note-run-submit").click().run()

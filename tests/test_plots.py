@@ -19,6 +19,7 @@ import pytest
 
 from conftest import T0, shot_table
 from runlog.derive import fit_curve
+from runlog.errors import NotFoundError
 from runlog.plots import _with_error, drift_chart, plot_drift, plot_run, run_chart, save_chart
 
 SITES = 36
@@ -169,3 +170,54 @@ def test_unknown_suffix_is_refused(stepped, tmp_path):
 def test_values_are_shown_to_the_precision_of_their_error(value, error, text):
     # Two significant digits of the error, value to the same place: common practice, no published source.
     assert _with_error(value, error) == text
+
+
+def _two_signal_scan(catalogue, make_file, run: str, seed: int, day: int) -> None:
+    """A Ramsey-like scan with two measurements, atom number first by name and the bright
+    fraction the fits are made on (our simulation's truth: a decaying fringe)."""
+    rng = np.random.default_rng(seed)
+    wait = np.tile(np.linspace(0.0, 3000.0, 31), 3)
+    p = 0.5 * (1.0 + 0.9 * np.exp(-((wait / 1000.0) ** 2)) * np.cos(2.0 * math.pi * 0.002 * wait + 0.3))
+    n = wait.size
+    table = pa.table(
+        {
+            "run": [run] * n,
+            "apparatus": ["bench-a"] * n,
+            "sequence": ["ramsey"] * n,
+            "shot": pa.array(np.arange(n), pa.int64()),
+            "time": pa.array([T0 + dt.timedelta(days=day, seconds=2 * i) for i in range(n)], pa.timestamp("us", tz="UTC")),
+            "p.wait[us]": wait,
+            "m.atom_number": rng.normal(100.0, 5.0, n),
+            "m.bright_fraction": rng.binomial(100, p) / 100.0,
+        }
+    )
+    catalogue.ingest([make_file(table=table)])
+
+
+def test_run_chart_without_a_fit_draws_the_signal_its_sequence_is_fitted_on(catalogue, make_file):
+    _two_signal_scan(catalogue, make_file, "fitted", seed=3, day=20)
+    _two_signal_scan(catalogue, make_file, "unfitted", seed=4, day=21)
+    # Nothing fitted yet, two measurements: the chart does not guess, it says why in one line.
+    with pytest.raises(NotFoundError) as caught:
+        run_chart(catalogue, "unfitted")
+    assert str(caught.value) == (
+        "no fitted signal in run 'unfitted' (no fit is stored for it or for another run of sequence 'ramsey' on bench-a; "
+        "its measurements: atom_number, bright_fraction; choose one with --y, or fit the run first (runlog derive))"
+    )
+    assert "\n" not in str(caught.value)
+    catalogue.derive("fitted", "coherence", y="bright_fraction")
+    # The fitted run: its signal and the fit line.
+    spec = run_chart(catalogue, "fitted").to_dict()
+    assert spec["layer"][0]["encoding"]["y"]["title"] == "bright_fraction"
+    assert _with_keys(spec, "x", "fit")
+    # The unfitted run of the same sequence: the signal its sequence was fitted on, no line.
+    spec = run_chart(catalogue, "unfitted").to_dict()
+    assert spec["layer"][0]["encoding"]["y"]["title"] == "bright_fraction"
+    assert not [rows for rows in _records(spec) if rows and "fit" in rows[0]]
+    means = _with_keys(spec, "x", "mean", "count")
+    shots = catalogue.shots("unfitted")
+    assert math.isclose(means[0]["mean"], shots[shots["p.wait"] == 0.0]["m.bright_fraction"].mean())
+    assert "no fit stored for this run; signal: bright_fraction (as the coherence fit of run fitted (ramsey))" in " ".join(spec["title"]["subtitle"])
+    # --y still chooses.
+    spec = run_chart(catalogue, "unfitted", y="atom_number").to_dict()
+    assert spec["layer"][0]["encoding"]["y"]["title"] == "atom_number"

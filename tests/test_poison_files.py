@@ -78,7 +78,7 @@ def test_a_poison_file_is_refused_and_the_files_around_it_land(catalogue, tmp_pa
     poison = write_table(tmp_path / "b.parquet", make())
     later = write_table(tmp_path / "c.parquet", shot_table({"g2": 5}, seed=2, start=T0 + dt.timedelta(hours=1)))
     results = catalogue.ingest([good, poison, later])
-    assert [r.status for r in results] == ["ingested", "rejected", "ingested"], results[1].reason
+    assert [r.status for r in results] == ["ingested", "refused", "ingested"], results[1].reason
     refusal = results[1]
     assert refusal.cause == "contract"
     assert refusal.reason.startswith(f"{poison}") and reason in refusal.reason and "\n" not in refusal.reason
@@ -87,7 +87,7 @@ def test_a_poison_file_is_refused_and_the_files_around_it_land(catalogue, tmp_pa
     assert catalogue.counts()["shots"] == 9
     assert sorted(catalogue.runs()["run"]) == ["g1", "g2"]
     log = catalogue.ingest_log()
-    assert list(log["status"]) == ["ingested", "rejected", "ingested"]
+    assert list(log["status"]) == ["ingested", "refused", "ingested"]
     assert "\x00" not in log["reason"][1]
 
 
@@ -108,7 +108,7 @@ def test_the_catalogue_refuses_a_measurement_name_beyond_its_limit(catalogue, tm
     third = write_table(tmp_path / "b.parquet", shot_table({"b": 2}, extra={"m.third": np.ones(2)}))
     known = write_table(tmp_path / "c.parquet", shot_table({"c": 2}, extra={"m.second": np.ones(2)}))
     results = catalogue.ingest([first, third, known])
-    assert [r.status for r in results] == ["ingested", "rejected", "ingested"]
+    assert [r.status for r in results] == ["ingested", "refused", "ingested"]
     assert results[1].reason == f"{third} (column 'm.third'): the catalogue already holds 2 measurement names, the most it can (each is a column of the store): a new one cannot be added"
 
 
@@ -128,13 +128,13 @@ def test_any_failure_while_writing_a_file_is_that_files_refusal(catalogue, tmp_p
     monkeypatch.setattr(ingest, "_write_shots", failing)
     files = [write_table(tmp_path / f"{name}.parquet", shot_table({name: 3}, seed=i, start=T0 + dt.timedelta(hours=i))) for i, name in enumerate("abc")]
     results = catalogue.ingest(files)
-    assert [r.status for r in results] == ["ingested", "rejected", "ingested"]
+    assert [r.status for r in results] == ["ingested", "refused", "ingested"]
     assert results[1].reason == f"{files[1]}: could not be stored (OverflowError: date value out of range)"
     assert results[1].cause == "data" and results[1].files_fault
     with catalogue.engine.connect() as connection:
         assert "half-written" not in connection.exec_driver_sql("SELECT name FROM apparatus").scalars().all()
     assert catalogue.counts()["shots"] == 6
-    assert list(catalogue.ingest_log()["status"]) == ["ingested", "rejected", "ingested"]
+    assert list(catalogue.ingest_log()["status"]) == ["ingested", "refused", "ingested"]
 
 
 def test_a_driver_error_is_one_line_without_sql(catalogue, tmp_path, monkeypatch):
@@ -145,7 +145,7 @@ def test_a_driver_error_is_one_line_without_sql(catalogue, tmp_path, monkeypatch
 
     monkeypatch.setattr(ingest, "_write_shots", failing)
     [result] = catalogue.ingest(write_table(tmp_path / "a.parquet", shot_table({"a": 2})))
-    assert result.status == "rejected" and result.cause == "data"
+    assert result.status == "refused" and result.cause == "data"
     assert "no_such_column" in result.reason and "SELECT" not in result.reason and "12345" not in result.reason and "\n" not in result.reason
 
 
@@ -156,9 +156,9 @@ def test_the_time_window_is_configurable(catalogue, tmp_path):
     assert mapping.time_window == TimeWindow(dt.date(1990, 1, 1), dt.datetime(2030, 6, 1, 12, tzinfo=UTC))
     old = write_table(tmp_path / "old.parquet", shot_table({"old": 3}, start=dt.datetime(1995, 5, 1, tzinfo=UTC)))
     late = write_table(tmp_path / "late.parquet", shot_table({"late": 3}, start=dt.datetime(2031, 1, 1, tzinfo=UTC)))
-    assert [r.status for r in catalogue.ingest([old])] == ["rejected"]  # the default window
+    assert [r.status for r in catalogue.ingest([old])] == ["refused"]  # the default window
     results = catalogue.ingest([old, late], config=config)
-    assert [r.status for r in results] == ["ingested", "rejected"]
+    assert [r.status for r in results] == ["ingested", "refused"]
     assert results[1].reason == f"{late} (column 'time', row 0): time 2031-01-01T00:00:00+00:00 is outside the plausible window 1990-01-01 to 2030-06-01T12:00:00+00:00 UTC (set [time_window] in runlog.toml if it is right)"
 
 
@@ -199,7 +199,7 @@ def test_watch_quarantines_poison_files_and_keeps_going(catalogue, tmp_path, cap
     with caplog.at_level(logging.INFO, logger="runlog.watch"):
         assert watcher.poll() == []
         results = {os.path.basename(r.file): r.status for r in watcher.poll()}
-    assert results == {"a_good.parquet": "ingested", "b_future.parquet": "rejected", "c_nul.parquet": "rejected", "d_shot.parquet": "rejected", "e_good.parquet": "ingested", "f\nrefused fake.parquet": "rejected", "h_unit.parquet": "rejected"}
+    assert results == {"a_good.parquet": "ingested", "b_future.parquet": "refused", "c_nul.parquet": "refused", "d_shot.parquet": "refused", "e_good.parquet": "ingested", "f\nrefused fake.parquet": "refused", "h_unit.parquet": "refused"}
     assert sorted(p.name for p in folder.glob("*.parquet")) == ["a_good.parquet", "e_good.parquet"]
     quarantined = sorted(p.name for p in (folder / "quarantine").iterdir())
     assert "b_future.parquet" in quarantined and "b_future.parquet.reason.txt" in quarantined
@@ -225,7 +225,7 @@ def test_watch_leaves_a_file_the_catalogue_could_not_take_for_later(catalogue, t
     def ingest(paths):
         if busy[0]:
             [result] = catalogue.ingest(paths)
-            return [replace(result, status="rejected", reason="the catalogue stayed busy", cause="busy", runs=(), shots=0)]
+            return [replace(result, status="refused", reason="the catalogue stayed busy", cause="busy", runs=(), shots=0)]
         return catalogue.ingest(paths)
 
     watcher = Watcher(folder, ingest)

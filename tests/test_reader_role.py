@@ -36,7 +36,7 @@ def test_grant_reader_on_postgresql_reads_and_cannot_write(db_url, make_file, mo
         before = reader.counts()
         # Refused in one line naming the cause, not raised: the next file is tried.
         [refused] = reader.ingest(make_file(runs={"r2": 3}, seed=5))
-        assert refused.status == "rejected" and refused.cause == "permission" and not refused.files_fault
+        assert refused.status == "refused" and refused.cause == "permission" and not refused.files_fault
         assert "permission denied" in refused.reason and "\n" not in refused.reason and "SELECT" not in refused.reason
         assert reader.counts() == before
 

@@ -79,7 +79,7 @@ def mixed(catalogue, tmp_path):
 
 def test_a_mixed_day_gives_separate_series_and_no_alarm_from_the_mixing(mixed):
     coherence = mixed.series("t2_star", apparatus="bench-mixed")
-    assert sorted(s["constants"]["lattice_depth"] for s in coherence) == ["20 uK", "40 uK", "60 uK"]
+    assert sorted(s["constants"]["lattice_depth"] for s in coherence) == ["20 µK", "40 µK", "60 µK"]
     assert all(s["days"] == DAYS and s["runs"] == DAYS for s in coherence)
     fill = mixed.series("fill_fraction", apparatus="bench-mixed")
     scans = [s for s in fill if s["scanned"] == ["load_time"]]
@@ -113,7 +113,7 @@ def test_a_setting_change_is_one_series_and_reported_without_a_note(catalogue, m
         depth = 60.0 if day < 6 else 50.0
         catalogue.ingest(make_file(runs={f"d{day}-a": 20, f"d{day}-b": 20}, start=start, seed=day, extra={"p.depth[uK]": np.full(40, depth)}))
     (series,) = catalogue.series("fill_fraction")
-    assert [s["label"] for s in series["settings"]] == ["loading (beam=vertical; depth=60 uK; scan of wait)", "loading (beam=vertical; depth=50 uK; scan of wait)"]
+    assert [s["label"] for s in series["settings"]] == ["loading (beam=vertical; depth=60 µK; scan of wait)", "loading (beam=vertical; depth=50 µK; scan of wait)"]
     drift = catalogue.drift("fill_fraction")
     assert len(drift.points) == 10
     (change,) = drift.settings

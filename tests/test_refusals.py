@@ -1,6 +1,6 @@
 """Refusals of bad shot-table files, on SQLite and PostgreSQL.
 
-Each bad file must end as ``rejected`` with a one-line reason naming the file, the column
+Each bad file must end as ``refused`` with a one-line reason naming the file, the column
 and the first bad row (the exact text of ``ContractError.__str__``), leave the catalogue
 exactly as it was (every table, not only the counts), be written to the ingest log, and
 not stop a good file given in the same call. The rules checked here are those of the
@@ -58,15 +58,15 @@ def assert_refused(catalogue, make_file, path: Path, expected: str) -> None:
     """The whole refusal contract for one bad file (see the module docstring)."""
     before = snapshot(catalogue)
     [result] = catalogue.ingest(path)
-    assert (result.status, result.reason, result.runs, result.shots) == ("rejected", expected, (), 0)
+    assert (result.status, result.reason, result.runs, result.shots) == ("refused", expected, (), 0)
     assert "\n" not in result.reason
     assert snapshot(catalogue) == before
-    latest = catalogue.ingest_log(status="rejected").iloc[0]
-    assert (latest["file"], latest["status"], latest["reason"]) == (str(path), "rejected", expected)
+    latest = catalogue.ingest_log(status="refused").iloc[0]
+    assert (latest["file"], latest["status"], latest["reason"]) == (str(path), "refused", expected)
 
     good = make_file(table=shot_table({"good-run": GOOD_SHOTS}, apparatus="bench-good", seed=99))
     results = catalogue.ingest([path, good])
-    assert [(r.status, r.reason) for r in results] == [("rejected", expected), ("ingested", None)]
+    assert [(r.status, r.reason) for r in results] == [("refused", expected), ("ingested", None)]
     counts_before = before[0]
     assert catalogue.counts() == {
         "apparatus": counts_before["apparatus"] + 1,
@@ -268,10 +268,10 @@ def test_corrupt_data_page_is_refused_where_reading_stopped(catalogue, make_file
     path, prefix = corrupt_data_page(catalogue, make_file, tmp_path, monkeypatch)
     before = snapshot(catalogue)
     [result] = catalogue.ingest(path)
-    assert result.status == "rejected"
+    assert result.status == "refused"
     assert result.reason.startswith(prefix + " (") and result.reason.endswith(")") and "\n" not in result.reason
     assert snapshot(catalogue) == before
-    assert catalogue.ingest_log(status="rejected").iloc[0]["reason"] == result.reason
+    assert catalogue.ingest_log(status="refused").iloc[0]["reason"] == result.reason
 
 
 # --- refusals found late leave nothing behind --------------------------------------------
@@ -306,7 +306,7 @@ def test_refusal_during_the_shot_writes_rolls_back_rows_already_appended(catalog
     before = snapshot(catalogue)
     [result] = catalogue.ingest(path)
     assert calls == [0, 5, 10]  # two batches of shots were appended before the failure
-    assert (result.status, result.reason) == ("rejected", "injected.parquet (column 'm.atom_number', row 10): injected failure")
+    assert (result.status, result.reason) == ("refused", "injected.parquet (column 'm.atom_number', row 10): injected failure")
     assert snapshot(catalogue) == before
     monkeypatch.setattr(runlog.ingest, "_append_measurements", original)
     assert catalogue.ingest(path)[0].status == "ingested"
@@ -438,6 +438,25 @@ def test_a_run_key_longer_than_the_catalogue_keeps_is_refused_on_both_backends(c
     path = make_file("long.parquet", shot_table({"ok": 2, long_key: 2}))
     before = catalogue.counts()
     [result] = catalogue.ingest(path)
-    assert result.status == "rejected"
+    assert result.status == "refused"
     assert result.reason == f"{path} (column 'run', row 2): text longer than 200 characters"
     assert catalogue.counts() == before
+
+
+def test_an_older_catalogues_rejected_entries_read_as_refused(catalogue, make_file, tmp_path):
+    """Catalogues written before the status was called ``refused`` hold ``rejected`` in
+    their ingest log; they are read, selected and counted as ``refused`` (no migration)."""
+    bad = tmp_path / "bad.parquet"
+    bad.write_bytes(b"not parquet")
+    [new] = catalogue.ingest(bad)
+    assert new.status == "refused"
+    catalogue.ingest(make_file(runs={"r1": 3}))
+    with catalogue.engine.begin() as connection:  # what an older runlog wrote for a refusal
+        connection.execute(schema.IngestLogEntry.__table__.update().where(schema.IngestLogEntry.file == str(bad)).values(status="rejected"))
+        assert connection.execute(select(func.count()).where(schema.IngestLogEntry.status == "rejected")).scalar_one() == 1
+    log = catalogue.ingest_log()
+    assert sorted(log["status"]) == ["ingested", "refused"]
+    for asked in ("refused", "rejected"):
+        picked = catalogue.ingest_log(status=asked)
+        assert list(picked["file"]) == [str(bad)] and list(picked["status"]) == ["refused"]
+    assert list(catalogue.ingest_log(status="ingested")["status"]) == ["ingested"]

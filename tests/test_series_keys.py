@@ -136,7 +136,7 @@ def test_a_declaration_written_behind_the_keys_back_is_not_trusted(catalogue, ma
         connection.execute(s.Setting.__table__.insert().values(key="reference.1", value='{"sequence": null, "tolerance": 0.01, "vary": []}'))
         assert reference.stored_series(connection, 1, "fill_fraction") is None
     (entry,) = catalogue.series("fill_fraction", apparatus="bench-a")  # computed: steps of 0.1 uK, one setting
-    assert entry["constants"]["depth"] == "60 uK" and entry["runs"] == 12
+    assert entry["constants"]["depth"] == "60 µK" and entry["runs"] == 12
     catalogue.declare_reference("bench-a", tolerance=0.01)  # the same declaration, written properly
     assert check(catalogue) == 1
 
@@ -158,7 +158,7 @@ def test_an_old_catalogue_gets_its_keys_on_upgrade(db_url, tmp_path):
         before = check(catalogue)
         expected = _stored(catalogue)
     engine = make_engine(db_url)
-    downgrade(engine, "0009")  # the catalogue as the previous runlog left it
+    downgrade(engine, "0016")  # the catalogue as the previous runlog left it
     engine.dispose()
     with pytest.raises(runlog.SchemaVersionError):
         runlog.open(db_url)

@@ -76,5 +76,5 @@ def test_a_file_changed_while_read_with_size_and_time_put_back_is_refused(catalo
 
     monkeypatch.setattr(ingest, "file_sha256", hash_then_swap)
     [result] = catalogue.ingest(path)
-    assert result.status == "rejected" and "changed while being read" in result.reason
+    assert result.status == "refused" and "changed while being read" in result.reason
     assert catalogue.counts()["shots"] == 0

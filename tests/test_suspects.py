@@ -39,4 +39,4 @@ def test_nothing_explains_a_change_says_so_plainly(scenario):  # noqa: F811
     # On the fill step the setting change (lattice depth 65 -> 55 uK) is listed as such.
     fill = scenario.suspects("fill_fraction", START + dt.timedelta(days=6), apparatus="bench-north")
     assert fill["causes"][0]["setting_changed"] and fill["causes"][0]["name"] == "lattice_depth"
-    assert fill["verdict"].startswith("no note; setting lattice_depth changed from 65 to 55 uK")
+    assert fill["verdict"].startswith("no note; setting lattice_depth changed from 65 to 55 µK")

@@ -49,7 +49,7 @@ def edges(catalogue, tmp_path):
 
 def test_the_window_refuses_what_an_older_runlog_let_in(catalogue, tmp_path):
     results = catalogue.ingest(_edge_files(tmp_path))
-    assert [r.status for r in results] == ["rejected", "rejected", "ingested"]
+    assert [r.status for r in results] == ["refused", "refused", "ingested"]
 
 
 def test_date_filters_at_the_calendar_edges(edges):

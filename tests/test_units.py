@@ -202,7 +202,7 @@ def test_angle_against_plain_number_is_refused(catalogue, tmp_path):
     b = _file(tmp_path, "b.parquet", {"b1": 2}, {"p.phase": [0.1, 0.2]})
     results = catalogue.ingest([a, b])
     assert results[0].status == "ingested"
-    assert results[1].status == "rejected"
+    assert results[1].status == "refused"
     assert "unit '' cannot be converted to the stored unit 'rad' of parameter 'phase'" in results[1].reason
     assert "an angle and a plain number" in results[1].reason
     with pytest.raises(FilterError, match="an angle and a plain number"):
@@ -227,7 +227,7 @@ def test_gauss_torr_micro_at_ingest_and_in_filters(catalogue, tmp_path):
 def test_refused_units_at_ingest(catalogue, tmp_path, column, message):
     path = _file(tmp_path, "bad.parquet", {"a1": 2}, {column: [1.0, 2.0]})
     (result,) = catalogue.ingest(path)
-    assert result.status == "rejected"
+    assert result.status == "refused"
     assert f"(column '{column}')" in result.reason and message in result.reason
 
 
@@ -247,7 +247,7 @@ def test_lab_units_at_ingest_and_in_filters(db_url, tmp_path):
     b = _file(tmp_path, "b.parquet", {"b1": 2}, {"p.lattice_depth[kHz*planck_constant]": [34.7, 104.1]})
     with runlog.open(db_url) as catalogue:
         refused = catalogue.ingest(a)
-        assert refused[0].status == "rejected" and "unknown unit 'E_rec'" in refused[0].reason
+        assert refused[0].status == "refused" and "unknown unit 'E_rec'" in refused[0].reason
         assert [r.status for r in catalogue.ingest([a, b], config=config)] == ["ingested", "ingested"]
     # A new session, without the configuration: the definition was stored with the values.
     with runlog.open(db_url) as catalogue:
@@ -258,4 +258,4 @@ def test_lab_units_at_ingest_and_in_filters(db_url, tmp_path):
         changed = Mapping(units=(("E_rec", "4.0 kHz * planck_constant"),))
         c = _file(tmp_path, "c.parquet", {"c1": 1}, {"p.lattice_depth[E_rec]": [1.0]})
         (result,) = catalogue.ingest(c, config=changed)
-        assert result.status == "rejected" and "give the new definition a new name" in result.reason
+        assert result.status == "refused" and "give the new definition a new name" in result.reason

@@ -19,7 +19,7 @@ def test_stable_files_go_in_once_and_bad_ones_are_quarantined(catalogue, tmp_pat
     (folder / "bad.parquet").write_text("not parquet")
     assert watcher.poll() == []  # first sight: not yet known to be stable
     results = {os.path.basename(r.file): r.status for r in watcher.poll()}
-    assert results == {"a.parquet": "ingested", "bad.parquet": "rejected"}
+    assert results == {"a.parquet": "ingested", "bad.parquet": "refused"}
     assert not (folder / "bad.parquet").exists()
     reason = (folder / "quarantine" / "bad.parquet.reason.txt").read_text()
     assert "bad.parquet: not a readable Parquet file" in reason
@@ -103,7 +103,7 @@ def test_a_file_that_grows_while_being_read_is_refused_whole_then_taken_when_com
     complete = write_table(tmp_path / "complete.parquet", shot_table({"r1": 20, "r2": 15}))
     _change_during_write(monkeypatch, lambda: path.write_bytes(complete.read_bytes()))
     [result] = catalogue.ingest([path])
-    assert result.status == "rejected" and "changed while being read" in result.reason
+    assert result.status == "refused" and "changed while being read" in result.reason
     assert catalogue.counts()["shots"] == 0  # nothing of either version was written
     # The watcher looks again once the file is stable, and takes the complete file once.
     watcher = Watcher(folder, catalogue.ingest)
@@ -124,7 +124,7 @@ def test_a_file_deleted_while_being_read_is_refused_with_nothing_written(catalog
     assert watcher.poll() == []  # disappeared while being read: nothing to report, nothing kept
     assert catalogue.counts()["shots"] == 0
     log = catalogue.ingest_log()
-    assert list(log["status"]) == ["rejected"] and "disappeared while being read" in log["reason"].iloc[0]
+    assert list(log["status"]) == ["refused"] and "disappeared while being read" in log["reason"].iloc[0]
     assert not (folder / "quarantine").exists()
 
 

@@ -66,7 +66,7 @@ def test_an_idle_reader_cannot_stop_an_ingest_that_adds_a_measurement(catalogue,
         [result] = outcome["results"]
         if postgres:
             # The column needs the table to itself: refused as busy, naming who holds it.
-            assert result.status == "rejected" and result.cause == "busy" and not result.files_fault, result.reason
+            assert result.status == "refused" and result.cause == "busy" and not result.files_fault, result.reason
             assert "adding 1 measurement column(s)" in result.reason and "pid" in result.reason and "idle in transaction" in result.reason
             assert "\n" not in result.reason
         else:
@@ -136,5 +136,5 @@ def test_a_writer_that_waits_too_long_is_refused_as_busy(catalogue, tmp_path, mo
     finally:
         transaction.rollback()
         holder.close()
-    assert result.status == "rejected" and result.cause == "busy" and "\n" not in result.reason
+    assert result.status == "refused" and result.cause == "busy" and "\n" not in result.reason
     assert "lock timeout" in result.reason

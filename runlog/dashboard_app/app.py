@@ -25,7 +25,7 @@ PAGES = (
     ("run_detail.py", "Run detail", ":material/science:"),
     ("shots.py", "Shots explorer", ":material/scatter_plot:"),
     ("series.py", "Series across runs", ":material/stacked_line_chart:"),
-    ("annotate.py", "Notes and alarms", ":material/edit_note:"),
+    ("notes.py", "Notes and alarms", ":material/edit_note:"),
 )
 
 

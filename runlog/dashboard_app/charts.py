@@ -42,10 +42,43 @@ def _key(entries: list[str]) -> alt.Scale:
     return alt.Scale(domain=entries, range=[_DRIFT_KEY[e] for e in entries])
 
 
-def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int = 200) -> alt.LayerChart:
+#: Monitors on the drift chart's second axis, one colour each (not used by the first axis).
+_MONITOR_COLOURS = [PALETTE["green"], PALETTE["orange"], PALETTE["black"], PALETTE["yellow"]]
+
+
+def _monitor_layers(x, monitors: list[pd.DataFrame]) -> list[alt.Chart]:
+    """Each monitor (frames of ``common.monitor_overlay``) as its period means, a line, and
+    the range of each period shaded, on a second axis at the right."""
+    layers = []
+    for i, frame in enumerate(monitors):
+        colour = _MONITOR_COLOURS[i % len(_MONITOR_COLOURS)]
+        name = str(frame.attrs.get("monitor", "monitor"))
+        title = f"{axis_title(name, str(frame.attrs.get('unit', '')))}, {frame.attrs.get('resolution', '')} mean".replace(" (dimensionless)", "")
+        data = pd.DataFrame({"when": frame["when"], "mean": frame["mean"], "low": frame["minimum"], "high": frame["maximum"], "count": frame["count"]})
+        y = alt.Y("mean:Q", title=title, scale=alt.Scale(zero=False), axis=alt.Axis(orient="right", titleColor=colour, offset=48 * i))
+        layers.append(
+            alt.Chart(data, description=f"monitor range {name}")
+            .mark_area(color=colour, opacity=0.15)
+            .encode(x=x, y=alt.Y("low:Q", scale=alt.Scale(zero=False), axis=None), y2="high:Q")
+        )
+        layers.append(
+            alt.Chart(data, description=f"monitor {name}")
+            .mark_line(color=colour, strokeWidth=1)
+            .encode(
+                x=x,
+                y=y,
+                tooltip=[alt.Tooltip("when:N", title=f"from ({frame.attrs.get('resolution', '')})"), alt.Tooltip("mean:Q", title=label(name), format=".4g"), alt.Tooltip("low:Q", title="min", format=".4g"), alt.Tooltip("high:Q", title="max", format=".4g"), alt.Tooltip("count:Q", title="values")],
+            )
+        )
+    return layers
+
+
+def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int = 200, monitors: list[pd.DataFrame] | tuple = ()) -> alt.LayerChart:
     """Daily points with 95 % interval bars, control limits, changes in level and notes.
 
     ``domain`` is the time axis (first and last lab day, ISO) shared by all panels.
+    ``monitors`` (frames of ``common.monitor_overlay``) go on a second axis at the right,
+    at the lab's wall-clock time like the notes.
     """
     points: pd.DataFrame = view["points"].copy()
     changes: pd.DataFrame = view["changes"]
@@ -128,7 +161,13 @@ def drift_chart(view: dict, domain: tuple[str, str], zone: str, *, height: int =
         .mark_circle(size=60, opacity=1)
         .encode(x=x, y=alt.Y("value:Q", title=title, scale=y_scale), color=colour, tooltip=tooltip)
     )
-    return alt.layer(*layers).properties(height=height, autosize=_WIDTH_ONLY, title=alt.TitleParams(f"{label(view['quantity'])}: {view['apparatus']}", anchor="start"))
+    chart = alt.layer(*layers)
+    monitor_layers = _monitor_layers(x, [m for m in monitors if len(m)])
+    if monitor_layers:
+        # Each monitor's range shares its line's scale; the first axis keeps its own.
+        pairs = [alt.layer(*monitor_layers[i : i + 2]) for i in range(0, len(monitor_layers), 2)]
+        chart = alt.layer(chart, *pairs).resolve_scale(y="independent")
+    return chart.properties(height=height, autosize=_WIDTH_ONLY, title=alt.TitleParams(f"{label(view['quantity'])}: {view['apparatus']}", anchor="start"))
 
 
 def _levels(points: pd.DataFrame, changes: pd.DataFrame) -> pd.DataFrame:

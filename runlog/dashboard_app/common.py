@@ -32,6 +32,7 @@ import streamlit as st
 
 import runlog
 from runlog.dashboard import URL_VARIABLE
+from runlog.monitors.overlay import STOPPED_INTERVALS, duration_words, stopped_words
 from runlog.errors import RunlogError
 from runlog.redaction import scrub
 from runlog.units import unit_text  # one spelling of units for every page (in __all__)
@@ -62,6 +63,12 @@ __all__ = [
     "lab_timezone",
     "label",
     "mixed_units",
+    "monitor_list",
+    "monitor_names",
+    "monitor_overlay",
+    "duration_words",
+    "stopped_words",
+    "STOPPED_INTERVALS",
     "parameters_table",
     "run_info",
     "runs_table",
@@ -456,6 +463,31 @@ def standing(url: str, quantity: str, apparatus: str, day: dt.date) -> dict[str,
 def stability(url: str, quantity: str, apparatus: str, series: str) -> dict[str, object]:
     """``catalogue.stability``: the Allan deviation over a series' runs, in plain words."""
     return catalogue(url).stability(quantity, apparatus=apparatus, series=series)
+
+
+@_cached
+def monitor_list(url: str) -> list[dict[str, object]]:
+    """``catalogue.monitors()``: each monitor's latest value and whether it stopped reporting."""
+    return catalogue(url).monitors()
+
+
+@_cached
+def monitor_names(url: str, apparatus: str) -> list[str]:
+    """The monitors an apparatus logs, by name."""
+    return sorted(m["name"] for m in catalogue(url).monitors() if m["apparatus"] == apparatus)
+
+
+@_cached
+def monitor_overlay(url: str, name: str, apparatus: str, since: dt.date, until: dt.date) -> pd.DataFrame:
+    """One monitor over the lab days [since, until] from its rollups (at most 2000
+    periods), with ``when``: each period's start in the lab's wall-clock time, as the
+    drift chart's axis places times."""
+    from runlog.times import day_start_utc
+
+    zone = lab_timezone(url)
+    frame = catalogue(url).monitor_series(name, apparatus=apparatus, since=day_start_utc(since, ZoneInfo(zone)), until=day_start_utc(until, ZoneInfo(zone), 1), max_points=2000)
+    frame["when"] = wall_clock(frame["start"], zone) if len(frame) else pd.Series(dtype=str)
+    return frame
 
 
 @_cached

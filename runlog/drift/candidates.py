@@ -37,6 +37,7 @@ from scipy import stats
 from sqlalchemy.engine import Connection
 
 from runlog.times import shift_day
+from runlog.units import unit_text
 
 __all__ = [
     "KINDS",
@@ -224,7 +225,7 @@ def benjamini_hochberg(p_values: Sequence[float]) -> np.ndarray:
 
 
 def _words(s: Suspect) -> str:
-    unit = f" {s.unit}" if s.unit else ""
+    unit = f" {unit_text(s.unit)}" if s.unit else ""  # words for people: µK, µs
     if s.setting_changed:
         return f"setting {s.name} changed from {s.before_mean:.4g} to {s.after_mean:.4g}{unit}"
     if not math.isfinite(s.standardised_change):

@@ -67,7 +67,7 @@ def figure_candidates(connection: Connection, apparatus_id: int, window: Window,
     for runs in _sides(connection, apparatus_id, window):
         values: dict[str, list] = {}
         if runs:
-            query = select(s.FigureRow.name, s.FigureRow.unit, s.FigureRow.value, s.FigureRow.stderr).where(and_(s.FigureRow.run_id.in_(runs), s.FigureRow.name != quantity))
+            query = select(s.FigureRow.name, s.FigureRow.unit, s.FigureRow.value, s.FigureRow.stderr).where(and_(s.FigureRow.run_id.in_(runs), s.FigureRow.name != quantity, s.FigureRow.out_of_range.is_(False)))
             for name, unit, value, stderr in connection.execute(query):
                 values.setdefault(name, []).append((float(value), stderr))
                 units[name] = unit or ""

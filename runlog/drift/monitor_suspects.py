@@ -63,7 +63,7 @@ def _runs(connection: Connection, apparatus_id: int, window: Window, quantity: s
     rows = connection.execute(
         select(s.Run.started, s.Run.finished, s.FigureRow.value)
         .join(s.FigureRow, s.FigureRow.run_id == s.Run.id)
-        .where(and_(s.Run.apparatus_id == apparatus_id, s.Run.is_current, s.Run.day >= window.before_first, s.Run.day <= window.after_last, s.FigureRow.name == quantity))
+        .where(and_(s.Run.apparatus_id == apparatus_id, s.Run.is_current, s.Run.day >= window.before_first, s.Run.day <= window.after_last, s.FigureRow.name == quantity, s.FigureRow.out_of_range.is_(False)))
     ).all()
     if not rows:
         return np.array([], dtype=np.int64), np.array([], dtype=float)

@@ -1,6 +1,18 @@
-"""How the runs of one lab day pool into one drift point, for fitted figures.
+"""How the runs of one lab day pool into one drift point.
 
-Three arithmetics, chosen by the figure's unit:
+Every path that makes a daily point - the daily rollup table kept at ingest
+(:mod:`runlog.store.rollups`) and the points made on the fly from the figures of chosen
+runs (:func:`runlog.drift.series.filtered_points`) - goes through this module: each run's
+figure becomes a set of additive sums (:func:`run_sums`), the sums of a day's runs are
+added (:func:`add_sums`; a rollup row holds the sums of one sequence, a day adds its
+rows), and the day's point is made from the sums (:func:`day_point`). So the rollups and
+the figures give the same point, to rounding.
+
+Counting figures (fill fraction, survival, loss) pool their counts: the day's fraction,
+with the shot-level interval of :mod:`runlog.figures.shot_level` over all its shots (the
+Wilson interval and binomial standard error when a run lacks the sums over shots).
+
+Fitted figures pool in one of three arithmetics, chosen by the figure's unit:
 
 * **linear** (contrast, frequencies, ...): the inverse-variance weighted mean of the runs
   that have a stderr, its standard error ``1/sqrt(sum w)`` scaled by the Birge ratio
@@ -11,30 +23,46 @@ Three arithmetics, chosen by the figure's unit:
 * **circular** (phases, in an angle unit): the weighted mean direction
   ``atan2(sum w sin, sum w cos)`` (Mardia K.V. & Jupp P.E. 2000, Directional Statistics,
   Wiley, section 2.2.1), wrapped to (-half period, half period]; its stderr is
-  ``1/sqrt(sum w)`` widened by a Birge ratio from the wrapped residuals; the spread is the
-  circular standard deviation ``sqrt(-2 ln R)`` (ibid. eq. 2.3.14). A mean of 359 deg and
-  1 deg is 0 deg, not 180 deg. Without stderrs the standard error is the circular
-  standard deviation over ``sqrt(n)``.
+  ``1/sqrt(sum w)`` widened by a Birge ratio whose ``chi2 = sum w 2 (1 - cos(theta - mean))
+  = 2 (sum w - |sum w e^(i theta)|)`` (the squared chord between each phase and the mean:
+  ``(theta - mean)^2`` for small residuals, and additive, so a rollup row can hold it); the
+  spread is the circular standard deviation ``sqrt(-2 ln R)`` (ibid. eq. 2.3.14). A mean
+  of 359 deg and 1 deg is 0 deg, not 180 deg. Without stderrs the standard error is the
+  circular standard deviation over ``sqrt(n)``.
 * **logarithmic** (lifetimes and other times): a time's fitted stderr grows with the time,
   so weights ``1/stderr^2`` of the times themselves favour the short ones and pull the
   mean low. The day pools ``ln T`` instead, whose stderr ``stderr/T`` does not grow with
   ``T``: the weighted mean of ``ln T`` (with the Birge ratio), back-transformed, so the day's
   value is a weighted geometric mean and its interval ``exp(mean ± 1.96 se)`` is
-  asymmetric; the reported stderr is ``T * se`` (first order).
+  asymmetric; the reported stderr is ``T * se`` (first order). A day with a time <= 0
+  (no logarithm) pools linearly.
 
-Each returns ``(value, ci_low, ci_high, stderr, spread)``.
+Figures flagged ``out_of_range`` (a contrast outside its physical range) never reach
+this module: the readers leave them out.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
-__all__ = ["ARITHMETICS", "arithmetic_of", "pool"]
+__all__ = ["ARITHMETICS", "SUMS", "arithmetic_of", "half_period", "run_sums", "add_sums", "day_point", "pool"]
 
 Z95 = 1.959963984540054
 ARITHMETICS = ("linear", "circular", "logarithmic")
+
+#: The additive sums of a day's (or a rollup group's) runs, by the rollup column that keeps
+#: each. Counting sums are None for a fitted figure; the circular sums for a figure that
+#: is not an angle, the logarithmic ones for one that is not a time.
+SUMS = (
+    "runs", "shots", "successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials",
+    "value_count", "value_sum", "value_square_sum", "weighted_count", "weight_sum", "weighted_value_sum", "weighted_square_sum",
+    "cosine_sum", "sine_sum", "weighted_cosine_sum", "weighted_sine_sum",
+    "positive_count", "log_sum", "log_square_sum", "log_weight_sum", "weighted_log_sum", "weighted_log_square_sum",
+)
+_COUNTING = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
 
 
 def _root(unit: str):
@@ -67,76 +95,150 @@ def half_period(unit: str) -> float:
     return math.pi / factor
 
 
-def _weighted(values: np.ndarray, stderrs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    ok = np.isfinite(stderrs) & (stderrs > 0)
-    return values[ok], 1.0 / stderrs[ok] ** 2, ok
+def run_sums(value: float, stderr: float | None, unit: str, *, shots: int = 0, counts: Mapping[str, object] | None = None, arithmetic: str | None = None) -> dict[str, object]:
+    """One run's figure as the additive sums of :data:`SUMS`. ``counts`` holds a counting
+    figure's ``successes``, ``trials`` and sums over shots (absent: a fitted figure)."""
+    arithmetic = arithmetic or arithmetic_of(unit)
+    value = float(value)
+    weighted = stderr is not None and math.isfinite(stderr) and stderr > 0
+    weight = 1.0 / stderr**2 if weighted else 0.0
+    out: dict[str, object] = {name: None for name in SUMS}
+    counts = counts or {}
+    for name in _COUNTING:
+        part = counts.get(name)
+        out[name] = None if part is None else part
+    out.update(
+        runs=1, shots=int(shots or 0), value_count=1, value_sum=value, value_square_sum=value * value,
+        weighted_count=int(weighted), weight_sum=weight, weighted_value_sum=weight * value, weighted_square_sum=weight * value * value,
+    )
+    if arithmetic == "circular":
+        angle = value * math.pi / half_period(unit)
+        out.update(cosine_sum=math.cos(angle), sine_sum=math.sin(angle), weighted_cosine_sum=weight * math.cos(angle), weighted_sine_sum=weight * math.sin(angle))
+    elif arithmetic == "logarithmic":
+        positive = value > 0
+        logarithm = math.log(value) if positive else 0.0
+        # The stderr of ln T is stderr / T: its weight (T / stderr)^2.
+        log_weight = (value / stderr) ** 2 if weighted and positive else 0.0
+        out.update(
+            positive_count=int(positive), log_sum=logarithm, log_square_sum=logarithm * logarithm,
+            log_weight_sum=log_weight, weighted_log_sum=log_weight * logarithm, weighted_log_square_sum=log_weight * logarithm * logarithm,
+        )
+    return out
 
 
-def _birge(residuals: np.ndarray, weights: np.ndarray) -> float:
-    if len(weights) < 2:
+def add_sums(parts: Iterable[Mapping[str, object]]) -> dict[str, object] | None:
+    """The sums of several runs (or rollup rows). A sum that one part lacks (None) is None:
+    a day is shot-level only when all of its runs are, circular only when all are angles."""
+    total: dict[str, object] | None = None
+    for part in parts:
+        if total is None:
+            total = {name: part.get(name) for name in SUMS}
+            continue
+        for name in SUMS:
+            a, b = total[name], part.get(name)
+            total[name] = None if a is None or b is None else a + b
+    return total
+
+
+def _birge(chi2: float, k: int) -> float:
+    if k < 2:
         return 1.0
-    chi2 = float(np.sum(weights * residuals**2))
-    return max(1.0, math.sqrt(chi2 / (len(weights) - 1)))
+    return max(1.0, math.sqrt(max(0.0, chi2) / (k - 1)))
 
 
-def _linear(values: np.ndarray, stderrs: np.ndarray) -> tuple[float, float, float, float, float | None]:
-    spread = float(np.std(values, ddof=1)) if len(values) > 1 else None
-    kept, weights, _ = _weighted(values, stderrs)
-    if len(kept):
-        mean = float(np.sum(weights * kept) / np.sum(weights))
-        stderr = _birge(kept - mean, weights) / math.sqrt(float(np.sum(weights)))
-    else:
-        mean = float(np.mean(values))
-        stderr = spread / math.sqrt(len(values)) if spread is not None else math.nan
+def _spread(count: int, total: float, squares: float) -> float | None:
+    if count < 2:
+        return None
+    return math.sqrt(max(0.0, (squares - total * total / count) / (count - 1)))
+
+
+def _mean_and_error(sums: Mapping[str, object], prefix: str, count_key: str, total_key: str, squares_key: str) -> tuple[float, float]:
+    """The weighted mean of one coordinate (the value, or ln T) with its Birge-scaled
+    standard error; without weighted runs the plain mean and the spread over sqrt(n)."""
+    weight, k = float(sums[f"{prefix}weight_sum"] or 0.0), int(sums["weighted_count"] or 0)
+    count = int(sums[count_key])
+    if k and weight > 0:
+        weighted = float(sums[f"weighted_{prefix or 'value_'}sum"])
+        mean = weighted / weight
+        chi2 = float(sums[f"weighted_{prefix or ''}square_sum"]) - weighted * weighted / weight
+        return mean, _birge(chi2, k) / math.sqrt(weight)
+    spread = _spread(count, float(sums[total_key]), float(sums[squares_key]))
+    return float(sums[total_key]) / count, spread / math.sqrt(count) if spread is not None else math.nan
+
+
+def _linear(sums: Mapping[str, object]) -> tuple[float, float, float, float, float | None]:
+    spread = _spread(int(sums["value_count"]), float(sums["value_sum"]), float(sums["value_square_sum"]))
+    mean, stderr = _mean_and_error(sums, "", "value_count", "value_sum", "value_square_sum")
     return mean, mean - Z95 * stderr, mean + Z95 * stderr, stderr, spread
 
 
-def _circular(values: np.ndarray, stderrs: np.ndarray, unit: str) -> tuple[float, float, float, float, float | None]:
+def _circular(sums: Mapping[str, object], unit: str) -> tuple[float, float, float, float, float | None]:
     half = half_period(unit)
     to_rad = math.pi / half
-    angles = values * to_rad
-    resultant = abs(np.mean(np.exp(1j * angles)))
-    spread = math.sqrt(-2.0 * math.log(resultant)) / to_rad if len(values) > 1 and resultant > 0 else None
-    kept, weights, ok = _weighted(angles, stderrs * to_rad)
-    if len(kept):
-        mean = float(np.angle(np.sum(weights * np.exp(1j * kept))))
-        residuals = np.angle(np.exp(1j * (kept - mean)))
-        stderr = _birge(residuals, weights) / math.sqrt(float(np.sum(weights)))
+    count = int(sums["value_count"])
+    resultant = min(1.0, math.hypot(float(sums["cosine_sum"]), float(sums["sine_sum"])) / count)
+    spread = math.sqrt(-2.0 * math.log(resultant)) / to_rad if count > 1 and resultant > 0 else None
+    weight, k = float(sums["weight_sum"] or 0.0) / to_rad**2, int(sums["weighted_count"] or 0)
+    if k and weight > 0:
+        cosine, sine = float(sums["weighted_cosine_sum"]) / to_rad**2, float(sums["weighted_sine_sum"]) / to_rad**2
+        mean = math.atan2(sine, cosine)
+        chi2 = 2.0 * (weight - math.hypot(cosine, sine))
+        stderr = _birge(chi2, k) / math.sqrt(weight)
     else:
-        mean = float(np.angle(np.sum(np.exp(1j * angles))))
-        stderr = (spread * to_rad) / math.sqrt(len(values)) if spread is not None else math.nan
+        mean = math.atan2(float(sums["sine_sum"]), float(sums["cosine_sum"]))
+        stderr = (spread * to_rad) / math.sqrt(count) if spread is not None else math.nan
     mean, stderr = mean / to_rad, stderr / to_rad
     if mean <= -half:
         mean += 2 * half
     return mean, mean - Z95 * stderr, mean + Z95 * stderr, stderr, spread
 
 
-def _logarithmic(values: np.ndarray, stderrs: np.ndarray) -> tuple[float, float, float, float, float | None]:
-    spread = float(np.std(values, ddof=1)) if len(values) > 1 else None
-    positive = values > 0
-    if not positive.all():
-        # ln T needs T > 0; a non-positive fitted time is pooled linearly, as it stands.
-        return _linear(values, stderrs)
-    logs = np.log(values)
-    kept, weights, _ = _weighted(logs, stderrs / values)
-    if len(kept):
-        mean = float(np.sum(weights * kept) / np.sum(weights))
-        error = _birge(kept - mean, weights) / math.sqrt(float(np.sum(weights)))
-    else:
-        mean = float(np.mean(logs))
-        error = float(np.std(logs, ddof=1)) / math.sqrt(len(logs)) if len(logs) > 1 else math.nan
+def _logarithmic(sums: Mapping[str, object]) -> tuple[float, float, float, float, float | None]:
+    count = int(sums["value_count"])
+    if int(sums["positive_count"]) < count:
+        # ln T needs T > 0; a day with a non-positive fitted time is pooled linearly, as it stands.
+        return _linear(sums)
+    spread = _spread(count, float(sums["value_sum"]), float(sums["value_square_sum"]))
+    mean, error = _mean_and_error(sums, "log_", "value_count", "log_sum", "log_square_sum")
     value = math.exp(mean)
     return value, math.exp(mean - Z95 * error), math.exp(mean + Z95 * error), value * error, spread
 
 
-def pool(values: object, stderrs: object, unit: str) -> tuple[float, float, float, float, float | None]:
-    """One day's ``(value, ci_low, ci_high, stderr, spread)`` from its runs' figures
-    (``stderrs`` NaN where a run has none), in the arithmetic its unit calls for."""
-    values = np.asarray(values, dtype=float)
-    stderrs = np.asarray([math.nan if e is None else e for e in stderrs], dtype=float)
+def _counting(sums: Mapping[str, object]) -> tuple[float, float, float, float, None]:
+    from runlog.figures.intervals import wilson
+    from runlog.figures.shot_level import ShotSums, shot_level_interval
+
+    successes, trials = int(sums["successes"]), int(sums["trials"])
+    p = successes / trials
+    if sums["counted_shots"] is not None and sums["successes_squares"] is not None:
+        honest = shot_level_interval(ShotSums(int(sums["counted_shots"]), successes, trials, float(sums["successes_squares"]), float(sums["trials_squares"]), float(sums["successes_trials"])))
+        if honest is not None:
+            return p, honest.low, honest.high, honest.stderr, None
+    low, high = wilson(successes, trials)
+    return p, low, high, math.sqrt(p * (1 - p) / trials), None
+
+
+def day_point(sums: Mapping[str, object] | None, unit: str) -> tuple[float, float, float, float, float | None] | None:
+    """A day's ``(value, ci_low, ci_high, stderr, spread)`` from the added sums of its runs:
+    counting figures by their counts, fitted ones in the arithmetic of ``unit``. None when
+    the day has no value."""
+    if sums is None or not sums.get("value_count"):
+        return None
+    if sums.get("trials"):
+        return _counting(sums)
     arithmetic = arithmetic_of(unit)
-    if arithmetic == "circular":
-        return _circular(values, stderrs, unit)
-    if arithmetic == "logarithmic":
-        return _logarithmic(values, stderrs)
-    return _linear(values, stderrs)
+    if arithmetic == "circular" and sums.get("cosine_sum") is not None:
+        return _circular(sums, unit)
+    if arithmetic == "logarithmic" and sums.get("positive_count") is not None:
+        return _logarithmic(sums)
+    return _linear(sums)
+
+
+def pool(values: object, stderrs: object, unit: str) -> tuple[float, float, float, float, float | None]:
+    """One day's ``(value, ci_low, ci_high, stderr, spread)`` from its runs' fitted figures
+    (``stderrs`` None or NaN where a run has none), in the arithmetic its unit calls for."""
+    values = np.asarray(values, dtype=float)
+    errors = [None if e is None or not math.isfinite(float(e)) else float(e) for e in stderrs]
+    arithmetic = arithmetic_of(unit)
+    sums = add_sums(run_sums(v, e, unit, arithmetic=arithmetic) for v, e in zip(values, errors))
+    return day_point(sums, unit)

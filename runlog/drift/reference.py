@@ -37,6 +37,7 @@ from runlog.store import schema as s
 from runlog.store import series_keys as keys
 from runlog.store.rollups import as_date
 from runlog.store.series_keys import DEFAULT_TOLERANCE, Declaration
+from runlog.units import unit_text
 
 __all__ = ["Declaration", "Series", "describe", "declaration_of", "declare", "run_series", "stored_series", "series_of", "chain_runs", "selected", "reference_series", "pick_reference", "setting_changes", "notes_between", "DEFAULT_TOLERANCE"]
 
@@ -84,6 +85,11 @@ def declare(connection: Connection, apparatus_id: int, declaration: Declaration)
 
 
 _ACKNOWLEDGEMENT = re.compile(r"^\S+ (limit|change|setting)\b|^new level accepted")
+
+
+def _shown(kept: dict[str, str], units: dict[str, str]) -> tuple[tuple[str, str], ...]:
+    # People read the settings (labels, alarms, digest): units as runlog prints them (µK, µs).
+    return tuple((name, f"{value} {unit_text(units[name])}".strip() if name in units else value) for name, value in kept.items())
 
 
 @dataclass
@@ -136,8 +142,7 @@ def run_series(connection: Connection, apparatus_id: int, declaration: Declarati
         varying = set(keys.varying_of(((name, len(values)) for name, values in seen.items()), len(members)))
         for run_id in members:
             kept = {name: value for name, value in sorted(constants[run_id].items()) if name not in varying}
-            shown = tuple((name, f"{value} {units[name]}".strip() if name in units else value) for name, value in kept.items())
-            table.series[run_id] = Series(sequence, keys.fingerprint(kept, scanned[run_id]), shown, tuple(sorted(scanned[run_id])))
+            table.series[run_id] = Series(sequence, keys.fingerprint(kept, scanned[run_id]), _shown(kept, units), tuple(sorted(scanned[run_id])))
             table.values[run_id] = kept
     return table
 
@@ -163,7 +168,7 @@ def stored_series(connection: Connection, apparatus_id: int, quantity: str, decl
     if varying is None:
         return None
     sr, r = s.SeriesRollup, s.Run
-    rows = connection.execute(select(sr.sequence, sr.fingerprint, sr.day, sr.runs).where(and_(sr.apparatus_id == apparatus_id, sr.name == quantity))).all()
+    rows = connection.execute(select(sr.sequence, sr.fingerprint, sr.day, sr.held).where(and_(sr.apparatus_id == apparatus_id, sr.name == quantity))).all()
     found = StoredSeries()
     for sequence, fp, day, count in rows:
         if not fp or sequence not in varying:
@@ -198,8 +203,7 @@ def stored_series(connection: Connection, apparatus_id: int, quantity: str, decl
                     units[name] = unit or ""
         if keys.fingerprint(kept, scanned) != fp:
             return None  # a run's settings changed without its fingerprint
-        shown = tuple((name, f"{value} {units[name]}".strip() if name in units else value) for name, value in sorted(kept.items()))
-        found.series[(sequence, fp)] = Series(sequence, fp, shown, tuple(sorted(scanned)))
+        found.series[(sequence, fp)] = Series(sequence, fp, _shown(dict(sorted(kept.items())), units), tuple(sorted(scanned)))
         found.values[(sequence, fp)] = kept
     return found
 

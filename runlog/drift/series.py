@@ -11,8 +11,11 @@ figures of the series' runs per lab day (never shots):
   shots (the Wilson interval and binomial standard error of the pooled counts only for
   runs stored before the sums over shots were kept);
 * fitted figures (coherence time, contrast, ...): the inverse-variance weighted mean of
-  the day's runs, its standard error scaled by the Birge ratio when the runs disagree
-  by more than their errors, and the spread between runs.
+  the day's runs in the arithmetic of the figure's unit (linear; circular for phases;
+  ln T for times), its standard error scaled by the Birge ratio when the runs disagree
+  by more than their errors, and the spread between runs (:mod:`runlog.drift.pooling`,
+  the same for the rollup rows and the figures of chosen runs). Figures flagged
+  ``out_of_range`` are left out.
 
 Limits and alarms come from :mod:`runlog.drift.detect`: each day standardised by its own
 precision against a rolling baseline of in-control days (or the days after the last
@@ -24,24 +27,19 @@ values weighted by their inverse variances, with the documented default penalty 
 from __future__ import annotations
 
 import datetime as dt
-import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from sqlalchemy import and_, case, exists, func, or_, select
+from sqlalchemy import and_, exists, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
-from runlog.figures.intervals import wilson
-from runlog.drift.pooling import arithmetic_of, half_period, pool
-from runlog.figures.shot_level import ShotSums, shot_level_interval
+from runlog.drift.pooling import add_sums, arithmetic_of, half_period, run_sums
 from runlog.store import schema as s
 
 __all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "series_points", "drift_of"]
-
-Z95 = 1.959963984540054
 
 
 @dataclass(frozen=True)
@@ -134,31 +132,12 @@ def _apparatus_id(connection: Connection, quantity: str, apparatus: str | None) 
 
 
 def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
-    """One point per lab day that has data, pooled over runs (and sequences unless given)."""
+    """One point per lab day that has data, from the daily rollups (pooled over sequences
+    unless one is given); the same point :func:`filtered_points` makes from the figures."""
+    from runlog.drift.pooling import SUMS
+
     r = s.DailyRollup
-    query = (
-        select(
-            r.day,
-            func.sum(r.runs),
-            func.sum(r.shots),
-            func.sum(r.successes),
-            func.sum(r.trials),
-            func.sum(r.counted_shots),
-            func.sum(r.successes_squares),
-            func.sum(r.trials_squares),
-            func.sum(r.successes_trials),
-            func.sum(r.value_count),
-            func.sum(r.value_sum),
-            func.sum(r.value_square_sum),
-            func.sum(r.weight_sum),
-            func.sum(r.weighted_value_sum),
-            func.sum(r.weighted_square_sum),
-            func.max(r.unit),
-        )
-        .where(and_(r.apparatus_id == apparatus_id, r.name == quantity))
-        .group_by(r.day)
-        .order_by(r.day)
-    )
+    query = select(r.day, r.unit, *(getattr(r, name) for name in SUMS)).where(and_(r.apparatus_id == apparatus_id, r.name == quantity)).order_by(r.day, r.sequence)
     if sequence is not None:
         query = query.where(r.sequence == sequence)
     if since is not None:
@@ -166,15 +145,13 @@ def daily_points(connection: Connection, quantity: str, apparatus_id: int, *, se
     if until is not None:
         query = query.where(r.day <= until)
     _one_unit(connection, select(r.unit).where(and_(r.apparatus_id == apparatus_id, r.name == quantity, *([r.sequence == sequence] if sequence is not None else []))).distinct(), quantity)
-    points: list[DriftPoint] = []
-    unit, counting = "", False
-    for day, *sums, day_unit in connection.execute(query):
+    days: dict[object, list[dict]] = {}
+    unit = ""
+    for day, day_unit, *sums in connection.execute(query):
         unit = day_unit or unit
-        point = _point(day, *sums)
-        if point is not None:
-            counting = counting or point.trials is not None
-            points.append(point)
-    return points, unit, counting
+        days.setdefault(day, []).append(dict(zip(SUMS, sums)))
+    points = [p for p in (_point(day, add_sums(rows), unit) for day, rows in days.items()) if p is not None]
+    return points, unit, any(p.trials is not None for p in points)
 
 
 def _one_unit(connection: Connection, units_query, quantity: str) -> None:
@@ -184,63 +161,40 @@ def _one_unit(connection: Connection, units_query, quantity: str) -> None:
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
 
 
-def _point(day, runs, shots, successes, trials, counted, y2, x2, xy, count, total, squares, weights, weighted, weighted_squares) -> DriftPoint | None:
-    """One day's point from the pooled sums of its runs (see the module docstring)."""
-    day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
-    if trials:
-        successes, trials = int(successes), int(trials)
-        p = successes / trials
-        # SUM over runs is NULL if any run lacks the sums, so a day is shot-level only when
-        # all of its runs are.
-        honest = shot_level_interval(ShotSums(int(counted), successes, trials, float(y2), float(x2), float(xy))) if counted is not None and y2 is not None else None
-        if honest is not None:
-            return DriftPoint(day, p, honest.low, honest.high, int(runs), int(shots), honest.stderr, None, successes, trials)
-        low, high = wilson(successes, trials)
-        return DriftPoint(day, p, low, high, int(runs), int(shots), math.sqrt(p * (1 - p) / trials), None, successes, trials)
-    spread = None
-    if count and count > 1:
-        spread = math.sqrt(max(0.0, (squares - total * total / count) / (count - 1)))
-    if weights:
-        mean = weighted / weights
-        stderr = 1.0 / math.sqrt(weights)
-        if count and count > 1:
-            # Birge ratio: runs that disagree beyond their errors widen the day's error.
-            chi2 = max(0.0, weighted_squares - weighted * weighted / weights)
-            stderr *= max(1.0, math.sqrt(chi2 / (count - 1)))
-    elif count:
-        mean = total / count
-        stderr = (spread / math.sqrt(count)) if spread is not None else math.nan
-    else:
+def _point(day, sums: dict | None, unit: str) -> DriftPoint | None:
+    """One day's point from the added sums of its runs (:func:`runlog.drift.pooling.day_point`)."""
+    from runlog.drift.pooling import day_point
+
+    made = day_point(sums, unit)
+    if made is None:
         return None
-    return DriftPoint(day, mean, mean - Z95 * stderr, mean + Z95 * stderr, int(runs), int(shots), stderr, spread)
-
-
-def _all_or_none(column):
-    """SUM of ``column`` over a day's counted runs, NULL when one of them lacks it (as
-    SQL's SUM in the rollups: one run without sums over shots makes them NULL)."""
-    f = s.FigureRow
-    counted = f.trials.is_not(None)
-    return case((func.count(case((and_(counted, column.is_(None)), 1))) > 0, None), else_=func.sum(case((counted, column))))
+    value, low, high, stderr, spread = made
+    day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
+    counted = bool(sums.get("trials"))
+    return DriftPoint(day, value, low, high, int(sums["runs"]), int(sums["shots"]), stderr, spread, int(sums["successes"]) if counted else None, int(sums["trials"]) if counted else None)
 
 
 def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, selection: list | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
     """Daily points over only the given runs (``runs``, or a series' ``selection``, see
-    :func:`runlog.drift.reference.series_of`) and the runs whose parameters lie in the
-    given ranges.
+    :func:`runlog.drift.reference.series_of`) and the runs whose parameters lie in the given ranges.
 
     A run matches a range when its constant value lies in it, or when its whole scanned
-    range does. Pools the runs' stored figures per day, exactly as the rollups do: the
-    counts of counting figures summed per day in SQL, the fitted figures of a day pooled
-    from each run's value and stderr (:func:`runlog.drift.pooling.pool`).
+    range does. Pools the runs' stored figures per day, exactly as the rollups do (one
+    arithmetic, :mod:`runlog.drift.pooling`); figures flagged ``out_of_range`` are left out.
     """
     f, r = s.FigureRow, s.Run
-    conditions = [r.apparatus_id == apparatus_id, f.name == quantity, r.is_current]
+    query = (
+        select(r.day, r.shot_count, f.value, f.stderr, f.successes, f.trials, f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials, f.unit)
+        .join(r, r.id == f.run_id)
+        .where(and_(r.apparatus_id == apparatus_id, f.name == quantity, r.is_current, f.out_of_range.is_(False)))
+        .order_by(r.day, r.id)
+    )
     if runs is not None:
-        conditions.append(r.id.in_(runs))
+        query = query.where(r.id.in_(runs))
     if selection is not None:
         from runlog.drift.reference import selected
 
-        conditions.append(selected(selection))
+        query = query.where(selected(selection))
     for name, (low, high) in (parameters or {}).items():
         parameter_id = connection.execute(select(s.Parameter.id).where(s.Parameter.name == name)).scalar()
         if parameter_id is None:
@@ -256,40 +210,32 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
                 ),
             )
         )
-        conditions.append(exists(matches))
+        query = query.where(exists(matches))
     if sequence is not None:
-        conditions.append(r.sequence == sequence)
+        query = query.where(r.sequence == sequence)
     if since is not None:
-        conditions.append(r.day >= since)
+        query = query.where(r.day >= since)
     if until is not None:
-        conditions.append(r.day <= until)
-    unit_of = func.coalesce(f.unit, "")
-    counted = f.trials.is_not(None)
-    query = (
-        select(
-            r.day,
-            unit_of,
-            func.count(),
-            func.sum(r.shot_count),
-            func.sum(case((counted, f.successes))),
-            func.sum(f.trials),
-            _all_or_none(f.counted_shots),
-            _all_or_none(f.successes_squares),
-            _all_or_none(f.trials_squares),
-            _all_or_none(f.successes_trials),
-        )
-        .join(r, r.id == f.run_id)
-        .where(and_(*conditions))
-        .group_by(r.day, unit_of)
-        .order_by(r.day)
-    )
-    return _pooled(connection, quantity, connection.execute(query).all(), conditions)
+        query = query.where(r.day <= until)
+    rows = connection.execute(query).all()
+    if len({row[-1] or "" for row in rows}) > 1:
+        units = sorted({row[-1] or "(none)" for row in rows})
+        raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
+    unit = next((row[-1] for row in rows if row[-1]), "")
+    arithmetic = arithmetic_of(unit)
+    counts = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
+    days: dict[object, list[dict]] = {}
+    for day, shots, value, stderr, *counted, _ in rows:
+        days.setdefault(day, []).append(run_sums(value, stderr, unit, shots=shots, counts=dict(zip(counts, counted)), arithmetic=arithmetic))
+    points = [p for p in (_point(day, add_sums(parts), unit) for day, parts in days.items()) if p is not None]
+    return points, unit, any(p.trials is not None for p in points)
 
 
 def series_points(connection: Connection, quantity: str, apparatus_id: int, selection: list, *, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
     """Daily points of a series' ``selection`` (see :func:`runlog.drift.reference.series_of`)
-    from the series rollups: the same points as :func:`filtered_points` over its runs."""
-    from runlog.drift.reference import selected
+    from the series rollups (:mod:`runlog.store.rollups`): the points :func:`filtered_points`
+    makes from the figures of its runs, read from one row per lab day."""
+    from runlog.drift.pooling import SUMS
 
     sr = s.SeriesRollup
     conditions = [sr.apparatus_id == apparatus_id, sr.name == quantity, or_(*(and_(sr.sequence == q, sr.fingerprint == fp, *([sr.day.not_in(left_out)] if left_out else [])) for q, fp, left_out in selection))]
@@ -297,44 +243,13 @@ def series_points(connection: Connection, quantity: str, apparatus_id: int, sele
         conditions.append(sr.day >= since)
     if until is not None:
         conditions.append(sr.day <= until)
-    query = select(sr.day, sr.unit, sr.units, sr.runs, sr.shots, sr.successes, sr.trials, sr.counted_shots, sr.successes_squares, sr.trials_squares, sr.successes_trials).where(and_(*conditions)).order_by(sr.day)
-    rows = connection.execute(query).all()
+    rows = connection.execute(select(sr.day, sr.unit, sr.units, *(getattr(sr, name) for name in SUMS)).where(and_(*conditions)).order_by(sr.day)).all()
+    rows = [row for row in rows if row[3]]  # days whose figures are all flagged out of range have no point
     if len({row[1] for row in rows}) > 1 or any(row[2] > 1 for row in rows) or len({row[0] for row in rows}) < len(rows):
-        # Several units, or a day of two settings: pooled run by run (which names the units).
+        # Several units (which the run-by-run pooling names), or a day of two settings.
         return filtered_points(connection, quantity, apparatus_id, selection=selection, since=since, until=until)
-    r, f = s.Run, s.FigureRow
-    runs = [r.apparatus_id == apparatus_id, f.name == quantity, r.is_current, selected(selection)]
-    return _pooled(connection, quantity, [(row[0], row[1], *row[3:]) for row in rows], runs)
-
-
-def _pooled(connection: Connection, quantity: str, days: list[tuple], conditions: list) -> tuple[list[DriftPoint], str, bool]:
-    """Points from per-day sums (day, unit, runs, shots, successes, trials, counted shots,
-    sums of squares and products); a day without counts pools its runs' fitted figures,
-    read with ``conditions`` (over figures and runs)."""
-    f, r = s.FigureRow, s.Run
-    units = sorted({row[1] for row in days})
-    if len(units) > 1:
-        raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(u or '(none)' for u in units)} by different sequences: give a sequence")
-    unit = units[0] if units else ""
-    fitted: dict[object, tuple[list[float], list[float | None]]] = {}
-    wanted = [row[0] for row in days if not row[5]]
-    for start in range(0, len(wanted), 500):
-        rows = connection.execute(select(r.day, f.value, f.stderr).join(r, r.id == f.run_id).where(and_(*conditions, r.day.in_(wanted[start : start + 500]))).order_by(r.day, r.id))
-        for day, value, stderr in rows:
-            fitted.setdefault(day, ([], []))
-            fitted[day][0].append(value)
-            fitted[day][1].append(stderr)
-    points = []
-    for day, _, count, shots, successes, trials, *sums in days:
-        if trials:
-            point = _point(day, count, shots, successes, trials, *sums, count, 0.0, 0.0, None, None, None)
-        else:
-            # Fitted figures: linear, circular (angles) or logarithmic (times) pooling.
-            value, low, high, stderr, spread = pool(*fitted[day], unit)
-            day = day if isinstance(day, dt.date) else dt.date.fromisoformat(str(day))
-            point = DriftPoint(day, value, low, high, int(count), int(shots), stderr, spread)
-        if point is not None:
-            points.append(point)
+    unit = rows[0][1] if rows else ""
+    points = [p for p in (_point(day, dict(zip(SUMS, sums)), unit) for day, _, _, *sums in rows) if p is not None]
     return points, unit, any(p.trials is not None for p in points)
 
 
@@ -355,14 +270,14 @@ def _accepted_days(connection: Connection, apparatus_id: int, quantity: str, ser
     return sorted({d if isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in rows})
 
 
-def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None):
+def _limits(points: list[DriftPoint], accepted: list[dt.date], thresholds: Thresholds, baseline: tuple[dt.date, dt.date] | None, period: float | None = None):
     days = [p.date for p in points]
     values = np.array([p.value for p in points])
     errors = np.array([p.stderr for p in points])
     fixed = None
     if baseline is not None:
         fixed = [baseline[0] <= d <= baseline[1] for d in days]
-    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed)
+    judgement = judge(days, values, errors, accepted=accepted, thresholds=thresholds, fixed=fixed, period=period)
     sigma = judgement.sigma
     # The day limits are around the centre at +-day_limit of each day's own sigma; the
     # EWMA of standardised values is drawn back in the figure's unit around the centre
@@ -423,14 +338,17 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
             if chosen is None:
                 raise NotFoundError("series of", quantity, f"sequence '{sequence}' has no runs with it" if sequence else f"apparatus '{apparatus_name}' has none")
         others = [{**reference.describe(e), "days": e["days"], "runs": e["runs"], "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
-    if chosen is not None and "run_ids" in chosen:
-        points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=chosen["run_ids"], since=since, until=until)
-    elif chosen is not None:
-        points, unit, counting = series_points(connection, quantity, apparatus_id, chosen["selection"], since=since, until=until)
-    else:
+    if chosen is None:
         points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, sequence=sequence, since=since, until=until)
-    if not counting and points and arithmetic_of(unit) == "circular":
-        points = _unwrapped(points, half_period(unit))
+    elif "run_ids" in chosen:  # series computed in memory: their stored keys were out of date
+        points, unit, counting = filtered_points(connection, quantity, apparatus_id, runs=chosen["run_ids"], since=since, until=until)
+    else:
+        points, unit, counting = series_points(connection, quantity, apparatus_id, chosen["selection"], since=since, until=until)
+    # Phases are judged on the circle: the baseline's centre is a mean direction and every
+    # residual is wrapped (runlog.drift.detect); the unwrapped series is what is charted.
+    period = 2.0 * half_period(unit) if not counting and points and arithmetic_of(unit) == "circular" else None
+    if period is not None:
+        points = _unwrapped(points, period / 2.0)
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
     if chosen is not None:
@@ -439,7 +357,7 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result
     accepted = _accepted_days(connection, apparatus_id, quantity, key)
-    limits, judgement = _limits(points, accepted, thresholds, baseline)
+    limits, judgement = _limits(points, accepted, thresholds, baseline, period)
     result.limits = limits
     result.z = [None if not np.isfinite(v) else float(v) for v in judgement.z]
     result.out_of_limits = [int(i) for i in np.flatnonzero(judgement.out)]

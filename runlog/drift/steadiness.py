@@ -51,7 +51,7 @@ def steadiness(connection: Connection, quantity: str, runs: list[int], unit: str
     rows = connection.execute(
         select(s.Run.started, s.Run.shot_count, s.FigureRow.value)
         .join(s.FigureRow, s.FigureRow.run_id == s.Run.id)
-        .where(s.Run.id.in_(runs), s.FigureRow.name == quantity)
+        .where(s.Run.id.in_(runs), s.FigureRow.name == quantity, s.FigureRow.out_of_range.is_(False))
         .order_by(s.Run.started)
     ).all() if runs else []
     values = np.array([float(v) for _, _, v in rows])

@@ -41,6 +41,10 @@ class Figure:
     binomial_ci_high: float | None = None
     binomial_method: str | None = None
     shot_sums: object | None = None
+    #: A fitted value outside its physical range (a contrast of a fraction signal above
+    #: 1, :func:`runlog.figures.fitting.flag_out_of_range`): kept as fitted, flagged, and
+    #: left out of rollups, drift and alarms.
+    out_of_range: bool = False
 
     def __post_init__(self) -> None:
         if not self.name:
@@ -67,4 +71,6 @@ class Figure:
             out["binomial_ci_low"] = self.binomial_ci_low
             out["binomial_ci_high"] = self.binomial_ci_high
             out["binomial_method"] = self.binomial_method
+        if self.out_of_range:
+            out["out_of_range"] = True
         return out

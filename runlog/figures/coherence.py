@@ -45,7 +45,7 @@ from scipy.signal import lombscargle
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit, scan_points, with_t_intervals
+from runlog.figures.fitting import flag_out_of_range, is_fraction, least_squares_fit, scan_points, with_t_intervals
 
 __all__ = ["ENVELOPES", "fit_envelope", "fit_ramsey", "frequency_unit"]
 
@@ -141,12 +141,12 @@ def fit_ramsey(
     _require_resolved("ramsey", "contrast at zero wait", c0, c0_err, "")
 
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
-    return with_t_intervals([
+    return flag_out_of_range(with_t_intervals([
         Figure("t2_star", lifetime, wait_unit, stderr=lifetime_err, **common),
         Figure("ramsey_contrast", c0, "", stderr=c0_err, **common),
         Figure("ramsey_frequency", delta, frequency_unit(wait_unit), stderr=delta_err, **common),
         Figure("ramsey_phase", _wrap(phi), "rad", stderr=phi_err, **common),
-    ], best.dof)
+    ], best.dof), ("ramsey_contrast",), is_fraction(signal))
 
 
 def fit_envelope(
@@ -211,10 +211,10 @@ def fit_envelope(
     lifetime = rate ** (-1.0 / power)
     lifetime_err = lifetime / power * rate_err / rate  # |dT/dk| * err(k)
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
-    return with_t_intervals([
+    return flag_out_of_range(with_t_intervals([
         Figure("envelope_time", lifetime, wait_unit, stderr=lifetime_err, **common),
         Figure("envelope_contrast", c0, "", stderr=c0_err, **common),
-    ], fit.dof)
+    ], fit.dof), ("envelope_contrast",), is_fraction(c))
 
 
 def _envelope(name: str) -> Callable[[np.ndarray, float], np.ndarray]:

@@ -82,6 +82,8 @@ __all__ = [
     "MAX_CONDITION",
     "SIGNIFICANCE",
     "FitResult",
+    "flag_out_of_range",
+    "is_fraction",
     "least_squares_fit",
     "scan_points",
     "t_interval",
@@ -172,6 +174,30 @@ def t_interval(value: float, stderr: float, dof: int, level: float = 0.95) -> tu
     """
     factor = float(stats.t.ppf(0.5 + level / 2.0, max(int(dof), 1)))
     return value - factor * stderr, value + factor * stderr
+
+
+def is_fraction(signal: np.ndarray) -> bool:
+    """True for a fraction signal: every value within [0, 1] (a bright fraction, a
+    survival probability, a contrast measured per wait)."""
+    values = np.asarray(signal, dtype=float)
+    return bool(values.size) and bool(np.all((values >= 0.0) & (values <= 1.0)))
+
+
+def flag_out_of_range(figures: list, names: Sequence[str], fraction: bool, low: float = 0.0, high: float = 1.0) -> list:
+    """``figures`` with ``out_of_range`` set on those of ``names`` whose value lies outside
+    ``[low, high]``, when the signal is a fraction (:func:`is_fraction`).
+
+    A contrast of a fraction signal cannot exceed 1 (``a (1 + C) <= 1`` and ``a (1 - C) >= 0``
+    with ``a`` the mean). The fit is not bounded: a fit that wants ``C > 1`` says the model
+    or the data are off, and a value clipped to 1 would hide that and carry a stderr that
+    means nothing. So the figure keeps its fitted value and uncertainty, is flagged, and
+    stays out of rollups, drift and alarms (docs/figures.md).
+    """
+    from dataclasses import replace
+
+    if not fraction:
+        return list(figures)
+    return [replace(f, out_of_range=True) if f.name in names and not (low <= f.value <= high) else f for f in figures]
 
 
 def with_t_intervals(figures: list, dof: int, level: float = 0.95) -> list:

@@ -37,7 +37,7 @@ import numpy as np
 
 from runlog.errors import FitError
 from runlog.figures.base import Figure
-from runlog.figures.fitting import least_squares_fit, scan_points, with_t_intervals
+from runlog.figures.fitting import flag_out_of_range, is_fraction, least_squares_fit, scan_points, with_t_intervals
 
 __all__ = ["fit_fringe"]
 
@@ -111,11 +111,11 @@ def fit_fringe(
         phi, phi_err = math.degrees(phi), math.degrees(phi_err)
 
     common = {"method": _METHOD, "method_version": _METHOD_VERSION}
-    return with_t_intervals([
+    return flag_out_of_range(with_t_intervals([
         Figure("contrast", contrast, "", stderr=contrast_err, **common),
         Figure("fringe_phase", phi, phase_unit, stderr=phi_err, **common),
         Figure("offset", offset, y_unit, stderr=offset_err, **common),
-    ], fit.dof)
+    ], fit.dof), ("contrast",), is_fraction(signal))
 
 
 def _check_phase_coverage(radians: np.ndarray, phase_unit: str) -> None:

@@ -38,7 +38,7 @@ import numpy as np
 from runlog.errors import FitError
 from runlog.figures.base import Figure
 from runlog.figures.coherence import _starting_detunings, frequency_unit
-from runlog.figures.fitting import least_squares_fit, scan_points
+from runlog.figures.fitting import flag_out_of_range, is_fraction, least_squares_fit, scan_points
 
 __all__ = ["fit_rabi", "rabi_model"]
 
@@ -121,4 +121,4 @@ def fit_rabi(
     if rate > _MIN_SIGNIFICANCE * rate_err:
         tau = 1.0 / rate
         figures.append(Figure("damping_time", tau, duration_unit, stderr=tau * rate_err / rate, **common))
-    return figures
+    return flag_out_of_range(figures, ("contrast",), is_fraction(signal))

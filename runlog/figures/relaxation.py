@@ -46,7 +46,7 @@ import numpy as np
 from runlog.errors import FitError
 from runlog.figures.base import Figure
 from runlog.figures.coherence import _arrays  # the same checks of a wait scan
-from runlog.figures.fitting import FitResult, least_squares_fit, with_t_intervals
+from runlog.figures.fitting import FitResult, flag_out_of_range, is_fraction, least_squares_fit, with_t_intervals
 
 __all__ = ["echo_model", "fit_echo", "fit_relaxation", "fit_t1", "relaxation_model", "time_from_rate"]
 
@@ -151,7 +151,7 @@ def fit_echo(
     ]
     if stretch is None:
         figures.insert(1, Figure("stretch", fit.value("stretch"), "", stderr=fit.error("stretch"), **common))
-    return with_t_intervals(figures, fit.dof)
+    return flag_out_of_range(with_t_intervals(figures, fit.dof), ("echo_contrast",), is_fraction(values))
 
 
 def fit_relaxation(

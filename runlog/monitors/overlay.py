@@ -17,7 +17,7 @@ from runlog.errors import NotFoundError
 from runlog.store import schema as s
 from runlog.store.schema import to_epoch_us
 
-__all__ = ["resolution_for", "monitor_series", "monitor_list"]
+__all__ = ["STOPPED_INTERVALS", "INTERVAL_VALUES", "resolution_for", "monitor_series", "monitor_list", "duration_words", "stopped_words"]
 
 _SECONDS = {"minute": 60.0, "hour": 3600.0, "day": 86400.0}
 
@@ -67,9 +67,37 @@ def monitor_series(connection: Connection, name: str, *, apparatus: str | None =
     return frame
 
 
+#: A monitor has stopped reporting when nothing was logged for more than this many of its
+#: usual intervals (and for more than ``silent_after``, default an hour).
+STOPPED_INTERVALS = 10
+#: How many of a monitor's last values set its usual interval (the median gap between them).
+INTERVAL_VALUES = 101
+
+
+def _usual_interval(connection: Connection, monitor_id: int, now: dt.datetime) -> tuple[float | None, dt.datetime | None, float | None]:
+    """(median gap in seconds between the monitor's last values at or before ``now``,
+    the last time, its value): one backward read of the (monitor, time) key."""
+    rows = connection.execute(
+        select(s.MonitorValue.time, s.MonitorValue.value).where(and_(s.MonitorValue.monitor_id == monitor_id, s.MonitorValue.time <= now)).order_by(s.MonitorValue.time.desc()).limit(INTERVAL_VALUES)
+    ).all()
+    if not rows:
+        return None, None, None
+    times = [to_epoch_us(t) for t, _ in rows]
+    gaps = sorted((a - b) / 1e6 for a, b in zip(times[:-1], times[1:]))
+    interval = None
+    if gaps:
+        middle = len(gaps) // 2
+        interval = gaps[middle] if len(gaps) % 2 else (gaps[middle - 1] + gaps[middle]) / 2
+    return interval, rows[0][0], float(rows[0][1])
+
+
 def monitor_list(connection: Connection, *, now: dt.datetime | None = None, silent_after: dt.timedelta = dt.timedelta(hours=1)) -> list[dict[str, object]]:
-    """Every monitor: apparatus, name, unit, values, first and last time, its latest value,
-    and whether it stopped reporting (nothing logged for ``silent_after`` before ``now``)."""
+    """Every monitor as of ``now`` (default: now): apparatus, name, unit, values, first and
+    last time logged, its latest value at or before ``now``, its usual interval (the median
+    gap between its last :data:`INTERVAL_VALUES` values), how long it has been silent, and
+    whether it **stopped reporting**: silent for more than :data:`STOPPED_INTERVALS` usual
+    intervals and more than ``silent_after`` (files from a logger arrive in batches, so a
+    shorter silence is not called stopped), or nothing logged by ``now`` at all."""
     now = now or dt.datetime.now(dt.timezone.utc)
     rows = connection.execute(
         select(s.Monitor.id, s.Apparatus.name, s.Monitor.name, s.Monitor.unit, s.Monitor.value_count, s.Monitor.first_time, s.Monitor.last_time)
@@ -78,7 +106,9 @@ def monitor_list(connection: Connection, *, now: dt.datetime | None = None, sile
     ).all()
     found = []
     for monitor_id, apparatus, name, unit, count, first, last in rows:
-        latest = connection.execute(select(s.MonitorValue.value).where(and_(s.MonitorValue.monitor_id == monitor_id, s.MonitorValue.time == last))).scalar() if last is not None else None
+        interval, latest_time, latest = _usual_interval(connection, int(monitor_id), now)
+        silent = None if latest_time is None else (now - latest_time).total_seconds()
+        limit = max(STOPPED_INTERVALS * (interval or 0.0), silent_after.total_seconds())
         found.append(
             {
                 "apparatus": apparatus,
@@ -87,8 +117,33 @@ def monitor_list(connection: Connection, *, now: dt.datetime | None = None, sile
                 "values": int(count),
                 "first": first.isoformat() if first else None,
                 "last": last.isoformat() if last else None,
+                "latest_time": latest_time.isoformat() if latest_time else None,
                 "latest_value": latest,
-                "stopped_reporting": bool(last is None or now - last > silent_after),
+                "interval_seconds": interval,
+                "silent_seconds": silent,
+                "stopped_after_seconds": limit,
+                "stopped_reporting": bool(silent is None or silent > limit),
             }
         )
     return found
+
+
+def duration_words(seconds: float | None) -> str:
+    """A duration in plain words: 45 s, 12 min, 3.5 h, 2.0 days."""
+    if seconds is None:
+        return "unknown"
+    if seconds < 120:
+        return f"{seconds:.0f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min"
+    if seconds < 172800:
+        return f"{seconds / 3600:.1f} h"
+    return f"{seconds / 86400:.1f} days"
+
+
+def stopped_words(monitor: dict[str, object], zone: dt.tzinfo) -> str:
+    """One line on a monitor of :func:`monitor_list` that stopped reporting, times in ``zone``."""
+    if monitor["latest_time"] is None:
+        return f"monitor {monitor['name']} has logged nothing"
+    last = dt.datetime.fromisoformat(str(monitor["latest_time"])).astimezone(zone).strftime("%Y-%m-%d %H:%M")
+    return f"monitor {monitor['name']} stopped reporting: nothing for {duration_words(monitor['silent_seconds'])}, usually every {duration_words(monitor['interval_seconds'])} (last at {last})"

@@ -25,7 +25,7 @@ __all__ = ["store_figures", "read_shot_sums", "read_site_counts", "store_site_co
 _COLUMNS = (
     "run_id", "name", "kind", "value", "stderr", "ci_low", "ci_high", "unit", "method", "method_version",
     "successes", "trials", "binomial_ci_low", "binomial_ci_high", "binomial_method",
-    "counted_shots", "successes_squares", "trials_squares", "successes_trials", "model", "options", "analysis", "runlog_version", "computed_at",
+    "counted_shots", "successes_squares", "trials_squares", "successes_trials", "out_of_range", "model", "options", "analysis", "runlog_version", "computed_at",
 )
 
 
@@ -74,6 +74,7 @@ def store_figures(
             "binomial_ci_high": figure.binomial_ci_high,
             "binomial_method": figure.binomial_method,
             **_sums(figure.shot_sums),
+            "out_of_range": bool(getattr(figure, "out_of_range", False)),
             "model": model,
             "options": options_text(merged),
             "analysis": analysis,

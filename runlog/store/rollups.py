@@ -3,7 +3,9 @@
 A lab day is the calendar date in the catalogue's lab time zone (setting
 ``lab_timezone``, default UTC) on which a run started. Rollups are refreshed, inside the
 writing transaction, for exactly the (apparatus, day, sequence) groups that an ingest or
-a derive touched, by one aggregate over the figures of the runs in those groups; a drift
+a derive touched, from the figures of the runs in those groups as the additive sums of
+:mod:`runlog.drift.pooling` (which makes every daily point: from these rows and from the
+figures of chosen runs alike); figures flagged ``out_of_range`` are left out. A drift
 query over a year then reads a few hundred rollup rows instead of millions of shots.
 """
 
@@ -16,43 +18,46 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from runlog.errors import ConfigError
 from runlog.store.bulk import Writer
 
-__all__ = ["DEFAULT_TIMEZONE", "lab_timezone", "lab_day", "refresh_rollups", "refresh_series_rollups", "rebuild_rollups", "check_timezone", "as_date", "as_datetime"]
+__all__ = ["DEFAULT_TIMEZONE", "lab_timezone", "lab_day", "group_sums", "refresh_rollups", "refresh_series_rollups", "rebuild_rollups", "check_timezone", "as_date", "as_datetime"]
 
 DEFAULT_TIMEZONE = "UTC"
 
-_AGGREGATE = """
-INSERT INTO daily_rollups (apparatus_id, day, sequence, name, unit, runs, shots, successes, trials,
-                           counted_shots, successes_squares, trials_squares, successes_trials,
-                           value_count, value_sum, value_square_sum, weight_sum, weighted_value_sum,
-                           weighted_square_sum)
-SELECT r.apparatus_id, r.day, r.sequence, f.name, MAX(f.unit), COUNT(*), SUM(r.shot_count),
-       SUM(f.successes), SUM(f.trials),
-       SUM(f.counted_shots), SUM(f.successes_squares), SUM(f.trials_squares), SUM(f.successes_trials),
-       COUNT(f.value), SUM(f.value), SUM(f.value * f.value),
-       SUM(CASE WHEN f.stderr > 0 THEN 1.0 / (f.stderr * f.stderr) END),
-       SUM(CASE WHEN f.stderr > 0 THEN f.value / (f.stderr * f.stderr) END),
-       SUM(CASE WHEN f.stderr > 0 THEN f.value * f.value / (f.stderr * f.stderr) END)
+# The figures of one group's current runs that drift may use (not flagged out of range).
+_FIGURES = """
+SELECT f.name, f.unit, f.value, f.stderr, r.shot_count, f.successes, f.trials,
+       f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials
+FROM figures f JOIN runs r ON r.id = f.run_id
+WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current AND NOT f.out_of_range
+ORDER BY f.name, r.id
+"""
+_COUNTS = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
+# The same with each run's series fingerprint (runlog.store.series_keys), flagged figures
+# too: a series holds a quantity when its runs have the figure, its points leave them out.
+_SERIES_FIGURES = """
+SELECT COALESCE(r.series_fingerprint, ''), f.out_of_range, f.name, f.unit, f.value, f.stderr, r.shot_count, f.successes,
+       f.trials, f.counted_shots, f.successes_squares, f.trials_squares, f.successes_trials
 FROM figures f JOIN runs r ON r.id = f.run_id
 WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current
-GROUP BY r.apparatus_id, r.day, r.sequence, f.name
+ORDER BY f.name, r.id
 """
 
-# One run without the sums over shots makes a series' day's sums NULL (as the drift query
-# pooled them run by run), where SQL's SUM would skip it.
-_ALL_OR_NONE = "CASE WHEN COUNT(CASE WHEN f.trials IS NOT NULL AND f.{0} IS NULL THEN 1 END) > 0 THEN NULL ELSE SUM(CASE WHEN f.trials IS NOT NULL THEN f.{0} END) END"
 
-_SERIES_AGGREGATE = f"""
-INSERT INTO series_rollups (apparatus_id, day, sequence, fingerprint, name, unit, units, runs, shots, successes, trials,
-                            counted_shots, successes_squares, trials_squares, successes_trials)
-SELECT r.apparatus_id, r.day, r.sequence, COALESCE(r.series_fingerprint, ''), f.name,
-       MAX(COALESCE(f.unit, '')), COUNT(DISTINCT COALESCE(f.unit, '')), COUNT(*), SUM(r.shot_count),
-       SUM(CASE WHEN f.trials IS NOT NULL THEN f.successes END), SUM(f.trials),
-       {_ALL_OR_NONE.format("counted_shots")}, {_ALL_OR_NONE.format("successes_squares")},
-       {_ALL_OR_NONE.format("trials_squares")}, {_ALL_OR_NONE.format("successes_trials")}
-FROM figures f JOIN runs r ON r.id = f.run_id
-WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current
-GROUP BY r.apparatus_id, r.day, r.sequence, COALESCE(r.series_fingerprint, ''), f.name
-"""
+def group_sums(rows) -> dict[str, tuple[str, dict]]:
+    """Per figure name, ``(unit, sums)`` of the runs of one group
+    (:func:`runlog.drift.pooling.run_sums` added up), from rows of :data:`_FIGURES`."""
+    from runlog.drift.pooling import add_sums, arithmetic_of, run_sums
+
+    by_name: dict[str, list] = {}
+    for row in rows:
+        by_name.setdefault(row[0], []).append(row)
+    out = {}
+    for name, found in by_name.items():
+        # As MAX(unit) did: one unit per name and group (the drift query refuses a mixture).
+        unit = max((row[1] or "") for row in found)
+        arithmetic = arithmetic_of(unit)
+        parts = (run_sums(row[2], row[3], unit, shots=row[4], counts=dict(zip(_COUNTS, row[5:])), arithmetic=arithmetic) for row in found)
+        out[name] = (unit, add_sums(parts))
+    return out
 
 
 def check_timezone(name: str) -> str:
@@ -74,20 +79,39 @@ def lab_day(moment: dt.datetime, zone: ZoneInfo) -> dt.date:
 
 def refresh_rollups(writer: Writer, groups: Iterable[tuple[int, dt.date, str]]) -> None:
     """Recompute the rollup rows of each (apparatus id, lab day, sequence) group."""
+    from runlog.drift.pooling import SUMS
+
+    columns = ("apparatus_id", "day", "sequence", "name", "unit", *SUMS)
+    insert = f"INSERT INTO daily_rollups ({', '.join(columns)}) VALUES ({', '.join(':' + c for c in columns)})"
     groups = sorted(set(groups))
     for apparatus_id, day, sequence in groups:
         params = {"a": apparatus_id, "d": day, "q": sequence}
         writer.execute("DELETE FROM daily_rollups WHERE apparatus_id = :a AND day = :d AND sequence = :q", params)
-        writer.execute(_AGGREGATE, params)
+        for name, (unit, sums) in group_sums(writer.rows(_FIGURES, params)).items():
+            writer.execute(insert, {"apparatus_id": apparatus_id, "day": day, "sequence": sequence, "name": name, "unit": unit, **sums})
     refresh_series_rollups(writer, groups)
 
 
 def refresh_series_rollups(writer: Writer, groups: Iterable[tuple[int, dt.date, str]]) -> None:
-    """Recompute the series rollup rows of each (apparatus id, lab day, sequence) group."""
+    """Recompute the series rollup rows of each (apparatus id, lab day, sequence) group:
+    per series fingerprint and figure name, the runs holding it (``held``, flagged figures
+    too), how many units their figures came in, and the sums of the unflagged ones (runs 0
+    and no sums when all are flagged)."""
+    from runlog.drift.pooling import SUMS
+
+    columns = ("apparatus_id", "day", "sequence", "fingerprint", "name", "held", "units", "unit", *SUMS)
+    insert = f"INSERT INTO series_rollups ({', '.join(columns)}) VALUES ({', '.join(':' + c for c in columns)})"
+    empty = {name: None for name in SUMS} | {"runs": 0, "shots": 0, "value_count": 0, "value_sum": 0.0, "value_square_sum": 0.0}
     for apparatus_id, day, sequence in sorted(set(groups)):
         params = {"a": apparatus_id, "d": day, "q": sequence}
         writer.execute("DELETE FROM series_rollups WHERE apparatus_id = :a AND day = :d AND sequence = :q", params)
-        writer.execute(_SERIES_AGGREGATE, params)
+        by_series: dict[tuple[str, str], list[tuple]] = {}
+        for row in writer.rows(_SERIES_FIGURES, params):
+            by_series.setdefault((row[0], row[2]), []).append(row)
+        for (fingerprint, name), rows in by_series.items():
+            kept = [row[2:] for row in rows if not row[1]]
+            unit, sums = group_sums(kept).get(name, ("", empty))
+            writer.execute(insert, {"apparatus_id": apparatus_id, "day": day, "sequence": sequence, "fingerprint": fingerprint, "name": name, "held": len(rows), "units": len({row[1] or "" for row in kept}), "unit": unit, **sums})
 
 
 def rebuild_rollups(writer: Writer) -> int:

@@ -20,8 +20,10 @@ from __future__ import annotations
 import datetime as dt
 
 from sqlalchemy import (
+    DDL,
     BigInteger,
     Boolean,
+    Column,
     Date,
     DateTime,
     Float,
@@ -31,8 +33,10 @@ from sqlalchemy import (
     LargeBinary,
     MetaData,
     String,
+    Table,
     Text,
     UniqueConstraint,
+    event,
     false,
     text,
     true,
@@ -170,8 +174,11 @@ class Run(Base):
         Index(None, "started"),
         Index(None, "apparatus_id", "day"),
         Index(None, "apparatus_id", "sequence", "series_fingerprint"),
-        # At most one current version per run.
-        Index("uq_runs_current_version", "apparatus_id", "key", unique=True, sqlite_where=text("is_current"), postgresql_where=text("is_current")),
+        # At most one current version per run: a partial unique index. On PostgreSQL the
+        # DDL after this class makes it, because a postgresql_where argument here would
+        # make SQLAlchemy import its whole PostgreSQL dialect whenever this module loads
+        # (~60 ms of every command, on SQLite too; benchmarks/startup.py).
+        Index("uq_runs_current_version", "apparatus_id", "key", unique=True, sqlite_where=text("is_current")).ddl_if(dialect="sqlite"),
     )
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"))
@@ -194,6 +201,13 @@ class Run(Base):
     # The fingerprint of the run's constant settings (runlog.store.series_keys); with the
     # sequence it names the run's reference series. Kept for current versions only.
     series_fingerprint: Mapped[str | None] = mapped_column(String(16))
+
+
+event.listen(
+    Run.__table__,
+    "after_create",
+    DDL("CREATE UNIQUE INDEX uq_runs_current_version ON runs (apparatus_id, key) WHERE is_current").execute_if(dialect="postgresql"),
+)
 
 
 class RunTag(Base):
@@ -358,6 +372,9 @@ class _FigureColumns:
     successes_squares: Mapped[float | None] = mapped_column(Float)
     trials_squares: Mapped[float | None] = mapped_column(Float)
     successes_trials: Mapped[float | None] = mapped_column(Float)
+    # A fitted value outside its physical range (a contrast of a fraction signal above 1):
+    # kept as fitted, shown with the flag, and left out of rollups, drift and alarms.
+    out_of_range: Mapped[bool] = mapped_column(Boolean, default=False, server_default=false())
     # The model and options (a JSON object: envelope, x, y, image, interval ...) it was
     # computed with, the analysis version of its run version, and runlog's version.
     model: Mapped[str | None] = mapped_column(String(100))
@@ -447,8 +464,11 @@ class DailyRollup(Base):
     """One figure pooled over the runs of one apparatus, lab day and sequence.
 
     Counting figures pool their counts (``successes``/``trials``); fitted figures keep the
-    sums an inverse-variance weighted mean and the spread between runs are made of.
-    Maintained at ingest and derive time for the groups they touch.
+    additive sums of :data:`runlog.drift.pooling.SUMS` - linear ones for every figure, the
+    sums of cos and sin for a phase, of ln T for a time - so that a day's point made from
+    its rollup rows equals the one made from its runs' figures. Figures flagged
+    ``out_of_range`` are left out. Maintained at ingest and derive time for the groups
+    they touch.
     """
 
     __tablename__ = "daily_rollups"
@@ -472,31 +492,40 @@ class DailyRollup(Base):
     weight_sum: Mapped[float | None] = mapped_column(Float)
     weighted_value_sum: Mapped[float | None] = mapped_column(Float)
     weighted_square_sum: Mapped[float | None] = mapped_column(Float)
+    # Runs with a stderr (the Birge ratio's k); a phase's sums of cos and sin; a time's ln T.
+    weighted_count: Mapped[int | None] = mapped_column(Integer)
+    cosine_sum: Mapped[float | None] = mapped_column(Float)
+    sine_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_cosine_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_sine_sum: Mapped[float | None] = mapped_column(Float)
+    positive_count: Mapped[int | None] = mapped_column(Integer)
+    log_sum: Mapped[float | None] = mapped_column(Float)
+    log_square_sum: Mapped[float | None] = mapped_column(Float)
+    log_weight_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_log_sum: Mapped[float | None] = mapped_column(Float)
+    weighted_log_square_sum: Mapped[float | None] = mapped_column(Float)
 
 
 class SeriesRollup(Base):
-    """Per apparatus, lab day, sequence, series fingerprint and figure name: what a
-    series' drift point needs of its current runs (runs, shots, the counts of counting
-    figures; ``units``: how many units the figures came in). Refreshed with the daily
-    rollups and whenever runs' fingerprints change (runlog.store.series_keys).
-    The sums over shots are NULL when one counted run lacks them."""
+    """One figure pooled over the current runs of one apparatus, lab day, sequence and
+    series fingerprint (runlog.store.series_keys; '' for a run without one): the sums of
+    :class:`DailyRollup` over the unflagged figures (``runs`` 0 when all are flagged),
+    ``held`` the runs that have the figure at all, ``units`` how many units their figures
+    came in. A series' drift point is read from here. Refreshed with the daily rollups and
+    for the days whose runs changed series."""
 
-    __tablename__ = "series_rollups"
-    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"), primary_key=True)
-    day: Mapped[dt.date] = mapped_column(Date, primary_key=True)
-    sequence: Mapped[str] = mapped_column(String(200), primary_key=True)
-    fingerprint: Mapped[str] = mapped_column(String(16), primary_key=True)  # '' for a run without one
-    name: Mapped[str] = mapped_column(String(100), primary_key=True)
-    unit: Mapped[str] = mapped_column(String(60), default="")
-    units: Mapped[int] = mapped_column(Integer)
-    runs: Mapped[int] = mapped_column(Integer)
-    shots: Mapped[int] = mapped_column(BigInteger)
-    successes: Mapped[int | None] = mapped_column(BigInteger)
-    trials: Mapped[int | None] = mapped_column(BigInteger)
-    counted_shots: Mapped[int | None] = mapped_column(BigInteger)
-    successes_squares: Mapped[float | None] = mapped_column(Float)
-    trials_squares: Mapped[float | None] = mapped_column(Float)
-    successes_trials: Mapped[float | None] = mapped_column(Float)
+    __table__ = Table(
+        "series_rollups",
+        Base.metadata,
+        Column("apparatus_id", Integer, ForeignKey("apparatus.id"), primary_key=True),
+        Column("day", Date, primary_key=True),
+        Column("sequence", String(200), primary_key=True),
+        Column("fingerprint", String(16), primary_key=True),
+        Column("name", String(100), primary_key=True),
+        Column("held", Integer, nullable=False),
+        Column("units", Integer, nullable=False),
+        *(column._copy() for column in DailyRollup.__table__.columns if not column.primary_key),
+    )
 
 
 class Alarm(Base):
@@ -531,7 +560,7 @@ class IngestLogEntry(Base):
     file: Mapped[str] = mapped_column(Text)
     sha256: Mapped[str] = mapped_column(String(64))
     size: Mapped[int] = mapped_column(BigInteger)
-    status: Mapped[str] = mapped_column(String(20))  # ingested | already-present | rejected
+    status: Mapped[str] = mapped_column(String(20))  # ingested | already-present | refused (older catalogues hold "rejected": read as refused)
     reason: Mapped[str | None] = mapped_column(Text)
     runs: Mapped[str | None] = mapped_column(Text)  # comma-separated run keys
     shots: Mapped[int] = mapped_column(Integer, default=0)

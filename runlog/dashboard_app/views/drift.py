@@ -66,6 +66,19 @@ if filtered_by:
         ranges.append((name, float(picked[0]), float(picked[1])))
     st.caption("A run counts when its constant value lies in the range, or its whole scanned range does.")
 
+logged = common.monitor_names(url, apparatus)
+overlaid = (
+    st.multiselect(
+        "monitors on a second axis",
+        logged,
+        key=f"drift-monitors-{apparatus}",
+        help="The monitor's mean per period (minute, hour or lab day: the finest giving at most 2000 points), its range shaded, at the lab's time.",
+    )
+    if logged
+    else []
+)
+overlays = [common.monitor_overlay(url, name, apparatus, since, until) for name in overlaid]
+
 all_changes: list[tuple[str, str, float, float]] = []
 
 
@@ -117,14 +130,15 @@ if True:  # one column: what may explain a change sits under its own chart
         if view["points"].empty:
             st.info(f"No {common.label(quantity)} on these days with these filters.")
             continue
-        st.altair_chart(charts.drift_chart(view, (since.isoformat(), until.isoformat()), zone), width="stretch", key=f"drift-chart-{quantity}")
+        st.altair_chart(charts.drift_chart(view, (since.isoformat(), until.isoformat()), zone, monitors=overlays), width="stretch", key=f"drift-chart-{quantity}")
         baseline = view["baseline"]
         detail = f"limits: {view['method']}" + (f", baseline {baseline[0]} to {baseline[1]}" if baseline else "") if view["method"] else view["note"]
         if view["series"]:
             st.caption(f"series {view['series']['label']} (`{view['series']['key']}`)")
             steady = common.stability(url, quantity, apparatus, view["series"]["key"])
             st.caption(f"stability: {steady['words']} (Allan deviation over the series' runs)")
-        st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}.")
+        overlaid_text = ", ".join(f"{o.attrs['monitor']} ({o.attrs['resolution']} means)" for o in overlays)
+        st.caption(f"{len(view['points'])} lab days; bars are 95 % intervals; {detail}." + (f" Right axis: {overlaid_text}, at lab time ({zone}) like the notes." if overlays else ""))
         moments = [(quantity, c.day, c.before, c.after) for c in view["changes"].itertuples()]
         moments += [(quantity, e["date"], math.nan, math.nan) for e in view["excursions"] if e["date"] not in {m[1] for m in moments}]
         all_changes += moments

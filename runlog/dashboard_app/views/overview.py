@@ -5,6 +5,8 @@ from __future__ import annotations
 import datetime as dt
 from pathlib import Path
 
+from zoneinfo import ZoneInfo
+
 import pandas as pd
 import streamlit as st
 
@@ -50,7 +52,7 @@ for apparatus in common.apparatus_names(url):
             colour = {"in limits": "green", "changed": "red", "drifting": "orange"}.get(found["state"], "gray")
             size = "" if found.get("size") is None else f" · {found['size']:+.3g} {unit} ({found['z']:+.1f} standard errors) from baseline {found['centre']:.4g}".replace("  ", " ")
             st.markdown(f":{colour}[**{found['state']}**]" + (f" since {found['since']}" if found.get("since") else "") + size)
-            alarm_link = f" · [alarm #{found['alarm']}](annotate)" if found.get("alarm") else ""
+            alarm_link = f" · [alarm #{found['alarm']}](notes)" if found.get("alarm") else ""
             series = found["series"]["label"] if found.get("series") else ""
             st.caption(f"± {error or '–'} · 95 % [{found['ci_low']:.4g}, {found['ci_high']:.4g}] · {chart_link}{alarm_link} · series {series}")
 
@@ -98,6 +100,36 @@ else:
         column_config={"value": st.column_config.NumberColumn(format="%.4g"), "size": st.column_config.NumberColumn(format="%+.3g")},
     )
 
+# --- monitors ----------------------------------------------------------------------------
+
+monitors = common.monitor_list(url)
+if monitors:
+    st.subheader("Monitors", anchor=False)
+    for m in monitors:
+        if m["stopped_reporting"]:
+            st.warning(f"{m['apparatus']} · {common.stopped_words(m, ZoneInfo(zone))}")
+    st.caption(f"Latest value of each monitor. A monitor stopped reporting when nothing was logged for more than {common.STOPPED_INTERVALS} of its usual intervals (the median gap between its last values), and for more than an hour.")
+    st.dataframe(
+        pd.DataFrame(
+            [
+                {
+                    "apparatus": m["apparatus"],
+                    "monitor": m["name"],
+                    "latest": m["latest_value"],
+                    "unit": common.unit_text(m["unit"]),
+                    f"at ({zone})": "" if m["latest_time"] is None else common.wall_clock(pd.Series([m["latest_time"]]), zone).iloc[0].replace("T", " ")[:19],
+                    "usually every": common.duration_words(m["interval_seconds"]),
+                    "state": "stopped reporting" if m["stopped_reporting"] else "reporting",
+                }
+                for m in monitors
+            ],
+            columns=["apparatus", "monitor", "latest", "unit", f"at ({zone})", "usually every", "state"],
+        ),
+        hide_index=True,
+        key="monitors",
+        column_config={"latest": st.column_config.NumberColumn(format="%.6g")},
+    )
+
 # --- ingest ------------------------------------------------------------------------------
 
 st.subheader("Ingest", anchor=False)
@@ -107,7 +139,7 @@ if log.empty:
 else:
     log = log.assign(when=common.wall_clock(log["finished_at"], zone).str.replace("T", " ").str[:16], name=[Path(f).name for f in log["file"]])
     stored_in = log[log["status"] == "ingested"]
-    refused = log[log["status"] == "rejected"]
+    refused = log[log["status"] == "refused"]
     left, right = st.columns([3, 1])
     with left.container(border=True):
         if stored_in.empty:

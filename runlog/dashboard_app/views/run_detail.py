@@ -82,17 +82,43 @@ with right:
                 "value": common.with_uncertainty(f["value"], f.get("stderr"), f.get("unit")),
                 "95 % interval": f"[{f['ci_low']:.4g}, {f['ci_high']:.4g}]" if "ci_low" in f else "",
                 "method": f["method"],
+                "out of range": "outside its physical range; not in drift" if f.get("out_of_range") else "",
             }
             for name, f in info.figures.items()
         ],
-        columns=["figure", "value", "95 % interval", "method"],
+        columns=["figure", "value", "95 % interval", "method", "out of range"],
     )
     if figures.empty:
         st.caption("No figures stored for this run.")
     else:
-        if not figures["95 % interval"].any():
-            figures = figures.drop(columns=["95 % interval"])
+        for optional in ("95 % interval", "out of range"):
+            if not figures[optional].any():
+                figures = figures.drop(columns=[optional])
         st.dataframe(figures, hide_index=True, key="run-figures")
+
+if info.monitors:
+    st.markdown("**Monitors over the run**")
+    st.caption("Values logged from the run's first to its last shot; 'at start' is the last value at or before the first shot, at most 600 s before.")
+    st.dataframe(
+        pd.DataFrame(
+            [
+                {
+                    "monitor": m["name"],
+                    "mean": m["mean"],
+                    "min": m["minimum"],
+                    "max": m["maximum"],
+                    "values": m["count"],
+                    "at start": m["at_start"],
+                    "unit": common.unit_text(m["unit"]),
+                }
+                for m in info.monitors
+            ],
+            columns=["monitor", "mean", "min", "max", "values", "at start", "unit"],
+        ),
+        hide_index=True,
+        key="run-monitors",
+        column_config={name: st.column_config.NumberColumn(name, format="%.5g") for name in ("mean", "min", "max", "at start")},
+    )
 
 # A stored fit to draw: fringe, Ramsey, or one of the health kinds (marked by one figure each).
 if {"contrast", "offset"} <= set(info.figures) or {"t2_star", "ramsey_frequency"} <= set(info.figures) or set(info.figures) & {"pi_time", "linewidth", "t2", "t1", "lifetime", "fidelity", "temperature", "overlap_width"}:

@@ -40,7 +40,7 @@ def written(action) -> None:
         # the cause, never the SQL and its parameters.
         st.error(describe(error, doing="saving this").message)
     else:
-        st.session_state["annotate-done"] = message
+        st.session_state["note-done"] = message
         st.rerun()
 
 
@@ -65,14 +65,14 @@ def author_field(key: str) -> str | None:
     return st.text_input("author (optional)", key=key)
 
 
-if "annotate-done" in st.session_state:
-    st.success(st.session_state.pop("annotate-done"))
+if "note-done" in st.session_state:
+    st.success(st.session_state.pop("note-done"))
 
 if not who.allowed:
     # No forms at all: nothing can be written under a name that was not authenticated.
     st.info(who.why)
     if who.source == "login":
-        st.button("Log in", key="annotate-login", on_click=st.login)
+        st.button("Log in", key="note-login", on_click=st.login)
     latest_notes()
     st.stop()
 
