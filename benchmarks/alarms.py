@@ -115,7 +115,7 @@ def main() -> None:
     options = parser.parse_args()
     tick = time.perf_counter()
     if options.calibrate:
-        for limit in (2.9, 2.7, 2.65, 2.6, 2.55):
+        for limit in (2.9, 2.7, 2.65, 2.6, 2.55, 2.5):
             print(f"-- two-day limit {limit:g}")
             report(np.random.default_rng(CALIBRATION_SEED), options.series, replace(THRESHOLDS, pair_limit=limit))
         print(f"({time.perf_counter() - tick:.1f} s)")

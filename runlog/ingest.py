@@ -34,6 +34,7 @@ from runlog.errors import ContractError, one_line
 from runlog.figures.shot_level import ShotSums
 from runlog.store.bulk import Writer, open_writer, short_write
 from runlog.store.failures import describe
+from runlog.store.measurement_columns import make_columns
 from runlog.store.schema import IngestLogEntry, Measurement, measurement_column
 from runlog.units import LabUnits, UnitError, converter
 
@@ -506,19 +507,22 @@ class _Catalogue:
         return self.measurements[name]
 
 
-#: New measurement names made per schema transaction (one ALTER TABLE with a clause each).
+#: New measurement names made per schema transaction.
 _NAMES_PER_CHANGE = 50
 
 
 def _add_measurements(engine: Engine, layout: Layout) -> None:
-    """Make the file's new measurement names and their columns of ``shot_measurements``,
-    ahead of its data transaction, in short transactions of their own.
+    """Make the file's new measurement names and the columns of ``shot_measurements`` they
+    need, ahead of its data transaction, in short transactions of their own.
 
-    A new column needs the table to itself for a moment; inside the data transaction it
-    would keep every dashboard reader of measurements waiting until the whole file is
-    written, and a reader idle in a transaction would block the ingest without bound
-    (:func:`runlog.store.bulk.short_write` bounds the wait). A name made for a file that is
-    then refused stays, with no values: harmless, and the next file of it needs no change.
+    A name whose column was made ahead (:mod:`runlog.store.measurement_columns`: on
+    PostgreSQL columns come in blocks, so as not to change every month partition for each
+    name) is one row of ``measurements``. A new column needs the table to itself for a
+    moment; inside the data transaction it would keep every dashboard reader of
+    measurements waiting until the whole file is written, and a reader idle in a
+    transaction would block the ingest without bound (:func:`runlog.store.bulk.short_write`
+    bounds the wait). A name made for a file that is then refused stays, with no values:
+    harmless, and the next file of it needs no change.
     """
     wanted = {column.name: (column.unit, column.source) for column in layout.by_role("measurement")}
     if not wanted:
@@ -527,33 +531,24 @@ def _add_measurements(engine: Engine, layout: Layout) -> None:
     with engine.connect() as connection:
         known = set(connection.execute(select(table.c.name).where(table.c.name.in_(list(wanted)))).scalars())
     missing = [name for name in wanted if name not in known]
-    real = "REAL" if engine.dialect.name == "sqlite" else "DOUBLE PRECISION"
     for start in range(0, len(missing), _NAMES_PER_CHANGE):
         names = missing[start : start + _NAMES_PER_CHANGE]
 
         def make(connection, names=names) -> None:
             present = set(connection.execute(select(table.c.name).where(table.c.name.in_(names))).scalars())
             count = connection.execute(select(func.count()).select_from(table)).scalar_one()
-            columns = []
+            ids = []
             for name in names:
                 if name in present:  # another writer made it meanwhile
                     continue
                 unit, source = wanted[name]
                 if count >= MAX_MEASUREMENTS:
                     raise ContractError(layout.file, f"the catalogue already holds {count} measurement names, the most it can (each is a column of the store): a new one cannot be added", column=source)
-                mid = connection.execute(insert(table).values(name=name, unit=unit).returning(table.c.id)).scalar_one()
-                columns.append(measurement_column(mid))
+                ids.append(connection.execute(insert(table).values(name=name, unit=unit).returning(table.c.id)).scalar_one())
                 count += 1
-            if not columns:
-                return
-            if engine.dialect.name == "postgresql":
-                # One statement for all: a partitioned table changes each month once.
-                connection.exec_driver_sql("ALTER TABLE shot_measurements " + ", ".join(f"ADD COLUMN {c} {real}" for c in columns))
-                return
-            for column in columns:  # SQLite adds one column per statement
-                connection.exec_driver_sql(f"ALTER TABLE shot_measurements ADD COLUMN {column} {real}")
+            make_columns(connection, ids, MAX_MEASUREMENTS)
 
-        short_write(engine, make, what=f"adding {len(names)} measurement column(s) for {layout.file}", table="shot_measurements")
+        short_write(engine, make, what=f"adding {len(names)} measurement name(s) for {layout.file}", table="shot_measurements")
 
 
 def _to_stored(value: float, unit: str, stored_unit: str, lab: LabUnits) -> float:

@@ -131,8 +131,11 @@ def _rows(url: str) -> dict[str, list[tuple]]:
             for table in Base.metadata.sorted_tables:
                 columns = [Column(column.name, column.type) for column in table.columns]
                 if table.name == "shot_measurements":
+                    # The columns of the catalogue's measurement names (PostgreSQL makes
+                    # others ahead of them, empty: runlog.store.measurement_columns).
+                    named = {f"m_{mid}" for (mid,) in connection.execute(text("SELECT id FROM measurements"))}
                     found = [c["name"] for c in inspect(connection).get_columns(table.name)]
-                    columns += [Column(name, Float) for name in sorted(found) if name.startswith("m_")]
+                    columns += [Column(name, Float) for name in sorted(found) if name in named]
                 reading = Table(table.name, MetaData(), *columns)
                 key = [reading.c[column.name] for column in table.primary_key.columns]
                 out[table.name] = [tuple(row) for row in connection.execute(select(reading).order_by(*key))]

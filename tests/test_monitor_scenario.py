@@ -13,11 +13,11 @@ import datetime as dt
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
-import pyarrow.parquet as pq
 import pytest
 
 from runlog.selection import select_shots
+
+from test_monitor_suspects import write_shots
 
 UTC = dt.timezone.utc
 START = dt.datetime(2026, 10, 5, 4, 0, tzinfo=UTC)
@@ -36,19 +36,7 @@ def _scenario(tmp_path, seed=41):
             shot.append(i)
             times.append(begin + dt.timedelta(seconds=15 * i))
             load.append(rng.random(100) < p)
-    pq.write_table(
-        pa.table(
-            {
-                "run": keys,
-                "apparatus": ["tweezer-ny"] * len(keys),
-                "sequence": ["load"] * len(keys),
-                "shot": pa.array(shot, pa.int64()),
-                "time": pa.array(times, pa.timestamp("us", tz="UTC")),
-                "occ.load": pa.array([list(x) for x in load], pa.list_(pa.bool_())),
-            }
-        ),
-        tmp_path / "shots.parquet",
-    )
+    write_shots(tmp_path / "shots.parquet", keys, shot, times, load, apparatus="tweezer-ny", sequence="load")
     # The logger: every 45 s +- 5 s, all three monitors on each line, long form, kelvin.
     seconds = np.cumsum(rng.uniform(40, 50, int(8 * 86400 / 45)))
     logged = pd.to_datetime(int(START.timestamp()) + seconds, unit="s", utc=True).round("ms")

@@ -21,6 +21,21 @@ CHANGE = dt.datetime(2026, 5, 4, 9, 0, tzinfo=UTC)  # the fill fraction drops he
 LEAD = dt.timedelta(hours=3)  # ... three hours after the room warmed
 
 
+def write_shots(path, keys, shot, times, load, *, apparatus: str, sequence: str) -> None:
+    """A shot table of one apparatus and sequence with a loading image per shot."""
+    shots = pa.table(
+        {
+            "run": keys,
+            "apparatus": [apparatus] * len(keys),
+            "sequence": [sequence] * len(keys),
+            "shot": pa.array(shot, pa.int64()),
+            "time": pa.array(times, pa.timestamp("us", tz="UTC")),
+            "occ.load": pa.array([list(x) for x in load], pa.list_(pa.bool_())),
+        }
+    )
+    pq.write_table(shots, path)
+
+
 def _scenario(tmp_path, seed=7):
     rng = np.random.default_rng(seed)
     runs, shots_per_run, sites = 6 * 48, 10, 64
@@ -33,17 +48,7 @@ def _scenario(tmp_path, seed=7):
             shot.append(i)
             times.append(begin + dt.timedelta(seconds=20 * i))
             load.append(rng.random(sites) < p)
-    shots = pa.table(
-        {
-            "run": keys,
-            "apparatus": ["bench-a"] * len(keys),
-            "sequence": ["loading"] * len(keys),
-            "shot": pa.array(shot, pa.int64()),
-            "time": pa.array(times, pa.timestamp("us", tz="UTC")),
-            "occ.load": pa.array([list(x) for x in load], pa.list_(pa.bool_())),
-        }
-    )
-    pq.write_table(shots, tmp_path / "shots.parquet")
+    write_shots(tmp_path / "shots.parquet", keys, shot, times, load, apparatus="bench-a", sequence="loading")
     step_s = 60
     n = 6 * 24 * 3600 // step_s
     t = np.array([START + dt.timedelta(seconds=step_s * i) for i in range(n)])

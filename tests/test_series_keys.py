@@ -158,7 +158,7 @@ def test_an_old_catalogue_gets_its_keys_on_upgrade(db_url, tmp_path):
         before = check(catalogue)
         expected = _stored(catalogue)
     engine = make_engine(db_url)
-    downgrade(engine, "0016")  # the catalogue as the previous runlog left it
+    downgrade(engine, "0015")  # the catalogue as the previous runlog left it
     engine.dispose()
     with pytest.raises(runlog.SchemaVersionError):
         runlog.open(db_url)

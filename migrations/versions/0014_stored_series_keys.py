@@ -9,7 +9,7 @@ and the declaration they were computed with) and ``runs.series_fingerprint``, wi
 from). The upgrade fills them for the runs already stored.
 
 Revision ID: 0014
-Revises: 0016
+Revises: 0015
 Create Date: 2026-12-02
 """
 from typing import Sequence, Union
@@ -20,7 +20,7 @@ import runlog.store.schema
 
 
 revision: str = '0014'
-down_revision: Union[str, None] = '0016'
+down_revision: Union[str, None] = '0015'
 branch_labels: Union[str, Sequence[str], None] = None
 depends_on: Union[str, Sequence[str], None] = None
 

@@ -46,10 +46,14 @@ statistics of z signals:
   judging begins or after an accepted new level (the fast initial response of Lucas &
   Crosier 1982, Technometrics 24:199).
 
-A day on which any signals is out of control and never enters a later baseline (nor does
-the day before it when the two-day rule fired); an excursion (consecutive out-of-control
-days) is one alarm, on its first day. The first ``warmup`` days after the start or an
-accepted level only build the baseline.
+A day on which any signals is out of control and never enters a later baseline's centre
+(nor does the day before it when the two-day rule fired); an excursion (consecutive
+out-of-control days) is one alarm, on its first day. The days of an excursion that ended
+within ``blip_days`` days do enter the scatter's history: leaving every large deviation
+out of it would trim the tails the scatter is made of and bias tau low (by 8 % at one
+standard error of scatter, which raised about 30 % more false alarms), while the days of a
+real step or drift, out of control for longer, stay out. The first ``warmup`` days after
+the start or an accepted level only build the baseline.
 
 The thresholds are calibrated by simulation (``benchmarks/alarms.py --calibrate``,
 docs/drift.md) to a budget of about one false alarm per apparatus per month across four
@@ -76,18 +80,19 @@ class Thresholds:
     window: int = 28
     warmup: int = 7
     day_limit: float = 4.0
-    pair_limit: float = 2.6
+    pair_limit: float = 2.55
     ewma_weight: float = 0.3
     ewma_limit: float = 4.0
     cusum_k: float = 1.0
     cusum_h: float = 6.0
     cusum_head_start: float = 0.5
+    blip_days: int = 2
 
     def describe(self) -> str:
         return (
             f"standardised daily values against the last {self.window} in-control lab days (DerSimonian-Laird centre and scatter, Student t to normal by Satterthwaite's degrees of freedom); "
             f"day |z| > {self.day_limit:g}, two days |z1 + z2|/sqrt(2 + 2 rho) > {self.pair_limit:g}, EWMA lambda {self.ewma_weight:g} at {self.ewma_limit:g} sigma, "
-            f"CUSUM k {self.cusum_k:g}, h {self.cusum_h:g} (reset after a signal, head start {self.cusum_head_start:g} h)"
+            f"CUSUM k {self.cusum_k:g}, h {self.cusum_h:g} (reset after a signal, head start {self.cusum_head_start:g} h); excursions of up to {self.blip_days} days count as scatter"
         )
 
 
@@ -208,6 +213,8 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
     accepted_days = sorted(accepted)
     fixed_days = None if fixed is None else [j for j in range(n) if fixed[j] and math.isfinite(x[j]) and math.isfinite(s[j]) and s[j] > 0]
     in_control: list[int] = []
+    blips: list[int] = []  # days of short excursions: scatter, not changes
+    excursion: list[int] = []
     e = cp = cm = 0.0
     head_start = True
     epoch: dt.date | None = None
@@ -217,6 +224,8 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
         if latest != epoch:  # a new level accepted: start the baseline again from it
             epoch = latest
             in_control = [j for j in in_control if days[j] >= latest]
+            blips = [j for j in blips if days[j] >= latest]
+            excursion = []
             e = cp = cm = 0.0
             head_start = True
         usable = math.isfinite(x[i]) and math.isfinite(s[i]) and s[i] > 0
@@ -234,7 +243,7 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             continue
         # The scatter needs more days than the centre to be estimated well: it comes from
         # up to three windows of in-control days, the centre from the latest window.
-        history = ready[-3 * t.window :] if fixed_days is None else base
+        history = sorted([j for j in blips if j < i - 1] + ready)[-3 * t.window :] if fixed_days is None else base
         c, tau, centre_error = baseline_of(x[base], s[base], scatter_of(x[history], s[history], period), period)
         residual = float(_wrap(np.array([x[i] - c]), period)[0])
         centre[i], scatter[i] = x[i] - residual if period is not None else c, tau
@@ -270,6 +279,7 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
                 signals[i].append("two days")
                 if previous in in_control:
                     in_control.remove(previous)  # it is part of the change, not of the baseline
+                    excursion.append(previous)
         if abs(e) > ewma_limit:
             signals[i].append("ewma")
         if cp > t.cusum_h or cm > t.cusum_h:
@@ -277,6 +287,10 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             cp = cm = 0.0
         if signals[i]:
             out[i] = True
+            excursion.append(i)
         else:
             in_control.append(i)
+            if 0 < len(excursion) <= t.blip_days:
+                blips.extend(excursion)
+            excursion = []
     return Judgement(centre, scatter, sigma, z, ewma, ewma_limit, upper, lower, signals, out, learning, starts)

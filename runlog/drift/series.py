@@ -36,7 +36,7 @@ from sqlalchemy.engine import Connection
 from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
-from runlog.drift.pooling import add_sums, arithmetic_of, half_period, run_sums
+from runlog.drift.pooling import COUNTS, add_sums, arithmetic_of, grouped_sums, half_period
 from runlog.store import schema as s
 
 __all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "series_points", "drift_of"]
@@ -222,12 +222,9 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         units = sorted({row[-1] or "(none)" for row in rows})
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
     unit = next((row[-1] for row in rows if row[-1]), "")
-    arithmetic = arithmetic_of(unit)
-    counts = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
-    days: dict[object, list[dict]] = {}
-    for day, shots, value, stderr, *counted, _ in rows:
-        days.setdefault(day, []).append(run_sums(value, stderr, unit, shots=shots, counts=dict(zip(counts, counted)), arithmetic=arithmetic))
-    points = [p for p in (_point(day, add_sums(parts), unit) for day, parts in days.items()) if p is not None]
+    columns = list(zip(*rows)) if rows else [()] * 11
+    by_day = grouped_sums(columns[0], columns[2], columns[3], unit, shots=columns[1], counts=dict(zip(COUNTS, columns[4:10])))
+    points = [p for p in (_point(day, sums, unit) for day, sums in by_day.items()) if p is not None]
     return points, unit, any(p.trials is not None for p in points)
 
 

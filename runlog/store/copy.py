@@ -291,7 +291,11 @@ def _plans(reading: Connection, target_dialect: str) -> list[_TablePlan]:
         found = [column["name"] for column in inspect(reading).get_columns(table.name)]
         known = {column.name for column in table.columns}
         measured = sorted((name for name in found if _MEASUREMENT.fullmatch(name)), key=lambda name: int(name[len(MEASUREMENT_COLUMN_PREFIX) :])) if table.name == "shot_measurements" else []
+        # Columns made ahead of any name (runlog.store.measurement_columns) hold no value
+        # and stay behind; the target makes its own blocks.
+        named = {measurement_column(mid) for (mid,) in reading.exec_driver_sql("SELECT id FROM measurements")} if measured else set()
         unknown = [name for name in found if name not in known and name not in measured and not (table.name in _CHILDREN and name == _PARTITION_TIME)]
+        measured = [name for name in measured if name in named]
         if unknown:
             raise StoreError(f"source table {table.name} has columns runlog does not know: {', '.join(unknown)}")
         columns = [_Column(column.name, _kind(column), _read_as(_kind(column), f"c.{column.name}", source_dialect)) for column in table.columns]
@@ -460,10 +464,13 @@ def _add_measurement_columns(writer: Writer, plan: _TablePlan) -> None:
     else:
         present = {row[0] for row in writer.rows("SELECT column_name FROM information_schema.columns WHERE table_schema = current_schema() AND table_name = 'shot_measurements'")}
         real = "DOUBLE PRECISION"
-    for column in plan.columns:
-        found = _MEASUREMENT.fullmatch(column.name)
-        if found and column.name not in present:
-            writer.execute(f"ALTER TABLE shot_measurements ADD COLUMN {measurement_column(int(found.group(1)))} {real}")
+    missing = [measurement_column(int(found.group(1))) for column in plan.columns if (found := _MEASUREMENT.fullmatch(column.name)) and column.name not in present]
+    if missing and writer.dialect == "postgresql":
+        # One statement: a partitioned table changes each month once, not once per column.
+        writer.execute("ALTER TABLE shot_measurements " + ", ".join(f"ADD COLUMN {name} {real}" for name in missing))
+        return
+    for name in missing:
+        writer.execute(f"ALTER TABLE shot_measurements ADD COLUMN {name} {real}")
 
 
 def _move_sequences(writer: Writer) -> None:

@@ -12,6 +12,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.errors import SchemaVersionError, StoreError
 
+from runlog.store.measurement_columns import make_first_block
 from runlog.store.partitions import PARTITIONED_TABLES, SHOT_TABLES, partition_monitor_values, partition_shot_tables
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
@@ -196,7 +197,8 @@ def create_or_upgrade(engine: Engine) -> None:
     """Bring the catalogue to head: an empty database is created from the models and
     stamped (Alembic's recipe for building a database from scratch, no scripts to run),
     any other is upgraded through the migration history. On PostgreSQL the shot-level
-    tables are then partitioned by month by the same code migration 0004 runs.
+    tables are then partitioned by month by the same code migration 0004 runs, and the
+    first block of measurement columns is made, as migration 0015 does.
 
     ``tests/test_migrations.py`` keeps the two paths equal: models match migrations.
     """
@@ -210,6 +212,7 @@ def create_or_upgrade(engine: Engine) -> None:
                 Base.metadata.create_all(connection)
                 partition_shot_tables(connection)
                 partition_monitor_values(connection)
+                make_first_block(connection)
                 # The same version table Alembic itself would create.
                 version = Table(
                     "alembic_version",

@@ -30,7 +30,6 @@ FROM figures f JOIN runs r ON r.id = f.run_id
 WHERE r.apparatus_id = :a AND r.day = :d AND r.sequence = :q AND r.is_current AND NOT f.out_of_range
 ORDER BY f.name, r.id
 """
-_COUNTS = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
 # The same with each run's series fingerprint (runlog.store.series_keys), flagged figures
 # too: a series holds a quantity when its runs have the figure, its points leave them out.
 _SERIES_FIGURES = """
@@ -44,8 +43,8 @@ ORDER BY f.name, r.id
 
 def group_sums(rows) -> dict[str, tuple[str, dict]]:
     """Per figure name, ``(unit, sums)`` of the runs of one group
-    (:func:`runlog.drift.pooling.run_sums` added up), from rows of :data:`_FIGURES`."""
-    from runlog.drift.pooling import add_sums, arithmetic_of, run_sums
+    (:func:`runlog.drift.pooling.grouped_sums`), from rows of :data:`_FIGURES`."""
+    from runlog.drift.pooling import COUNTS, grouped_sums
 
     by_name: dict[str, list] = {}
     for row in rows:
@@ -54,9 +53,9 @@ def group_sums(rows) -> dict[str, tuple[str, dict]]:
     for name, found in by_name.items():
         # As MAX(unit) did: one unit per name and group (the drift query refuses a mixture).
         unit = max((row[1] or "") for row in found)
-        arithmetic = arithmetic_of(unit)
-        parts = (run_sums(row[2], row[3], unit, shots=row[4], counts=dict(zip(_COUNTS, row[5:])), arithmetic=arithmetic) for row in found)
-        out[name] = (unit, add_sums(parts))
+        columns = list(zip(*found))
+        (sums,) = grouped_sums([name] * len(found), columns[2], columns[3], unit, shots=columns[4], counts=dict(zip(COUNTS, columns[5:11]))).values()
+        out[name] = (unit, sums)
     return out
 
 

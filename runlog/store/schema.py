@@ -294,8 +294,9 @@ class RunMeasurement(Base):
 
 
 #: Per-shot measured values live in ``shot_measurements``: one row per shot, one column
-#: ``m_<measurement id>`` per measurement, added by ingest (ALTER TABLE ... ADD COLUMN)
-#: when a measurement first appears. A lab has dozens of measurement names, not
+#: ``m_<measurement id>`` per measurement, made by ingest (ALTER TABLE ... ADD COLUMN) when
+#: a measurement first appears — on PostgreSQL ahead of it, in blocks of 64
+#: (:mod:`runlog.store.measurement_columns`). A lab has dozens of measurement names, not
 #: thousands, and a wide row appends ~4x faster than one row per value; a missing value is
 #: NULL. These columns are data, not schema: migrations and the model check leave them be.
 MEASUREMENT_COLUMN_PREFIX = "m_"
