@@ -748,7 +748,7 @@ class Catalogue:
             select(log.id, log.file, log.sha256).where(and_(log.status == "ingested", (log.file.in_(_file_names(file))) | (log.sha256 == (sha or "")))).order_by(log.id)
         ).all()
         if not entries:
-            raise NotFoundError("ingested file", str(file), "the ingest log has no such file (runlog log lists them)")
+            raise NotFoundError("ingested file", str(file), "the ingest log holds no file of that name or content: give the path it was ingested from")
         ingest_ids = {int(e.id) for e in entries}
         rows = connection.execute(
             select(s.Run.id, s.Run.apparatus_id, s.Run.key, s.Run.analysis).join(s.RunFile, s.RunFile.run_id == s.Run.id).where(s.RunFile.ingest_id.in_(ingest_ids))
