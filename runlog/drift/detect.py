@@ -233,9 +233,9 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             e = cp = cm = 0.0
             head_start = True
         usable = math.isfinite(x[i]) and math.isfinite(s[i]) and s[i] > 0
-        # The day before is judged together with this one (the two-day rule), so it is not
-        # yet part of the baseline they are both measured against.
-        ready = in_control[:-1] if in_control and in_control[-1] == i - 1 else in_control  # in_control is in order
+        # The day before, when it was judged, is judged together with this one (the two-day
+        # rule), so it is not yet part of the baseline they are both measured against.
+        ready = in_control[:-1] if in_control and in_control[-1] == i - 1 and not learning[i - 1] else in_control  # in order
         base = ready[-t.window :] if fixed_days is None else fixed_days
         starts[i] = days[base[0]] if base else None
         if not usable:
