@@ -748,7 +748,7 @@ class Catalogue:
             select(log.id, log.file, log.sha256).where(and_(log.status == "ingested", (log.file.in_(_file_names(file))) | (log.sha256 == (sha or "")))).order_by(log.id)
         ).all()
         if not entries:
-            raise NotFoundError("ingested file", str(file), "the ingest log has no such file (runlog log lists them)")
+            raise NotFoundError("ingested file", str(file), "the ingest log holds no file of that name or content: give the path it was ingested from")
         ingest_ids = {int(e.id) for e in entries}
         rows = connection.execute(
             select(s.Run.id, s.Run.apparatus_id, s.Run.key, s.Run.analysis).join(s.RunFile, s.RunFile.run_id == s.Run.id).where(s.RunFile.ingest_id.in_(ingest_ids))
@@ -893,11 +893,11 @@ class Catalogue:
 
         with self.engine.connect() as connection:
             apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
-            table = reference.run_series(connection, apparatus_id)
-            chosen = reference.reference_series(connection, apparatus_id, quantity, table=table)
+            found = reference.series_of(connection, apparatus_id, quantity)
+            chosen = reference.pick_reference(connection, apparatus_id, found)
             return [
-                {**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": chosen is not None and e["key"] == chosen["key"]}
-                for e in reference.series_of(connection, apparatus_id, quantity, table)
+                {**reference.describe(e), "days": e["days"], "runs": e["runs"], "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": chosen is not None and e["key"] == chosen["key"]}
+                for e in found
             ]
 
     def stability(self, quantity: str, *, apparatus: str | None = None, series: str | None = None) -> dict[str, object]:
@@ -910,11 +910,12 @@ class Catalogue:
         with self.engine.connect() as connection:
             apparatus_id, _ = _apparatus_id(connection, quantity, apparatus)
             found = reference.series_of(connection, apparatus_id, quantity)
-            chosen = next((e for e in found if series in (e["key"], *[m["series"].key for m in e["members"]])), None) if series else reference.reference_series(connection, apparatus_id, quantity)
+            chosen = next((e for e in found if series in (e["key"], *[m["series"].key for m in e["members"]])), None) if series else reference.pick_reference(connection, apparatus_id, found)
             if chosen is None:
                 raise NotFoundError("series", series or quantity)
-            unit = connection.execute(select(s.FigureRow.unit).where(s.FigureRow.run_id.in_(chosen["runs"]), s.FigureRow.name == quantity).limit(1)).scalar() or ""
-            result = steadiness(connection, quantity, chosen["runs"], unit)
+            runs = reference.chain_runs(connection, apparatus_id, quantity, chosen)
+            unit = connection.execute(select(s.FigureRow.unit).where(s.FigureRow.run_id.in_(runs), s.FigureRow.name == quantity).limit(1)).scalar() or ""
+            result = steadiness(connection, quantity, runs, unit)
         return {"quantity": quantity, "series": reference.describe(chosen), "unit": unit, **result}
 
     def declare_reference(self, apparatus: str, *, sequence: str | None = None, vary: Iterable[str] = (), tolerance: float | None = None) -> None:

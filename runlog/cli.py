@@ -1022,8 +1022,8 @@ def plot_drift_command(state: _State, quantity: str, out: Path, apparatus: str |
 @click.argument("run")
 @click.option("--out", "out", type=click.Path(path_type=Path, dir_okay=False), required=True)
 @click.option("--apparatus", default=None)
-@click.option("--x", default=None, help="Parameter on the horizontal axis.")
-@click.option("--y", default=None, help="Measurement on the vertical axis.")
+@click.option("--x", default=None, help="Parameter on the horizontal axis (default: the one the run's fit was made on).")
+@click.option("--y", default=None, help="Measurement on the vertical axis (default: the one the run's fit, or its sequence's, was made on).")
 @_common
 def plot_run_command(state: _State, run: str, out: Path, apparatus: str | None, x: str | None, y: str | None) -> None:
     """One run: its scan with the fit drawn, or its per-site fill map."""

@@ -29,6 +29,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
 from runlog.contract import FROM_COUNTS, MAX_MEASUREMENTS, Batch, Layout, normalise_batch, read_layout, threshold_counts
+from runlog.store import series_keys
 from runlog.store.rollups import as_date, as_datetime, lab_day, lab_timezone, refresh_rollups
 from runlog.errors import ContractError, one_line
 from runlog.figures.shot_level import ShotSums
@@ -1125,6 +1126,7 @@ def ingest_file(engine: Engine, path: Path, mapping: Mapping, progress: Progress
             _store_photon_counts(writer, plan)
             _record_counting_status(writer, mapping)
             _store_counting_figures(writer, plan, mapping.interval)
+            series_keys.refresh(writer, [run.run_id for run in plan.runs])
             refresh_rollups(writer, _rollup_groups(plan))
             if after_write is not None:
                 after_write(writer, [run.run_id for run in plan.runs])

@@ -15,7 +15,7 @@ from conftest import T0, run_main, shot_table, write_table
 from sqlalchemy import select
 
 import runlog
-from runlog.errors import ContractError
+from runlog.errors import ContractError, NotFoundError
 from runlog.store.schema import DailyRollup
 
 SITES = 25
@@ -252,3 +252,9 @@ def test_an_existing_catalogue_upgrades_with_its_data_as_the_first_version(db_ur
         # And the upgraded catalogue takes a new version.
         assert catalogue.ingest(make_file("v2.parquet", thresholded({"r1": 20, "r2": 20}, 0.8, analysis="b")))[0].status == "ingested"
         assert [a["analysis"] for a in catalogue.analyses("r1")] == ["", "b"]
+
+
+def test_withdrawing_a_file_never_ingested_says_so_in_one_line(catalogue, tmp_path):
+    with pytest.raises(NotFoundError) as caught:
+        catalogue.withdraw(file=tmp_path / "never.parquet", reason="typo")
+    assert str(caught.value) == f"no ingested file '{tmp_path / 'never.parquet'}' (the ingest log holds no file of that name or content: give the path it was ingested from)"

@@ -356,8 +356,8 @@ def test_a_target_that_holds_rows_is_refused_and_left_unchanged(sqlite_source, p
     assert ":***@" in shown
     assert str(refused.value) == (
         f"target catalogue {shown} is not empty: it holds 1 row in apparatus, 1 row in ingest_log, 1 row in measurements, "
-        "3 rows in parameters, 1 row in settings, 3 rows in daily_rollups, 1 row in runs, 3 rows in figure_records, 2 rows in images, "
-        "1 row in run_files, 1 row in run_measurements, 3 rows in run_parameters, 3 rows in shots, 2 rows in site_counts, 3 rows in figures, "
+        "3 rows in parameters, 1 row in settings, 3 rows in daily_rollups, 1 row in runs, 1 row in sequence_series, 3 rows in series_rollups, "
+        "3 rows in figure_records, 2 rows in images, 1 row in run_files, 1 row in run_measurements, 3 rows in run_parameters, 3 rows in run_settings, 3 rows in shots, 2 rows in site_counts, 3 rows in figures, "
         "6 rows in occupancy, 3 rows in shot_measurements, 3 rows in shot_parameters; copy into an empty database or a new catalogue; nothing was copied"
     )
     assert "s3cret" not in str(refused.value)

@@ -46,10 +46,14 @@ statistics of z signals:
   judging begins or after an accepted new level (the fast initial response of Lucas &
   Crosier 1982, Technometrics 24:199).
 
-A day on which any signals is out of control and never enters a later baseline (nor does
-the day before it when the two-day rule fired); an excursion (consecutive out-of-control
-days) is one alarm, on its first day. The first ``warmup`` days after the start or an
-accepted level only build the baseline.
+A day on which any signals is out of control and never enters a later baseline's centre
+(nor does the day before it when the two-day rule fired); an excursion (consecutive
+out-of-control days) is one alarm, on its first day. The days of an excursion that ended
+within ``blip_days`` days do enter the scatter's history: leaving every large deviation
+out of it would trim the tails the scatter is made of and bias tau low (by 8 % at one
+standard error of scatter, which raised about 30 % more false alarms), while the days of a
+real step or drift, out of control for longer, stay out. The first ``warmup`` days after
+the start or an accepted level only build the baseline.
 
 The thresholds are calibrated by simulation (``benchmarks/alarms.py --calibrate``,
 docs/drift.md) to a budget of about one false alarm per apparatus per month across four
@@ -76,18 +80,19 @@ class Thresholds:
     window: int = 28
     warmup: int = 7
     day_limit: float = 4.0
-    pair_limit: float = 2.6
+    pair_limit: float = 2.55
     ewma_weight: float = 0.3
     ewma_limit: float = 4.0
     cusum_k: float = 1.0
     cusum_h: float = 6.0
     cusum_head_start: float = 0.5
+    blip_days: int = 2
 
     def describe(self) -> str:
         return (
             f"standardised daily values against the last {self.window} in-control lab days (DerSimonian-Laird centre and scatter, Student t to normal by Satterthwaite's degrees of freedom); "
             f"day |z| > {self.day_limit:g}, two days |z1 + z2|/sqrt(2 + 2 rho) > {self.pair_limit:g}, EWMA lambda {self.ewma_weight:g} at {self.ewma_limit:g} sigma, "
-            f"CUSUM k {self.cusum_k:g}, h {self.cusum_h:g} (reset after a signal, head start {self.cusum_head_start:g} h)"
+            f"CUSUM k {self.cusum_k:g}, h {self.cusum_h:g} (reset after a signal, head start {self.cusum_head_start:g} h); excursions of up to {self.blip_days} days count as scatter"
         )
 
 
@@ -130,13 +135,17 @@ def _wrap(residuals: np.ndarray, period: float | None) -> np.ndarray:
 
 
 def _normal_scale(t_value: float, freedom: float) -> float:
-    """The normal deviate of the same tail probability as ``t_value`` under Student's t."""
+    """The normal deviate of the same tail probability as ``t_value`` under Student's t
+    with ``freedom`` degrees of freedom, by Wallace's approximation (Wallace 1959, Annals
+    of Mathematical Statistics 30:1121 [memory]):
+
+        z = sign(t) (8 nu + 1) / (8 nu + 3) sqrt(nu ln(1 + t^2 / nu))
+
+    within 0.016 of the exact value for nu >= 10 and 0.05 for nu >= 3 (checked against
+    scipy in tests/test_alarm_rates.py); pure Python, so a drift query imports no scipy."""
     if not math.isfinite(freedom) or freedom > 1e6 or t_value == 0.0:
         return t_value
-    from scipy import special
-
-    tail = float(special.stdtr(freedom, -abs(t_value)))
-    return math.copysign(-float(special.ndtri(tail)), t_value)
+    return math.copysign((8.0 * freedom + 1.0) / (8.0 * freedom + 3.0) * math.sqrt(freedom * math.log1p(t_value * t_value / freedom)), t_value)
 
 
 def _mean(values: np.ndarray, weights: np.ndarray, period: float | None) -> float:
@@ -208,6 +217,8 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
     accepted_days = sorted(accepted)
     fixed_days = None if fixed is None else [j for j in range(n) if fixed[j] and math.isfinite(x[j]) and math.isfinite(s[j]) and s[j] > 0]
     in_control: list[int] = []
+    blips: list[int] = []  # days of short excursions: scatter, not changes
+    excursion: list[int] = []
     e = cp = cm = 0.0
     head_start = True
     epoch: dt.date | None = None
@@ -217,12 +228,14 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
         if latest != epoch:  # a new level accepted: start the baseline again from it
             epoch = latest
             in_control = [j for j in in_control if days[j] >= latest]
+            blips = [j for j in blips if days[j] >= latest]
+            excursion = []
             e = cp = cm = 0.0
             head_start = True
         usable = math.isfinite(x[i]) and math.isfinite(s[i]) and s[i] > 0
         # The day before is judged together with this one (the two-day rule), so it is not
         # yet part of the baseline they are both measured against.
-        ready = [j for j in in_control if j < i - 1]
+        ready = in_control[:-1] if in_control and in_control[-1] == i - 1 else in_control  # in_control is in order
         base = ready[-t.window :] if fixed_days is None else fixed_days
         starts[i] = days[base[0]] if base else None
         if not usable:
@@ -234,7 +247,7 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             continue
         # The scatter needs more days than the centre to be estimated well: it comes from
         # up to three windows of in-control days, the centre from the latest window.
-        history = ready[-3 * t.window :] if fixed_days is None else base
+        history = sorted([j for j in blips[-3 * t.window :] if j < i - 1] + ready[-3 * t.window :])[-3 * t.window :] if fixed_days is None else base
         c, tau, centre_error = baseline_of(x[base], s[base], scatter_of(x[history], s[history], period), period)
         residual = float(_wrap(np.array([x[i] - c]), period)[0])
         centre[i], scatter[i] = x[i] - residual if period is not None else c, tau
@@ -244,8 +257,8 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
         # normal, and is put back on the normal scale through its probability
         # (Quesenberry 1991's Q statistic), so the limits keep their false-alarm rate
         # whether the baseline is long or short, with little or much scatter.
-        freedom = 2.0 * sigma[i] ** 4 / scatter_variance(s[history], tau) if len(history) > 1 else math.inf
-        z[i] = _normal_scale(residual / sigma[i], freedom)
+        tau_variance = scatter_variance(s[history], tau) if len(history) > 1 else 0.0
+        z[i] = _normal_scale(residual / sigma[i], 2.0 * sigma[i] ** 4 / tau_variance if tau_variance > 0 else math.inf)
         if head_start:
             # Fast initial response (Lucas & Crosier 1982): a CUSUM (re)started at the
             # start of judging or after an accepted level begins at half its interval.
@@ -263,13 +276,14 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             # The two days against one baseline: the sum of their standardised residuals
             # over its standard deviation, which counts the centre's error shared by both.
             sigma_before = math.sqrt(s[previous] ** 2 + tau**2 + centre_error**2)
-            freedom = 2.0 * sigma_before**4 / scatter_variance(s[history], tau) if len(history) > 1 else math.inf
+            freedom = 2.0 * sigma_before**4 / tau_variance if tau_variance > 0 else math.inf
             z_before = _normal_scale(float(_wrap(np.array([x[previous] - c]), period)[0]) / sigma_before, freedom)
             pair = (z_before + z[i]) / math.sqrt(2.0 + 2.0 * centre_error**2 / (sigma_before * sigma[i]))
             if abs(pair) > t.pair_limit:
                 signals[i].append("two days")
                 if previous in in_control:
                     in_control.remove(previous)  # it is part of the change, not of the baseline
+                    excursion.append(previous)
         if abs(e) > ewma_limit:
             signals[i].append("ewma")
         if cp > t.cusum_h or cm > t.cusum_h:
@@ -277,6 +291,10 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             cp = cm = 0.0
         if signals[i]:
             out[i] = True
+            excursion.append(i)
         else:
             in_control.append(i)
+            if 0 < len(excursion) <= t.blip_days:
+                blips.extend(excursion)
+            excursion = []
     return Judgement(centre, scatter, sigma, z, ewma, ewma_limit, upper, lower, signals, out, learning, starts)

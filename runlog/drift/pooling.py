@@ -3,9 +3,9 @@
 Every path that makes a daily point - the daily rollup table kept at ingest
 (:mod:`runlog.store.rollups`) and the points made on the fly from the figures of chosen
 runs (:func:`runlog.drift.series.filtered_points`) - goes through this module: each run's
-figure becomes a set of additive sums (:func:`run_sums`), the sums of a day's runs are
-added (:func:`add_sums`; a rollup row holds the sums of one sequence, a day adds its
-rows), and the day's point is made from the sums (:func:`day_point`). So the rollups and
+figure becomes a set of additive sums, added over the runs of a group (:func:`grouped_sums`;
+a rollup row holds the sums of one sequence, a day adds its rows with :func:`add_sums`),
+and the day's point is made from the sums (:func:`day_point`). So the rollups and
 the figures give the same point, to rounding.
 
 Counting figures (fill fraction, survival, loss) pool their counts: the day's fraction,
@@ -44,11 +44,11 @@ this module: the readers leave them out.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 
 import numpy as np
 
-__all__ = ["ARITHMETICS", "SUMS", "arithmetic_of", "half_period", "run_sums", "add_sums", "day_point", "pool"]
+__all__ = ["ARITHMETICS", "COUNTS", "SUMS", "arithmetic_of", "half_period", "grouped_sums", "add_sums", "day_point", "pool"]
 
 Z95 = 1.959963984540054
 ARITHMETICS = ("linear", "circular", "logarithmic")
@@ -62,7 +62,6 @@ SUMS = (
     "cosine_sum", "sine_sum", "weighted_cosine_sum", "weighted_sine_sum",
     "positive_count", "log_sum", "log_square_sum", "log_weight_sum", "weighted_log_sum", "weighted_log_square_sum",
 )
-_COUNTING = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
 
 
 def _root(unit: str):
@@ -95,34 +94,66 @@ def half_period(unit: str) -> float:
     return math.pi / factor
 
 
-def run_sums(value: float, stderr: float | None, unit: str, *, shots: int = 0, counts: Mapping[str, object] | None = None, arithmetic: str | None = None) -> dict[str, object]:
-    """One run's figure as the additive sums of :data:`SUMS`. ``counts`` holds a counting
-    figure's ``successes``, ``trials`` and sums over shots (absent: a fitted figure)."""
-    arithmetic = arithmetic or arithmetic_of(unit)
-    value = float(value)
-    weighted = stderr is not None and math.isfinite(stderr) and stderr > 0
-    weight = 1.0 / stderr**2 if weighted else 0.0
-    out: dict[str, object] = {name: None for name in SUMS}
-    counts = counts or {}
-    for name in _COUNTING:
-        part = counts.get(name)
-        out[name] = None if part is None else part
-    out.update(
-        runs=1, shots=int(shots or 0), value_count=1, value_sum=value, value_square_sum=value * value,
-        weighted_count=int(weighted), weight_sum=weight, weighted_value_sum=weight * value, weighted_square_sum=weight * value * value,
+COUNTS = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
+_INTEGERS = ("runs", "shots", "successes", "trials", "counted_shots", "value_count", "weighted_count", "positive_count")
+
+
+def grouped_sums(groups: Sequence[object], values: object, stderrs: object, unit: str, *, shots: object = None, counts: Mapping[str, Sequence[object]] | None = None) -> dict[object, dict[str, object]]:
+    """The additive sums of :data:`SUMS` of the runs of each group (a day, a figure name),
+    in order of first appearance: ``groups``, ``values``, ``stderrs`` (None or NaN where a
+    run has none) and ``shots`` hold one entry per run; ``counts`` a counting figure's
+    ``successes``, ``trials`` and sums over shots per run (a group with a run lacking one
+    has None there). Vectorised: a year of runs is summed in a few numpy passes."""
+    index: dict[object, int] = {}
+    codes = np.fromiter((index.setdefault(g, len(index)) for g in groups), dtype=np.int64, count=len(groups))
+    k = len(index)
+
+    def total(array: np.ndarray) -> np.ndarray:
+        return np.bincount(codes, weights=array, minlength=k)
+
+    values = np.asarray(values, dtype=float)
+    errors = np.array([np.nan if e is None else e for e in stderrs], dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        weighted = np.isfinite(errors) & (errors > 0)
+        weight = np.where(weighted, 1.0 / errors**2, 0.0)
+    columns: dict[str, np.ndarray | None] = dict.fromkeys(SUMS)
+    columns.update(
+        runs=total(np.ones(len(values))), shots=total(np.zeros(len(values)) if shots is None else np.asarray(shots, dtype=float)),
+        value_count=total(np.ones(len(values))), value_sum=total(values), value_square_sum=total(values * values),
+        weighted_count=total(weighted.astype(float)), weight_sum=total(weight), weighted_value_sum=total(weight * values), weighted_square_sum=total(weight * values * values),
     )
+    for name in COUNTS:
+        given = (counts or {}).get(name)
+        if given is None:
+            continue
+        array = np.array([np.nan if c is None else c for c in given], dtype=float)
+        missing = total(np.isnan(array).astype(float)) > 0
+        columns[name] = np.where(missing, np.nan, total(np.nan_to_num(array)))
+    arithmetic = arithmetic_of(unit)
     if arithmetic == "circular":
-        angle = value * math.pi / half_period(unit)
-        out.update(cosine_sum=math.cos(angle), sine_sum=math.sin(angle), weighted_cosine_sum=weight * math.cos(angle), weighted_sine_sum=weight * math.sin(angle))
+        angles = values * math.pi / half_period(unit)
+        cosine, sine = np.cos(angles), np.sin(angles)
+        columns.update(cosine_sum=total(cosine), sine_sum=total(sine), weighted_cosine_sum=total(weight * cosine), weighted_sine_sum=total(weight * sine))
     elif arithmetic == "logarithmic":
-        positive = value > 0
-        logarithm = math.log(value) if positive else 0.0
+        positive = values > 0
+        logs = np.log(np.where(positive, values, 1.0))
         # The stderr of ln T is stderr / T: its weight (T / stderr)^2.
-        log_weight = (value / stderr) ** 2 if weighted and positive else 0.0
-        out.update(
-            positive_count=int(positive), log_sum=logarithm, log_square_sum=logarithm * logarithm,
-            log_weight_sum=log_weight, weighted_log_sum=log_weight * logarithm, weighted_log_square_sum=log_weight * logarithm * logarithm,
+        with np.errstate(divide="ignore", invalid="ignore"):
+            log_weight = np.where(weighted & positive, (values / errors) ** 2, 0.0)
+        columns.update(
+            positive_count=total(positive.astype(float)), log_sum=total(logs), log_square_sum=total(logs * logs),
+            log_weight_sum=total(log_weight), weighted_log_sum=total(log_weight * logs), weighted_log_square_sum=total(log_weight * logs * logs),
         )
+    out = {}
+    for group, i in index.items():
+        sums: dict[str, object] = {}
+        for name in SUMS:
+            column = columns[name]
+            if column is None or np.isnan(column[i]):
+                sums[name] = None
+            else:
+                sums[name] = int(round(column[i])) if name in _INTEGERS else float(column[i])
+        out[group] = sums
     return out
 
 
@@ -238,7 +269,6 @@ def pool(values: object, stderrs: object, unit: str) -> tuple[float, float, floa
     """One day's ``(value, ci_low, ci_high, stderr, spread)`` from its runs' fitted figures
     (``stderrs`` None or NaN where a run has none), in the arithmetic its unit calls for."""
     values = np.asarray(values, dtype=float)
-    errors = [None if e is None or not math.isfinite(float(e)) else float(e) for e in stderrs]
-    arithmetic = arithmetic_of(unit)
-    sums = add_sums(run_sums(v, e, unit, arithmetic=arithmetic) for v, e in zip(values, errors))
-    return day_point(sums, unit)
+    if not len(values):
+        return None
+    return day_point(grouped_sums([0] * len(values), values, list(stderrs), unit)[0], unit)

@@ -25,37 +25,24 @@ per series, so a headline number never mixes unlike runs.
 from __future__ import annotations
 
 import datetime as dt
-import hashlib
 import json
-import math
 import re
-from collections import Counter, defaultdict
+from collections import defaultdict
 from dataclasses import dataclass, field
 
-from sqlalchemy import and_, select
+from sqlalchemy import and_, func, or_, select
 from sqlalchemy.engine import Connection
 
 from runlog.store import schema as s
+from runlog.store import series_keys as keys
 from runlog.store.rollups import as_date
+from runlog.store.series_keys import DEFAULT_TOLERANCE, Declaration
 from runlog.units import unit_text
 
-__all__ = ["Declaration", "Series", "describe", "declaration_of", "declare", "run_series", "series_of", "reference_series", "setting_changes", "notes_between", "DEFAULT_TOLERANCE"]
+__all__ = ["Declaration", "Series", "describe", "declaration_of", "declare", "run_series", "stored_series", "series_of", "chain_runs", "selected", "reference_series", "pick_reference", "setting_changes", "notes_between", "DEFAULT_TOLERANCE"]
 
-DEFAULT_TOLERANCE = 1e-3
 RECENT_DAYS = 28
 LINK_GAP = 7
-
-
-@dataclass(frozen=True)
-class Declaration:
-    """What a lab declared for one apparatus (or the defaults)."""
-
-    sequence: str | None = None
-    vary: frozenset[str] = frozenset()
-    tolerance: float = DEFAULT_TOLERANCE
-
-    def as_dict(self) -> dict[str, object]:
-        return {"sequence": self.sequence, "vary": sorted(self.vary), "tolerance": self.tolerance}
 
 
 @dataclass(frozen=True)
@@ -82,36 +69,27 @@ class Series:
         return {"key": self.key, "sequence": self.sequence, "fingerprint": self.fingerprint, "label": self.label, "constants": dict(self.constants), "scanned": list(self.scanned)}
 
 
-def _setting_key(apparatus_id: int) -> str:
-    return f"reference.{apparatus_id}"
-
-
 def declaration_of(connection: Connection, apparatus_id: int) -> Declaration:
-    raw = connection.execute(select(s.Setting.value).where(s.Setting.key == _setting_key(apparatus_id))).scalar()
-    if not raw:
-        return Declaration()
-    data = json.loads(raw)
-    return Declaration(data.get("sequence"), frozenset(data.get("vary", [])), float(data.get("tolerance", DEFAULT_TOLERANCE)))
+    return keys.read_declaration(keys.over(connection), apparatus_id)
 
 
 def declare(connection: Connection, apparatus_id: int, declaration: Declaration) -> None:
-    """Store a lab's declaration for one apparatus (replacing an earlier one)."""
-    connection.execute(s.Setting.__table__.delete().where(s.Setting.key == _setting_key(apparatus_id)))
-    connection.execute(s.Setting.__table__.insert().values(key=_setting_key(apparatus_id), value=json.dumps(declaration.as_dict(), sort_keys=True)))
-
-
-def _rounded(value: float, tolerance: float) -> str:
-    """``value`` rounded to the relative ``tolerance``, as plain decimal text."""
-    if value == 0 or not math.isfinite(value):
-        return repr(float(value))
-    quantum = tolerance * 10 ** math.floor(math.log10(abs(value)))
-    rounded = round(value / quantum) * quantum
-    decimals = max(0, -int(math.floor(math.log10(quantum))))
-    text = f"{rounded:.{decimals}f}"
-    return text.rstrip("0").rstrip(".") if "." in text else text
+    """Store a lab's declaration for one apparatus (replacing an earlier one); when its
+    ``vary`` or ``tolerance`` changed, the stored series keys are recomputed with it."""
+    db = keys.over(connection)
+    before = keys.read_declaration(db, apparatus_id)
+    db.execute("DELETE FROM settings WHERE key = :k", {"k": keys.declaration_key(apparatus_id)})
+    db.execute("INSERT INTO settings (key, value) VALUES (:k, :v)", {"k": keys.declaration_key(apparatus_id), "v": json.dumps(declaration.as_dict(), sort_keys=True)})
+    if keys.basis_of(before) != keys.basis_of(declaration) or keys.fresh(db, apparatus_id, declaration) is None:
+        keys.rebuild(db, apparatus_id)
 
 
 _ACKNOWLEDGEMENT = re.compile(r"^\S+ (limit|change|setting)\b|^new level accepted")
+
+
+def _shown(kept: dict[str, str], units: dict[str, str]) -> tuple[tuple[str, str], ...]:
+    # People read the settings (labels, alarms, digest): units as runlog prints them (µK, µs).
+    return tuple((name, f"{value} {unit_text(units[name])}".strip() if name in units else value) for name, value in kept.items())
 
 
 @dataclass
@@ -124,7 +102,8 @@ class RunTable:
 
 
 def run_series(connection: Connection, apparatus_id: int, declaration: Declaration | None = None) -> RunTable:
-    """Every current run of the apparatus with its series (see the module docstring)."""
+    """Every current run of the apparatus with its series, computed from its parameters
+    (the definition; the drift query reads the stored keys, :func:`stored_series`)."""
     declaration = declaration or declaration_of(connection, apparatus_id)
     runs = connection.execute(select(s.Run.id, s.Run.day, s.Run.sequence).where(and_(s.Run.apparatus_id == apparatus_id, s.Run.is_current))).all()
     table = RunTable()
@@ -142,15 +121,15 @@ def run_series(connection: Connection, apparatus_id: int, declaration: Declarati
         .where(and_(s.Run.apparatus_id == apparatus_id, s.Run.is_current))
     )
     for run_id, name, unit, is_scanned, number, text in connection.execute(query):
-        if name in declaration.vary:
+        setting = keys.setting_of(name, is_scanned, number, text, declaration)
+        if setting is None:
             continue
-        if is_scanned:
+        if setting[0]:
             scanned[run_id].add(name)
-        elif number is not None:
-            constants[run_id][name] = _rounded(float(number), declaration.tolerance)
-            units[name] = unit or ""
-        elif text is not None:
-            constants[run_id][name] = text
+        else:
+            constants[run_id][name] = setting[2]
+            if setting[1]:
+                units[name] = unit or ""
     # A parameter with a new value in most runs of a sequence is not a setting.
     by_sequence: dict[str, list[int]] = defaultdict(list)
     for run_id, sequence in sequence_of.items():
@@ -160,16 +139,95 @@ def run_series(connection: Connection, apparatus_id: int, declaration: Declarati
         for run_id in members:
             for name, value in constants[run_id].items():
                 seen[name].add(value)
-        varying = {name for name, values in seen.items() if len(values) > 10 and len(values) > 0.2 * len(members)}
+        varying = set(keys.varying_of(((name, len(values)) for name, values in seen.items()), len(members)))
         for run_id in members:
             kept = {name: value for name, value in sorted(constants[run_id].items()) if name not in varying}
-            # People read the settings (labels, alarms, digest): units as runlog prints them (µK, µs).
-            shown = tuple((name, f"{value} {unit_text(units[name])}".strip() if name in units else value) for name, value in kept.items())
-            canonical = json.dumps([sorted(kept.items()), sorted(scanned[run_id])])
-            fingerprint = hashlib.sha256(canonical.encode()).hexdigest()[:8]
-            table.series[run_id] = Series(sequence, fingerprint, shown, tuple(sorted(scanned[run_id])))
+            table.series[run_id] = Series(sequence, keys.fingerprint(kept, scanned[run_id]), _shown(kept, units), tuple(sorted(scanned[run_id])))
             table.values[run_id] = kept
     return table
+
+
+@dataclass
+class StoredSeries:
+    """The series of the runs holding one quantity, from the stored keys: per (sequence,
+    fingerprint) its runs per lab day, and its settings (``values``, from one run)."""
+
+    days: dict[tuple[str, str], dict[dt.date, int]] = field(default_factory=dict)
+    series: dict[tuple[str, str], Series] = field(default_factory=dict)
+    values: dict[tuple[str, str], dict[str, str]] = field(default_factory=dict)
+    # Computed in memory (stored keys out of date): the runs of each group and day.
+    run_ids: dict[tuple[str, str], dict[dt.date, list[int]]] | None = None
+
+
+def stored_series(connection: Connection, apparatus_id: int, quantity: str, declaration: Declaration | None = None) -> StoredSeries | None:
+    """The series holding ``quantity`` from the stored keys (:mod:`runlog.store.series_keys`),
+    or None when they were not computed under the apparatus' declaration (the caller
+    then computes them, :func:`run_series`)."""
+    declaration = declaration or declaration_of(connection, apparatus_id)
+    varying = keys.fresh(keys.over(connection), apparatus_id, declaration)
+    if varying is None:
+        return None
+    sr, r = s.SeriesRollup, s.Run
+    rows = connection.execute(select(sr.sequence, sr.fingerprint, sr.day, sr.held).where(and_(sr.apparatus_id == apparatus_id, sr.name == quantity))).all()
+    found = StoredSeries()
+    for sequence, fp, day, count in rows:
+        if not fp or sequence not in varying:
+            return None
+        days = found.days.setdefault((sequence, fp), {})
+        days[as_date(day)] = days.get(as_date(day), 0) + int(count)
+    examples: dict[tuple[str, str], int] = {}
+    for sequence, fp in found.days:
+        example = connection.execute(select(func.min(r.id)).where(and_(r.apparatus_id == apparatus_id, r.sequence == sequence, r.series_fingerprint == fp, r.is_current))).scalar()
+        if example is None:
+            return None
+        examples[(sequence, fp)] = int(example)
+    settings: dict[int, list[tuple]] = defaultdict(list)
+    ids = sorted(examples.values())
+    for start in range(0, len(ids), 500):
+        query = (
+            select(s.RunSetting.run_id, s.Parameter.name, s.Parameter.unit, s.RunSetting.scanned, s.RunSetting.with_unit, s.RunSetting.value)
+            .join(s.Parameter, s.Parameter.id == s.RunSetting.parameter_id)
+            .where(s.RunSetting.run_id.in_(ids[start : start + 500]))
+        )
+        for run_id, *row in connection.execute(query):
+            settings[int(run_id)].append(tuple(row))
+    for (sequence, fp), example in examples.items():
+        left_out = set(varying[sequence])
+        kept, units, scanned = {}, {}, []
+        for name, unit, is_scanned, with_unit, value in sorted(settings[example]):
+            if is_scanned:
+                scanned.append(name)
+            elif name not in left_out:
+                kept[name] = value
+                if with_unit:
+                    units[name] = unit or ""
+        if keys.fingerprint(kept, scanned) != fp:
+            return None  # a run's settings changed without its fingerprint
+        found.series[(sequence, fp)] = Series(sequence, fp, _shown(dict(sorted(kept.items())), units), tuple(sorted(scanned)))
+        found.values[(sequence, fp)] = kept
+    return found
+
+
+def _from_table(connection: Connection, apparatus_id: int, quantity: str, table: RunTable) -> StoredSeries:
+    """The same as :func:`stored_series`, from series computed in memory."""
+    found = StoredSeries(run_ids={})
+    for run_id in sorted(_runs_with(connection, apparatus_id, quantity)):
+        series = table.series[run_id]
+        group = (series.sequence, series.fingerprint)
+        found.run_ids.setdefault(group, {}).setdefault(table.day[run_id], []).append(run_id)
+        found.days.setdefault(group, {})[table.day[run_id]] = len(found.run_ids[group][table.day[run_id]])
+        found.series.setdefault(group, series)
+        found.values.setdefault(group, table.values[run_id])
+    return found
+
+
+def _found(connection: Connection, apparatus_id: int, quantity: str, table: RunTable | None) -> StoredSeries:
+    if table is None:
+        stored = stored_series(connection, apparatus_id, quantity)
+        if stored is not None:
+            return stored
+        table = run_series(connection, apparatus_id)
+    return _from_table(connection, apparatus_id, quantity, table)
 
 
 def _runs_with(connection: Connection, apparatus_id: int, quantity: str) -> set[int]:
@@ -206,45 +264,62 @@ def series_of(connection: Connection, apparatus_id: int, quantity: str, table: R
 
     Each entry is a chain of settings that followed one another (see :func:`_link`): its
     ``series`` is the latest setting, ``key`` the first one's (stable while the chain
-    grows), ``members`` all settings with their days, ``runs`` the runs judged: on a day
-    two settings share (the change day) the later setting's runs only.
+    grows), ``members`` all settings with their days, ``runs`` the number of runs judged:
+    on a day two settings share (the change day) the later setting's runs only;
+    ``selection`` says which (sequence, fingerprint, days left out) and :func:`chain_runs`
+    lists them. From the stored keys, or from ``table`` (computed by :func:`run_series`).
     """
-    table = table or run_series(connection, apparatus_id)
-    with_quantity = _runs_with(connection, apparatus_id, quantity)
-    if not with_quantity:
+    found = _found(connection, apparatus_id, quantity, table)
+    if not found.days:
         return []
     grouped: dict[str, dict[str, object]] = {}
-    for run_id in sorted(with_quantity):
-        series = table.series[run_id]
-        entry = grouped.setdefault(series.key, {"series": series, "runs": [], "days": set()})
-        entry["runs"].append(run_id)
-        entry["days"].add(table.day[run_id])
-    for entry in grouped.values():
-        entry["first"], entry["last"] = min(entry["days"]), max(entry["days"])
-        entry["day_set"] = entry["days"]
-        entry["days"] = len(entry["days"])
-    last = max(table.day[r] for r in with_quantity)
+    for group, days in found.days.items():
+        series = found.series[group]
+        grouped[series.key] = {"series": series, "group": group, "counts": days, "day_set": set(days), "first": min(days), "last": max(days), "days": len(days)}
+    last = max(e["last"] for e in grouped.values())
     recent_from = last - dt.timedelta(days=RECENT_DAYS)
     out = []
     for chain in _link(list(grouped.values())):
-        runs: list[int] = []
+        runs = 0
         days: set[dt.date] = set()
+        selection = []
         for position, member in enumerate(chain):
             later = set().union(*(m["day_set"] for m in chain[position + 1 :])) if position + 1 < len(chain) else set()
-            runs += [r for r in member["runs"] if table.day[r] not in later]
+            left_out = member["day_set"] & later
+            runs += sum(count for day, count in member["counts"].items() if day not in left_out)
+            selection.append((*member["group"], sorted(left_out)))
             days |= member["day_set"]
-        out.append({
+        entry = {
             "series": chain[-1]["series"],
             "key": chain[0]["series"].key,
-            "members": [{"series": m["series"], "first": m["first"], "last": m["last"], "days": m["days"]} for m in chain],
-            "runs": sorted(runs),
+            "members": [{"series": m["series"], "first": m["first"], "last": m["last"], "days": m["days"], "values": found.values[m["group"]]} for m in chain],
+            "runs": runs,
+            "selection": selection,
             "days": len(days),
             "recent_days": sum(d >= recent_from for d in days),
             "first": min(days),
             "last": max(days),
-        })
-    out.sort(key=lambda e: (-e["recent_days"], -e["days"], -len(e["runs"]), e["key"]))
+        }
+        if found.run_ids is not None:
+            entry["run_ids"] = sorted(r for (sequence, fp, left_out) in selection for day, ids in found.run_ids[(sequence, fp)].items() if day not in left_out for r in ids)
+        out.append(entry)
+    out.sort(key=lambda e: (-e["recent_days"], -e["days"], -e["runs"], e["key"]))
     return out
+
+
+def chain_runs(connection: Connection, apparatus_id: int, quantity: str, entry: dict[str, object]) -> list[int]:
+    """The ids of the runs an entry of :func:`series_of` judges, in id order."""
+    if "run_ids" in entry:
+        return list(entry["run_ids"])
+    r, f = s.Run, s.FigureRow
+    query = select(r.id).join(f, f.run_id == r.id).where(and_(r.apparatus_id == apparatus_id, r.is_current, f.name == quantity, selected(entry["selection"]))).order_by(r.id)
+    return [int(i) for i in connection.execute(query).scalars()]
+
+
+def selected(selection: list[tuple[str, str, list[dt.date]]]):
+    """SQL condition on ``runs``: the runs of an entry's ``selection`` (see :func:`series_of`)."""
+    r = s.Run
+    return or_(*(and_(r.sequence == sequence, r.series_fingerprint == fp, *([r.day.not_in(left_out)] if left_out else [])) for sequence, fp, left_out in selection))
 
 
 def describe(entry: dict[str, object]) -> dict[str, object]:
@@ -261,7 +336,11 @@ def describe(entry: dict[str, object]) -> dict[str, object]:
 
 def reference_series(connection: Connection, apparatus_id: int, quantity: str, *, sequence: str | None = None, table: RunTable | None = None) -> dict[str, object] | None:
     """The reference series of ``quantity`` (see the module docstring), or None."""
-    found = series_of(connection, apparatus_id, quantity, table)
+    return pick_reference(connection, apparatus_id, series_of(connection, apparatus_id, quantity, table), sequence)
+
+
+def pick_reference(connection: Connection, apparatus_id: int, found: list[dict[str, object]], sequence: str | None = None) -> dict[str, object] | None:
+    """The reference series among the entries ``found`` of :func:`series_of`, or None."""
     wanted = sequence or declaration_of(connection, apparatus_id).sequence
     if wanted is not None:
         within = [e for e in found if e["series"].sequence == wanted]
@@ -294,18 +373,15 @@ def notes_between(connection: Connection, apparatus_id: int, first: dt.date, las
     return out
 
 
-def setting_changes(connection: Connection, apparatus_id: int, entry: dict[str, object], table: RunTable, zone) -> list[dict[str, object]]:
+def setting_changes(connection: Connection, apparatus_id: int, entry: dict[str, object], zone) -> list[dict[str, object]]:
     """The setting changes within a chain of :func:`series_of`: the day each later setting
     started, the constants that changed, and the notes of that day and the day before
     (none: "setting changed without a note")."""
     found = []
     members = entry["members"]
-    example = {}
-    for run_id, series in table.series.items():
-        example.setdefault(series.key, run_id)
     for old, new in zip(members, members[1:]):
         day = new["first"]
-        before, after = table.values[example[old["series"].key]], table.values[example[new["series"].key]]
+        before, after = old["values"], new["values"]
         changed = [{"name": n, "before": before.get(n), "after": after.get(n)} for n in sorted(set(before) | set(after)) if before.get(n) != after.get(n)]
         notes = notes_between(connection, apparatus_id, day - dt.timedelta(days=1), day, zone)
         words = "; ".join(f"{c['name']} {c['before']} -> {c['after']}" for c in changed)

@@ -36,10 +36,10 @@ from sqlalchemy.engine import Connection
 from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
-from runlog.drift.pooling import add_sums, arithmetic_of, half_period, run_sums
+from runlog.drift.pooling import COUNTS, add_sums, arithmetic_of, grouped_sums, half_period
 from runlog.store import schema as s
 
-__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "drift_of"]
+__all__ = ["DriftPoint", "DriftChange", "Drift", "daily_points", "filtered_points", "series_points", "drift_of"]
 
 
 @dataclass(frozen=True)
@@ -174,8 +174,9 @@ def _point(day, sums: dict | None, unit: str) -> DriftPoint | None:
     return DriftPoint(day, value, low, high, int(sums["runs"]), int(sums["shots"]), stderr, spread, int(sums["successes"]) if counted else None, int(sums["trials"]) if counted else None)
 
 
-def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
-    """Daily points over only the given runs and the runs whose parameters lie in the given ranges.
+def filtered_points(connection: Connection, quantity: str, apparatus_id: int, parameters: dict[str, tuple[float, float]] | None = None, *, runs: list[int] | None = None, selection: list | None = None, sequence: str | None = None, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """Daily points over only the given runs (``runs``, or a series' ``selection``, see
+    :func:`runlog.drift.reference.series_of`) and the runs whose parameters lie in the given ranges.
 
     A run matches a range when its constant value lies in it, or when its whole scanned
     range does. Pools the runs' stored figures per day, exactly as the rollups do (one
@@ -190,6 +191,10 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
     )
     if runs is not None:
         query = query.where(r.id.in_(runs))
+    if selection is not None:
+        from runlog.drift.reference import selected
+
+        query = query.where(selected(selection))
     for name, (low, high) in (parameters or {}).items():
         parameter_id = connection.execute(select(s.Parameter.id).where(s.Parameter.name == name)).scalar()
         if parameter_id is None:
@@ -217,12 +222,31 @@ def filtered_points(connection: Connection, quantity: str, apparatus_id: int, pa
         units = sorted({row[-1] or "(none)" for row in rows})
         raise NotFoundError("single unit for", quantity, f"it is stored in {', '.join(units)} by different sequences: give a sequence")
     unit = next((row[-1] for row in rows if row[-1]), "")
-    arithmetic = arithmetic_of(unit)
-    counts = ("successes", "trials", "counted_shots", "successes_squares", "trials_squares", "successes_trials")
-    days: dict[object, list[dict]] = {}
-    for day, shots, value, stderr, *counted, _ in rows:
-        days.setdefault(day, []).append(run_sums(value, stderr, unit, shots=shots, counts=dict(zip(counts, counted)), arithmetic=arithmetic))
-    points = [p for p in (_point(day, add_sums(parts), unit) for day, parts in days.items()) if p is not None]
+    columns = list(zip(*rows)) if rows else [()] * 11
+    by_day = grouped_sums(columns[0], columns[2], columns[3], unit, shots=columns[1], counts=dict(zip(COUNTS, columns[4:10])))
+    points = [p for p in (_point(day, sums, unit) for day, sums in by_day.items()) if p is not None]
+    return points, unit, any(p.trials is not None for p in points)
+
+
+def series_points(connection: Connection, quantity: str, apparatus_id: int, selection: list, *, since: dt.date | None = None, until: dt.date | None = None) -> tuple[list[DriftPoint], str, bool]:
+    """Daily points of a series' ``selection`` (see :func:`runlog.drift.reference.series_of`)
+    from the series rollups (:mod:`runlog.store.rollups`): the points :func:`filtered_points`
+    makes from the figures of its runs, read from one row per lab day."""
+    from runlog.drift.pooling import SUMS
+
+    sr = s.SeriesRollup
+    conditions = [sr.apparatus_id == apparatus_id, sr.name == quantity, or_(*(and_(sr.sequence == q, sr.fingerprint == fp, *([sr.day.not_in(left_out)] if left_out else [])) for q, fp, left_out in selection))]
+    if since is not None:
+        conditions.append(sr.day >= since)
+    if until is not None:
+        conditions.append(sr.day <= until)
+    rows = connection.execute(select(sr.day, sr.unit, sr.units, *(getattr(sr, name) for name in SUMS)).where(and_(*conditions)).order_by(sr.day)).all()
+    rows = [row for row in rows if row[3]]  # days whose figures are all flagged out of range have no point
+    if len({row[1] for row in rows}) > 1 or any(row[2] > 1 for row in rows) or len({row[0] for row in rows}) < len(rows):
+        # Several units (which the run-by-run pooling names), or a day of two settings.
+        return filtered_points(connection, quantity, apparatus_id, selection=selection, since=since, until=until)
+    unit = rows[0][1] if rows else ""
+    points = [p for p in (_point(day, dict(zip(SUMS, sums)), unit) for day, _, _, *sums in rows) if p is not None]
     return points, unit, any(p.trials is not None for p in points)
 
 
@@ -298,24 +322,25 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
     # Parameter ranges are the reader's own choice of comparable runs: they replace the series.
     pooled = pooled or bool(parameters)
     chosen = None
-    runs = None
-    table = None
     others: list[dict[str, object]] = []
     if not pooled:
-        table = reference.run_series(connection, apparatus_id)
-        found = reference.series_of(connection, apparatus_id, quantity, table)
+        found = reference.series_of(connection, apparatus_id, quantity)
         if series is not None:
             picked = [e for e in found if series == e["key"] or any(m["series"].key == series for m in e["members"])]
             if not picked:
                 raise NotFoundError("series", series, "known: " + ", ".join(e["key"] for e in found) if found else f"apparatus '{apparatus_name}' has no series with {quantity}")
             chosen = picked[0]
         else:
-            chosen = reference.reference_series(connection, apparatus_id, quantity, sequence=sequence, table=table)
+            chosen = reference.pick_reference(connection, apparatus_id, found, sequence)
             if chosen is None:
                 raise NotFoundError("series of", quantity, f"sequence '{sequence}' has no runs with it" if sequence else f"apparatus '{apparatus_name}' has none")
-        runs = chosen["runs"]
-        others = [{**reference.describe(e), "days": e["days"], "runs": len(e["runs"]), "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
-    points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, runs=runs, sequence=sequence if pooled else None, since=since, until=until)
+        others = [{**reference.describe(e), "days": e["days"], "runs": e["runs"], "first": e["first"].isoformat(), "last": e["last"].isoformat(), "reference": e["key"] == chosen["key"]} for e in found]
+    if chosen is None:
+        points, unit, counting = filtered_points(connection, quantity, apparatus_id, parameters, sequence=sequence, since=since, until=until)
+    elif "run_ids" in chosen:  # series computed in memory: their stored keys were out of date
+        points, unit, counting = filtered_points(connection, quantity, apparatus_id, runs=chosen["run_ids"], since=since, until=until)
+    else:
+        points, unit, counting = series_points(connection, quantity, apparatus_id, chosen["selection"], since=since, until=until)
     # Phases are judged on the circle: the baseline's centre is a mean direction and every
     # residual is wrapped (runlog.drift.detect); the unwrapped series is what is charted.
     period = 2.0 * half_period(unit) if not counting and points and arithmetic_of(unit) == "circular" else None
@@ -323,8 +348,8 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         points = _unwrapped(points, period / 2.0)
     key = chosen["key"] if chosen else ""
     result = Drift(quantity, apparatus_name, unit, chosen["series"].sequence if chosen else sequence, points, {}, [], counting, series=reference.describe(chosen) if chosen else None, other_series=others)
-    if chosen is not None and table is not None:
-        result.settings = reference.setting_changes(connection, apparatus_id, chosen, table, zone)
+    if chosen is not None:
+        result.settings = reference.setting_changes(connection, apparatus_id, chosen, zone)
     if len(points) < 3:
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result

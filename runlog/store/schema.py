@@ -23,6 +23,7 @@ from sqlalchemy import (
     DDL,
     BigInteger,
     Boolean,
+    Column,
     Date,
     DateTime,
     Float,
@@ -32,6 +33,7 @@ from sqlalchemy import (
     LargeBinary,
     MetaData,
     String,
+    Table,
     Text,
     UniqueConstraint,
     event,
@@ -64,7 +66,10 @@ __all__ = [
     "SiteCounts",
     "PhotonCounts",
     "Setting",
+    "RunSetting",
+    "SequenceSeries",
     "DailyRollup",
+    "SeriesRollup",
     "Alarm",
     "IngestLogEntry",
     "Annotation",
@@ -83,7 +88,7 @@ __all__ = [
 ]
 
 #: The Alembic revision this code expects; a test keeps it equal to the migrations' head.
-SCHEMA_REVISION = "0015"
+SCHEMA_REVISION = "0014"
 
 NAMING_CONVENTION = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -168,6 +173,7 @@ class Run(Base):
         UniqueConstraint("apparatus_id", "key", "analysis"),
         Index(None, "started"),
         Index(None, "apparatus_id", "day"),
+        Index(None, "apparatus_id", "sequence", "series_fingerprint"),
         # At most one current version per run: a partial unique index. On PostgreSQL the
         # DDL after this class makes it, because a postgresql_where argument here would
         # make SQLAlchemy import its whole PostgreSQL dialect whenever this module loads
@@ -192,6 +198,9 @@ class Run(Base):
     day: Mapped[dt.date | None] = mapped_column(Date)
     operator: Mapped[str | None] = mapped_column(String(200))
     notes: Mapped[str | None] = mapped_column(Text)
+    # The fingerprint of the run's constant settings (runlog.store.series_keys); with the
+    # sequence it names the run's reference series. Kept for current versions only.
+    series_fingerprint: Mapped[str | None] = mapped_column(String(16))
 
 
 event.listen(
@@ -418,6 +427,32 @@ class PhotonCounts(Base):
     counts: Mapped[bytes] = mapped_column(LargeBinary)
 
 
+class RunSetting(Base):
+    """A run's parameter as its reference series sees it (runlog.store.series_keys): a
+    constant rounded at the declared tolerance (``value``; ``with_unit`` when it is a
+    number shown with its unit), or only the name of a scanned one; parameters the lab
+    declared may vary are left out. Rewritten when the declaration changes."""
+
+    __tablename__ = "run_settings"
+    run_id: Mapped[int] = mapped_column(ForeignKey("runs.id", ondelete="CASCADE"), primary_key=True)
+    parameter_id: Mapped[int] = mapped_column(ForeignKey("parameters.id"), primary_key=True)
+    scanned: Mapped[bool] = mapped_column(Boolean, default=False)
+    with_unit: Mapped[bool] = mapped_column(Boolean, default=False)
+    value: Mapped[str | None] = mapped_column(Text)
+
+
+class SequenceSeries(Base):
+    """Per apparatus and sequence, what its runs' series fingerprints were computed with:
+    ``basis`` (a hash of the declared ``vary`` and ``tolerance``) and ``varying`` (JSON list
+    of the parameters left out because they take a new value in most runs)."""
+
+    __tablename__ = "sequence_series"
+    apparatus_id: Mapped[int] = mapped_column(ForeignKey("apparatus.id"), primary_key=True)
+    sequence: Mapped[str] = mapped_column(String(200), primary_key=True)
+    basis: Mapped[str] = mapped_column(String(64))
+    varying: Mapped[str] = mapped_column(Text, default="[]")
+
+
 class Setting(Base):
     """Catalogue-wide settings, e.g. ``lab_timezone`` (IANA name) that defines lab days."""
 
@@ -470,6 +505,28 @@ class DailyRollup(Base):
     log_weight_sum: Mapped[float | None] = mapped_column(Float)
     weighted_log_sum: Mapped[float | None] = mapped_column(Float)
     weighted_log_square_sum: Mapped[float | None] = mapped_column(Float)
+
+
+class SeriesRollup(Base):
+    """One figure pooled over the current runs of one apparatus, lab day, sequence and
+    series fingerprint (runlog.store.series_keys; '' for a run without one): the sums of
+    :class:`DailyRollup` over the unflagged figures (``runs`` 0 when all are flagged),
+    ``held`` the runs that have the figure at all, ``units`` how many units their figures
+    came in. A series' drift point is read from here. Refreshed with the daily rollups and
+    for the days whose runs changed series."""
+
+    __table__ = Table(
+        "series_rollups",
+        Base.metadata,
+        Column("apparatus_id", Integer, ForeignKey("apparatus.id"), primary_key=True),
+        Column("day", Date, primary_key=True),
+        Column("sequence", String(200), primary_key=True),
+        Column("fingerprint", String(16), primary_key=True),
+        Column("name", String(100), primary_key=True),
+        Column("held", Integer, nullable=False),
+        Column("units", Integer, nullable=False),
+        *(column._copy() for column in DailyRollup.__table__.columns if not column.primary_key),
+    )
 
 
 class Alarm(Base):

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 
 from runlog.errors import NotFoundError, StoreError
 from runlog.store.bulk import Writer
+from runlog.store import series_keys
 from runlog.store.rollups import as_date, as_datetime, refresh_rollups
 
 __all__ = ["Version", "versions", "use_version", "withdraw", "restore", "withdrawals"]
@@ -100,6 +101,7 @@ def use_version(writer: Writer, apparatus_id: int, key: str, analysis: str) -> t
         raise StoreError(f"analysis version '{analysis}' of run '{key}' is withdrawn: restore it first")
     before = next((row for row in rows if row[2]), None)
     _make_current(writer, apparatus_id, key, int(target[0]))
+    series_keys.refresh(writer, [int(row[0]) for row in rows])
     refresh_rollups(writer, {g for g in (_group(target, apparatus_id), before and _group(before, apparatus_id)) if g})
     return (None if before is None else before[1]), analysis
 
@@ -117,8 +119,10 @@ def withdraw(writer: Writer, *, target: str, name: str, runs: Iterable[tuple[int
     taken: list[int] = []
     was_current: list[int] = []
     groups = set()
+    touched = []
     for apparatus_id, key, run_ids in runs:
         rows = _run_rows(writer.rows, apparatus_id, key)
+        touched.append((key, rows))
         chosen = [row for row in rows if int(row[0]) in run_ids and not row[3]]
         for row in chosen:
             taken.append(int(row[0]))
@@ -144,6 +148,7 @@ def withdraw(writer: Writer, *, target: str, name: str, runs: Iterable[tuple[int
             {"t": target, "n": name, "h": sha256, "r": ",".join(map(str, taken)), "c": ",".join(map(str, was_current)), "why": reason.strip(), "who": author, "at": now},
         )[0][0]
     )
+    series_keys.refresh(writer, [int(row[0]) for _, key_rows in touched for row in key_rows])
     refresh_rollups(writer, {g for g in groups if g})
     return withdrawal_id
 
@@ -177,6 +182,7 @@ def restore(writer: Writer, withdrawal_id: int, author: str | None) -> list[int]
         "UPDATE withdrawals SET restored_at = :at, restored_by = :who WHERE id = :i",
         {"at": dt.datetime.now(dt.timezone.utc), "who": author, "i": withdrawal_id},
     )
+    series_keys.refresh(writer, run_ids + _ids(current_text))
     refresh_rollups(writer, {g for g in groups if g})
     return run_ids
 
