@@ -26,7 +26,7 @@ from sqlalchemy import inspect, text
 
 import runlog
 import runlog.ingest
-from runlog.store import bulk, migrate
+from runlog.store import bulk, migrate, partitions
 from runlog.store.engine import make_engine
 from runlog.store.partitions import SHOT_TABLES, SPARSE_MONTH_SHOTS, ensure_months, ensure_partitions, month_start, partition_name, year_partition_name
 from runlog.store.schema import Base
@@ -195,6 +195,29 @@ def test_a_sparse_file_over_ten_years_makes_one_partition_a_year(pg_url, tmp_pat
         assert catalogue.counts()["shots"] == 120 + 1500 + 10 + 3
         chosen = catalogue.select("m.signal >= 118")
         assert chosen["m.signal"].tolist() == [118.0, 119.0]
+
+
+def test_year_and_month_partitions_export_the_same_bytes(pg_url, other_pg_url, tmp_path, monkeypatch):
+    # The same sparse file into a catalogue of year partitions, one of months (the rule
+    # switched off) and SQLite: every filter and export reads the same shots.
+    times = [dt.datetime(2015, 2, 10, 8, tzinfo=UTC) + dt.timedelta(days=40 * k, hours=k) for k in range(60)]
+    path = write_table(tmp_path / "sparse.parquet", _at_times("sparse", times, extra={"m.signal": np.arange(60.0) / 7}))
+    where = "time >= '2016-03-01T00:00' and time < '2019-01-01T00:00' and m.signal > 1"
+    exports = {}
+    for name, url in (("years", pg_url), ("months", other_pg_url), ("sqlite", f"sqlite:///{tmp_path / 'c.sqlite'}")):
+        if name == "months":
+            monkeypatch.setattr(partitions, "SPARSE_YEAR_MONTHS", 10**6)
+        with runlog.open(url) as catalogue:
+            assert catalogue.ingest(path)[0].status == "ingested"
+            if name != "sqlite":
+                found = set(_per_partition(catalogue.engine, "shots"))
+                assert all(len(partition) == len("shots_y2015") for partition in found) == (name == "years"), found
+            exports[name] = catalogue.export(where, tmp_path / name)
+            assert exports[name].shots == sum(dt.datetime(2016, 3, 1, tzinfo=UTC) <= t < dt.datetime(2019, 1, 1, tzinfo=UTC) and k / 7 > 1 for k, t in enumerate(times))
+        monkeypatch.undo()
+    assert exports["years"].data == exports["months"].data == exports["sqlite"].data
+    for file in exports["years"].data:
+        assert (tmp_path / "years" / file).read_bytes() == (tmp_path / "months" / file).read_bytes()
 
 
 def test_a_year_with_a_busy_month_keeps_its_months(pg_url, tmp_path):
