@@ -16,9 +16,9 @@ Prints two rates of the calibrated thresholds of :mod:`runlog.drift.detect`:
 The peer of each rate is its target, measured in the same run: at most about 1 false
 alarm per apparatus-month, at least 90 % detected on the strict reading. Run:
 ``python benchmarks/alarms.py`` (``--series N`` for more or fewer simulated series; the
-default takes one to two minutes). ``--calibrate`` repeats both rates for a range of
-two-day limits on a calibration seed of its own (never the benchmark's), which is how the
-default limit was chosen: the lowest limit whose false-alarm rate on the mixture stays
+default takes 10-20 s). ``--calibrate`` (about a minute at ``--series 600``) repeats both
+rates for a range of two-day limits on a calibration seed of its own (never the
+benchmark's), which is how the default limit was chosen: the lowest limit whose false-alarm rate on the mixture stays
 below the budget, so that the strict detection rate is as high as the budget allows.
 """
 

@@ -179,3 +179,16 @@ def test_phase_drift_through_the_catalogue_on_the_circle(catalogue, tmp_path):
     first = drift.excursions[0]
     assert first["size"] == pytest.approx(0.3, abs=0.15)
     assert [c.date for c in drift.changes] and all(abs((c.date - step).days) <= 1 for c in drift.changes)
+
+
+def test_student_t_to_normal_against_scipy():
+    # Reference: scipy.special (stdtr, ndtri) for the exact normal deviate of the same tail.
+    from scipy import special
+
+    from runlog.drift.detect import _normal_scale
+
+    for freedom, tolerance in ((3, 0.05), (10, 0.016), (30, 0.005), (100, 0.001)):
+        for t in np.linspace(-8.0, 8.0, 81):
+            exact = -float(special.ndtri(special.stdtr(freedom, -abs(t)))) * np.sign(t)
+            assert _normal_scale(float(t), float(freedom)) == pytest.approx(exact, abs=tolerance), (freedom, t)
+    assert _normal_scale(2.5, math.inf) == 2.5

@@ -135,13 +135,17 @@ def _wrap(residuals: np.ndarray, period: float | None) -> np.ndarray:
 
 
 def _normal_scale(t_value: float, freedom: float) -> float:
-    """The normal deviate of the same tail probability as ``t_value`` under Student's t."""
+    """The normal deviate of the same tail probability as ``t_value`` under Student's t
+    with ``freedom`` degrees of freedom, by Wallace's approximation (Wallace 1959, Annals
+    of Mathematical Statistics 30:1121 [memory]):
+
+        z = sign(t) (8 nu + 1) / (8 nu + 3) sqrt(nu ln(1 + t^2 / nu))
+
+    within 0.016 of the exact value for nu >= 10 and 0.05 for nu >= 3 (checked against
+    scipy in tests/test_alarm_rates.py); pure Python, so a drift query imports no scipy."""
     if not math.isfinite(freedom) or freedom > 1e6 or t_value == 0.0:
         return t_value
-    from scipy import special
-
-    tail = float(special.stdtr(freedom, -abs(t_value)))
-    return math.copysign(-float(special.ndtri(tail)), t_value)
+    return math.copysign((8.0 * freedom + 1.0) / (8.0 * freedom + 3.0) * math.sqrt(freedom * math.log1p(t_value * t_value / freedom)), t_value)
 
 
 def _mean(values: np.ndarray, weights: np.ndarray, period: float | None) -> float:
@@ -231,7 +235,7 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
         usable = math.isfinite(x[i]) and math.isfinite(s[i]) and s[i] > 0
         # The day before is judged together with this one (the two-day rule), so it is not
         # yet part of the baseline they are both measured against.
-        ready = [j for j in in_control if j < i - 1]
+        ready = in_control[:-1] if in_control and in_control[-1] == i - 1 else in_control  # in_control is in order
         base = ready[-t.window :] if fixed_days is None else fixed_days
         starts[i] = days[base[0]] if base else None
         if not usable:
@@ -243,7 +247,7 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             continue
         # The scatter needs more days than the centre to be estimated well: it comes from
         # up to three windows of in-control days, the centre from the latest window.
-        history = sorted([j for j in blips if j < i - 1] + ready)[-3 * t.window :] if fixed_days is None else base
+        history = sorted([j for j in blips[-3 * t.window :] if j < i - 1] + ready[-3 * t.window :])[-3 * t.window :] if fixed_days is None else base
         c, tau, centre_error = baseline_of(x[base], s[base], scatter_of(x[history], s[history], period), period)
         residual = float(_wrap(np.array([x[i] - c]), period)[0])
         centre[i], scatter[i] = x[i] - residual if period is not None else c, tau
@@ -253,8 +257,8 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
         # normal, and is put back on the normal scale through its probability
         # (Quesenberry 1991's Q statistic), so the limits keep their false-alarm rate
         # whether the baseline is long or short, with little or much scatter.
-        freedom = 2.0 * sigma[i] ** 4 / scatter_variance(s[history], tau) if len(history) > 1 else math.inf
-        z[i] = _normal_scale(residual / sigma[i], freedom)
+        tau_variance = scatter_variance(s[history], tau) if len(history) > 1 else 0.0
+        z[i] = _normal_scale(residual / sigma[i], 2.0 * sigma[i] ** 4 / tau_variance if tau_variance > 0 else math.inf)
         if head_start:
             # Fast initial response (Lucas & Crosier 1982): a CUSUM (re)started at the
             # start of judging or after an accepted level begins at half its interval.
@@ -272,7 +276,7 @@ def judge(days: Sequence[dt.date], values: Sequence[float], errors: Sequence[flo
             # The two days against one baseline: the sum of their standardised residuals
             # over its standard deviation, which counts the centre's error shared by both.
             sigma_before = math.sqrt(s[previous] ** 2 + tau**2 + centre_error**2)
-            freedom = 2.0 * sigma_before**4 / scatter_variance(s[history], tau) if len(history) > 1 else math.inf
+            freedom = 2.0 * sigma_before**4 / tau_variance if tau_variance > 0 else math.inf
             z_before = _normal_scale(float(_wrap(np.array([x[previous] - c]), period)[0]) / sigma_before, freedom)
             pair = (z_before + z[i]) / math.sqrt(2.0 + 2.0 * centre_error**2 / (sigma_before * sigma[i]))
             if abs(pair) > t.pair_limit:
