@@ -426,11 +426,6 @@ class _Plan:
         self.set_thresholds()
 
 
-def _months(time_us: np.ndarray) -> list[dt.date]:
-    """The UTC calendar months (first days) of integer-microsecond times."""
-    return list(_month_counts(time_us))
-
-
 def _month_counts(time_us: np.ndarray) -> dict[dt.date, int]:
     """How many of integer-microsecond times fall in each UTC calendar month (first days)."""
     months, counts = np.unique(time_us.astype("datetime64[us]").astype("datetime64[M]"), return_counts=True)
