@@ -12,7 +12,8 @@ Named peers, same run, same databases, per name: the same step making one column
 name (the design before revision 0015), a bare ``ALTER TABLE shot_measurements ADD
 COLUMN`` in a transaction of its own on the partitioned table, and the same on an
 unpartitioned table of as many rows. Also
-printed: how many partition tables a 120-shot file spread over ten years creates. Run:
+printed: how many partition tables a 120-shot file spread over ten years creates, and, as
+its peer in the same run, how many a partition for every month makes. Run:
 
     python benchmarks/measurement_names.py --postgres URL [--months 130] [--repeat 3]
 """
@@ -25,6 +26,7 @@ import statistics
 import sys
 import tempfile
 import time
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -39,7 +41,7 @@ import runlog  # noqa: E402
 from runlog.config import Mapping  # noqa: E402
 from runlog.contract import read_layout  # noqa: E402
 from runlog.ingest import _add_measurements  # noqa: E402
-from runlog.store import measurement_columns  # noqa: E402
+from runlog.store import measurement_columns, partitions  # noqa: E402
 from runlog.store.measurement_columns import BLOCK, present_columns  # noqa: E402
 
 WHAT = ("within a block", "opening a block", "all names of a block in one file", "peer: a column per name (before 0015)", "peer: ALTER partitioned", "peer: ALTER unpartitioned")
@@ -62,6 +64,17 @@ def spread_file(path: Path, shots: int, months_apart: float, measurements: list[
     table |= {f"m.{name}": rng.random(shots) for name in measurements}
     pq.write_table(pa.table(table), path)
     return path
+
+
+@contextmanager
+def months_kept():
+    """Every month its own partitions, as before sparse years got one (runlog.store.partitions)."""
+    sparse = partitions.SPARSE_YEAR_MONTHS
+    partitions.SPARSE_YEAR_MONTHS = 10**6
+    try:
+        yield
+    finally:
+        partitions.SPARSE_YEAR_MONTHS = sparse
 
 
 def partition_tables(engine) -> int:
@@ -104,7 +117,10 @@ def scenario(url: str, folder: Path, months: int) -> dict[str, float]:
     with runlog.open(url) as catalogue:
         engine = catalogue.engine
         base = spread_file(folder / f"base_{months}.parquet", months, 1.0 if months > 1 else 0.0, ["atom_number"])
-        result = catalogue.ingest(base)[0]
+        # One shot a month stands for a busy month: its partitions are months, as a busy
+        # catalogue's are (a sparse file's would be years: runlog.store.partitions).
+        with months_kept():
+            result = catalogue.ingest(base)[0]
         assert result.status == "ingested", result.reason
         with engine.begin() as connection:
             shot_rows = int(connection.execute(text("SELECT count(*) FROM shots")).scalar_one())
@@ -140,11 +156,15 @@ def main() -> None:
     try:
         with tempfile.TemporaryDirectory() as folder:
             folder = Path(folder)
-            url = fresh("runlog_bench_spread")
-            with runlog.open(url) as catalogue:
-                catalogue.ingest(spread_file(folder / "spread.parquet", 120, 1.0, ["atom_number"]))
+            spread_path = spread_file(folder / "spread.parquet", 120, 1.0, ["atom_number"])
+            with runlog.open(fresh("runlog_bench_spread")) as catalogue:
+                catalogue.ingest(spread_path)
                 spread = partition_tables(catalogue.engine)
-            print(f"a 120-shot file over ten years (one shot a month): {spread} partition tables")
+            # The peer: a partition for every month (before the sparse-year rule).
+            with months_kept(), runlog.open(fresh("runlog_bench_spread_months")) as catalogue:
+                catalogue.ingest(spread_path)
+                monthly = partition_tables(catalogue.engine)
+            print(f"a 120-shot file over ten years (one shot a month): {spread} partition tables; a partition a month (peer): {monthly}")
             results: dict[int, list[dict[str, float]]] = {1: [], args.months: []}
             for attempt in range(args.repeat):
                 for months in results:

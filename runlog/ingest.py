@@ -14,6 +14,7 @@ import datetime as dt
 import hashlib
 import os
 import time
+from collections import Counter
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -245,8 +246,9 @@ class _Plan:
         self.rows = 0
         self.runs: list[_Run] = []
         self.index: dict[tuple[str, str], int] = {}
-        # UTC calendar months the shots fall in: PostgreSQL needs their partitions.
-        self.months: set[dt.date] = set()
+        # UTC calendar months the shots fall in, with their shots: PostgreSQL needs their
+        # partitions (one for a sparse year: runlog.store.partitions).
+        self.months: Counter[dt.date] = Counter()
 
     def run_index(self, batch: Batch) -> np.ndarray:
         """The position in ``self.runs`` of every row's (apparatus, run), adding new runs."""
@@ -320,7 +322,7 @@ class _Plan:
                     raise ContractError(file, f"occupancy list has {int(run_lengths[bad][0])} sites, earlier shots of run '{run.key}' have {expected}", column=column.source, row=row)
             for column in layout.by_role("counts"):
                 self._add_counts(run, column.source, column.name, batch, rows)
-        self.months.update(_months(batch.time_us))
+        self.months.update(_month_counts(batch.time_us))
         self.rows += batch.length
 
     def _add_counts(self, run: _Run, source: str, name: str, batch: Batch, rows: np.ndarray) -> None:
@@ -424,10 +426,10 @@ class _Plan:
         self.set_thresholds()
 
 
-def _months(time_us: np.ndarray) -> list[dt.date]:
-    """The UTC calendar months (first days) of integer-microsecond times."""
-    months = np.unique(time_us.astype("datetime64[us]").astype("datetime64[M]"))
-    return [month.astype("datetime64[D]").item() for month in months]
+def _month_counts(time_us: np.ndarray) -> dict[dt.date, int]:
+    """How many of integer-microsecond times fall in each UTC calendar month (first days)."""
+    months, counts = np.unique(time_us.astype("datetime64[us]").astype("datetime64[M]"), return_counts=True)
+    return {month.astype("datetime64[D]").item(): int(count) for month, count in zip(months, counts)}
 
 
 def _times(time_us: np.ndarray) -> pa.Array:

@@ -35,7 +35,7 @@ from runlog.selection import select_shots
 from runlog.store import copy as copy_module
 from runlog.store.copy import copy_catalogue
 from runlog.store.engine import make_engine, redact
-from runlog.store.partitions import partition_name
+from runlog.store.partitions import SPARSE_MONTH_SHOTS, partition_name, year_partition_name
 from runlog.store.schema import SCHEMA_REVISION, Base
 
 UTC = dt.timezone.utc
@@ -232,9 +232,13 @@ def test_sqlite_to_postgresql_holds_every_row_and_answers_like_the_source(sqlite
     assert _rows(pg_url) == before == _rows(sqlite_source)
     _same_answers(sqlite_source, pg_url)
 
-    # The month partitions hold the shots of their month, counted from the files' times.
+    # The partitions hold the shots of their range, counted from the files' times: four
+    # months of 2026 with under 1 000 shots each are one partition for the year
+    # (runlog.store.partitions, "Sparse years get one partition").
     months = Counter(partition_name("shots", t) for t in _loading_table()["time"].to_pylist() + _ramsey_table()["time"].to_pylist())
     assert sorted(months) == ["shots_y2026m01", "shots_y2026m02", "shots_y2026m03", "shots_y2026m04"]
+    assert max(months.values()) < SPARSE_MONTH_SHOTS
+    months = Counter({year_partition_name("shots", 2026): sum(months.values())})
     engine = make_engine(pg_url)
     with engine.connect() as connection:
         for table in ("shots", "occupancy"):

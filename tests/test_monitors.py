@@ -197,6 +197,21 @@ def test_monitor_values_are_partitioned_by_month_on_postgresql(pg_url, tmp_path)
             assert connection.execute(text("SELECT count(*) FROM monitor_values_y2026m02")).scalar_one() == 2 * 2
 
 
+def test_a_sparse_monitor_file_gets_one_partition_a_year_on_postgresql(pg_url, tmp_path):
+    # One reading a month for three years: 36 monthly tables before, three yearly ones now.
+    start = dt.datetime(2020, 1, 15, tzinfo=dt.timezone.utc)
+    _wide(tmp_path / "monthly.parquet", n=36, start=start, step_s=int(30.44 * 86400))
+    with runlog.open(pg_url) as catalogue:
+        assert catalogue.ingest(tmp_path / "monthly.parquet")[0].status == "ingested"
+        with catalogue.engine.connect() as connection:
+            children = connection.execute(text("SELECT inhrelid::regclass::text FROM pg_inherits WHERE inhparent = 'monitor_values'::regclass ORDER BY 1")).scalars().all()
+        assert children == ["monitor_values_y2020", "monitor_values_y2021", "monitor_values_y2022"]
+        expected = pq.read_table(tmp_path / "monthly.parquet")
+        stored = _values(catalogue, "room_temp")
+        assert [t for t, _ in stored] == expected["time"].to_pylist()
+        assert [v for _, v in stored] == expected["room_temp[degC]"].to_pylist()
+
+
 def test_cli_ingests_a_monitor_folder(db_url, tmp_path):
     from click.testing import CliRunner
 

@@ -18,6 +18,7 @@ import time
 from collections import Counter
 
 import numpy as np
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from conftest import shot_table, write_table
@@ -25,9 +26,9 @@ from sqlalchemy import inspect, text
 
 import runlog
 import runlog.ingest
-from runlog.store import bulk, migrate
+from runlog.store import bulk, migrate, partitions
 from runlog.store.engine import make_engine
-from runlog.store.partitions import SHOT_TABLES, ensure_months, month_start, partition_name
+from runlog.store.partitions import SHOT_TABLES, SPARSE_MONTH_SHOTS, ensure_months, ensure_partitions, month_start, partition_name, year_partition_name
 from runlog.store.schema import Base
 
 UTC = dt.timezone.utc
@@ -153,6 +154,96 @@ def test_a_constant_broken_later_is_backfilled_with_the_shot_times(pg_url, tmp_p
         assert shots["m.fluorescence"].tolist()[4:] == [1.5, 2.5, 3.5] and shots["m.fluorescence"].iloc[:4].isna().all()
         depth = _rows(catalogue.engine, "SELECT sp.tableoid::regclass::text, count(*) FROM shot_parameters sp JOIN parameters p ON p.id = sp.parameter_id WHERE p.name = 'depth' GROUP BY 1 ORDER BY 1")
         assert depth == [("shot_parameters_y2026m05", 2), ("shot_parameters_y2026m06", 5)]
+
+
+# --- sparse years ----------------------------------------------------------------------------
+
+
+def _at_times(key: str, times: list[dt.datetime], seed: int = 1, **kwargs):
+    """A shot table of one run whose shots are at ``times``."""
+    table = shot_table({key: len(times)}, seed=seed, **kwargs)
+    return table.set_column(table.schema.get_field_index("time"), "time", pa.array(times, pa.timestamp("us", tz="UTC")))
+
+
+def _shot_partitions(engine) -> list[str]:
+    return sorted(name for (name,) in _rows(engine, "SELECT inhrelid::regclass::text FROM pg_inherits WHERE inhparent::regclass::text = ANY(:t)", t=list(SHOT_TABLES)))
+
+
+def test_a_sparse_file_over_ten_years_makes_one_partition_a_year(pg_url, tmp_path):
+    # One shot a month for ten years (2014-01 .. 2023-12): a month each would be 480 tables.
+    times = [dt.datetime(2014, 1, 15, 12, tzinfo=UTC) + dt.timedelta(days=30.44 * k) for k in range(120)]
+    assert len({month_start(t) for t in times}) == 120
+    path = write_table(tmp_path / "spread.parquet", _at_times("spread", times, extra={"m.signal": np.arange(120.0)}))
+    with runlog.open(pg_url) as catalogue:
+        assert catalogue.ingest(path)[0].status == "ingested"
+        engine = catalogue.engine
+        assert _shot_partitions(engine) == sorted(year_partition_name(table, year) for table in SHOT_TABLES for year in range(2014, 2024))
+        assert _per_partition(engine, "shots") == {f"shots_y{year}": sum(t.year == year for t in times) for year in range(2014, 2024)}
+        assert _per_partition(engine, "shot_measurements") == {f"shot_measurements_y{year}": sum(t.year == year for t in times) for year in range(2014, 2024)}
+        shots = catalogue.shots("spread")
+        assert shots["m.signal"].tolist() == list(np.arange(120.0))
+        assert [t.to_pydatetime() for t in shots["time"]] == times
+        # A busy day of a year held whole goes to the year's partition.
+        busy = write_table(tmp_path / "busy.parquet", shot_table({"busy": 1500}, start=dt.datetime(2016, 6, 1, 8, tzinfo=UTC), seed=2))
+        assert catalogue.ingest(busy)[0].status == "ingested"
+        assert _per_partition(engine, "shots")["shots_y2016"] == 12 + 1500
+        # A new year gets months as before, and keeps getting months even for a sparse file.
+        day = write_table(tmp_path / "day.parquet", shot_table({"day": 10}, start=dt.datetime(2025, 3, 2, tzinfo=UTC), seed=3))
+        late = write_table(tmp_path / "late.parquet", _at_times("late", [dt.datetime(2025, month, 9, tzinfo=UTC) for month in (5, 7, 9)], seed=4))
+        assert [r.status for r in catalogue.ingest([day, late])] == ["ingested", "ingested"]
+        assert {name for name in _shot_partitions(engine) if name.startswith("shots_y2025")} == {"shots_y2025m03", "shots_y2025m05", "shots_y2025m07", "shots_y2025m09"}
+        assert catalogue.counts()["shots"] == 120 + 1500 + 10 + 3
+        chosen = catalogue.select("m.signal >= 118")
+        assert chosen["m.signal"].tolist() == [118.0, 119.0]
+
+
+def test_year_and_month_partitions_export_the_same_bytes(pg_url, other_pg_url, tmp_path, monkeypatch):
+    # The same sparse file into a catalogue of year partitions, one of months (the rule
+    # switched off) and SQLite: every filter and export reads the same shots.
+    times = [dt.datetime(2015, 2, 10, 8, tzinfo=UTC) + dt.timedelta(days=40 * k, hours=k) for k in range(60)]
+    path = write_table(tmp_path / "sparse.parquet", _at_times("sparse", times, extra={"m.signal": np.arange(60.0) / 7}))
+    where = "time >= '2016-03-01T00:00' and time < '2019-01-01T00:00' and m.signal > 1"
+    exports = {}
+    for name, url in (("years", pg_url), ("months", other_pg_url), ("sqlite", f"sqlite:///{tmp_path / 'c.sqlite'}")):
+        if name == "months":
+            monkeypatch.setattr(partitions, "SPARSE_YEAR_MONTHS", 10**6)
+        with runlog.open(url) as catalogue:
+            assert catalogue.ingest(path)[0].status == "ingested"
+            if name != "sqlite":
+                found = set(_per_partition(catalogue.engine, "shots"))
+                assert all(len(partition) == len("shots_y2015") for partition in found) == (name == "years"), found
+            exports[name] = catalogue.export(where, tmp_path / name)
+            assert exports[name].shots == sum(dt.datetime(2016, 3, 1, tzinfo=UTC) <= t < dt.datetime(2019, 1, 1, tzinfo=UTC) and k / 7 > 1 for k, t in enumerate(times))
+        monkeypatch.undo()
+    assert exports["years"].data == exports["months"].data == exports["sqlite"].data
+    for file in exports["years"].data:
+        assert (tmp_path / "years" / file).read_bytes() == (tmp_path / "months" / file).read_bytes()
+
+
+def test_a_year_with_a_busy_month_keeps_its_months(pg_url, tmp_path):
+    busy = [dt.datetime(2019, 2, 1, tzinfo=UTC) + dt.timedelta(seconds=k) for k in range(SPARSE_MONTH_SHOTS)]
+    times = [dt.datetime(2019, 1, 10, tzinfo=UTC), *busy, dt.datetime(2019, 3, 10, tzinfo=UTC)]
+    path = write_table(tmp_path / "three.parquet", _at_times("three", times))
+    with runlog.open(pg_url) as catalogue:
+        assert catalogue.ingest(path)[0].status == "ingested"
+        assert _per_partition(catalogue.engine, "shots") == {"shots_y2019m01": 1, "shots_y2019m02": SPARSE_MONTH_SHOTS, "shots_y2019m03": 1}
+
+
+def test_months_inside_a_year_partition_are_not_made_again(pg_url):
+    engine = make_engine(pg_url)
+    try:
+        migrate.create_or_upgrade(engine)
+        with engine.begin() as connection:
+            made = ensure_partitions(connection, {dt.date(2017, m, 1): 2 for m in (2, 5, 11)})
+            assert made == [year_partition_name(table, 2017) for table in SHOT_TABLES]
+            # Counts not known (a monitor file, or a caller that does not say): months.
+            assert ensure_partitions(connection, {dt.date(2018, m, 1): None for m in (2, 5, 11)}) == [partition_name(t, dt.date(2018, m, 1)) for m in (2, 5, 11) for t in SHOT_TABLES]
+            assert ensure_months(connection, dt.date(2017, 1, 1), dt.date(2017, 12, 1)) == []
+            assert ensure_partitions(connection, {dt.date(2017, 4, 1): 5000}) == []
+        bounds = dict(_rows(engine, "SELECT c.relname, pg_get_expr(c.relpartbound, c.oid) FROM pg_class c WHERE c.relname = 'shots_y2017'"))
+        assert bounds["shots_y2017"] == "FOR VALUES FROM ('2017-01-01 00:00:00+00') TO ('2018-01-01 00:00:00+00')"
+    finally:
+        engine.dispose()
 
 
 # --- upgrade from 0003 ------------------------------------------------------------------------

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import datetime as dt
 import time
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +20,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.config import Mapping
 from runlog.errors import ContractError
-from runlog.ingest import IngestResult, _Catalogue, _log, _months, _times, _unchanged_since, commit_file, hash_file, record_refusal
+from runlog.ingest import IngestResult, _Catalogue, _log, _month_counts, _times, _unchanged_since, commit_file, hash_file, record_refusal
 from runlog.monitors.contract import MonitorSeries, read_monitor_table
 from runlog.monitors.rollups import store_rollups, summarise
 from runlog.store.bulk import Writer, open_writer
@@ -96,7 +97,10 @@ def ingest_monitor_file(engine: Engine, path: Path, mapping: Mapping | None = No
         before, sha, size = hash_file(path)
         tick = time.perf_counter()
         table = read_monitor_table(path, mapping, apparatus)
-        months = sorted(set().union(*(_months(s.time_us) for s in table.series)))
+        # Values per month: a sparse year gets one partition (runlog.store.partitions).
+        months: Counter[dt.date] = Counter()
+        for series in table.series:
+            months.update(_month_counts(series.time_us))
         read_s = time.perf_counter() - tick
         tick = time.perf_counter()
         writer = open_writer(engine, months, MONITOR_TABLES)

@@ -33,7 +33,7 @@ import datetime as dt
 import io
 import re
 import time
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Mapping
 from typing import Any, Protocol
 
 import numpy as np
@@ -44,7 +44,7 @@ from sqlalchemy.engine import Engine
 
 from runlog.store.engine import BUSY_TIMEOUT_MS, exclusive_bulk_writer, sqlite_path
 from runlog.store.failures import BusyError
-from runlog.store.partitions import SHOT_TABLES, ensure_months, missing_months
+from runlog.store.partitions import SHOT_TABLES, ensure_partitions, missing_months
 from runlog.store.schema import to_epoch_us
 
 __all__ = [
@@ -270,25 +270,26 @@ def _copy_text(data: pa.Table) -> pa.Table:
     return pa.table(columns, names=data.column_names)
 
 
-def _make_months(engine: Engine, months: Iterable[dt.date], tables: tuple[str, ...] = SHOT_TABLES) -> None:
-    """Create the missing month partitions, committed before the data transaction begins.
+def _make_months(engine: Engine, months: Iterable[dt.date] | Mapping[dt.date, int], tables: tuple[str, ...] = SHOT_TABLES) -> None:
+    """Create the missing partitions, committed before the data transaction begins.
 
-    Attaching a month blocks neither readers nor writers (runlog.store.partitions), so a new
-    month costs the dashboard nothing; under the writer lock, no other writer adds a
+    ``months`` are UTC months (first days), with the rows each will get when known (a
+    sparse year then gets one partition: :func:`runlog.store.partitions.ensure_partitions`).
+    Attaching a partition blocks neither readers nor writers (runlog.store.partitions), so
+    a new month costs the dashboard nothing; under the writer lock, no other writer adds a
     measurement column meanwhile.
     """
-    months = sorted(set(months))
-    if not months:
+    counts: dict[dt.date, int | None] = dict(months) if isinstance(months, Mapping) else {month: None for month in months}
+    if not counts:
         return
     with engine.connect() as connection:
-        missing = missing_months(connection, months, tables)
+        missing = missing_months(connection, counts, tables)
         connection.rollback()
     if not missing:
         return
 
     def make(connection) -> None:
-        for month in missing:
-            ensure_months(connection, month, month, tables)
+        ensure_partitions(connection, {month: counts[month] for month in missing}, tables)
 
     short_write(engine, make, what=f"making the month partitions {missing[0]:%Y-%m}..{missing[-1]:%Y-%m}", table=tables[0])
 
@@ -297,7 +298,7 @@ class _PostgresWriter:
     dialect = "postgresql"
     partitioned = True
 
-    def __init__(self, engine: Engine, months: Iterable[dt.date] = (), tables: tuple[str, ...] = SHOT_TABLES):
+    def __init__(self, engine: Engine, months: Iterable[dt.date] | Mapping[dt.date, int] = (), tables: tuple[str, ...] = SHOT_TABLES):
         _make_months(engine, months, tables)
         self._connection = engine.connect()
         self._transaction = self._connection.begin()
@@ -344,12 +345,13 @@ class _PostgresWriter:
             self._connection.close()
 
 
-def open_writer(engine: Engine, months: Iterable[dt.date] = (), tables: tuple[str, ...] = SHOT_TABLES) -> Writer:
+def open_writer(engine: Engine, months: Iterable[dt.date] | Mapping[dt.date, int] = (), tables: tuple[str, ...] = SHOT_TABLES) -> Writer:
     """A writer holding an open write transaction on the catalogue.
 
-    ``months`` (UTC calendar months, as dates) are those the rows to be written fall in;
-    on PostgreSQL the partitions of ``tables`` (the shot-level tables by default, or the
-    monitor values) for them are made first. Rows outside them cannot be written there.
+    ``months`` (UTC calendar months, as dates; a mapping gives the rows of each) are those
+    the rows to be written fall in; on PostgreSQL the partitions of ``tables`` (the
+    shot-level tables by default, or the monitor values) for them are made first. Rows
+    outside them cannot be written there.
     """
     if engine.dialect.name == "sqlite":
         return _SqliteWriter(engine)

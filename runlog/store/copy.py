@@ -20,6 +20,8 @@ shots (:mod:`runlog.store.partitions`; those not there before are dropped again)
 
 from __future__ import annotations
 
+from collections import Counter
+
 import datetime as dt
 import re
 from collections.abc import Callable, Iterator
@@ -36,7 +38,7 @@ from runlog.errors import RunlogError, SchemaVersionError, StoreError
 from runlog.store.arrow_reader import arrow_read, is_arrow
 from runlog.store.bulk import Writer, open_writer
 from runlog.store.engine import make_engine, redact, sqlite_path
-from runlog.store.partitions import PARTITIONED_TABLES, SHOT_TABLES
+from runlog.store.partitions import PARTITION_NAME, PARTITIONED_TABLES, SHOT_TABLES
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX, SCHEMA_REVISION, Base, UTCDateTime, measurement_column
 
 __all__ = ["CHUNK_ROWS", "Progress", "copy_catalogue"]
@@ -52,7 +54,7 @@ Progress = Callable[[str, int, int], None]
 _CHILDREN = frozenset(SHOT_TABLES[1:])
 _PARTITION_TIME = "time"
 _MEASUREMENT = re.compile(rf"{MEASUREMENT_COLUMN_PREFIX}(\d+)")
-_PARTITION = re.compile(rf"({'|'.join(PARTITIONED_TABLES)})_y\d{{4}}m\d{{2}}")
+_PARTITION = PARTITION_NAME
 
 
 @dataclass(frozen=True)
@@ -315,16 +317,17 @@ def _plans(reading: Connection, target_dialect: str) -> list[_TablePlan]:
     return plans
 
 
-def _months(reading: Connection) -> list[dt.date]:
-    """The UTC calendar months the source's shots and monitor values fall in."""
-    months: set[dt.date] = set()
+def _months(reading: Connection) -> dict[dt.date, int]:
+    """The UTC calendar months the source's shots and monitor values fall in, with their rows."""
+    months: Counter[dt.date] = Counter()
     for table in ("shots", "monitor_values"):
         if reading.dialect.name == "postgresql":
-            months.update(reading.exec_driver_sql(f"SELECT DISTINCT CAST(date_trunc('month', time AT TIME ZONE 'UTC') AS DATE) FROM {table}").scalars().all())
+            found = reading.exec_driver_sql(f"SELECT CAST(date_trunc('month', time AT TIME ZONE 'UTC') AS DATE), count(*) FROM {table} GROUP BY 1").all()
+            months.update({month: int(count) for month, count in found})
         else:
-            found = reading.exec_driver_sql(f"SELECT DISTINCT strftime('%Y-%m', time / 1000000, 'unixepoch') FROM {table}").scalars().all()
-            months.update(dt.date(int(month[:4]), int(month[5:7]), 1) for month in found)
-    return sorted(months)
+            found = reading.exec_driver_sql(f"SELECT strftime('%Y-%m', time / 1000000, 'unixepoch'), count(*) FROM {table} GROUP BY 1").all()
+            months.update({dt.date(int(month[:4]), int(month[5:7]), 1): int(count) for month, count in found})
+    return dict(sorted(months.items()))
 
 
 def _chunks(reading: Connection, plan: _TablePlan, size: int) -> Iterator[pa.Table]:
@@ -412,7 +415,7 @@ def _from_arrow(columns: list[_Column], batch: pa.RecordBatch) -> pa.Table:
 def _copy(reading: Connection, engine: Engine, target: _Target, progress: Progress | None) -> dict[str, int]:
     target.step = "reading the source"
     plans = _plans(reading, engine.dialect.name)
-    months = _months(reading) if engine.dialect.name == "postgresql" else []
+    months = _months(reading) if engine.dialect.name == "postgresql" else {}
     target.touched = True
     if target.blank:
         from runlog.store.migrate import create_or_upgrade

@@ -5,7 +5,6 @@ Alembic is imported only here, so that opening an up-to-date catalogue stays fas
 
 from __future__ import annotations
 
-import re
 from importlib import resources
 
 from sqlalchemy.engine import Engine
@@ -13,7 +12,7 @@ from sqlalchemy.engine import Engine
 from runlog.errors import SchemaVersionError, StoreError
 
 from runlog.store.measurement_columns import make_first_block
-from runlog.store.partitions import PARTITIONED_TABLES, SHOT_TABLES, partition_monitor_values, partition_shot_tables
+from runlog.store.partitions import PARTITION_NAME, SHOT_TABLES, partition_monitor_values, partition_shot_tables
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
 __all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
@@ -23,7 +22,7 @@ __all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "dow
 # models' SQLite layout: the children's partition key column, shots' unique key with the
 # partition key, no foreign keys from the children, and one table per month.
 _CHILDREN = frozenset(SHOT_TABLES[1:])
-_PARTITION = re.compile(rf"({'|'.join(PARTITIONED_TABLES)})_y\d{{4}}m\d{{2}}")
+_PARTITION = PARTITION_NAME
 
 
 def include_object(obj, name, type_, reflected, compare_to) -> bool:

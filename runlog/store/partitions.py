@@ -5,7 +5,17 @@ Owns the PostgreSQL layout of ``shots``, ``shot_parameters``, ``shot_measurement
 (``shots_y2026m03`` holds March 2026), so that the indexes of a catalogue of many years and
 apparatus stay the size of a month. Owned here: the conversion of the plain tables the
 models create into partitioned ones (a fresh catalogue, and migration 0004), its reverse,
-the partition names and bounds, and :func:`ensure_months`, which creates missing months.
+the partition names and bounds, and :func:`ensure_partitions`, which creates missing ones.
+
+Sparse years get one partition. A month's own partitions buy index locality for the shots
+of a busy month, and cost four tables each: a file whose shots fall in
+:data:`SPARSE_YEAR_MONTHS` or more months of a year that has no partition yet, none of them
+with :data:`SPARSE_MONTH_SHOTS` shots or more, makes one partition for the whole year
+(``shots_y2016``) instead. A lab's file (a run, a day) touches one month, two at a month's
+end; such a file is an archive of sparse records or a clock that jumped, and a 120-shot file
+with one shot a month over ten years makes 40 tables, not 480. Later shots of that year go
+to the year's partition, whatever their number; a year that already has months keeps
+getting months. Times outside the plausible window are refused before any partition is made.
 
 On PostgreSQL the children carry the shot's ``time`` (the partition key), every primary
 key ends with it, and ``shots``' unique (run, shot) becomes (run, shot, time); ingest refuses
@@ -29,7 +39,8 @@ DEFAULT partition: attaching a month would have to scan and lock it.
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Iterable
+import re
+from collections.abc import Iterable, Mapping
 
 from sqlalchemy import Column, Float, Integer, MetaData, String, Table, text
 from sqlalchemy.engine import Connection
@@ -44,10 +55,15 @@ __all__ = [
     "PARTITIONED_TABLES",
     "partition_monitor_values",
     "partition_name",
+    "year_partition_name",
+    "PARTITION_NAME",
+    "SPARSE_YEAR_MONTHS",
+    "SPARSE_MONTH_SHOTS",
     "month_start",
     "is_partitioned",
     "missing_months",
     "ensure_months",
+    "ensure_partitions",
     "partition_shot_tables",
     "unpartition_shot_tables",
 ]
@@ -72,6 +88,13 @@ MONITOR_TABLES = ("monitor_values",)
 PARTITIONED_TABLES = SHOT_TABLES + MONITOR_TABLES
 
 _KEY = "time"
+
+#: The name of a month's or a year's partition of a partitioned table.
+PARTITION_NAME = re.compile(rf"({'|'.join(PARTITIONED_TABLES)})_y\d{{4}}(m\d{{2}})?")
+#: A file's shots in this many months of a year without partitions, ...
+SPARSE_YEAR_MONTHS = 3
+#: ... each month with fewer shots than this, make one partition for the year.
+SPARSE_MONTH_SHOTS = 1_000
 
 # Each table's primary key on PostgreSQL: the SQLite key, then the partition key.
 _PRIMARY_KEYS = {
@@ -113,6 +136,22 @@ def partition_name(table: str, month: dt.date | dt.datetime) -> str:
     return f"{table}_y{month.year:04d}m{month.month:02d}"
 
 
+def year_partition_name(table: str, year: int) -> str:
+    """The partition of ``table`` that holds a whole sparse year, e.g. ``shots_y2016``."""
+    if table not in PARTITIONED_TABLES:
+        raise ValueError(f"'{table}' is not a shot-level or monitor table")
+    return f"{table}_y{int(year):04d}"
+
+
+def _covered(attached: set[str], table: str, month: dt.date) -> bool:
+    return partition_name(table, month) in attached or year_partition_name(table, month.year) in attached
+
+
+def _year_has_partitions(attached: set[str], table: str, year: int) -> bool:
+    prefix = f"{table}_y{int(year):04d}"
+    return any(name == prefix or (name.startswith(prefix + "m") and PARTITION_NAME.fullmatch(name)) for name in attached)
+
+
 def is_partitioned(connection: Connection) -> bool:
     """Whether ``shots`` is a partitioned table here (PostgreSQL at revision 0004 or later)."""
     if connection.dialect.name != "postgresql":
@@ -141,12 +180,13 @@ def missing_months(connection: Connection, months: Iterable[dt.date | dt.datetim
     """
     attached = _attached(connection, tables)
     wanted = sorted({month_start(month) for month in months})
-    return [month for month in wanted if any(partition_name(table, month) not in attached for table in tables)]
+    return [month for month in wanted if any(not _covered(attached, table, month) for table in tables)]
 
 
 def ensure_months(connection: Connection, first: dt.date | dt.datetime, last: dt.date | dt.datetime, tables: tuple[str, ...] = SHOT_TABLES) -> list[str]:
     """Create the missing month partitions of every shot-level table, ``first``..``last``
-    (whole UTC months, both included); returns the partitions created, in order.
+    (whole UTC months, both included; a month inside a year's partition is there already);
+    returns the partitions created, in order.
 
     Idempotent. Two sessions must not run it at once (both would create the same table):
     ingest calls it in a short transaction of its own under the writer lock (see
@@ -155,22 +195,55 @@ def ensure_months(connection: Connection, first: dt.date | dt.datetime, last: dt
     attached = _attached(connection, tables)
     created = []
     for month in _months(first, last):
-        low = dt.datetime(month.year, month.month, 1, tzinfo=dt.timezone.utc)
-        end = _next_month(month)
-        high = dt.datetime(end.year, end.month, 1, tzinfo=dt.timezone.utc)
         for table in tables:
-            name = partition_name(table, month)
-            if name in attached:
-                continue
-            # LIKE copies the columns (measurement columns included) and NOT NULLs; attaching
-            # adds the parent's keys, indexes and foreign keys to the new, empty table.
-            connection.exec_driver_sql(f"CREATE TABLE IF NOT EXISTS {name} (LIKE {table})")
-            connection.exec_driver_sql(
-                f"ALTER TABLE {table} ATTACH PARTITION {name} "
-                f"FOR VALUES FROM ('{low.isoformat(sep=' ')}') TO ('{high.isoformat(sep=' ')}')"
-            )
-            created.append(name)
+            if not _covered(attached, table, month):
+                created.append(_make(connection, table, partition_name(table, month), month, _next_month(month)))
     return created
+
+
+def ensure_partitions(connection: Connection, months: Mapping[dt.date, int | None], tables: tuple[str, ...] = SHOT_TABLES) -> list[str]:
+    """Create the partitions of ``tables`` that rows in ``months`` (UTC months, as their first
+    days, with how many rows each will get; None: not known) need; returns those created.
+
+    A year with no partition yet whose months here are :data:`SPARSE_YEAR_MONTHS` or more,
+    each with a known count under :data:`SPARSE_MONTH_SHOTS`, gets one partition for the
+    year; every other month its own. Idempotent, under the writer lock as :func:`ensure_months`.
+    """
+    attached = _attached(connection, tables)
+    counts: dict[dt.date, int | None] = {}
+    for month, count in months.items():
+        month = month_start(month)
+        known = counts.get(month, 0)
+        counts[month] = None if count is None or known is None else known + int(count)
+    created = []
+    years = sorted({month.year for month in counts})
+    for year in years:
+        wanted = sorted(month for month in counts if month.year == year and any(not _covered(attached, table, month) for table in tables))
+        if not wanted:
+            continue
+        sparse = len(wanted) >= SPARSE_YEAR_MONTHS and all(counts[month] is not None and counts[month] < SPARSE_MONTH_SHOTS for month in wanted)
+        if sparse and not any(_year_has_partitions(attached, table, year) for table in tables):
+            for table in tables:
+                created.append(_make(connection, table, year_partition_name(table, year), dt.date(year, 1, 1), dt.date(year + 1, 1, 1)))
+            continue
+        for month in wanted:
+            created += ensure_months(connection, month, month, tables)
+            attached = _attached(connection, tables)
+    return created
+
+
+def _make(connection: Connection, table: str, name: str, first: dt.date, end: dt.date) -> str:
+    """Create ``name`` as a plain table like ``table`` and attach it for [first, end) (UTC days)."""
+    low = dt.datetime(first.year, first.month, first.day, tzinfo=dt.timezone.utc)
+    high = dt.datetime(end.year, end.month, end.day, tzinfo=dt.timezone.utc)
+    # LIKE copies the columns (measurement columns included) and NOT NULLs; attaching
+    # adds the parent's keys, indexes and foreign keys to the new, empty table.
+    connection.exec_driver_sql(f"CREATE TABLE IF NOT EXISTS {name} (LIKE {table})")
+    connection.exec_driver_sql(
+        f"ALTER TABLE {table} ATTACH PARTITION {name} "
+        f"FOR VALUES FROM ('{low.isoformat(sep=' ')}') TO ('{high.isoformat(sep=' ')}')"
+    )
+    return name
 
 
 def _columns(connection: Connection, table: str) -> list[tuple[str, str, bool]]:
