@@ -13,11 +13,12 @@ the only reference:
 * west, T2*: a slow drift down of 0.6 daily standard errors a lab day from lab day 35,
   for 15 lab days (3 standard errors reached on lab day 40);
 * west, survival: a step down of 5 on lab day 50, with a run note on that day's first run;
-* north, Ramsey phase: a step of +5 on lab day 45 (across the wrap at +-pi), with an
-  operator note that morning.
+* north, Ramsey phase: a step of +5 on lab day 45, from a phase 0.03 rad above -pi whose
+  readings jump between -pi and +pi, with an operator note that morning.
 
 Checks: every step is flagged on its lab day or the next, the drift between its start
-and two lab days after it reaches 3 standard errors; the alarms no event explains stay
+and two lab days after it reaches 3 standard errors (flagged: an alarm on one of those
+days, or one of them out of control in an excursion whose alarm began earlier); the alarms no event explains stay
 within the stated budget (about one per apparatus-month across its quantities, counted
 over the judged lab days); for each event with a note, ``runlog drift ... --causes
 --json`` shows that note among the change's ``notes``, which come before its ``causes``.
