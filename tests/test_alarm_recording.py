@@ -65,3 +65,20 @@ def test_an_acknowledged_alarm_stays_acknowledged_when_found_again(catalogue, ma
     with catalogue.engine.begin() as connection:
         again = alarms.record(connection, _drift())
     assert [(a["id"], a["status"]) for a in again] == [(limit["id"], "open"), (change["id"], "acknowledged")]
+
+
+def test_a_mirrored_quantity_raises_no_alarm_of_its_own(catalogue, make_file):
+    """loss is 1 - survival of the same shots: its excursion is survival's, one event, so
+    only survival's findings become alarms (a second alarm would spend the budget twice)."""
+    from dataclasses import replace
+
+    catalogue.ingest(make_file(runs={"r1": 4}))
+    survival = replace(_drift(), quantity="survival")
+    loss = replace(survival, quantity="loss", points=[replace(p, value=1 - p.value, ci_low=1 - p.ci_high, ci_high=1 - p.ci_low) for p in survival.points])
+    with catalogue.engine.begin() as connection:
+        days = [(f["day"], f["reason"]) for f in alarms.findings(survival)]
+        assert [(f["day"], f["reason"]) for f in alarms.findings(loss)] == days  # one event seen twice
+        assert alarms.record(connection, loss) == []
+        recorded = alarms.record(connection, survival)
+    assert {a["quantity"] for a in catalogue.alarms(status=None)} == {"survival"}
+    assert len(recorded) == 2

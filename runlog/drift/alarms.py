@@ -9,6 +9,9 @@ false-alarm budget. Alarms are recorded once (the same finding found again is no
 duplicated, nor reopened once acknowledged); acknowledging one with a note turns the note
 into an annotation on that day, and acknowledging with *accept* starts a new baseline
 from the alarm's day (the new level is then the reference), recorded as a note too.
+A quantity that is the exact complement of another of the same shots (``loss`` is
+1 - ``survival``) raises no alarm of its own: its excursions are the other's, and counting
+them twice would spend the false-alarm budget twice on one event; its drift is still shown.
 Alarms are advisory: they do not replace the lab's interlocks or rules.
 """
 
@@ -26,10 +29,14 @@ from runlog.drift.series import Drift
 from runlog.errors import NotFoundError
 from runlog.store import schema as s
 
-__all__ = ["ALARM_KEY", "findings", "record", "list_alarms", "acknowledge"]
+__all__ = ["ALARM_KEY", "MIRRORED", "findings", "record", "list_alarms", "acknowledge"]
 
 #: The columns that identify one alarm: the same finding found again is the same alarm.
 ALARM_KEY = ("apparatus_id", "quantity", "sequence", "series_key", "day", "reason")
+
+#: Quantities that mirror another of the same shots exactly (value = 1 - other): the
+#: other's alarms are theirs.
+MIRRORED = {"loss": "survival"}
 
 
 def findings(drift: Drift) -> list[dict[str, object]]:
@@ -87,6 +94,8 @@ def record(connection: Connection, drift: Drift) -> list[dict[str, object]]:
     two processes recording the same drift at once both succeed and leave one alarm (a
     select-then-insert let both see "absent" and one fail on the key).
     """
+    if drift.quantity in MIRRORED:
+        return []
     apparatus_id = connection.execute(select(s.Apparatus.id).where(s.Apparatus.name == drift.apparatus)).scalar_one()
     now = dt.datetime.now(dt.timezone.utc)
     if connection.dialect.name == "postgresql":
