@@ -19,7 +19,7 @@ from runlog.drift.series import daily_points
 from runlog.figures.coherence import fit_envelope
 from runlog.figures.fringe import fit_fringe
 from runlog.store import schema as s
-from tests.conftest import run_main
+from conftest import run_main
 
 T0 = dt.datetime(2026, 3, 2, 9, 0, tzinfo=dt.timezone.utc)
 ATOMS = 200

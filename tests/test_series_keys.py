@@ -16,7 +16,7 @@ from sqlalchemy import select
 import runlog
 from runlog.drift import reference
 from runlog.store import schema as s
-from tests.conftest import shot_table
+from conftest import shot_table
 
 QUANTITIES = ("fill_fraction", "survival")
 

@@ -25,7 +25,7 @@ from scipy import stats
 from runlog.config import Mapping
 from runlog.errors import FilterError
 from runlog.figures.counting import fill_fraction
-from tests.conftest import write_table
+from conftest import write_table
 
 T0 = dt.datetime(2026, 5, 4, 8, 0, tzinfo=dt.timezone.utc)
 SITES = 100

@@ -16,7 +16,7 @@ import runlog
 from runlog import Figure
 from runlog.store import migrate
 from runlog.store import schema as s
-from tests.conftest import shot_table
+from conftest import shot_table
 
 
 def _ramsey_run(key: str, detuning: tuple[float, str] | None, seed: int) -> pa.Table:
