@@ -20,6 +20,9 @@ default takes 10-20 s). ``--calibrate`` (about a minute at ``--series 600``) rep
 rates for a range of two-day limits on a calibration seed of its own (never the
 benchmark's), which is how the default limit was chosen: the lowest limit whose false-alarm rate on the mixture stays
 below the budget, so that the strict detection rate is as high as the budget allows.
+``--quantities N`` measures an apparatus of N quantities at the two-day limit
+:mod:`runlog.drift.budget` gives it (the budget shared N ways), with the detection that
+limit still has.
 """
 
 from __future__ import annotations
@@ -32,9 +35,10 @@ from dataclasses import replace
 
 import numpy as np
 
+from runlog.drift.budget import thresholds_for
 from runlog.drift.detect import THRESHOLDS, judge
 
-QUANTITIES = 4  # fill fraction, survival, coherence time, contrast
+QUANTITIES = 4  # fill fraction, survival, coherence time, contrast (--quantities for more)
 SCATTERS = (0.0, 0.5, 1.0)  # day-to-day scatter beyond the errors, in daily standard errors
 CALIBRATION_SEED = 77  # the calibration's own seed; the benchmark's is --seed
 DAYS = 120
@@ -51,7 +55,7 @@ def stable_series(rng: np.random.Generator, days: int, tau_in_errors: float) -> 
     return values, errors
 
 
-def false_alarms(rng: np.random.Generator, series: int, thresholds=THRESHOLDS) -> dict[float | None, tuple[float, int, int]]:
+def false_alarms(rng: np.random.Generator, series: int, thresholds=THRESHOLDS, quantities: int = QUANTITIES) -> dict[float | None, tuple[float, int, int]]:
     """Per scatter (and None: all of them) the false alarms per apparatus-month, the count
     of alarms and of judged stable lab days."""
     counts = {tau: [0, 0] for tau in SCATTERS}
@@ -62,7 +66,7 @@ def false_alarms(rng: np.random.Generator, series: int, thresholds=THRESHOLDS) -
         counts[tau][0] += len(judgement.excursions())
         counts[tau][1] += int((~judgement.learning).sum())
     counts[None] = [sum(c[0] for c in counts.values()), sum(c[1] for c in counts.values())]
-    return {tau: (alarms / max(judged, 1) * 30 * QUANTITIES, alarms, judged) for tau, (alarms, judged) in counts.items()}
+    return {tau: (alarms / max(judged, 1) * 30 * quantities, alarms, judged) for tau, (alarms, judged) in counts.items()}
 
 
 def detection(rng: np.random.Generator, series: int, size: float = 3.0, thresholds=THRESHOLDS) -> tuple[int, int]:
@@ -77,9 +81,9 @@ def detection(rng: np.random.Generator, series: int, size: float = 3.0, threshol
     return next_day, two_after
 
 
-def poisson_interval(alarms: int, judged: int) -> tuple[float, float]:
+def poisson_interval(alarms: int, judged: int, quantities: int = QUANTITIES) -> tuple[float, float]:
     """95 % interval of a rate per apparatus-month (normal approximation to the count's root)."""
-    scale = 30 * QUANTITIES / max(judged, 1)
+    scale = 30 * quantities / max(judged, 1)
     return max(0.0, math.sqrt(alarms) - 0.98) ** 2 * scale, (math.sqrt(alarms) + 0.98) ** 2 * scale
 
 
@@ -91,13 +95,14 @@ def wilson(successes: int, trials: int) -> tuple[float, float]:
     return centre - half, centre + half
 
 
-def report(rng: np.random.Generator, series: int, thresholds=THRESHOLDS) -> tuple[float, float, float]:
-    """Print both rates of ``thresholds``; return (false alarms, strict, loose detection)."""
-    rates = false_alarms(rng, series, thresholds)
+def report(rng: np.random.Generator, series: int, thresholds=THRESHOLDS, quantities: int = QUANTITIES) -> tuple[float, float, float]:
+    """Print both rates of ``thresholds`` for an apparatus of ``quantities`` quantities;
+    return (false alarms, strict, loose detection)."""
+    rates = false_alarms(rng, series, thresholds, quantities)
     next_day, two_after = detection(rng, series, thresholds=thresholds)
     rate, alarms, judged = rates[None]
-    low, high = poisson_interval(alarms, judged)
-    print(f"false alarms: {rate:.2f} per apparatus-month ({QUANTITIES} quantities; {alarms} alarms in {judged} judged stable lab days; 95 % [{low:.2f}, {high:.2f}]); target <= about 1")
+    low, high = poisson_interval(alarms, judged, quantities)
+    print(f"false alarms: {rate:.2f} per apparatus-month ({quantities} quantities, two-day limit {thresholds.pair_limit:g}; {alarms} alarms in {judged} judged stable lab days; 95 % [{low:.2f}, {high:.2f}]); target <= about 1")
     for tau in SCATTERS:
         r, a, j = rates[tau]
         print(f"  with day-to-day scatter {tau:g} daily standard errors: {r:.2f} ({a} alarms in {j} days)")
@@ -112,6 +117,7 @@ def main() -> None:
     parser.add_argument("--series", type=int, default=1000, help="simulated series per rate")
     parser.add_argument("--seed", type=int, default=2026)
     parser.add_argument("--calibrate", action="store_true", help="both rates for a range of two-day limits, on the calibration seed")
+    parser.add_argument("--quantities", type=int, default=QUANTITIES, help="quantities of the apparatus sharing the budget (runlog.drift.budget raises the two-day limit above 4)")
     options = parser.parse_args()
     tick = time.perf_counter()
     if options.calibrate:
@@ -120,8 +126,9 @@ def main() -> None:
             report(np.random.default_rng(CALIBRATION_SEED), options.series, replace(THRESHOLDS, pair_limit=limit))
         print(f"({time.perf_counter() - tick:.1f} s)")
         return
-    print(f"thresholds: {THRESHOLDS.describe()}")
-    rate, strict, loose = report(np.random.default_rng(options.seed), options.series)
+    thresholds = thresholds_for(options.quantities)
+    print(f"thresholds: {thresholds.describe()}")
+    rate, strict, loose = report(np.random.default_rng(options.seed), options.series, thresholds, options.quantities)
     print(f"ratio to target: false alarms {rate / 1.0:.2f} x budget, detection {strict / 0.9:.3f} x target strict, {loose / 0.9:.3f} x loose ({time.perf_counter() - tick:.1f} s)")
 
 

@@ -10,8 +10,10 @@ duplicated, nor reopened once acknowledged); acknowledging one with a note turns
 into an annotation on that day, and acknowledging with *accept* starts a new baseline
 from the alarm's day (the new level is then the reference), recorded as a note too.
 A quantity that is the exact complement of another of the same shots (``loss`` is
-1 - ``survival``) raises no alarm of its own: its excursions are the other's, and counting
-them twice would spend the false-alarm budget twice on one event; its drift is still shown.
+1 - ``survival``, :data:`runlog.drift.budget.MIRRORED`) raises no alarm of its own: its
+excursions are the other's, and counting them twice would spend the false-alarm budget
+twice on one event; its drift is still shown. The quantities of an apparatus share its
+budget (:mod:`runlog.drift.budget`).
 Alarms are advisory: they do not replace the lab's interlocks or rules.
 """
 
@@ -25,6 +27,7 @@ from zoneinfo import ZoneInfo
 from sqlalchemy import and_, select, update
 from sqlalchemy.engine import Connection
 
+from runlog.drift.budget import MIRRORED
 from runlog.drift.series import Drift
 from runlog.errors import NotFoundError
 from runlog.store import schema as s
@@ -34,9 +37,6 @@ __all__ = ["ALARM_KEY", "MIRRORED", "findings", "record", "list_alarms", "acknow
 #: The columns that identify one alarm: the same finding found again is the same alarm.
 ALARM_KEY = ("apparatus_id", "quantity", "sequence", "series_key", "day", "reason")
 
-#: Quantities that mirror another of the same shots exactly (value = 1 - other): the
-#: other's alarms are theirs.
-MIRRORED = {"loss": "survival"}
 
 
 def findings(drift: Drift) -> list[dict[str, object]]:

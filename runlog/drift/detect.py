@@ -58,7 +58,8 @@ the start or an accepted level only build the baseline.
 The thresholds are calibrated by simulation (``benchmarks/alarms.py --calibrate``,
 docs/drift.md) to a budget of about one false alarm per apparatus per month across four
 quantities, while a step of 3 daily standard errors is flagged on its lab day or the next
-in at least 90 % of cases.
+in at least 90 % of cases; an apparatus judging more quantities shares the same budget
+among them (:mod:`runlog.drift.budget`).
 """
 
 from __future__ import annotations

@@ -33,6 +33,7 @@ import numpy as np
 from sqlalchemy import and_, exists, or_, select
 from sqlalchemy.engine import Connection
 
+from runlog.drift.budget import judged_quantities, thresholds_for
 from runlog.drift.changepoints import default_penalty, pelt
 from runlog.drift.detect import THRESHOLDS, Thresholds, judge
 from runlog.errors import NotFoundError
@@ -354,7 +355,11 @@ def drift_of(connection: Connection, quantity: str, *, apparatus: str | None = N
         result.limits = {"note": "fewer than 3 days with data: no limits or changes"}
         return result
     accepted = _accepted_days(connection, apparatus_id, quantity, key)
+    # The apparatus' quantities share one false-alarm budget (runlog.drift.budget).
+    sharing = judged_quantities(connection, apparatus_id, thresholds)
+    thresholds = thresholds_for(len(sharing), thresholds)
     limits, judgement = _limits(points, accepted, thresholds, baseline, period)
+    limits["budget_shared_by"] = sharing
     result.limits = limits
     result.z = [None if not np.isfinite(v) else float(v) for v in judgement.z]
     result.out_of_limits = [int(i) for i in np.flatnonzero(judgement.out)]
