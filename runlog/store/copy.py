@@ -140,14 +140,14 @@ def copy_catalogue(source_url: str, target_url: str, *, progress: Progress | Non
 def _backend(url: str) -> str:
     try:
         return make_url(url).get_backend_name()
-    except ArgumentError:
+    except (ArgumentError, ValueError):
         return ""  # make_engine says why
 
 
 def _sqlite_file(url: str) -> Path | None:
     try:
         path = sqlite_path(url)
-    except ArgumentError:
+    except (ArgumentError, ValueError):
         return None
     return None if path is None else path.resolve()
 
@@ -158,7 +158,7 @@ def _same_store(source_url: str, target_url: str) -> bool:
         return source_file == target_file
     try:
         a, b = make_url(source_url), make_url(target_url)
-    except ArgumentError:
+    except (ArgumentError, ValueError):
         return False
 
     def place(url: URL) -> tuple:
