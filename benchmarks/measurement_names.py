@@ -9,9 +9,11 @@ in the first block of measurement columns (runlog.store.measurement_columns), th
 name that opens the next block, then a block's worth of names in one file.
 
 Named peers, same run, same databases, per name: the same step making one column for each
-name (the design before revision 0015), a bare ``ALTER TABLE shot_measurements ADD
-COLUMN`` in a transaction of its own on the partitioned table, and the same on an
-unpartitioned table of as many rows. Also
+name (the design before revision 0015); the name that opens a block with
+``shot_measurements`` partitioned by month as before revision 0017 (the table is put back
+so by 0017's downgrade, at the end of each scenario); a bare ``ALTER TABLE
+shot_measurements ADD COLUMN`` in a transaction of its own on the plain table (0017) and on
+the partitioned one, and the same on an unpartitioned table of as many rows. Also
 printed: how many partition tables a 120-shot file spread over ten years creates, and, as
 its peer in the same run, how many a partition for every month makes. Run:
 
@@ -44,7 +46,16 @@ from runlog.ingest import _add_measurements  # noqa: E402
 from runlog.store import measurement_columns, partitions  # noqa: E402
 from runlog.store.measurement_columns import BLOCK, present_columns  # noqa: E402
 
-WHAT = ("within a block", "opening a block", "all names of a block in one file", "peer: a column per name (before 0015)", "peer: ALTER partitioned", "peer: ALTER unpartitioned")
+WHAT = (
+    "within a block",
+    "opening a block",
+    "all names of a block in one file",
+    "peer: a column per name (before 0015)",
+    "peer: opening a block, partitioned (before 0017)",
+    "peer: ALTER plain shot_measurements",
+    "peer: ALTER partitioned",
+    "peer: ALTER unpartitioned",
+)
 START = dt.datetime(2014, 1, 15, 12, 0, tzinfo=dt.timezone.utc)
 
 
@@ -141,8 +152,16 @@ def scenario(url: str, folder: Path, months: int) -> dict[str, float]:
             found["peer: a column per name (before 0015)"] = time_names(engine, names_in_files(folder, f"one{months}", within, 1)) / within
         finally:
             measurement_columns.BLOCK = BLOCK
-        found["peer: ALTER partitioned"] = time_peer(engine, "shot_measurements", "peer", within) / within
+        found["peer: ALTER plain shot_measurements"] = time_peer(engine, "shot_measurements", "peer", within) / within
         found["peer: ALTER unpartitioned"] = time_peer(engine, "peer_plain", "peer", within) / within
+        # The layout before revision 0017: shot_measurements partitioned like the shots
+        # again (0017's downgrade), and the next name opening a block there.
+        with engine.begin() as connection:
+            partitions.measurements_into_partitions(connection)
+            top = max(present_columns(connection))
+            connection.execute(text("SELECT setval(pg_get_serial_sequence('measurements', 'id'), :k)"), {"k": -(-top // BLOCK) * BLOCK})
+        found["peer: opening a block, partitioned (before 0017)"] = time_names(engine, names_in_files(folder, f"old{months}", 1, 1))
+        found["peer: ALTER partitioned"] = time_peer(engine, "shot_measurements", "peerp", within) / within
     return found
 
 
@@ -181,6 +200,7 @@ def main() -> None:
                     f"  ratio to a column per name (before 0015): within a block {median['within a block'] / before:.2f}, "
                     f"opening a block {median['opening a block'] / before:.1f}, over a whole block {amortised / before:.2f}"
                 )
+                print(f"  ratio opening a block, plain table / partitioned (before 0017): {median['opening a block'] / median['peer: opening a block, partitioned (before 0017)']:.3f}")
     finally:
         fresh(None)
 

@@ -904,12 +904,12 @@ class _Compiler:
         values = self.numbers(node, measurement.unit, f" (stored in '{measurement.unit}')" if measurement.unit else "")
         # The wide table's columns are data, not schema: describe just the one we need,
         # named from the measurement's integer id.
-        time = [Column("time", s.UTCDateTime)] if self.names.partitioned else []
-        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *time, Column(s.measurement_column(measurement.id), Float))
+        # One plain table keyed by shot id on both backends (revision 0017): a probe by id.
+        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), Column(s.measurement_column(measurement.id), Float))
         column = wide.c[s.measurement_column(measurement.id)]
         carried = s.RunMeasurement.__table__
         prune = _runs.c.id.in_(select(carried.c.run_id).where(carried.c.measurement_id == measurement.id))
-        exact = exists().where(and_(self.same_shot(wide), _compare(column, node.operator, values))).correlate(_shots)
+        exact = exists().where(and_(wide.c.shot_id == _shots.c.id, _compare(column, node.operator, values))).correlate(_shots)
         return CompiledFilter(prune, exact)
 
     def figure(self, node: Comparison, name: str) -> CompiledFilter:

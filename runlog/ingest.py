@@ -1039,9 +1039,8 @@ def _append_measurements(writer, batch, shot_ids, columns, ids) -> None:
     if not present.any():
         return
     keep = None if present.all() else present
+    # One plain table keyed by shot id on both backends (revision 0017): no time here.
     table = {"shot_id": shot_ids if keep is None else shot_ids[keep]}
-    if writer.partitioned:
-        table["time"] = _times(batch.time_us if keep is None else batch.time_us[keep])
     for name, (values, missing) in data.items():
         if keep is not None:
             values, missing = values[keep], missing[keep]

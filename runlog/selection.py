@@ -309,9 +309,9 @@ def _select(connection: Connection, compiled: CompiledFilter, where: str | None,
         source = source.outerjoin(alias, and_(same_shot(alias), alias.c.parameter_id == column.id))
         value_columns.append(alias.c.text_value if column.kind == "text" else alias.c.number_value)
     if measurements:
-        time_column = [Column("time", s.UTCDateTime)] if months else []
-        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *time_column, *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
-        source = source.outerjoin(wide, same_shot(wide))
+        # One plain table keyed by shot id on both backends (revision 0017).
+        wide = Table("shot_measurements", MetaData(), Column("shot_id", s.BigId), *[Column(s.measurement_column(mid), Float) for _, mid, _ in measurements])
+        source = source.outerjoin(wide, wide.c.shot_id == _shots.c.id)
         value_columns += [wide.c[s.measurement_column(mid)] for _, mid, _ in measurements]
     # Each monitor as of the shot's time: one probe per shot and apparatus that logs it,
     # only for the shots of that apparatus's runs.

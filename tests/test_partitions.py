@@ -68,7 +68,7 @@ def test_partition_names_follow_the_utc_calendar_month():
 # --- PostgreSQL layout ---------------------------------------------------------------------
 
 
-def test_the_four_shot_tables_are_partitioned_by_range_of_time(pg_url):
+def test_three_shot_tables_are_partitioned_by_range_of_time_and_measurements_are_one_table(pg_url):
     with runlog.open(pg_url) as catalogue:
         rows = _rows(
             catalogue.engine,
@@ -78,14 +78,18 @@ def test_the_four_shot_tables_are_partitioned_by_range_of_time(pg_url):
         )
         # The monitors' raw values are partitioned by their own time too (runlog.monitors).
         assert sorted(rows) == sorted((table, "r", "time") for table in (*SHOT_TABLES, "monitor_values"))
-        keys = dict(_rows(catalogue.engine, "SELECT conrelid::regclass::text, pg_get_constraintdef(oid) FROM pg_constraint WHERE contype = 'p' AND conrelid::regclass::text = ANY(:t)", t=list(SHOT_TABLES)))
+        tables = [*SHOT_TABLES, "shot_measurements"]
+        keys = dict(_rows(catalogue.engine, "SELECT conrelid::regclass::text, pg_get_constraintdef(oid) FROM pg_constraint WHERE contype = 'p' AND conrelid::regclass::text = ANY(:t)", t=tables))
         assert keys == {
             "shots": 'PRIMARY KEY (id, "time")',
             "shot_parameters": 'PRIMARY KEY (shot_id, parameter_id, "time")',
-            "shot_measurements": 'PRIMARY KEY (shot_id, "time")',
+            "shot_measurements": "PRIMARY KEY (shot_id)",
             "occupancy": 'PRIMARY KEY (shot_id, image_id, "time")',
         }
-        foreign = _rows(catalogue.engine, "SELECT conrelid::regclass::text, pg_get_constraintdef(oid) FROM pg_constraint WHERE contype = 'f' AND conrelid::regclass::text = ANY(:t)", t=list(SHOT_TABLES))
+        # shot_measurements: a plain table ('r'), no time of its own (revision 0017).
+        assert _rows(catalogue.engine, "SELECT relkind FROM pg_class WHERE oid = 'shot_measurements'::regclass") == [("r",)]
+        assert _rows(catalogue.engine, "SELECT count(*) FROM pg_attribute WHERE attrelid = 'shot_measurements'::regclass AND attname = 'time'") == [(0,)]
+        foreign = _rows(catalogue.engine, "SELECT conrelid::regclass::text, pg_get_constraintdef(oid) FROM pg_constraint WHERE contype = 'f' AND conrelid::regclass::text = ANY(:t)", t=tables)
         assert foreign == [("shots", "FOREIGN KEY (run_id) REFERENCES runs(id) ON DELETE CASCADE")]
         # A fresh catalogue has no month yet, and never a DEFAULT partition.
         assert _rows(catalogue.engine, "SELECT count(*) FROM pg_inherits")[0][0] == 0
@@ -179,7 +183,8 @@ def test_a_sparse_file_over_ten_years_makes_one_partition_a_year(pg_url, tmp_pat
         engine = catalogue.engine
         assert _shot_partitions(engine) == sorted(year_partition_name(table, year) for table in SHOT_TABLES for year in range(2014, 2024))
         assert _per_partition(engine, "shots") == {f"shots_y{year}": sum(t.year == year for t in times) for year in range(2014, 2024)}
-        assert _per_partition(engine, "shot_measurements") == {f"shot_measurements_y{year}": sum(t.year == year for t in times) for year in range(2014, 2024)}
+        # Three tables a year, not four: the measured values are one plain table (revision 0017).
+        assert _per_partition(engine, "shot_measurements") == {"shot_measurements": 120}
         shots = catalogue.shots("spread")
         assert shots["m.signal"].tolist() == list(np.arange(120.0))
         assert [t.to_pydatetime() for t in shots["time"]] == times
@@ -255,7 +260,7 @@ def _snapshot(engine) -> dict[str, list[tuple]]:
     out = {}
     with engine.connect() as connection:
         named = {f"m_{mid}" for (mid,) in connection.execute(text("SELECT id FROM measurements"))}
-        for name in SHOT_TABLES:
+        for name in (*SHOT_TABLES, "shot_measurements"):
             columns = [c["name"] for c in inspect(connection).get_columns(name) if not (c["name"] == "time" and name != "shots") and not (c["name"].startswith("m_") and c["name"] not in named)]
             listed = ", ".join(f'"{c}"' for c in sorted(columns))
             keys = {"shots": "id", "shot_parameters": "shot_id, parameter_id", "shot_measurements": "shot_id", "occupancy": "shot_id, image_id"}[name]
@@ -286,7 +291,7 @@ def test_upgrade_from_0003_keeps_every_row_and_value(pg_url, tmp_path):
     assert _snapshot(engine) == before
     expected = _months_of(files[0]) + _months_of(files[1])
     assert _per_partition(engine, "shots") == dict(expected)
-    assert _per_partition(engine, "shot_measurements") == {f"shot_measurements_{k[6:]}": v for k, v in expected.items()}
+    assert _per_partition(engine, "shot_measurements") == {"shot_measurements": 90}
     assert _rows(engine, "SELECT count(*) FROM shot_parameters c JOIN shots s ON s.id = c.shot_id AND s.time = c.time")[0][0] == 150
     engine.dispose()
     with runlog.open(pg_url) as catalogue:

@@ -150,3 +150,55 @@ def test_a_writer_that_waits_too_long_is_refused_as_busy(catalogue, tmp_path, mo
         holder.close()
     assert result.status == "refused" and result.cause == "busy" and "\n" not in result.reason
     assert "lock timeout" in result.reason
+
+
+def _partition_rows(engine) -> dict[str, int]:
+    """Each partition's catalogue row version (pg_class.xmin): any DDL on it changes it."""
+    with engine.connect() as connection:
+        return dict(connection.execute(text("SELECT relname, xmin::text::bigint FROM pg_class WHERE relispartition")).all())
+
+
+def test_a_new_block_of_measurement_columns_changes_no_partition_and_waits_for_no_reader_of_a_months_shots(catalogue, db_url, tmp_path, monkeypatch):
+    # Two years of months; then a reader sits idle in a transaction that has read one
+    # month's shots, per-shot parameters and occupancy. The file's 64 new names open the
+    # second block of measurement columns on PostgreSQL: since revision 0017 that is one
+    # change of the one plain shot_measurements table, and no month partition is touched.
+    # (A reader of measured values still holds that table: the first test of this file.)
+    monkeypatch.setattr(bulk, "DDL_LOCK_TIMEOUT_S", 1)  # a wait would be refused, not hidden
+    import datetime as dt
+
+    months = [dt.datetime(2024 + k // 12, k % 12 + 1, 10, 8, tzinfo=dt.timezone.utc) for k in range(24)]
+    files = [write_table(tmp_path / f"month{k:02d}.parquet", shot_table({f"r{k:02d}": 3}, start=start, seed=k)) for k, start in enumerate(months)]
+    assert [r.status for r in catalogue.ingest(files)] == ["ingested"] * len(files)
+    postgres = catalogue.engine.dialect.name == "postgresql"
+    if postgres:
+        with catalogue.engine.connect() as connection:
+            assert connection.execute(text("SELECT count(*) FROM pg_inherits WHERE inhparent = 'shots'::regclass")).scalar_one() == len(months)
+            assert connection.execute(text("SELECT count(*) FROM pg_inherits WHERE inhparent = 'shot_measurements'::regclass")).scalar_one() == 0
+    reader_engine = create_engine(_reader_url(catalogue, db_url)) if postgres else create_engine(db_url)
+    if postgres:
+        before = _partition_rows(catalogue.engine)  # after the grant, which changes every table's row
+    reader = reader_engine.connect()
+    names = write_table(tmp_path / "names.parquet", shot_table({"names": 4}, start=months[5] + dt.timedelta(hours=2), extra={f"m.signal_{k:02d}": np.full(4, float(k)) for k in range(64)}))
+    try:
+        span = {"a": months[5].replace(day=1, hour=0), "b": months[6].replace(day=1, hour=0)}
+        reader.execute(text("SELECT count(*) FROM shots WHERE time >= :a AND time < :b"), span).all()
+        reader.execute(text("SELECT count(*) FROM shot_parameters WHERE time >= :a AND time < :b" if postgres else "SELECT count(*) FROM shot_parameters"), span).all()
+        reader.execute(text("SELECT count(*) FROM occupancy WHERE time >= :a AND time < :b" if postgres else "SELECT count(*) FROM occupancy"), span).all()
+        thread, outcome = _ingest_in_background(catalogue, names)
+        thread.join(BOUND_S)
+        assert not thread.is_alive(), f"ingest still waiting after {BOUND_S} s"
+        assert "error" not in outcome, outcome.get("error")
+        [result] = outcome["results"]
+        assert result.status == "ingested", result.reason
+    finally:
+        reader.rollback()
+        reader.close()
+        reader_engine.dispose()
+    if postgres:
+        with catalogue.engine.connect() as connection:
+            made = {name for (name,) in connection.execute(text("SELECT attname FROM pg_attribute WHERE attrelid = 'shot_measurements'::regclass AND attname LIKE 'm\\_%'"))}
+        assert made == {f"m_{k}" for k in range(1, 129)}  # the second block is there
+        # No DDL on any partition: every partition's catalogue row is the one it was.
+        assert _partition_rows(catalogue.engine) == before
+    assert catalogue.shots("names")["m.signal_63"].tolist() == [63.0] * 4

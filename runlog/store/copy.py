@@ -51,6 +51,8 @@ _VALUES_PER_CHUNK = 1_000_000
 #: Called after each chunk with (table, rows copied so far, rows of the table).
 Progress = Callable[[str, int, int], None]
 
+# The partitioned children, which carry their shot's time on PostgreSQL (not
+# ``shot_measurements``: one plain table keyed by shot id since revision 0017).
 _CHILDREN = frozenset(SHOT_TABLES[1:])
 _PARTITION_TIME = "time"
 _MEASUREMENT = re.compile(rf"{MEASUREMENT_COLUMN_PREFIX}(\d+)")
@@ -439,7 +441,7 @@ def _copy(reading: Connection, engine: Engine, target: _Target, progress: Progre
                 raise StoreError(f"the copy of {plan.name} does not add up: {plan.rows} rows in the source, {copied[plan.name]} read, {found} in the target; nothing was copied")
         if writer.dialect == "postgresql":
             # Autovacuum analyses the partitions, never a partitioned parent.
-            writer.execute(f"ANALYZE {', '.join(PARTITIONED_TABLES)}")
+            writer.execute(f"ANALYZE {', '.join((*PARTITIONED_TABLES, 'shot_measurements'))}")
         target.step = "committing"
         writer.commit()
         target.committed = True
@@ -469,7 +471,7 @@ def _add_measurement_columns(writer: Writer, plan: _TablePlan) -> None:
         real = "DOUBLE PRECISION"
     missing = [measurement_column(int(found.group(1))) for column in plan.columns if (found := _MEASUREMENT.fullmatch(column.name)) and column.name not in present]
     if missing and writer.dialect == "postgresql":
-        # One statement: a partitioned table changes each month once, not once per column.
+        # One statement: one change of the table, not one per column.
         writer.execute("ALTER TABLE shot_measurements " + ", ".join(f"ADD COLUMN {name} {real}" for name in missing))
         return
     for name in missing:

@@ -12,7 +12,7 @@ from sqlalchemy.engine import Engine
 from runlog.errors import SchemaVersionError, StoreError
 
 from runlog.store.measurement_columns import make_first_block
-from runlog.store.partitions import PARTITION_NAME, SHOT_TABLES, partition_monitor_values, partition_shot_tables
+from runlog.store.partitions import PARTITION_NAME, SHOT_TABLES, measurements_out_of_partitions, partition_monitor_values, partition_shot_tables
 from runlog.store.schema import MEASUREMENT_COLUMN_PREFIX
 
 __all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "downgrade", "head_revision", "include_object", "create_or_upgrade"]
@@ -21,7 +21,9 @@ __all__ = ["alembic_config", "upgrade", "check_history", "known_revisions", "dow
 # What the PostgreSQL partitioned layout (runlog.store.partitions) has instead of the
 # models' SQLite layout: the children's partition key column, shots' unique key with the
 # partition key, no foreign keys from the children, and one table per month.
-_CHILDREN = frozenset(SHOT_TABLES[1:])
+# ``shot_measurements`` is one of them before revision 0017 (with a time) and has no
+# foreign key since (shots' key holds its time there).
+_CHILDREN = frozenset((*SHOT_TABLES[1:], "shot_measurements"))
 _PARTITION = PARTITION_NAME
 
 
@@ -196,8 +198,9 @@ def create_or_upgrade(engine: Engine) -> None:
     """Bring the catalogue to head: an empty database is created from the models and
     stamped (Alembic's recipe for building a database from scratch, no scripts to run),
     any other is upgraded through the migration history. On PostgreSQL the shot-level
-    tables are then partitioned by month by the same code migration 0004 runs, and the
-    first block of measurement columns is made, as migration 0015 does.
+    tables are then partitioned by month by the same code migration 0004 runs,
+    ``shot_measurements`` is taken out again as migration 0017 does, and the first block of
+    measurement columns is made, as migration 0015 does.
 
     ``tests/test_migrations.py`` keeps the two paths equal: models match migrations.
     """
@@ -210,6 +213,7 @@ def create_or_upgrade(engine: Engine) -> None:
             if not inspect(connection).get_table_names():
                 Base.metadata.create_all(connection)
                 partition_shot_tables(connection)
+                measurements_out_of_partitions(connection)
                 partition_monitor_values(connection)
                 make_first_block(connection)
                 # The same version table Alembic itself would create.

@@ -1,26 +1,31 @@
 """Monthly partitions of the shot-level tables on PostgreSQL.
 
-Owns the PostgreSQL layout of ``shots``, ``shot_parameters``, ``shot_measurements`` and
-``occupancy``: each is PARTITIONED BY RANGE (time), one partition per UTC calendar month
-(``shots_y2026m03`` holds March 2026), so that the indexes of a catalogue of many years and
-apparatus stay the size of a month. Owned here: the conversion of the plain tables the
-models create into partitioned ones (a fresh catalogue, and migration 0004), its reverse,
-the partition names and bounds, and :func:`ensure_partitions`, which creates missing ones.
+Owns the PostgreSQL layout of ``shots``, ``shot_parameters`` and ``occupancy``: each is
+PARTITIONED BY RANGE (time), one partition per UTC calendar month (``shots_y2026m03`` holds
+March 2026), so that the indexes of a catalogue of many years and apparatus stay the size
+of a month. Owned here: the conversion of the plain tables the models create into
+partitioned ones (a fresh catalogue, and migration 0004), its reverse, the partition names
+and bounds, and :func:`ensure_partitions`, which creates missing ones.
+
+``shot_measurements`` was partitioned alike from revision 0004 to 0016; since 0017 it is
+one plain table keyed by shot id (:func:`measurements_out_of_partitions`), because a
+partitioned table's columns are every partition's and a new measurement column then
+changed every month. Its rows carry no time.
 
 Sparse years get one partition. A month's own partitions buy index locality for the shots
-of a busy month, and cost four tables each: a file whose shots fall in
+of a busy month, and cost three tables each: a file whose shots fall in
 :data:`SPARSE_YEAR_MONTHS` or more months of a year that has no partition yet, none of them
 with :data:`SPARSE_MONTH_SHOTS` shots or more, makes one partition for the whole year
 (``shots_y2016``) instead. A lab's file (a run, a day) touches one month, two at a month's
 end; such a file is an archive of sparse records or a clock that jumped, and a 120-shot file
-with one shot a month over ten years makes 40 tables, not 480. Later shots of that year go
+with one shot a month over ten years makes 30 tables, not 360. Later shots of that year go
 to the year's partition, whatever their number; a year that already has months keeps
 getting months. Times outside the plausible window are refused before any partition is made.
 
 On PostgreSQL the children carry the shot's ``time`` (the partition key), every primary
 key ends with it, and ``shots``' unique (run, shot) becomes (run, shot, time); ingest refuses
 a shot index already in the catalogue by query, so that one stays unique per run. The
-children have no foreign keys there (to shots, parameters or images): their rows are
+children (and ``shot_measurements``) have no foreign keys there (to shots, parameters or images): their rows are
 written by ingest alone, with ids it has just read or allocated under the writer lock,
 and the per-row trigger checks cost more than the rows themselves (docs/architecture.md).
 ``shots.run_id`` keeps its key to ``runs``. The models in :mod:`runlog.store.schema` stay
@@ -66,6 +71,8 @@ __all__ = [
     "ensure_partitions",
     "partition_shot_tables",
     "unpartition_shot_tables",
+    "measurements_out_of_partitions",
+    "measurements_into_partitions",
 ]
 
 #: ``shot_parameters`` as PostgreSQL holds it, with its shot's time (the partition key),
@@ -80,17 +87,24 @@ SHOT_PARAMETERS_WITH_TIME = Table(
     Column("time", UTCDateTime),
 )
 
-#: The shot-level tables, parent first; partitioned alike, month by month.
-SHOT_TABLES = ("shots", "shot_parameters", "shot_measurements", "occupancy")
+#: The partitioned shot-level tables, parent first; partitioned alike, month by month.
+#: ``shot_measurements`` is a plain table keyed by shot id since revision 0017.
+SHOT_TABLES = ("shots", "shot_parameters", "occupancy")
 #: The monitors' raw values (runlog.monitors), partitioned by month of their own time; its
 #: key (monitor_id, time) already holds the partition key, so the layout equals the model's.
 MONITOR_TABLES = ("monitor_values",)
 PARTITIONED_TABLES = SHOT_TABLES + MONITOR_TABLES
+#: The tables revision 0004 partitions: ``shot_measurements`` too, until revision 0017
+#: takes it out again (:func:`measurements_out_of_partitions`).
+_REVISION_0004_TABLES = ("shots", "shot_parameters", "shot_measurements", "occupancy")
+_NAMED = _REVISION_0004_TABLES + MONITOR_TABLES
+_MEASUREMENTS = "shot_measurements"
 
 _KEY = "time"
 
-#: The name of a month's or a year's partition of a partitioned table.
-PARTITION_NAME = re.compile(rf"({'|'.join(PARTITIONED_TABLES)})_y\d{{4}}(m\d{{2}})?")
+#: The name of a month's or a year's partition of a partitioned table (or of
+#: ``shot_measurements`` in a catalogue before revision 0017).
+PARTITION_NAME = re.compile(rf"({'|'.join(_NAMED)})_y\d{{4}}(m\d{{2}})?")
 #: A file's shots in this many months of a year without partitions, ...
 SPARSE_YEAR_MONTHS = 3
 #: ... each month with fewer shots than this, make one partition for the year.
@@ -130,16 +144,16 @@ def _months(first: dt.date | dt.datetime, last: dt.date | dt.datetime) -> list[d
 
 def partition_name(table: str, month: dt.date | dt.datetime) -> str:
     """The partition of ``table`` that holds ``month``, e.g. ``shots_y2026m03``."""
-    if table not in PARTITIONED_TABLES:
-        raise ValueError(f"'{table}' is not a shot-level or monitor table")
+    if table not in _NAMED:
+        raise ValueError(f"'{table}' is not a partitioned shot-level or monitor table")
     month = month_start(month)
     return f"{table}_y{month.year:04d}m{month.month:02d}"
 
 
 def year_partition_name(table: str, year: int) -> str:
     """The partition of ``table`` that holds a whole sparse year, e.g. ``shots_y2016``."""
-    if table not in PARTITIONED_TABLES:
-        raise ValueError(f"'{table}' is not a shot-level or monitor table")
+    if table not in _NAMED:
+        raise ValueError(f"'{table}' is not a partitioned shot-level or monitor table")
     return f"{table}_y{int(year):04d}"
 
 
@@ -292,18 +306,19 @@ def partition_shot_tables(connection: Connection) -> dict[str, int]:
     (measurement columns included); returns the rows moved per table.
 
     Runs inside the caller's transaction: migration 0004, and a fresh catalogue right after
-    ``create_all``, so both end with the same layout. A no-op on SQLite and on a catalogue
+    ``create_all``, so both end with the same layout; both then take ``shot_measurements``
+    out of the partitioning again (revision 0017, :func:`measurements_out_of_partitions`). A no-op on SQLite and on a catalogue
     already partitioned. A child row without its shot raises :class:`StoreError` (the
     caller's transaction then rolls back and nothing changes).
     """
     if connection.dialect.name != "postgresql" or is_partitioned(connection):
         return {}
     old = "_unpartitioned"
-    columns = {table: _columns(connection, table) for table in SHOT_TABLES}
+    columns = {table: _columns(connection, table) for table in _REVISION_0004_TABLES}
     shots_foreign_keys = _constraints(connection, "shots", "f")
-    for table in SHOT_TABLES:
+    for table in _REVISION_0004_TABLES:
         _step_aside(connection, table, old)
-    for table in SHOT_TABLES:
+    for table in _REVISION_0004_TABLES:
         definitions = [f'"{name}" {sql_type}{" NOT NULL" if not_null else ""}' for name, sql_type, not_null in columns[table]]
         if table != "shots":
             definitions.append(f'"{_KEY}" timestamp with time zone NOT NULL')
@@ -314,9 +329,9 @@ def partition_shot_tables(connection: Connection) -> dict[str, int]:
         connection.exec_driver_sql(f"CREATE TABLE {table} ({', '.join(definitions)}) PARTITION BY RANGE ({_KEY})")
     months = connection.exec_driver_sql(f"SELECT DISTINCT date_trunc('month', time AT TIME ZONE 'UTC')::date FROM shots{old}").scalars().all()
     for month in sorted(months):
-        ensure_months(connection, month, month)
+        ensure_months(connection, month, month, _REVISION_0004_TABLES)
     moved = {}
-    for table in SHOT_TABLES:
+    for table in _REVISION_0004_TABLES:
         names = [name for name, _, _ in columns[table]]
         if table == "shots":
             select = f"SELECT {_listed(names)} FROM shots{old}"
@@ -326,11 +341,11 @@ def partition_shot_tables(connection: Connection) -> dict[str, int]:
             select = f"SELECT {_listed(names, 'c.')}, s.time FROM {table}{old} c JOIN shots{old} s ON s.id = c.shot_id"
             moved[table] = _move_rows(connection, table, f"{table}{old}", [*names, _KEY], select)
     # Children first: the old ones still refer to the old shots.
-    for table in reversed(SHOT_TABLES):
+    for table in reversed(_REVISION_0004_TABLES):
         connection.exec_driver_sql(f"DROP TABLE {table}{old}")
     if any(moved.values()):
         # Autovacuum analyses the partitions, never a partitioned parent.
-        connection.exec_driver_sql(f"ANALYZE {', '.join(SHOT_TABLES)}")
+        connection.exec_driver_sql(f"ANALYZE {', '.join(_REVISION_0004_TABLES)}")
     return moved
 
 
@@ -346,22 +361,99 @@ def unpartition_shot_tables(connection: Connection) -> dict[str, int]:
     from runlog.store.schema import Base
 
     old = "_partitioned"
-    columns = {table: [(name, sql_type) for name, sql_type, _ in _columns(connection, table) if not (name == _KEY and table != "shots")] for table in SHOT_TABLES}
-    for table in SHOT_TABLES:
+    columns = {table: [(name, sql_type) for name, sql_type, _ in _columns(connection, table) if not (name == _KEY and table != "shots")] for table in _REVISION_0004_TABLES}
+    for table in _REVISION_0004_TABLES:
         _step_aside(connection, table, old)
-    for table in SHOT_TABLES:
+    for table in _REVISION_0004_TABLES:
         Base.metadata.tables[table].create(connection)
         known = {column.name for column in Base.metadata.tables[table].columns}
         for name, sql_type in columns[table]:
             if name not in known:  # a measurement column
                 connection.exec_driver_sql(f'ALTER TABLE {table} ADD COLUMN "{name}" {sql_type}')
     moved = {}
-    for table in SHOT_TABLES:
+    for table in _REVISION_0004_TABLES:
         names = [name for name, _ in columns[table]]
         select = f"SELECT {_listed(names)} FROM {table}{old}"
         moved[table] = _move_rows(connection, table, f"{table}{old}", names, select)
-    for table in reversed(SHOT_TABLES):
+    for table in reversed(_REVISION_0004_TABLES):
         connection.exec_driver_sql(f"DROP TABLE {table}{old}")
+    return moved
+
+
+def _measurements_partitioned(connection: Connection) -> bool:
+    found = connection.execute(text("SELECT 1 FROM pg_partitioned_table WHERE partrelid = to_regclass(:t)"), {"t": _MEASUREMENTS}).first()
+    return found is not None
+
+
+def measurements_out_of_partitions(connection: Connection) -> int | None:
+    """Make the month-partitioned ``shot_measurements`` one plain table keyed by shot id,
+    every row and column (measurement columns and the blocks made ahead) kept, the
+    partitions' ``time`` column dropped; returns the rows moved, None when there was
+    nothing to do (SQLite, or already plain).
+
+    Why: a partitioned table's columns are every partition's, so a new block of
+    measurement columns locked and changed each month; on one table it is one change,
+    however many months (docs/scaling.md, "Measurement columns and month partitions").
+    Shot ids grow with ingest, so new rows still go to the end of the key's index. The
+    shot's time stays in ``shots`` alone; readers join by shot id.
+
+    Runs in the caller's transaction (migration 0017, and a fresh catalogue right after
+    :func:`partition_shot_tables`): the rows are copied with one ``INSERT .. SELECT`` in key
+    order, the key is built once afterwards, and a count that does not add up (or a shot
+    id held twice) raises, so the transaction rolls back and nothing changes. The new table
+    has no foreign key to ``shots``, as the partitions had none: PostgreSQL's ``shots`` is
+    keyed by (id, time), and its rows are written by ingest alone under the writer lock.
+    """
+    if connection.dialect.name != "postgresql" or not _measurements_partitioned(connection):
+        return None
+    old = "_partitioned"
+    columns = [(name, sql_type, not_null) for name, sql_type, not_null in _columns(connection, _MEASUREMENTS) if name != _KEY]
+    _step_aside(connection, _MEASUREMENTS, old)
+    definitions = [f'"{name}" {sql_type}{" NOT NULL" if not_null else ""}' for name, sql_type, not_null in columns]
+    connection.exec_driver_sql(f"CREATE TABLE {_MEASUREMENTS} ({', '.join(definitions)})")
+    names = [name for name, _, _ in columns]
+    moved = _move_rows(connection, _MEASUREMENTS, f"{_MEASUREMENTS}{old}", names, f"SELECT {_listed(names)} FROM {_MEASUREMENTS}{old} ORDER BY shot_id")
+    # A key built from sorted rows at the end costs less than one kept up row by row; a
+    # shot id held twice (which the old key, with its time, allowed in principle) fails here.
+    connection.exec_driver_sql(f"ALTER TABLE {_MEASUREMENTS} ADD CONSTRAINT pk_{_MEASUREMENTS} PRIMARY KEY (shot_id)")
+    connection.exec_driver_sql(f"DROP TABLE {_MEASUREMENTS}{old}")
+    if moved:
+        connection.exec_driver_sql(f"ANALYZE {_MEASUREMENTS}")
+    return moved
+
+
+def measurements_into_partitions(connection: Connection) -> int | None:
+    """The reverse of :func:`measurements_out_of_partitions` (downgrade below 0017):
+    ``shot_measurements`` partitioned like ``shots`` again, one partition for each of
+    ``shots``' (a month or a sparse year), each row with its shot's time; returns the rows
+    moved, None when there was nothing to do. A row without its shot raises
+    :class:`StoreError` and the caller's transaction rolls back."""
+    if connection.dialect.name != "postgresql" or not is_partitioned(connection) or _measurements_partitioned(connection):
+        return None
+    old = "_plain"
+    columns = _columns(connection, _MEASUREMENTS)
+    _step_aside(connection, _MEASUREMENTS, old)
+    definitions = [f'"{name}" {sql_type}{" NOT NULL" if not_null else ""}' for name, sql_type, not_null in columns]
+    definitions.append(f'"{_KEY}" timestamp with time zone NOT NULL')
+    definitions.append(f"CONSTRAINT pk_{_MEASUREMENTS} PRIMARY KEY ({', '.join(_PRIMARY_KEYS[_MEASUREMENTS])})")
+    connection.exec_driver_sql(f"CREATE TABLE {_MEASUREMENTS} ({', '.join(definitions)}) PARTITION BY RANGE ({_KEY})")
+    for name in sorted(_attached(connection, ("shots",))):
+        found = re.fullmatch(r"shots_y(\d{4})(?:m(\d{2}))?", name)
+        if found is None:
+            raise StoreError(f"shots has a partition runlog did not make: {name}; nothing was changed")
+        year = int(found.group(1))
+        if found.group(2) is None:
+            first, end = dt.date(year, 1, 1), dt.date(year + 1, 1, 1)
+        else:
+            first = dt.date(year, int(found.group(2)), 1)
+            end = _next_month(first)
+        _make(connection, _MEASUREMENTS, _MEASUREMENTS + name[len("shots") :], first, end)
+    names = [name for name, _, _ in columns]
+    select = f"SELECT {_listed(names, 'c.')}, s.time FROM {_MEASUREMENTS}{old} c JOIN shots s ON s.id = c.shot_id"
+    moved = _move_rows(connection, _MEASUREMENTS, f"{_MEASUREMENTS}{old}", [*names, _KEY], select)
+    connection.exec_driver_sql(f"DROP TABLE {_MEASUREMENTS}{old}")
+    if moved:
+        connection.exec_driver_sql(f"ANALYZE {_MEASUREMENTS}")
     return moved
 
 
