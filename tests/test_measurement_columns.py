@@ -175,3 +175,46 @@ def test_downgrade_below_0015_drops_only_the_columns_no_name_uses(db_url, tmp_pa
         assert _values(engine) == before
     finally:
         engine.dispose()
+
+
+# --- revision 0017: one plain table on PostgreSQL -------------------------------------------
+
+
+def test_upgrade_from_0014_makes_one_plain_table_and_keeps_every_value(db_url, tmp_path):
+    postgres = db_url.startswith("postgresql")
+    rng = np.random.default_rng(17)
+    files, expected = [], 0
+    for k, start in enumerate(MONTHS):
+        values = rng.normal(3.0, 0.5, 6)
+        values[k] = np.nan  # a missing value stays missing
+        expected += 6 if k == 2 else int((values > 0).sum())  # q2 alone has m.extra_2, all >= 0
+        files.append(write_table(tmp_path / f"q{k}.parquet", shot_table({f"q{k}": 6}, start=start, seed=20 + k, extra={"m.fluorescence": values, f"m.extra_{k}": np.arange(6.0) * k})))
+    with runlog.open(db_url) as catalogue:
+        assert [r.status for r in catalogue.ingest(files)] == ["ingested"] * len(files)
+        first = catalogue.export("m.fluorescence > 0 or m.extra_2 >= 0", tmp_path / "then")
+        chosen_then = catalogue.select("m.fluorescence > 3")
+    # A catalogue at 0014, with the layout of 0004..0016 on PostgreSQL: shot_measurements
+    # partitioned by month, each row with its shot's time.
+    engine = make_engine(db_url)
+    migrate.downgrade(engine, "0014")
+    if postgres:
+        with engine.connect() as connection:
+            assert connection.execute(text("SELECT count(*) FROM pg_inherits WHERE inhparent = 'shot_measurements'::regclass")).scalar_one() == len(MONTHS)
+            assert connection.execute(text("SELECT count(*) FROM shot_measurements c JOIN shots s ON s.id = c.shot_id AND s.time = c.time")).scalar_one() == 24
+    before = _values(engine)
+    assert len(before) == 24 and sum(v is None for row in before for v in row[1:]) == 4 + 24 * 4 - 24
+    migrate.upgrade(engine)
+    assert _values(engine) == before
+    if postgres:
+        with engine.connect() as connection:
+            assert connection.execute(text("SELECT relkind FROM pg_class WHERE oid = 'shot_measurements'::regclass")).scalar_one() == "r"
+            assert connection.execute(text("SELECT count(*) FROM pg_inherits WHERE inhparent = 'shot_measurements'::regclass")).scalar_one() == 0
+            assert connection.execute(text("SELECT pg_get_constraintdef(oid) FROM pg_constraint WHERE conrelid = 'shot_measurements'::regclass AND contype = 'p'")).scalar_one() == "PRIMARY KEY (shot_id)"
+            assert _columns(engine) == list(range(1, BLOCK + 1))  # the block made ahead is kept
+    engine.dispose()
+    with runlog.open(db_url) as catalogue:
+        again = catalogue.export("m.fluorescence > 0 or m.extra_2 >= 0", tmp_path / "now")
+        assert again.shots == first.shots == expected
+        for name in first.data:
+            assert (tmp_path / "then" / name).read_bytes() == (tmp_path / "now" / name).read_bytes()
+        assert catalogue.select("m.fluorescence > 3").equals(chosen_then)

@@ -4,16 +4,18 @@ A measurement's values are the column ``m_<id>`` of ``shot_measurements``
 (:func:`runlog.store.schema.measurement_column`); every reader finds a measurement's column
 from its id alone. What this module owns is when those columns are made.
 
-On PostgreSQL ``shot_measurements`` is partitioned by month (:mod:`runlog.store.partitions`)
-and a partitioned table's columns are every partition's columns: one ``ADD COLUMN`` locks
-and changes each month, so a new name cost time in proportion to the months stored (one
-name 0.1 s with 130 months, against 0.4 ms on a plain table; benchmarks/RESULTS.md). So
-columns are made in blocks of :data:`BLOCK` (``m_1`` .. ``m_64``, ``m_65`` .. ``m_128``, ...):
+On PostgreSQL ``shot_measurements`` was partitioned by month until revision 0017
+(:mod:`runlog.store.partitions`), and a partitioned table's columns are every partition's
+columns: one ``ADD COLUMN`` locked and changed each month, so a new name cost time in
+proportion to the months stored (one name 0.1 s with 130 months, against 0.4 ms on a plain
+table; benchmarks/RESULTS.md). Revision 0015 made columns in blocks of :data:`BLOCK` (``m_1`` .. ``m_64``, ``m_65`` .. ``m_128``, ...):
 the first name of a block makes the whole block in one statement, and every other name of
-it is a row of ``measurements`` and nothing more — no partition is touched. A column made
-ahead is NULL in every row; PostgreSQL stores no bytes for a NULL beyond one bit of the
-row's null bitmap, which a row with any missing value carries anyway (a block costs at most
-8 bytes a row, 64 bits). Months made later copy every column of the parent, slots included.
+it is a row of ``measurements`` and nothing more. Revision 0017 made the table one plain
+table keyed by shot id, so the block's one statement changes one table however many months
+are stored. The blocks stay: a block costs one lock of the table where each name would
+take its own. A column made ahead is NULL in every row; PostgreSQL stores no bytes for a
+NULL beyond one bit of the row's null bitmap, which a row with any missing value carries
+anyway (a block costs at most 8 bytes a row, 64 bits).
 
 On SQLite a new column is a change of the schema text alone, whatever the rows, and every
 column of a row written later costs a byte of its record header even when NULL: there a
@@ -86,8 +88,8 @@ def make_columns(connection: Connection, ids: Iterable[int], limit: int) -> list
     caller's transaction; returns the ids whose columns were made.
 
     The caller holds the writer lock (:func:`runlog.store.bulk.short_write`), so no other
-    writer makes a column meanwhile. On PostgreSQL one ``ALTER TABLE`` makes them all (a
-    partitioned table changes each month once); SQLite takes one column a statement.
+    writer makes a column meanwhile. On PostgreSQL one ``ALTER TABLE`` makes them all;
+    SQLite takes one column a statement.
     """
     dialect = connection.dialect.name
     ids = list(ids)
@@ -106,7 +108,7 @@ def make_columns(connection: Connection, ids: Iterable[int], limit: int) -> list
 
 def make_first_block(connection: Connection) -> list[int]:
     """Make the first block of measurement columns (a new PostgreSQL catalogue, before any
-    month exists, where it costs nothing); as revision 0015 does for an upgraded one."""
+    shot, where it costs nothing); as revision 0015 does for an upgraded one."""
     if block_size(connection.dialect.name) == 1:
         return []
     return make_columns(connection, [1], BLOCK)
