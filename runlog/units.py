@@ -100,10 +100,14 @@ def _base_registry(lab: LabUnits):
     try:
         # Parsing pint's definitions takes ~0.6 s; its on-disk cache brings that to ~0.05 s.
         ureg = pint.UnitRegistry(cache_folder=":auto:", on_redefinition="ignore")
-    except OSError:  # no writable cache folder
+    except Exception:  # noqa: BLE001 - the cache only saves time: unwritable, stale (it names a removed environment's files) or corrupt
         ureg = pint.UnitRegistry(on_redefinition="ignore")
     for definition in _DEFINITIONS:
         ureg.define(definition)
+    # define() replaces a unit's definition but not what the registry derived from it when it
+    # was built (root units, dimensions): without this rebuild the gauss stays pint's
+    # CGS-Gaussian unit whenever pint's on-disk cache is cold or unusable (~0.07 s).
+    ureg._build_cache()
     for name, text in lab:
         number, root = _quantity_parts(text, ureg)
         # Defined in root units, written by pint itself: the text holds no lab input but the number.
