@@ -70,6 +70,9 @@ def test_conversion_table(value, source, target, expected, reference):
     assert float(converter(source, target)(value)) == pytest.approx(expected, rel=2e-7), reference
 
 
+PROBE = "from runlog.units import convert; print(*(convert([v], a, b)[0] for v, a, b in ((3, 'G', 'mT'), (3, 'mG', 'uT'), (1, 'kG', 'T'))))"
+
+
 @pytest.mark.parametrize("cache", ["cold", "corrupt"])
 def test_gauss_is_the_si_flux_density_whatever_the_state_of_pints_disk_cache(cache, tmp_path):
     # The defects: on a fresh machine (pint's cache folder empty) pint kept the gauss's
@@ -77,17 +80,15 @@ def test_gauss_is_the_si_flux_density_whatever_the_state_of_pints_disk_cache(cac
     # corrupt cache file made every unit fail. Each case runs in a process of its own, with
     # pint's cache under a folder of the test's.
     home = tmp_path / "cache"
+    env = {**os.environ, "XDG_CACHE_HOME": str(home)}
     if cache == "corrupt":
-        subprocess.run([sys.executable, "-c", PROBE], env={**os.environ, "XDG_CACHE_HOME": str(home)}, check=True, capture_output=True)
+        subprocess.run([sys.executable, "-c", PROBE], env=env, check=True, capture_output=True)
         for pickled in (home / "pint").glob("*.pickle"):
             pickled.write_bytes(b"not a pickle")
-    done = subprocess.run([sys.executable, "-c", PROBE], env={**os.environ, "XDG_CACHE_HOME": str(home)}, capture_output=True, text=True)
+    done = subprocess.run([sys.executable, "-c", PROBE], env=env, capture_output=True, text=True)
     assert done.returncode == 0, done.stderr
     # NIST SP 811 (2008) B.8: gauss = 1.0 E-04 T.
     assert [float(x) for x in done.stdout.split()] == pytest.approx([0.3, 0.3, 0.1], rel=1e-12)
-
-
-PROBE = "from runlog.units import convert; print(*(convert([v], a, b)[0] for v, a, b in ((3, 'G', 'mT'), (3, 'mG', 'uT'), (1, 'kG', 'T'))))"
 
 
 def test_logarithmic_units_are_not_a_straight_line():
